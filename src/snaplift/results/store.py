@@ -1,0 +1,162 @@
+"""The zarr v3 result store, written to a staging folder and renamed into place.
+
+Layout (see DESIGN.md, "Result store")::
+
+    RESULT.zarr/
+      spectrum/     eigenvalue, rate, frequency, growth, period, amplitude   (mode,)
+      operator/     matrix (mode_in, mode_out)
+      modes/        one array per field: (mode, *grid) complex, NaN at masked points
+      prepare/      mean_<field>, scale (field,), weights_<field>, mask_<field>
+      basis/        singular_value (rank,), coefficient (rank, snapshot), <field> (rank, *grid)
+      diagnostics/  reconstruction_error, projection_error, time  (snapshot,)
+
+Every array has ``dimension_names`` and no ``_FillValue`` attribute; metadata is
+consolidated once, at the final commit, and the root attribute ``snaplift_complete`` is
+written last, so a store that is not complete never looks complete.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import uuid
+from collections.abc import Sequence
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import zarr
+
+from snaplift.errors import ResultStoreError
+
+__all__ = ["StoreWriter", "open_result", "read_group", "grid_dimensions", "COMPLETE_KEY"]
+
+COMPLETE_KEY = "snaplift_complete"
+FORMAT_KEY = "snaplift_store_version"
+STORE_VERSION = 1
+
+
+def grid_dimensions(grids: dict[str, tuple[int, ...]]) -> dict[str, tuple[str, ...]]:
+    """Dimension names for each field's grid; fields on one grid share names.
+
+    One common grid gets ``x`` / ``y, x`` / ``z, y, x``; fields on different (staggered)
+    grids get names prefixed by the field, so xarray sees no conflicting sizes.
+    """
+    common = len(set(grids.values())) == 1
+    names: dict[str, tuple[str, ...]] = {}
+    for field, grid in grids.items():
+        base = ("z", "y", "x")[-len(grid):] if len(grid) <= 3 else tuple(f"axis{i}" for i in range(len(grid)))
+        names[field] = base if common else tuple(f"{field}_{b}" for b in base)
+    return names
+
+
+class StoreWriter:
+    """Builds a result store in ``<path>.staging-<id>`` and commits it by rename."""
+
+    def __init__(self, path: str | Path, *, overwrite: bool = False, workflow_fingerprint: str | None = None) -> None:
+        self.path = Path(path)
+        if self.path.exists():
+            self._check_replaceable(overwrite, workflow_fingerprint)
+        self.path.parent.mkdir(parents=True, exist_ok=True)
+        self.staging = self.path.with_name(f"{self.path.name}.staging-{uuid.uuid4().hex[:8]}")
+        self.root = zarr.open_group(str(self.staging), mode="w", zarr_format=3)
+        self.overwrite = overwrite
+
+    def _check_replaceable(self, overwrite: bool, fingerprint: str | None) -> None:
+        try:
+            attrs = dict(zarr.open_group(str(self.path), mode="r").attrs)
+        except Exception:
+            attrs = {}
+        if not attrs.get(FORMAT_KEY):
+            if overwrite:
+                raise ResultStoreError(
+                    f"{self.path} exists and is not a snaplift result store; refusing to replace it "
+                    "even with --overwrite; choose another output.path"
+                )
+            raise ResultStoreError(
+                f"{self.path} exists and is not a snaplift result store; choose another output.path"
+            )
+        same = fingerprint is not None and attrs.get("workflow_fingerprint") == fingerprint
+        if not (same or overwrite):
+            raise ResultStoreError(
+                f"{self.path} holds results of a different workflow (fingerprint "
+                f"{attrs.get('workflow_fingerprint')}); pass --overwrite to replace it or change output.path"
+            )
+
+    def array(self, group: str, name: str, data: np.ndarray, dimensions: Sequence[str],
+              chunks: tuple[int, ...] | None = None, attrs: dict[str, Any] | None = None) -> zarr.Array:
+        data = np.asarray(data)
+        if data.ndim != len(dimensions):
+            raise ValueError(f"{group}/{name}: {data.ndim}-D data with dimensions {tuple(dimensions)}")
+        if data.dtype == object or data.dtype.kind == "U":
+            data = data.astype(str).astype(object) if data.dtype == object else data
+        node = self.root.require_group(group) if group else self.root
+        array = node.create_array(
+            name,
+            shape=data.shape,
+            dtype=data.dtype,
+            chunks=chunks or tuple(max(1, s) for s in data.shape),
+            dimension_names=tuple(dimensions),
+            fill_value=None,
+            attributes=dict(attrs or {}),
+        )
+        if data.size:
+            array[...] = data
+        return array
+
+    def empty(self, group: str, name: str, shape: tuple[int, ...], dtype: Any, dimensions: Sequence[str],
+              chunks: tuple[int, ...], attrs: dict[str, Any] | None = None) -> zarr.Array:
+        """An array to be filled chunk by chunk (modes, basis fields)."""
+        node = self.root.require_group(group)
+        return node.create_array(name, shape=shape, dtype=dtype, chunks=chunks,
+                                 dimension_names=tuple(dimensions), fill_value=None,
+                                 attributes=dict(attrs or {}))
+
+    def group_attrs(self, group: str, attrs: dict[str, Any]) -> None:
+        node = self.root.require_group(group) if group else self.root
+        node.attrs.update(_jsonable(attrs))
+
+    def commit(self, attrs: dict[str, Any]) -> Path:
+        """Write provenance, consolidate metadata once, mark complete, rename into place."""
+        self.root.attrs.update(_jsonable({**attrs, FORMAT_KEY: STORE_VERSION}))
+        self.root.attrs[COMPLETE_KEY] = True
+        zarr.consolidate_metadata(str(self.staging))
+        old = None
+        if self.path.exists():
+            old = self.path.with_name(f"{self.path.name}.old-{uuid.uuid4().hex[:8]}")
+            os.replace(self.path, old)
+        os.replace(self.staging, self.path)
+        if old is not None:
+            shutil.rmtree(old, ignore_errors=True)
+        return self.path
+
+    def abort(self) -> None:
+        shutil.rmtree(self.staging, ignore_errors=True)
+
+
+def _jsonable(value: Any) -> Any:
+    return json.loads(json.dumps(value, default=lambda o: o.tolist() if hasattr(o, "tolist") else str(o)))
+
+
+def open_result(path: str | Path) -> zarr.Group:
+    """Open a complete result store read-only, or fail with what is wrong."""
+    path = Path(path)
+    if not path.exists():
+        raise ResultStoreError(f"result store {path} does not exist; run 'snaplift run WORKFLOW' first")
+    try:
+        root = zarr.open_group(str(path), mode="r")
+    except Exception as error:  # zarr raises several types for a folder that is not a group
+        raise ResultStoreError(f"{path} is not a zarr result store ({type(error).__name__})") from None
+    if not root.attrs.get(COMPLETE_KEY):
+        raise ResultStoreError(f"result store {path} is incomplete (no completion record); rerun the workflow")
+    return root
+
+
+def read_group(path: str | Path, group: str) -> dict[str, np.ndarray]:
+    """All arrays of one group of a complete store, in memory."""
+    root = open_result(path)
+    if group not in root:
+        raise ResultStoreError(f"result store {path} has no group '{group}'; groups: {', '.join(sorted(root.group_keys()))}")
+    node = root[group]
+    return {name: np.asarray(array[...]) for name, array in node.arrays()}
