@@ -1,0 +1,148 @@
+"""Command line: parse, call one library function, print. Heavy imports inside commands."""
+
+from __future__ import annotations
+
+import functools
+import sys
+from pathlib import Path
+from typing import Annotated, Any, Callable, Optional
+
+import typer
+
+app = typer.Typer(
+    name="snaplift",
+    help="Reduce simulation archives to modes, frequencies, growth rates and linear surrogates.",
+    no_args_is_help=True,
+    add_completion=False,
+    pretty_exceptions_enable=False,
+)
+
+
+def _user_errors(function: Callable[..., Any]) -> Callable[..., Any]:
+    """Print user errors as one line on stderr and exit 2; never a traceback."""
+
+    @functools.wraps(function)
+    def wrapper(*args: Any, **kwargs: Any) -> Any:
+        from snaplift.errors import SnapliftError
+
+        try:
+            return function(*args, **kwargs)
+        except SnapliftError as error:
+            typer.echo(f"snaplift: error: {error}", err=True)
+            raise typer.Exit(2) from None
+        except KeyboardInterrupt:
+            typer.echo("snaplift: interrupted; nothing was committed to the result store", err=True)
+            raise typer.Exit(130) from None
+
+    return wrapper
+
+
+def _console(quiet: bool = False):
+    from rich.console import Console
+
+    return Console(stderr=False, quiet=quiet)
+
+
+@app.command()
+@_user_errors
+def demo(
+    size: Annotated[str, typer.Option(help="'small', 'default', or a size such as 500MB, 4GiB")] = "default",
+    output: Annotated[Optional[Path], typer.Option(help="folder for the archive and results (default: cache)")] = None,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="print only the result path")] = False,
+) -> None:
+    """Generate the fin-in-a-duct demo archive (once, cached) and reduce it.
+
+    Example: snaplift demo --size small
+    """
+    from snaplift.demo.run import run_demo
+
+    console = _console(quiet)
+    summary, table = run_demo(size=size, folder=output, progress=console.print)
+    console.print(table)
+    console.print(f"results: {summary.path}  ({summary.passes} passes over the archive)")
+    if quiet:
+        typer.echo(str(summary.path))
+
+
+@app.command()
+@_user_errors
+def run(
+    workflow: Annotated[Path, typer.Argument(help="workflow YAML file")],
+    overwrite: Annotated[bool, typer.Option(help="replace a result store written by a different workflow")] = False,
+    dry_run: Annotated[bool, typer.Option("--dry-run", help="validate and say what would be written")] = False,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q")] = False,
+) -> None:
+    """Run a workflow file: scan, compress, fit, write the result store.
+
+    Example: snaplift run workflows/fin-duct.yaml
+    """
+    from snaplift.workflow.runner import run_workflow
+    from snaplift.workflow.schema import load_workflow, resolve_path
+
+    if dry_run:
+        wf, _, folder = load_workflow(workflow)
+        typer.echo(f"workflow {workflow} is valid; it would write {resolve_path(folder, wf.output.path)}")
+        return
+    console = _console(quiet)
+    summary = run_workflow(workflow, overwrite=overwrite, progress=console.print)
+    console.print(f"results: {summary.path}  ({summary.passes} passes, {summary.bytes_read / 1e6:.1f} MB read)")
+
+
+@app.command()
+@_user_errors
+def scan(
+    archive: Annotated[str, typer.Argument(help="archive path or glob of per-snapshot files")],
+    fields: Annotated[Optional[str], typer.Option(help="comma-separated fields (default: all)")] = None,
+    time: Annotated[Optional[str], typer.Option(help="dataset of snapshot times")] = None,
+    step: Annotated[Optional[float], typer.Option(help="fixed time step if there is no time dataset")] = None,
+    memory: Annotated[str, typer.Option(help="memory budget used to plan tiles")] = "2GiB",
+    full: Annotated[bool, typer.Option("--full", help="also count NaN/Inf in every value")] = False,
+    json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
+) -> None:
+    """Describe an archive: fields, chunks, times, size, tile plan.
+
+    Example: snaplift scan fin-duct.h5 --fields u,v,T --time t
+    """
+    from snaplift.archive import open_archive, scan_archive
+    from snaplift.report.scan import render_scan, scan_json
+    from snaplift.workflow.schema import parse_bytes
+
+    reader = open_archive(archive)
+    chosen = [f.strip() for f in fields.split(",")] if fields else None
+    report = scan_archive(reader, fields=chosen, time=time, step=step, full=full,
+                          memory_bytes=parse_bytes(memory))
+    if json_output:
+        typer.echo(scan_json(report))
+    else:
+        _console().print(render_scan(report))
+
+
+@app.command()
+@_user_errors
+def spectrum(
+    result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
+    sort: Annotated[str, typer.Option(help="amplitude | frequency | growth")] = "amplitude",
+    all_modes: Annotated[bool, typer.Option("--all", help="show every mode")] = False,
+    json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
+) -> None:
+    """Print the spectrum of a result store (sorted by amplitude).
+
+    Example: snaplift spectrum results/fin-duct.zarr --json
+    """
+    from snaplift.errors import ConfigError
+    from snaplift.report.table import render_spectrum, spectrum_json
+
+    if sort not in ("amplitude", "frequency", "growth"):
+        raise ConfigError(f"--sort {sort!r} is not allowed; use amplitude, frequency or growth")
+    if json_output:
+        typer.echo(spectrum_json(result, sort=sort))
+    else:
+        _console().print(render_spectrum(result, sort=sort, limit=None if all_modes else 20))
+
+
+def main() -> None:  # pragma: no cover - console entry point
+    app()
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(app())

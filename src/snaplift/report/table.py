@@ -1,0 +1,74 @@
+"""The spectrum as a table: rich for people, JSON for programs."""
+
+from __future__ import annotations
+
+import json
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from snaplift.results.store import open_result, read_group
+
+__all__ = ["load_spectrum", "spectrum_records", "render_spectrum", "spectrum_json"]
+
+COLUMNS = ("eigenvalue", "rate", "frequency", "growth", "period", "amplitude")
+
+
+def load_spectrum(path: str | Path) -> dict[str, np.ndarray]:
+    """The ``spectrum/`` group of a complete result store."""
+    return read_group(path, "spectrum")
+
+
+def spectrum_records(spectrum: dict[str, np.ndarray], *, sort: str = "amplitude") -> list[dict[str, Any]]:
+    """One dict per mode, sorted by ``sort`` (descending for amplitude, ascending otherwise)."""
+    n = len(spectrum["eigenvalue"])
+    keys = np.asarray(spectrum[sort])
+    if np.iscomplexobj(keys):
+        keys = np.abs(keys)
+    order = np.argsort(-keys if sort == "amplitude" else keys, kind="stable")
+    records = []
+    for rank, i in enumerate(order):
+        record: dict[str, Any] = {"mode": int(i)}
+        for name in COLUMNS:
+            if name not in spectrum:
+                continue
+            value = spectrum[name][i]
+            if np.iscomplexobj(value):
+                record[name] = {"real": float(np.real(value)), "imag": float(np.imag(value))}
+            else:
+                record[name] = float(value)
+        records.append(record)
+    assert len(records) == n
+    return records
+
+
+def spectrum_json(path: str | Path, *, sort: str = "amplitude") -> str:
+    root = open_result(path)
+    records = spectrum_records(load_spectrum(path), sort=sort)
+    return json.dumps({"result": str(path), "dt": root["spectrum"].attrs.get("dt"), "modes": records}, indent=2)
+
+
+def _number(value: float, digits: int = 4) -> str:
+    if value is None or (isinstance(value, float) and math.isinf(value)):
+        return "inf"
+    return f"{value:.{digits}g}"
+
+
+def render_spectrum(path: str | Path, *, sort: str = "amplitude", limit: int | None = 20) -> Any:
+    """A rich Table of the spectrum of a result store."""
+    from rich.table import Table
+
+    records = spectrum_records(load_spectrum(path), sort=sort)
+    table = Table(title=f"spectrum of {path} (sorted by {sort})", title_justify="left")
+    for header in ("mode", "|eigenvalue|", "frequency [Hz]", "growth [1/s]", "period [s]", "amplitude"):
+        table.add_column(header, justify="right")
+    for record in records[: limit or None]:
+        eig = record["eigenvalue"]
+        table.add_row(str(record["mode"]), _number(abs(complex(eig["real"], eig["imag"])), 6),
+                      _number(record["frequency"]), _number(record["growth"]),
+                      _number(record["period"]), _number(record["amplitude"]))
+    if limit and len(records) > limit:
+        table.caption = f"{len(records) - limit} more modes not shown (use --all)"
+    return table
