@@ -7,7 +7,7 @@ from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["orthonormalize", "test_block", "normalize_signs", "TEST_BLOCK_ROWS"]
+__all__ = ["orthonormalize", "gaussian_block", "normalize_signs", "TEST_BLOCK_ROWS"]
 
 #: snapshots per generated block of a random test matrix; part of the key, so fixed
 TEST_BLOCK_ROWS = 256
@@ -19,7 +19,7 @@ def orthonormalize(y: np.ndarray) -> np.ndarray:
     return q
 
 
-def test_block(seed: int, stream: int, block: int, width: int, complex_valued: bool) -> np.ndarray:
+def gaussian_block(seed: int, stream: int, block: int, width: int, complex_valued: bool) -> np.ndarray:
     """Rows ``block*TEST_BLOCK_ROWS ... +TEST_BLOCK_ROWS`` of a Gaussian test matrix.
 
     The key is (seed, stream, global block number), never a tile number, so any tiling of

@@ -21,9 +21,9 @@ import dask
 import dask.array as da
 import numpy as np
 
-from snaplift.linalg._kernels import TEST_BLOCK_ROWS, normalize_signs, test_block
+from snaplift.linalg._kernels import TEST_BLOCK_ROWS, normalize_signs, gaussian_block
 
-__all__ = ["LowRank", "randomized_svd", "test_matrix"]
+__all__ = ["LowRank", "randomized_svd", "gaussian_map"]
 
 ComputeFn = Callable[..., Sequence[Any]]
 PersistFn = Callable[..., Sequence[Any]]
@@ -60,7 +60,7 @@ class LowRank:
         return np.divide(missed, self.column_norm, out=np.zeros_like(missed), where=self.column_norm > 0)
 
 
-def test_matrix(
+def gaussian_map(
     snapshot_index: np.ndarray, width: int, *, seed: int, complex_valued: bool, stream: int = 0
 ) -> np.ndarray:
     """Gaussian test matrix whose row ``j`` depends only on global snapshot index ``j``.
@@ -70,7 +70,7 @@ def test_matrix(
 
     Example
     -------
-    >>> omega = test_matrix(np.arange(10), 4, seed=0, complex_valued=False)
+    >>> omega = gaussian_map(np.arange(10), 4, seed=0, complex_valued=False)
     >>> omega.shape
     (10, 4)
     """
@@ -80,7 +80,7 @@ def test_matrix(
     blocks = snapshot_index // TEST_BLOCK_ROWS
     for block in np.unique(blocks):
         rows = np.flatnonzero(blocks == block)
-        generated = test_block(seed, stream, int(block), width, complex_valued)
+        generated = gaussian_block(seed, stream, int(block), width, complex_valued)
         out[rows] = generated[snapshot_index[rows] - block * TEST_BLOCK_ROWS]
     return out
 
@@ -125,7 +125,7 @@ def randomized_svd(
     snapshot_index
         Global snapshot number of each column (keys the test matrix; default 0..m-1).
     range_sketch
-        ``matrix @ test_matrix(snapshot_index, rank + oversample, seed=seed, ...)``, when
+        ``matrix @ gaussian_map(snapshot_index, rank + oversample, seed=seed, ...)``, when
         the caller computed it in a pass of its own.
     compute, persist
         Supplied by the workflow runner, which owns the scheduler.
@@ -157,7 +157,7 @@ def randomized_svd(
     if snapshot_index is None:
         snapshot_index = np.arange(m)
     if range_sketch is None:
-        omega = test_matrix(snapshot_index, width, seed=seed, complex_valued=complex_valued)
+        omega = gaussian_map(snapshot_index, width, seed=seed, complex_valued=complex_valued)
         range_sketch = matrix @ _small(omega, (column_chunks, (width,)))
         passes += 1
     y = range_sketch if isinstance(range_sketch, da.Array) else da.from_array(
