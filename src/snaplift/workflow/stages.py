@@ -17,7 +17,7 @@ from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
 from snaplift.cluster import Scheduler
 from snaplift.errors import ArchiveError, FitError, TimeSpacingError
 from snaplift.fitting import DMDFit, fit_dmd
-from snaplift.linalg.randomized import LowRank, randomized_svd, test_matrix
+from snaplift.linalg.randomized import LowRank, randomized_svd, gaussian_map
 from snaplift.prepare import Preparation, corrected_sketch, finish_preparation, first_pass, prepared_matrix
 from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path
 
@@ -122,7 +122,7 @@ def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler) -
     x = matrix.to_dask()
     width = min(rank + settings.oversample, n, m)
     complex_valued = np.issubdtype(matrix.dtype, np.complexfloating)
-    omega = test_matrix(matrix.snapshot_index, width, seed=settings.seed, complex_valued=complex_valued)
+    omega = gaussian_map(matrix.snapshot_index, width, seed=settings.seed, complex_valued=complex_valued)
     sketch, row_sum, *column_squares = scheduler.compute(*first_pass(matrix, x, omega))
     preparation = finish_preparation(matrix, np.asarray(row_sum), [np.asarray(c) for c in column_squares],
                                      center=workflow.prepare.center, scale=workflow.prepare.scale)
