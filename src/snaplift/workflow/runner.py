@@ -17,7 +17,7 @@ import numpy as np
 
 from snaplift import __version__
 from snaplift.cluster import open_scheduler
-from snaplift.fitting import DMDFit, reconstruction_error, spectrum_table
+from snaplift.fitting import DMDFit, reconstruct, spectrum_table
 from snaplift.prepare import to_physical
 from snaplift.results.store import StoreWriter, grid_dimensions
 from snaplift.workflow.schema import Workflow, load_workflow, resolve_path, section_fingerprint
@@ -127,7 +127,7 @@ def _write_results(writer: StoreWriter, workflow: Workflow, scanned: Scanned,
     projection = lowrank.projection_error()
     writer.array("diagnostics", "projection_error", projection, ("snapshot",),
                  attrs={"kind": "exact", "norm": "relative, weighted and scaled (physical inner product)"})
-    reconstruction = reconstruction_error(fit, lowrank.coefficient, column_norm=lowrank.column_norm)
+    reconstruction = _reconstruction_error(fit, lowrank.coefficient, lowrank.column_norm, projection)
     writer.array("diagnostics", "reconstruction_error", reconstruction, ("snapshot",),
                  attrs={"norm": "relative, weighted and scaled (physical inner product)"})
     writer.array("prepare", "scale", np.array([preparation.field_scale[f] for f in preparation.fields]),
@@ -158,6 +158,22 @@ def _write_results(writer: StoreWriter, workflow: Workflow, scanned: Scanned,
                                _unscaled(preparation), add_mean=False)
             writer.array("prepare", f"mean_{rows.name}", rows.expand(mean), dims[rows.name])
     return warnings
+
+
+def _reconstruction_error(fit: DMDFit, coefficient: np.ndarray, column_norm: np.ndarray,
+                          projection: np.ndarray) -> np.ndarray:
+    """Relative error of the DMD model of every snapshot, in the prepared (physical) norm.
+
+    The basis is orthonormal, so the error splits into the part outside the basis
+    (projection error) and the model's error inside it (Pythagoras).
+    """
+    model = reconstruct(fit, n_steps=coefficient.shape[1])
+    if not np.iscomplexobj(coefficient):
+        model = model.real
+    inside = np.linalg.norm(coefficient - model, axis=0)
+    outside = projection * column_norm
+    total = np.sqrt(inside**2 + outside**2)
+    return np.divide(total, column_norm, out=np.zeros_like(total), where=column_norm > 0)
 
 
 def _unscaled(preparation):

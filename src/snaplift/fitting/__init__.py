@@ -1,0 +1,60 @@
+"""Fitting: DMD on reduced coefficients, spectra, rank choice, reconstruction.
+
+Everything here works on small in-memory numpy arrays (the coefficients ``C = U^H X``,
+r x m); mapping modes back to physical fields with the basis ``U`` is the caller's job.
+Orientation convention: snapshots are columns and operators act from the left,
+``x_{j+1} ~= A x_j`` (see :mod:`snaplift.fitting.dmd`).
+"""
+
+from __future__ import annotations
+
+from snaplift.fitting.amplitudes import optimal_amplitudes
+from snaplift.fitting.dmd import DMDFit, fit_dmd, normalize_modes, run_pair_mask
+from snaplift.fitting.rank import (
+    choose_rank,
+    hard_threshold,
+    threshold_coefficient_known_noise,
+    threshold_coefficient_unknown_noise,
+)
+from snaplift.fitting.reconstruction import (
+    forecast,
+    forecast_error,
+    initial_amplitudes,
+    reconstruct,
+    reconstruction_error,
+)
+from snaplift.fitting.spectrum import (
+    conjugate_pairs,
+    continuous_rate,
+    frequency,
+    growth,
+    near_nyquist,
+    period,
+    spectrum_order,
+    spectrum_table,
+)
+
+__all__ = [
+    "DMDFit",
+    "fit_dmd",
+    "normalize_modes",
+    "run_pair_mask",
+    "optimal_amplitudes",
+    "choose_rank",
+    "hard_threshold",
+    "threshold_coefficient_known_noise",
+    "threshold_coefficient_unknown_noise",
+    "reconstruct",
+    "forecast",
+    "reconstruction_error",
+    "forecast_error",
+    "initial_amplitudes",
+    "continuous_rate",
+    "frequency",
+    "growth",
+    "period",
+    "near_nyquist",
+    "conjugate_pairs",
+    "spectrum_order",
+    "spectrum_table",
+]
