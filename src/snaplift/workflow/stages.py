@@ -12,10 +12,10 @@ from pathlib import Path
 
 import numpy as np
 
-from snaplift.archive import Reader, open_archive, plan_tiles, snapshot_times
+from snaplift.archive import Reader, check_times, open_archive, plan_tiles, snapshot_times
 from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
 from snaplift.cluster import Scheduler
-from snaplift.errors import ArchiveError, FitError, TimeSpacingError
+from snaplift.errors import ArchiveError, FieldNotFoundError, FitError, TimeSpacingError
 from snaplift.fitting import DMDFit, fit_dmd
 from snaplift.linalg.randomized import LowRank, randomized_svd, gaussian_map
 from snaplift.prepare import Preparation, corrected_sketch, finish_preparation, first_pass, prepared_matrix
@@ -24,6 +24,7 @@ from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path
 __all__ = ["Scanned", "Compressed", "scan_stage", "compress_stage", "fit_stage", "TIME_RTOL"]
 
 #: relative tolerance on the spread of time steps before spacing counts as non-uniform
+#: (common practice: a 0.1 % jitter in dt shifts frequencies by about as much)
 TIME_RTOL = 1e-3
 
 
@@ -54,8 +55,6 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler) -> Scanne
     info = reader.describe()
     for name in section.fields:
         if name not in info.fields:
-            from snaplift.errors import FieldNotFoundError
-
             raise FieldNotFoundError(
                 f"archive field '{name}' not found in {reader.path}; fields present: "
                 f"{', '.join(sorted(info.fields)) or '(none)'}"
@@ -69,21 +68,22 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler) -> Scanne
         )
     all_times = snapshot_times(reader, time=section.time, step=section.step, n_snapshots=total)
     times = np.asarray(all_times, dtype=np.float64)[index]
-    steps = np.diff(times)
-    dt = float(np.median(steps))
-    if not np.all(steps > 0):
-        bad = int(np.flatnonzero(steps <= 0)[0])
+    spacing = check_times(times, rtol=TIME_RTOL)
+    if not spacing.increasing:
+        bad = int(np.flatnonzero(np.diff(times) <= 0)[0])
         raise TimeSpacingError(
             f"{reader.path}: snapshot times must increase; time[{index[bad + 1]}] = {times[bad + 1]} "
             f"follows time[{index[bad]}] = {times[bad]}"
         )
-    worst = int(np.argmax(np.abs(steps - dt)))
-    if abs(steps[worst] - dt) > TIME_RTOL * dt:
+    if not spacing.uniform:
+        gap = spacing.worst_gap_index
         raise TimeSpacingError(
-            f"{reader.path}: snapshot times are not uniformly spaced (median step {dt:.6g}); worst gap "
-            f"{steps[worst]:.6g} between snapshots {index[worst]} and {index[worst + 1]}; DMD needs a fixed "
-            "step: select a uniform range with archive.snapshots"
+            f"{reader.path}: snapshot times are not uniformly spaced (median step {spacing.dt:.6g}, "
+            f"tolerance {TIME_RTOL:g} relative); worst gap {spacing.worst_gap_value:.6g} between snapshots "
+            f"{index[gap]} and {index[gap + 1]}; DMD needs a fixed step: select a uniform range with "
+            "archive.snapshots"
         )
+    dt = float(spacing.dt)
     memory = parse_bytes(workflow.compress.memory) if workflow.compress.memory else scheduler.memory_per_worker
     width = workflow.compress.rank + workflow.compress.oversample
     plan = plan_tiles(info, list(section.fields), memory_bytes=memory, sketch_width=width,

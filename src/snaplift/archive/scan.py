@@ -1,0 +1,451 @@
+"""Describe and validate an archive before any heavy work: shapes, times, values, plan.
+
+Quick mode reads metadata and a few sample snapshots; ``full=True`` reads every value,
+tile by tile (bounded memory), to count NaN and Inf. Rendering is the command line's
+business; this module only gathers plain data (``ScanReport.to_dict()`` is JSON).
+
+Time spacing rule (:func:`check_times`): with ``dt`` the median step, the times are
+uniform when every step satisfies ``|dt_i - dt| <= rtol * |dt| + atol``. ``rtol``
+defaults to 1e-6 (common practice: tight enough to catch a dropped or repeated
+snapshot, loose enough for times written as decimal text); ``atol`` defaults to
+``4 * eps * max|t|`` of the times' own precision, the rounding a stored time value
+carries (so float32 times far from zero are not called non-uniform for their rounding).
+"""
+
+from __future__ import annotations
+
+import dataclasses
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from snaplift.archive._base import ArchiveInfo, FieldInfo, Reader
+from snaplift.archive._common import missing_field_error
+from snaplift.archive.plan import TilePlan, plan_tiles
+from snaplift.errors import ArchiveError
+
+__all__ = [
+    "TimeSpacing",
+    "FieldSummary",
+    "FieldValues",
+    "ScanReport",
+    "check_times",
+    "snapshot_times",
+    "scan_archive",
+]
+
+
+@dataclass(frozen=True)
+class TimeSpacing:
+    """Spacing of snapshot times.
+
+    ``worst_gap_index`` is ``i`` of the step ``times[i+1] - times[i]`` farthest from the
+    median step ``dt``; ``worst_gap_value`` is that step.
+    """
+
+    n_times: int
+    dt: float
+    uniform: bool
+    increasing: bool
+    worst_gap_index: int
+    worst_gap_value: float
+    max_relative_deviation: float
+    rtol: float
+    atol: float
+
+
+def check_times(
+    times: Sequence[float] | np.ndarray, *, rtol: float = 1e-6, atol: float | None = None
+) -> TimeSpacing:
+    """Median step, uniformity and the worst gap of a time axis.
+
+    Parameters
+    ----------
+    times
+        Snapshot times, at least two.
+    rtol, atol
+        Tolerance ``|dt_i - dt| <= rtol * |dt| + atol`` (see the module notes; the
+        default ``atol`` is ``4 * eps * max|t|`` in the precision of ``times``).
+
+    Returns
+    -------
+    TimeSpacing
+
+    Examples
+    --------
+    >>> check_times([0.0, 0.1, 0.2, 0.4]).worst_gap_index
+    2
+    """
+    values = np.asarray(times)
+    if values.ndim != 1 or values.size < 2:
+        raise ArchiveError(
+            f"time spacing needs a 1-D sequence of at least 2 times; got shape {values.shape}"
+        )
+    if not np.issubdtype(values.dtype, np.floating):
+        values = values.astype(np.float64)
+    if not np.all(np.isfinite(values)):
+        bad = int(np.flatnonzero(~np.isfinite(values))[0])
+        raise ArchiveError(f"time value at index {bad} is {values[bad]}; times must be finite")
+    eps = float(np.finfo(values.dtype).eps)
+    data = values.astype(np.float64)
+    steps = np.diff(data)
+    dt = float(np.median(steps))
+    if atol is None:
+        atol = 4.0 * eps * float(np.max(np.abs(data)))
+    deviation = np.abs(steps - dt)
+    worst = int(np.argmax(deviation))
+    uniform = bool(np.all(deviation <= rtol * abs(dt) + atol)) and dt > 0
+    return TimeSpacing(
+        n_times=int(values.size),
+        dt=dt,
+        uniform=uniform,
+        increasing=bool(np.all(steps > 0)),
+        worst_gap_index=worst,
+        worst_gap_value=float(steps[worst]),
+        max_relative_deviation=float(deviation[worst] / abs(dt)) if dt else float("inf"),
+        rtol=float(rtol),
+        atol=float(atol),
+    )
+
+
+def snapshot_times(
+    reader: Reader,
+    *,
+    time: str | None = None,
+    step: float | None = None,
+    n_snapshots: int | None = None,
+    info: ArchiveInfo | None = None,
+) -> np.ndarray:
+    """The snapshot times as float64, one per snapshot.
+
+    Parameters
+    ----------
+    reader
+        The archive.
+    time
+        A variable holding the times (1-D, one value per snapshot).
+    step
+        A fixed spacing; times are ``0, step, 2 step, ...``.
+    n_snapshots
+        Snapshot count to expect (default: the common count of the archive's fields).
+    info
+        ``reader.describe()`` if the caller has it already.
+
+    With neither ``time`` nor ``step`` the variable the reader identified as the time
+    is used. Time variables with CF units come back as counts of their unit.
+
+    Raises
+    ------
+    ArchiveError
+        Both or neither source available, a bad step, or a time variable whose length
+        is not the snapshot count.
+    """
+    if time is not None and step is not None:
+        raise ArchiveError(
+            f"give either a time variable or a fixed step for {reader.path}, not both "
+            f"(time='{time}', step={step})"
+        )
+    info = info if info is not None else reader.describe()
+    count = n_snapshots if n_snapshots is not None else info.attrs.get("n_snapshots")
+    if count is None:
+        counts = {f.n_snapshots for f in info.fields.values()}
+        count = counts.pop() if len(counts) == 1 else None
+    if step is not None:
+        if not np.isfinite(step) or step <= 0:
+            raise ArchiveError(f"time step must be a positive number; got {step}")
+        if count is None:
+            raise ArchiveError(f"cannot tell the snapshot count of {reader.path}")
+        return np.arange(int(count), dtype=np.float64) * float(step)
+    name = time if time is not None else info.attrs.get("time_variable")
+    if name is None:
+        raise ArchiveError(
+            f"no snapshot times found in {reader.path}; name the time variable "
+            f"(variables present: {', '.join(info.variables) or '(none)'}) or give a fixed step"
+        )
+    if name not in info.variables:
+        raise missing_field_error(name, reader.path, list(info.variables), kind="variable")
+    values = np.asarray(reader.read_variable(name), dtype=np.float64)
+    if values.ndim != 1 or (count is not None and values.size != count):
+        raise ArchiveError(
+            f"time variable '{name}' in {reader.path} has shape {values.shape}; expected "
+            f"({count},), one value per snapshot"
+        )
+    return values
+
+
+@dataclass(frozen=True)
+class FieldSummary:
+    name: str
+    shape: tuple[int, ...]
+    stored_dtype: str
+    dtype: str
+    chunks: tuple[int, ...] | None
+    nbytes: int
+    units: str | None
+
+
+@dataclass(frozen=True)
+class FieldValues:
+    """Value statistics of one field over the snapshots read (sample or all)."""
+
+    name: str
+    snapshots_read: tuple[int, ...] | None  # None: every snapshot (full mode)
+    values_read: int
+    nan_count: int
+    inf_count: int
+    minimum: float | None  # of finite values; real part for complex fields
+    maximum: float | None
+    max_abs: float | None
+
+
+@dataclass(frozen=True)
+class ScanReport:
+    """What ``scan_archive`` found; ``to_dict()`` gives plain JSON types."""
+
+    path: str
+    format: str
+    files: int
+    size_bytes: int
+    n_snapshots: int
+    fields: tuple[FieldSummary, ...]
+    variables: tuple[str, ...]
+    time_source: str | None  # variable name, "step", or None
+    time_unit: str | None
+    time_first: float | None
+    time_last: float | None
+    time_span: float | None
+    spacing: TimeSpacing | None
+    values: tuple[FieldValues, ...]
+    full: bool
+    plan: dict[str, Any] | None
+    plan_error: str | None
+    warnings: tuple[str, ...]
+
+    def to_dict(self) -> dict[str, Any]:
+        return _plain(dataclasses.asdict(self))  # type: ignore[no-any-return]
+
+
+def _plain(value: Any) -> Any:
+    if isinstance(value, dict):
+        return {str(k): _plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    if isinstance(value, np.generic):
+        return value.item()
+    if isinstance(value, float) and not np.isfinite(value):
+        return None if np.isnan(value) else ("inf" if value > 0 else "-inf")
+    return value
+
+
+class _Tally:
+    def __init__(self) -> None:
+        self.count = self.nan = self.inf = 0
+        self.low = np.inf
+        self.high = -np.inf
+        self.max_abs = 0.0
+
+    def add(self, block: np.ndarray) -> None:
+        self.count += block.size
+        if block.size == 0:
+            return
+        nan = np.isnan(block)
+        inf = np.isinf(block)  # complex: either part infinite
+        self.nan += int(np.count_nonzero(nan))
+        self.inf += int(np.count_nonzero(inf & ~nan))
+        finite = block[~(nan | inf)]
+        if finite.size:
+            real = finite.real
+            self.low = min(self.low, float(real.min()))
+            self.high = max(self.high, float(real.max()))
+            self.max_abs = max(self.max_abs, float(np.abs(finite).max()))
+
+    def result(self, name: str, snapshots: tuple[int, ...] | None) -> FieldValues:
+        seen = np.isfinite(self.low)
+        return FieldValues(
+            name=name,
+            snapshots_read=snapshots,
+            values_read=self.count,
+            nan_count=self.nan,
+            inf_count=self.inf,
+            minimum=float(self.low) if seen else None,
+            maximum=float(self.high) if seen else None,
+            max_abs=float(self.max_abs) if seen else None,
+        )
+
+
+def _point_step(f: FieldInfo, snapshots: int, memory_bytes: int) -> int:
+    """Points per read so that a (points x snapshots) block stays within a quarter of
+    the budget (decoded copy, transpose and masks are made from it)."""
+    per_point = max(1, snapshots) * np.dtype(f.dtype).itemsize * 4
+    return max(1, min(f.n_points, memory_bytes // per_point))
+
+
+def _sample_values(reader: Reader, f: FieldInfo, picks: list[int], memory: int) -> FieldValues:
+    tally = _Tally()
+    step = _point_step(f, 1, memory)
+    for j in picks:
+        for p0 in range(0, f.n_points, step):
+            tally.add(reader.read_tile(f.name, slice(p0, p0 + step), slice(j, j + 1)))
+    return tally.result(f.name, tuple(picks))
+
+
+def _full_values(reader: Reader, f: FieldInfo, plan: TilePlan | None, memory: int) -> FieldValues:
+    tally = _Tally()
+    if plan is not None:
+        for tile in plan.tiles():
+            if tile.field == f.name:
+                tally.add(reader.read_tile(f.name, tile.points, tile.snapshots))
+    else:  # no plan fits: fall back to stored chunks read in point slices
+        block = f.snapshot_chunk
+        step = _point_step(f, block, memory)
+        for s0 in range(0, f.n_snapshots, block):
+            for p0 in range(0, f.n_points, step):
+                tally.add(reader.read_tile(f.name, slice(p0, p0 + step), slice(s0, s0 + block)))
+    return tally.result(f.name, None)
+
+
+def scan_archive(
+    reader: Reader,
+    *,
+    fields: list[str] | None = None,
+    time: str | None = None,
+    step: float | None = None,
+    full: bool = False,
+    sample_snapshots: int = 3,
+    memory_bytes: int = 2**30,
+) -> ScanReport:
+    """Describe an archive, check its times and values, and plan its tiles.
+
+    Parameters
+    ----------
+    reader
+        From :func:`snaplift.archive.open_archive`.
+    fields
+        Fields to check (default: all).
+    time, step
+        Where snapshot times come from (see :func:`snapshot_times`).
+    full
+        Read every value to count NaN/Inf (tile by tile); otherwise a sample.
+    sample_snapshots
+        Snapshots read per field in quick mode, spread evenly from first to last.
+    memory_bytes
+        Budget for the tile plan and for the reads of the scan itself.
+
+    Returns
+    -------
+    ScanReport
+
+    Examples
+    --------
+    >>> report = scan_archive(open_archive("wake.h5"), full=True)  # doctest: +SKIP
+    >>> report.values[0].nan_count                                 # doctest: +SKIP
+    0
+    """
+    info = reader.describe()
+    names = list(fields) if fields is not None else list(info.fields)
+    for name in names:
+        if name not in info.fields:
+            raise missing_field_error(name, reader.path, list(info.fields))
+    chosen = [info.fields[n] for n in names]
+    counts = {f.n_snapshots for f in chosen}
+    if len(counts) > 1:
+        listing = ", ".join(f"{f.name}: {f.n_snapshots}" for f in chosen)
+        raise ArchiveError(
+            f"fields of {reader.path} have different snapshot counts ({listing}); "
+            "choose fields that share one"
+        )
+    n_snapshots = counts.pop() if counts else int(info.attrs.get("n_snapshots") or 0)
+    warnings: list[str] = []
+    if not chosen:
+        warnings.append(f"no snapshot fields found in {reader.path}")
+
+    source = "step" if step is not None else (time or info.attrs.get("time_variable"))
+    times: np.ndarray | None = None
+    if step is not None or source is not None:
+        times = snapshot_times(reader, time=time, step=step, info=info,
+                               n_snapshots=n_snapshots if chosen else None)
+    unit = None
+    spacing = None
+    if times is not None:
+        variable = info.variables.get(source) if source != "step" else None
+        if variable is not None:
+            unit = variable.attrs.get("time_unit") or variable.attrs.get("units")
+            stored = np.dtype(variable.attrs.get("stored_dtype", variable.dtype))
+        else:
+            stored = np.dtype(np.float64)
+        if times.size >= 2:
+            # the tolerance follows the precision the times were stored in
+            precision = stored if stored.kind == "f" else np.dtype(np.float64)
+            spacing = check_times(times.astype(precision), rtol=1e-6)
+            if not spacing.increasing:
+                bad = int(np.flatnonzero(np.diff(times) <= 0)[0])
+                warnings.append(
+                    f"snapshot times are not increasing: time[{bad + 1}] = {times[bad + 1]:g} "
+                    f"follows time[{bad}] = {times[bad]:g}"
+                )
+            elif not spacing.uniform:
+                warnings.append(
+                    f"snapshot times are not uniform: median step {spacing.dt:g}, worst "
+                    f"step {spacing.worst_gap_value:g} between snapshots "
+                    f"{spacing.worst_gap_index} and {spacing.worst_gap_index + 1}"
+                )
+    else:
+        source = None
+        warnings.append("no snapshot times found; give a time variable or a fixed step")
+
+    plan: TilePlan | None = None
+    plan_error = None
+    if chosen:
+        try:
+            plan = plan_tiles(info, names, memory_bytes=memory_bytes)
+        except ArchiveError as error:
+            plan_error = str(error)
+
+    values = []
+    for f in chosen:
+        if full:
+            values.append(_full_values(reader, f, plan, memory_bytes))
+        else:
+            k = max(1, min(sample_snapshots, f.n_snapshots))
+            picks = sorted({int(round(x)) for x in np.linspace(0, f.n_snapshots - 1, k)})
+            values.append(_sample_values(reader, f, picks if f.n_snapshots else [], memory_bytes))
+        if values[-1].nan_count or values[-1].inf_count:
+            scope = "all values" if full else "the sample"
+            warnings.append(
+                f"field '{f.name}' has {values[-1].nan_count} NaN and "
+                f"{values[-1].inf_count} Inf values in {scope}"
+            )
+
+    return ScanReport(
+        path=info.path,
+        format=info.format,
+        files=len(info.files),
+        size_bytes=int(info.size_bytes),
+        n_snapshots=int(n_snapshots),
+        fields=tuple(
+            FieldSummary(
+                name=f.name,
+                shape=tuple(int(s) for s in f.shape),
+                stored_dtype=str(f.stored_dtype),
+                dtype=str(f.dtype),
+                chunks=None if f.chunks is None else tuple(int(c) for c in f.chunks),
+                nbytes=int(f.nbytes),
+                units=None if f.attrs.get("units") is None else str(f.attrs["units"]),
+            )
+            for f in chosen
+        ),
+        variables=tuple(info.variables),
+        time_source=source,
+        time_unit=None if unit is None else str(unit),
+        time_first=None if times is None or not times.size else float(times[0]),
+        time_last=None if times is None or not times.size else float(times[-1]),
+        time_span=None if times is None or not times.size else float(times[-1] - times[0]),
+        spacing=spacing,
+        values=tuple(values),
+        full=bool(full),
+        plan=None if plan is None else plan.describe(),
+        plan_error=plan_error,
+        warnings=tuple(warnings),
+    )
