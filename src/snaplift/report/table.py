@@ -38,7 +38,8 @@ def spectrum_records(spectrum: dict[str, np.ndarray], *, sort: str = "amplitude"
             if np.iscomplexobj(value):
                 record[name] = {"real": float(np.real(value)), "imag": float(np.imag(value))}
             else:
-                record[name] = float(value)
+                # JSON has no infinity: an infinite period (zero frequency) is null
+                record[name] = float(value) if np.isfinite(value) else None
         records.append(record)
     assert len(records) == n
     return records
@@ -51,7 +52,7 @@ def spectrum_json(path: str | Path, *, sort: str = "amplitude") -> str:
 
 
 def _number(value: float, digits: int = 4) -> str:
-    if value is None or (isinstance(value, float) and math.isinf(value)):
+    if value is None or math.isinf(value):
         return "inf"
     return f"{value:.{digits}g}"
 

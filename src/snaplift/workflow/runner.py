@@ -16,7 +16,7 @@ from pathlib import Path
 import numpy as np
 
 from snaplift import __version__
-from snaplift.cluster import open_scheduler
+from snaplift.cluster import Scheduler, open_scheduler
 from snaplift.fitting import DMDFit, reconstruct, spectrum_table
 from snaplift.prepare import to_physical
 from snaplift.results.store import StoreWriter, grid_dimensions
@@ -82,7 +82,7 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
             say(f"fit: DMD on {compressed.lowrank.rank} coefficients")
             fit = fit_stage(workflow, compressed, scanned)
             say("modes: writing modes, basis and diagnostics")
-            warnings = _write_results(writer, workflow, scanned, compressed, fit)
+            warnings = _write_results(writer, workflow, scanned, compressed, fit, scheduler)
         finished = _dt.datetime.now(_dt.timezone.utc)
         writer.commit({
             "workflow": text,
@@ -107,14 +107,25 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
 
 
 def _write_results(writer: StoreWriter, workflow: Workflow, scanned: Scanned,
-                   compressed: Compressed, fit: DMDFit) -> list[str]:
+                   compressed: Compressed, fit: DMDFit, scheduler: Scheduler) -> list[str]:
     warnings: list[str] = []
     matrix, preparation, lowrank = compressed.matrix, compressed.preparation, compressed.lowrank
     table = spectrum_table(fit, sort="amplitude")
     order = np.asarray(table["index"])
     n_modes = order.size
-    for name in ("eigenvalue", "rate", "frequency", "growth", "period", "amplitude"):
+    for name in ("eigenvalue", "rate", "frequency", "growth", "period", "amplitude", "phase", "near_nyquist"):
         writer.array("spectrum", name, np.asarray(table[name]), ("mode",))
+    # partner: position (in this sorted table) of the complex-conjugate eigenvalue, -1 if none
+    position = np.empty(n_modes, dtype=np.int64)
+    position[order] = np.arange(n_modes)
+    partner = np.asarray(table["partner"])
+    writer.array("spectrum", "partner", np.where(partner >= 0, position[np.maximum(partner, 0)], -1), ("mode",))
+    flagged = np.flatnonzero(np.asarray(table["near_nyquist"]))
+    if flagged.size:
+        warnings.append(
+            f"{flagged.size} mode(s) lie within 10 % of the Nyquist frequency 1/(2 dt) = {0.5 / scanned.dt:.6g} Hz "
+            f"(sorted positions {', '.join(map(str, flagged[:10]))}); their frequencies may be aliased"
+        )
     writer.group_attrs("spectrum", {"sorted_by": "amplitude", "dt": scanned.dt,
                                     "frequency_units": "Hz (1/time unit of the archive)"})
     operator = np.asarray(fit.operator)
@@ -138,7 +149,8 @@ def _write_results(writer: StoreWriter, workflow: Workflow, scanned: Scanned,
     dims = grid_dimensions({f.name: f.grid for f in matrix.fields})
     modes_rows = fit.modes[:, order]  # coefficient space (rank x mode)
     for rows in matrix.fields:
-        basis_rows = np.asarray(lowrank.basis[rows.offset:rows.stop].compute())  # n_f x rank
+        (basis_rows,) = scheduler.compute(lowrank.basis[rows.offset:rows.stop])  # n_f x rank
+        basis_rows = np.asarray(basis_rows)
         physical_basis = to_physical(basis_rows.T, rows, preparation, add_mean=False)
         writer.array("basis", rows.name, rows.expand(physical_basis), ("rank", *dims[rows.name]),
                      chunks=(1, *rows.grid))
@@ -157,6 +169,11 @@ def _write_results(writer: StoreWriter, workflow: Workflow, scanned: Scanned,
             mean = to_physical(preparation.mean[rows.offset:rows.stop], rows,
                                _unscaled(preparation), add_mean=False)
             writer.array("prepare", f"mean_{rows.name}", rows.expand(mean), dims[rows.name])
+            # with the affine term the model is x_j = fixed_point + sum_k mode_k b_k lambda_k^j
+            fixed = basis_rows @ fit.fixed_point if fit.fixed_point is not None else 0.0
+            steady = to_physical(fixed, rows, preparation, add_mean=False) + mean
+            writer.array("prepare", f"fixed_point_{rows.name}", rows.expand(np.real_if_close(steady)),
+                         dims[rows.name], attrs={"meaning": "x_j = fixed_point + sum_k mode_k b_k lambda_k^j"})
     return warnings
 
 
