@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import dataclasses
+import json
 
 import h5py
 import numpy as np
@@ -57,6 +58,7 @@ def test_layout_and_dtypes(small_archive):
         assert attrs["reynolds_number"] == 100.0
         for key in ("title", "fin_height_m", "lattice_tau", "saving_interval_s"):
             assert key in attrs
+        assert json.loads(attrs["lattice_plan"]) == dataclasses.asdict(plan)
 
 
 def test_coordinates_time_and_areas(small_archive):

@@ -5,6 +5,8 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
+from snaplift.errors import ConfigError
+
 from snaplift.demo.lbm import (
     OPPOSITE,
     VELOCITIES,
@@ -221,3 +223,16 @@ def test_inlet_and_outflow_carry_the_imposed_flux():
     np.testing.assert_allclose(mass_flux[[0, -1]], interior.mean(), rtol=0.005)
     middle = ux[1:-1, length // 2]
     np.testing.assert_allclose(middle / middle.max(), profile[1:-1] / profile.max(), atol=0.01)
+
+
+@pytest.mark.parametrize(
+    ("options", "message"),
+    [
+        ({"solid": np.zeros(5, bool), "viscosity": 0.1}, "2-D"),
+        ({"solid": np.zeros((4, 5), bool), "viscosity": 0.0}, "viscosity"),
+        ({"solid": np.zeros((4, 5), bool), "viscosity": 0.1, "diffusivity": -1.0}, "diffusivity"),
+    ],
+)
+def test_bad_lattice_settings_are_rejected(options, message):
+    with pytest.raises(ConfigError, match=message):
+        LatticeFlow(**options)

@@ -47,6 +47,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.typing import NDArray
 
+from snaplift.errors import ConfigError
+
 __all__ = [
     "VELOCITIES", "WEIGHTS", "OPPOSITE", "SCALAR_VELOCITIES", "SCALAR_WEIGHTS",
     "equilibrium", "moments", "collide", "stream", "scalar_equilibrium", "collide_scalar",
@@ -153,7 +155,7 @@ def moments(
     """
     rho = f.sum(axis=0)
     diagonal, anti_diagonal = f[5] - f[7], f[6] - f[8]
-    jx = f[1] - f[3] + diagonal - anti_diagonal
+    jx = f[1] - f[3] + diagonal - anti_diagonal + 0.5 * force[0]
     jy = f[2] - f[4] + diagonal + anti_diagonal + 0.5 * force[1]
     jx /= rho
     jy /= rho
@@ -400,7 +402,10 @@ class LatticeFlow:
     ) -> None:
         solid = np.asarray(solid, dtype=bool)
         if solid.ndim != 2:
-            raise ValueError(f"solid mask must be 2-D (ny, nx), got shape {solid.shape}")
+            raise ConfigError(f"solid mask must be 2-D (ny, nx), got shape {solid.shape}")
+        for name, value in (("viscosity", viscosity), ("diffusivity", diffusivity)):
+            if value is not None and not value > 0:
+                raise ConfigError(f"lattice {name} must be positive, got {value!r}")
         ny, nx = solid.shape
         self.solid = solid
         self.shape = (ny, nx)
@@ -459,7 +464,7 @@ class LatticeFlow:
     def set_inlet_velocity(self, inlet_velocity: FloatArray) -> None:
         """Change the inlet profile (e.g. to ramp the flow up smoothly from rest)."""
         if self._inlet is None:
-            raise ValueError("this LatticeFlow has no inlet (built with inlet_velocity=None)")
+            raise ConfigError("this LatticeFlow has no inlet (built with inlet_velocity=None)")
         profile = np.asarray(inlet_velocity, dtype=float).reshape(self.shape[0])
         self._inlet.ux = profile[self._inlet.rows].astype(self.dtype)
 
@@ -477,7 +482,7 @@ class LatticeFlow:
     def scalar(self) -> FloatArray:
         """Scalar field: ``fixed_value`` at fixed-value solid cells, NaN at other solids."""
         if self.g is None:
-            raise ValueError("this LatticeFlow was built without a scalar (diffusivity=None)")
+            raise ConfigError("this LatticeFlow was built without a scalar (diffusivity=None)")
         theta = self.g.sum(axis=0)
         theta[self.solid] = np.nan
         theta[self.fixed_scalar] = self.fixed_value
