@@ -24,10 +24,12 @@ def load_spectrum(path: str | Path) -> dict[str, np.ndarray]:
 def spectrum_records(spectrum: dict[str, np.ndarray], *, sort: str = "amplitude") -> list[dict[str, Any]]:
     """One dict per mode, sorted by ``sort`` (descending for amplitude, ascending otherwise)."""
     n = len(spectrum["eigenvalue"])
-    keys = np.asarray(spectrum[sort])
-    if np.iscomplexobj(keys):
-        keys = np.abs(keys)
-    order = np.argsort(-keys if sort == "amplitude" else keys, kind="stable")
+    if sort == "amplitude":
+        # the store is already sorted by amplitude with conjugate pairs adjacent (+f, -f)
+        order = np.arange(n)
+    else:
+        keys = np.asarray(spectrum[sort])
+        order = np.argsort(np.abs(keys) if np.iscomplexobj(keys) else keys, kind="stable")
     records = []
     for rank, i in enumerate(order):
         record: dict[str, Any] = {"mode": int(i)}
