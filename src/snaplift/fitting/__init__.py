@@ -1,7 +1,8 @@
-"""Fitting: DMD on reduced coefficients, spectra, rank choice, reconstruction.
+"""Fitting: DMD / EDMD / optimized DMD, debiasing, residuals, spectra, rank, reconstruction.
 
 Everything here works on small in-memory numpy arrays (the coefficients ``C = U^H X``,
-r x m); mapping modes back to physical fields with the basis ``U`` is the caller's job.
+r x m, or a small raw state); mapping modes back to physical fields with the basis ``U``
+is the caller's job.
 Orientation convention: snapshots are columns and operators act from the left,
 ``x_{j+1} ~= A x_j`` (see :mod:`snaplift.fitting.dmd`).
 """
@@ -9,7 +10,20 @@ Orientation convention: snapshots are columns and operators act from the left,
 from __future__ import annotations
 
 from snaplift.fitting.amplitudes import optimal_amplitudes
+from snaplift.fitting.assessment import (
+    ResidualReport,
+    dmd_residuals,
+    fit_dmd_with_residuals,
+    mode_ranking,
+)
+from snaplift.fitting.debias import (
+    DEBIAS_METHODS,
+    forward_backward_operator,
+    total_least_squares_operator,
+)
 from snaplift.fitting.dmd import DMDFit, fit_dmd, normalize_modes, run_pair_mask
+from snaplift.fitting.edmd import EDMDFit, eigenfunctions, fit_edmd, forecast_edmd
+from snaplift.fitting.optimized import OptimizedDMDFit, fit_optimized_dmd, optimized_reconstruct
 from snaplift.fitting.rank import (
     choose_rank,
     hard_threshold,
@@ -23,6 +37,15 @@ from snaplift.fitting.reconstruction import (
     reconstruct,
     reconstruction_error,
 )
+from snaplift.fitting.residuals import (
+    HOLDOUT,
+    TRUST_THRESHOLD,
+    PairSplit,
+    eigenpair_residuals,
+    split_pairs,
+    trusted_flags,
+)
+from snaplift.fitting.runs import run_amplitude_table, run_amplitudes, run_lengths_from_mask
 from snaplift.fitting.spectrum import (
     conjugate_pairs,
     continuous_rate,
@@ -57,4 +80,27 @@ __all__ = [
     "conjugate_pairs",
     "spectrum_order",
     "spectrum_table",
+    "DEBIAS_METHODS",
+    "forward_backward_operator",
+    "total_least_squares_operator",
+    "EDMDFit",
+    "fit_edmd",
+    "forecast_edmd",
+    "eigenfunctions",
+    "OptimizedDMDFit",
+    "fit_optimized_dmd",
+    "optimized_reconstruct",
+    "HOLDOUT",
+    "TRUST_THRESHOLD",
+    "PairSplit",
+    "split_pairs",
+    "eigenpair_residuals",
+    "trusted_flags",
+    "ResidualReport",
+    "dmd_residuals",
+    "fit_dmd_with_residuals",
+    "mode_ranking",
+    "run_amplitudes",
+    "run_amplitude_table",
+    "run_lengths_from_mask",
 ]

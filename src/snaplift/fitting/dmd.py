@@ -22,6 +22,7 @@ from snaplift.errors import FitError
 from snaplift.fitting import spectrum
 from snaplift.fitting._checks import finite_vector, pair_keep, positive_step, snapshot_matrix
 from snaplift.fitting.amplitudes import optimal_amplitudes
+from snaplift.fitting.debias import DEBIAS_METHODS, Debias, debiased_operator
 from snaplift.fitting.rank import choose_rank
 
 __all__ = ["DMDFit", "fit_dmd", "normalize_modes", "run_pair_mask"]
@@ -132,6 +133,7 @@ def fit_dmd(
     pair_mask: ArrayLike | None = None,
     singular_values: ArrayLike | None = None,
     mode_type: ModeType = "exact",
+    debias: Debias = "none",
 ) -> DMDFit:
     """Fit DMD to the snapshot pairs ``(C[:, j], C[:, j + 1])`` of a coefficient matrix.
 
@@ -177,6 +179,11 @@ def fit_dmd(
         fraction ``rank`` is applied to them instead of to the pair matrix.
     mode_type : {"exact", "projected"}
         Which modes to return.
+    debias : {"none", "forward-backward", "total-least-squares"}
+        Noise-robust reduced operator (:mod:`snaplift.fitting.debias`; Dawson et al.
+        2016, Hemati et al. 2017) in place of the least-squares one. The modes are then
+        the projected ones ``W_k w`` and the result says ``mode_type="projected"``: the
+        exact-mode formula belongs to the least-squares operator.
 
     Returns
     -------
@@ -199,6 +206,9 @@ def fit_dmd(
     Hirsh, S. M., Harris, K. D., Kutz, J. N. & Brunton, B. W. (2020), "Centering data
     improves the dynamic mode decomposition", SIAM J. Appl. Dyn. Syst. 19(3).
     Jovanovic, M. R., Schmid, P. J. & Nichols, J. W. (2014), Phys. Fluids 26, 024103.
+    Dawson, S. T. M., Hemati, M. S., Williams, M. O. & Rowley, C. W. (2016), Exp. Fluids 57, 42.
+    Hemati, M. S., Rowley, C. W., Deem, E. A. & Cattafesta, L. N. (2017), Theor. Comput.
+    Fluid Dyn. 31, 349-368.
 
     Examples
     --------
@@ -213,6 +223,8 @@ def fit_dmd(
         raise FitError(f"mode_type must be 'exact' or 'projected'; got {mode_type!r}")
     if not isinstance(affine, (bool, np.bool_)):
         raise FitError(f"affine must be True or False; got {affine!r}")
+    if debias not in DEBIAS_METHODS:
+        raise FitError(f"debias must be one of {', '.join(DEBIAS_METHODS)}; got {debias!r}")
     n_state, n_snapshots = data.shape
     keep = pair_keep(pair_mask, n_snapshots)
     used = np.flatnonzero(keep)
@@ -237,6 +249,12 @@ def fit_dmd(
     # Y V_k S_k^{-1}: the exact operator is A = B Q^H; its restriction to span(Q) is Q^H B.
     image = right(y_pairs, k) / sigma[:k]
     reduced = basis.conj().T @ image
+    if debias != "none":
+        basis_h = basis.conj().T
+        reduced = debiased_operator(basis_h @ x_pairs, basis_h @ y_pairs, debias)
+        # A = Q A~ Q^H, i.e. image = Q A~: exact modes then equal projected ones.
+        image = basis @ reduced
+        mode_type = "projected"
     eigenvalue, vectors = scipy.linalg.eig(reduced)
     eigenvalue = eigenvalue.astype(np.complex128)
 

@@ -32,6 +32,7 @@ __all__ = [
 ]
 
 SortKey = Literal["amplitude", "frequency", "growth", "index"]
+TableSort = Literal["amplitude", "frequency", "growth", "index", "residual"]
 
 #: relative resolution below which two amplitudes count as tied (then frequency decides)
 AMPLITUDE_TIE = 1e-9
@@ -180,9 +181,11 @@ def spectrum_order(
 def spectrum_table(
     fit: _HasSpectrum,
     *,
-    sort: SortKey = "amplitude",
+    sort: TableSort = "amplitude",
     pair_tol: float = 1e-8,
     nyquist_fraction: float = 0.9,
+    residual: ArrayLike | None = None,
+    trusted: ArrayLike | None = None,
 ) -> dict[str, np.ndarray]:
     """One row per mode: the columns a spectrum report or the result store needs.
 
@@ -190,12 +193,17 @@ def spectrum_table(
     ----------
     fit : DMDFit
         Any object with ``eigenvalue``, ``amplitude`` (complex) and ``dt``.
-    sort : {"amplitude", "frequency", "growth", "index"}
-        Row order, see :func:`spectrum_order`.
+    sort : {"amplitude", "frequency", "growth", "index", "residual"}
+        Row order, see :func:`spectrum_order`; ``"residual"`` sorts by residual
+        ascending (ties: amplitude order) and needs residuals.
     pair_tol : float
         Tolerance of :func:`conjugate_pairs`.
     nyquist_fraction : float
         Fraction of the Nyquist frequency from which ``near_nyquist`` is True.
+    residual, trusted : array_like, optional
+        Per-mode residuals and trust flags in the fit's mode order (e.g. from a
+        ``ResidualReport``); taken from ``fit.residual`` / ``fit.trusted`` when the fit
+        has them (EDMD). When present they become columns of the table.
 
     Returns
     -------
@@ -203,7 +211,8 @@ def spectrum_table(
         ``index`` (mode index in ``fit``), ``eigenvalue`` (complex), ``rate`` (complex,
         1/s), ``frequency`` (Hz), ``growth`` (1/s), ``period`` (s), ``amplitude``
         (``|b|``), ``phase`` (``angle(b)``, rad), ``partner`` (mode index in ``fit`` of
-        the conjugate partner, -1 if none), ``near_nyquist`` (bool).
+        the conjugate partner, -1 if none), ``near_nyquist`` (bool); plus ``residual``
+        and ``trusted`` when available.
 
     Examples
     --------
@@ -214,7 +223,24 @@ def spectrum_table(
     """
     eigenvalue = np.asarray(fit.eigenvalue, dtype=np.complex128)
     amplitude = np.asarray(fit.amplitude, dtype=np.complex128)
-    order = spectrum_order(eigenvalue, amplitude, fit.dt, sort)
+    residual = getattr(fit, "residual", None) if residual is None else residual
+    trusted = getattr(fit, "trusted", None) if trusted is None else trusted
+    extra: dict[str, np.ndarray] = {}
+    for name, values, kind in (("residual", residual, np.float64), ("trusted", trusted, np.bool_)):
+        if values is not None:
+            column = np.asarray(values, dtype=kind)
+            if column.shape != eigenvalue.shape:
+                raise FitError(
+                    f"{name} must have one value per mode {eigenvalue.shape}; got {column.shape}"
+                )
+            extra[name] = column
+    if sort == "residual":
+        if "residual" not in extra:
+            raise FitError("sort='residual' needs residuals (residual= or a fit that has them)")
+        by_amplitude = spectrum_order(eigenvalue, amplitude, fit.dt, "amplitude")
+        order = by_amplitude[np.argsort(extra["residual"][by_amplitude], kind="stable")]
+    else:
+        order = spectrum_order(eigenvalue, amplitude, fit.dt, sort)  # type: ignore[arg-type]
     freq = frequency(eigenvalue, fit.dt)
     table = {
         "index": np.arange(eigenvalue.size),
@@ -227,5 +253,6 @@ def spectrum_table(
         "phase": np.angle(amplitude),
         "partner": conjugate_pairs(eigenvalue, pair_tol),
         "near_nyquist": near_nyquist(freq, fit.dt, nyquist_fraction),
+        **extra,
     }
     return {name: column[order] for name, column in table.items()}

@@ -17,7 +17,14 @@ from __future__ import annotations
 
 from snaplift.lifting._base import BYTES_PER_VALUE, Description, DictionaryPart
 from snaplift.lifting.dictionary import Dictionary, as_dictionary, format_bytes
-from snaplift.lifting.expressions import CONSTANTS, FUNCTIONS, Expressions, Formula, expressions, parse_formula
+from snaplift.lifting.expressions import (
+    CONSTANTS,
+    FUNCTIONS,
+    Expressions,
+    Formula,
+    expressions,
+    parse_formula,
+)
 from snaplift.lifting.fields import (
     POINTWISE,
     delay_columns,
@@ -26,7 +33,15 @@ from snaplift.lifting.fields import (
     pointwise_size,
     pointwise_terms,
 )
-from snaplift.lifting.polynomial import Fourier, Identity, Monomials, fourier, identity, monomial_count, monomials
+from snaplift.lifting.polynomial import (
+    Fourier,
+    Identity,
+    Monomials,
+    fourier,
+    identity,
+    monomial_count,
+    monomials,
+)
 from snaplift.lifting.radial import RadialBasis, kmeans, rbf
 
 __all__ = [

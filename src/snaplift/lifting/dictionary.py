@@ -164,10 +164,14 @@ class Dictionary:
             largest monomial degree and the largest number of state variables
             (coefficients) that would fit.
         """
-        if isinstance(budget_bytes, bool) or not isinstance(budget_bytes, (int, np.integer)) or (
-            budget_bytes <= 0
+        if (
+            isinstance(budget_bytes, bool)
+            or not isinstance(budget_bytes, (int, np.integer))
+            or (budget_bytes <= 0)
         ):
-            raise ConfigError(f"memory budget must be a positive number of bytes; got {budget_bytes!r}")
+            raise ConfigError(
+                f"memory budget must be a positive number of bytes; got {budget_bytes!r}"
+            )
         terms = self.lifted_size(n_state)
         needed = terms * int(n_samples) * BYTES_PER_VALUE
         if needed <= budget_bytes:
@@ -182,7 +186,9 @@ class Dictionary:
             except SnapliftError:  # named variables or expressions fix the state size
                 break
             if smaller * int(n_samples) * BYTES_PER_VALUE <= budget_bytes:
-                hints.append(f"use at most {fewer} coefficients (state variables) ({smaller} terms)")
+                hints.append(
+                    f"use at most {fewer} coefficients (state variables) ({smaller} terms)"
+                )
                 break
         hints.append("or fewer snapshots / a larger memory budget")
         raise ConfigError(

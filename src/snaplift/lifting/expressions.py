@@ -71,6 +71,7 @@ _UNARY: dict[type[ast.unaryop], Callable[[np.ndarray], np.ndarray]] = {
     ast.UAdd: np.positive,
 }
 _SYMBOL = {ast.Add: "+", ast.Sub: "-", ast.Mult: "*", ast.Div: "/", ast.Pow: "**"}
+_BY_SYMBOL: dict[str, Callable[..., Any]] = {_SYMBOL[k]: f for k, f in _BINARY.items()}
 
 
 # Our own evaluation tree: tuples of plain values, picklable, no Python code objects.
@@ -122,7 +123,9 @@ class Formula:
         """True if the formula uses no variable (its value is the same for every sample)."""
         return not self.variables
 
-    def evaluate(self, values: Mapping[str, np.ndarray], n_samples: int | None = None) -> np.ndarray:
+    def evaluate(
+        self, values: Mapping[str, np.ndarray], n_samples: int | None = None
+    ) -> np.ndarray:
         """Value of the formula on every sample.
 
         Parameters
@@ -188,17 +191,20 @@ def parse_formula(name: str, text: str) -> Formula:
     if "\n" in text or "\r" in text:
         position = min(i for i in (text.find("\n"), text.find("\r")) if i >= 0) + 1
         raise ConfigError(
-            f"expression {name!r} = {text!r}: line break at position {position}; "
+            f"expression {name!r} = {text!r}, position {position}: line break; "
             "a formula is a single line"
         )
     try:
         tree = ast.parse(text.strip(), mode="eval")
     except SyntaxError as error:
         lead = len(text) - len(text.lstrip())
-        position = (error.offset or 1) + lead
+        stripped = text.strip()
+        if not error.offset or error.offset > len(stripped):
+            position, what = lead + len(stripped) + 1, "unexpected end of formula"
+        else:
+            position, what = lead + error.offset, "invalid syntax"
         raise ConfigError(
-            f"expression {name!r} = {text!r}: invalid syntax at position {position} "
-            f"({error.msg})"
+            f"expression {name!r} = {text!r}, position {position}: {what} ({error.msg})"
         ) from None
     except (ValueError, RecursionError, MemoryError) as error:  # e.g. null bytes, deep nesting
         raise ConfigError(f"expression {name!r} = {text!r} cannot be parsed: {error}") from None
@@ -219,7 +225,7 @@ class _Context:
         offset = getattr(node, "col_offset", 0)
         # col_offset counts UTF-8 bytes; report characters.
         position = len(stripped.encode("utf-8")[:offset].decode("utf-8", "ignore")) + 1 + self.lead
-        return ConfigError(f"expression {self.name!r} = {self.text!r}: {what} at position {position}")
+        return ConfigError(f"expression {self.name!r} = {self.text!r}, position {position}: {what}")
 
     def convert(self, node: ast.AST, depth: int) -> _Node:
         if depth > MAX_DEPTH:
@@ -240,20 +246,22 @@ class _Context:
         if isinstance(node, ast.BinOp):
             kind = type(node.op)
             if kind not in _BINARY:
-                raise self.fail(node, f"operator {type(node.op).__name__} is not allowed "
-                                      "(allowed: + - * / **)")
+                raise self.fail(
+                    node, f"operator {type(node.op).__name__} is not allowed (allowed: + - * / **)"
+                )
             left = self.convert(node.left, depth + 1)
             right = self.convert(node.right, depth + 1)
             return _Apply(_SYMBOL[kind], (left, right))
         if isinstance(node, ast.UnaryOp):
             if type(node.op) not in _UNARY:
-                raise self.fail(node, f"operator {type(node.op).__name__} is not allowed "
-                                      "(allowed unary: - +)")
+                raise self.fail(
+                    node, f"operator {type(node.op).__name__} is not allowed (allowed unary: - +)"
+                )
             symbol = "neg" if isinstance(node.op, ast.USub) else "pos"
             return _Apply(symbol, (self.convert(node.operand, depth + 1),))
         if isinstance(node, ast.Call):
             if not isinstance(node.func, ast.Name):
-                raise self.fail(node, "only calls of plain function names are allowed")
+                raise self.fail(node, "only plain function names may be called, as in sin(x)")
             function = node.func.id
             if function not in FUNCTIONS:
                 raise self.fail(
@@ -272,11 +280,20 @@ class _Context:
 
 def _describe(node: ast.AST) -> str:
     names = {
-        ast.Attribute: "attribute access", ast.Subscript: "indexing", ast.Compare: "a comparison",
-        ast.BoolOp: "a boolean operator", ast.Lambda: "a lambda", ast.IfExp: "an if-expression",
-        ast.List: "a list", ast.Tuple: "a tuple", ast.Dict: "a dict", ast.Set: "a set",
-        ast.JoinedStr: "a string", ast.ListComp: "a comprehension",
-        ast.GeneratorExp: "a comprehension", ast.NamedExpr: "an assignment",
+        ast.Attribute: "attribute access",
+        ast.Subscript: "indexing",
+        ast.Compare: "a comparison",
+        ast.BoolOp: "a boolean operator",
+        ast.Lambda: "a lambda",
+        ast.IfExp: "an if-expression",
+        ast.List: "a list",
+        ast.Tuple: "a tuple",
+        ast.Dict: "a dict",
+        ast.Set: "a set",
+        ast.JoinedStr: "a string",
+        ast.ListComp: "a comprehension",
+        ast.GeneratorExp: "a comprehension",
+        ast.NamedExpr: "an assignment",
     }
     return names.get(type(node), f"syntax {type(node).__name__}")
 
@@ -291,9 +308,8 @@ def _evaluate(node: _Node, values: Mapping[str, np.ndarray]) -> np.ndarray | flo
         return np.negative(arguments[0])
     if node.function == "pos":
         return np.positive(arguments[0])
-    for kind, symbol in _SYMBOL.items():
-        if symbol == node.function:
-            return _BINARY[kind](*arguments)
+    if node.function in _BY_SYMBOL:
+        return _BY_SYMBOL[node.function](*arguments)
     return FUNCTIONS[node.function][0](*arguments)
 
 
@@ -325,8 +341,8 @@ def check_variables(formulas: Sequence[Formula], variables: Sequence[str]) -> No
             if name not in known:
                 position = _first_position(formula.text, name)
                 raise ConfigError(
-                    f"expression {formula.name!r} = {formula.text!r}: unknown name {name!r} at "
-                    f"position {position}; state variables: {', '.join(variables)}; "
+                    f"expression {formula.name!r} = {formula.text!r}, position {position}: "
+                    f"unknown name {name!r}; state variables: {', '.join(variables)}; "
                     f"constants: {', '.join(CONSTANTS)}; functions: {', '.join(FUNCTIONS)}"
                 )
 
@@ -406,7 +422,8 @@ class Expressions(DictionaryPart):
 
     def settings(self) -> dict[str, Any]:
         found: dict[str, Any] = {
-            "kind": self.kind, "formulas": {f.name: f.text for f in self.formulas},
+            "kind": self.kind,
+            "formulas": {f.name: f.text for f in self.formulas},
         }
         if self.variables is not None:
             found["variables"] = list(self.variables)

@@ -67,7 +67,7 @@ def pointwise_size(n_points: int, functions: Sequence[str]) -> int:
 
 
 def pointwise_terms(values: ArrayLike, functions: Sequence[str]) -> np.ndarray:
-    """Stack pointwise functions of a tile: ``(points, snapshots) -> (len(functions) * points, snapshots)``.
+    """Pointwise functions of a tile, stacked: (points, m) -> (len(functions) * points, m).
 
     Block ``f`` (rows ``f * points`` to ``(f + 1) * points``) holds ``functions[f]``
     applied to every entry. Names: ``"x"``, ``"square"``, ``"cube"``, ``"abs"``,
@@ -97,7 +97,9 @@ def _run_lengths(run_lengths: ArrayLike) -> np.ndarray:
         raise ConfigError(f"run_lengths must be a non-empty list of integers; got {run_lengths!r}")
     bad = np.flatnonzero(lengths < 1)
     if bad.size:
-        raise ConfigError(f"run_lengths[{bad[0]}] is {lengths[bad[0]]}; every run needs >= 1 snapshot")
+        raise ConfigError(
+            f"run_lengths[{bad[0]}] is {lengths[bad[0]]}; every run needs >= 1 snapshot"
+        )
     return lengths.astype(np.int64)
 
 

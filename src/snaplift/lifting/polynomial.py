@@ -168,7 +168,11 @@ class Fourier(DictionaryPart):
         return out.reshape(-1, state.shape[1])
 
     def settings(self) -> dict[str, Any]:
-        found: dict[str, Any] = {"kind": self.kind, "harmonics": self.harmonics, "scale": self.scale}
+        found: dict[str, Any] = {
+            "kind": self.kind,
+            "harmonics": self.harmonics,
+            "scale": self.scale,
+        }
         if self.low is not None:
             found.update(low=list(self.low), high=list(self.high or ()))
         return found

@@ -123,9 +123,7 @@ class RadialBasis(DictionaryPart):
 
     def __post_init__(self) -> None:
         if self.function not in ("gaussian", "thin_plate"):
-            raise ConfigError(
-                f"rbf kind must be 'gaussian' or 'thin_plate'; got {self.function!r}"
-            )
+            raise ConfigError(f"rbf kind must be 'gaussian' or 'thin_plate'; got {self.function!r}")
         positive_int(self.count, "rbf centres")
         if isinstance(self.seed, bool) or not isinstance(self.seed, (int, np.integer)):
             raise ConfigError(f"rbf seed must be an integer; got {self.seed!r}")
@@ -171,7 +169,10 @@ class RadialBasis(DictionaryPart):
 
     def settings(self) -> dict[str, Any]:
         found: dict[str, Any] = {
-            "kind": self.kind, "function": self.function, "centres": self.count, "seed": self.seed,
+            "kind": self.kind,
+            "function": self.function,
+            "centres": self.count,
+            "seed": self.seed,
         }
         if self.centres is not None:
             found.update(centre_values=[list(c) for c in self.centres], width=self.width)
