@@ -70,22 +70,44 @@ def run(
     workflow: Annotated[Path, typer.Argument(help="workflow YAML file")],
     overwrite: Annotated[bool, typer.Option(help="replace a result store written by a different workflow")] = False,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="validate and say what would be written")] = False,
-    quiet: Annotated[bool, typer.Option("--quiet", "-q")] = False,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="no progress display; print only the result path")] = False,
+    log: Annotated[Optional[Path], typer.Option("--log", help="append time-stamped progress lines to this file (batch jobs)")] = None,
 ) -> None:
-    """Run a workflow file: scan, compress, fit, write the result store.
+    """Run a workflow file: scan, compress, fit, modes, report -> result store.
 
-    Example: snaplift run workflows/fin-duct.yaml
+    Finished stages are reused: a second run after changing only `fit` reads nothing
+    from the archive. A run stopped by Ctrl-C, SIGTERM or a kill resumes when started
+    again. One run at a time per result store.
+
+    Example: snaplift run workflows/fin-duct.yaml --log run.log
     """
-    from snaplift.workflow.runner import run_workflow
+    from snaplift.workflow.progress import ProgressReporter
+    from snaplift.workflow.runner import RunInterrupted, run_workflow
     from snaplift.workflow.schema import load_workflow, resolve_path
 
     if dry_run:
         wf, _, folder = load_workflow(workflow)
-        typer.echo(f"workflow {workflow} is valid; it would write {resolve_path(folder, wf.output.path)}")
+        output = resolve_path(folder, wf.output.path)
+        typer.echo(f"workflow {workflow} is valid; it would write {output} (staging in {output}.staging, "
+                   f"lease {output}.lease) on a {wf.cluster.kind!r} cluster")
         return
-    console = _console(quiet)
-    summary = run_workflow(workflow, overwrite=overwrite, progress=console.print)
-    console.print(f"results: {summary.path}  ({summary.passes} passes, {summary.bytes_read / 1e6:.1f} MB read)")
+    reporter = ProgressReporter(console=_console(quiet), quiet=quiet, log_file=log)
+    try:
+        summary = run_workflow(workflow, overwrite=overwrite, reporter=reporter)
+        for warning in summary.warnings:
+            reporter.message(f"warning: {warning}")
+    except RunInterrupted as stop:
+        reporter.close()
+        typer.echo(f"snaplift: {stop}", err=True)
+        raise typer.Exit(130) from None
+    finally:
+        reporter.close()
+    statuses = ", ".join(f"{name} {record.get('status')}" for name, record in summary.stages.items())
+    if quiet:
+        typer.echo(str(summary.path))
+    else:
+        _console().print(f"results: {summary.path}  ({statuses}; {summary.passes} passes for the result, "
+                         f"{summary.bytes_read / 1e6:.1f} MB read in this run)")
 
 
 @app.command()
@@ -138,6 +160,54 @@ def spectrum(
         typer.echo(spectrum_json(result, sort=sort))
     else:
         _console().print(render_spectrum(result, sort=sort, limit=None if all_modes else 20))
+
+
+@app.command()
+@_user_errors
+def bench(
+    size: Annotated[str, typer.Option(help="synthetic archive size, e.g. 1GiB, 4GiB")] = "4GiB",
+    rank: Annotated[int, typer.Option(help="compress.rank")] = 40,
+    memory: Annotated[str, typer.Option(help="compress.memory budget of the tile plan")] = "2GiB",
+    workers: Annotated[int, typer.Option(help="worker threads / processes")] = 2,
+    folder: Annotated[Optional[Path], typer.Option(help="where to write the archive (default: a temporary folder)")] = None,
+    methods: Annotated[str, typer.Option(help="comma-separated: sketch, randomized, tsqr")] = "sketch,randomized",
+    quick: Annotated[bool, typer.Option("--quick", help="skip zarr, worker processes and dask's svd_compressed")] = False,
+    keep: Annotated[bool, typer.Option("--keep", help="keep the archive afterwards")] = False,
+    dry_run: Annotated[bool, typer.Option("--dry-run", help="say what would be written and stop")] = False,
+    json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
+) -> None:
+    """Time compress against the floor on a synthetic time-major archive (your file system, your cores).
+
+    Writes an invented HDF5 archive of --size (and a zarr copy) to --folder, removed afterwards
+    unless --keep. Example: snaplift bench --size 1GiB --quick
+    """
+    import json
+
+    from snaplift.errors import ConfigError
+    from snaplift.linalg.bench import BenchSettings, render_benchmark, run_benchmark
+    from snaplift.workflow.schema import parse_bytes
+
+    try:
+        size_bytes, memory_bytes = parse_bytes(size), parse_bytes(memory)
+    except ValueError as error:
+        raise ConfigError(f"--size/--memory: {error}") from None
+    chosen = tuple(m.strip() for m in methods.split(",") if m.strip())
+    unknown = sorted(set(chosen) - {"sketch", "randomized", "tsqr"})
+    if unknown or not chosen:
+        raise ConfigError(f"--methods {methods!r}: allowed are sketch, randomized, tsqr")
+    where = str(folder) if folder else "a temporary folder"
+    extra = "" if quick else " and a zarr copy of the same size"
+    typer.echo(f"bench writes a {size_bytes / 2**30:.2f} GiB HDF5 archive{extra} to {where}", err=True)
+    if dry_run:
+        return
+    settings = BenchSettings(size_bytes=size_bytes, rank=rank, memory_bytes=memory_bytes, workers=workers,
+                             folder=str(folder) if folder else None, methods=chosen, zarr=not quick,
+                             clusters=not quick, dask=not quick, keep=keep)
+    figures = run_benchmark(settings, progress=None if json_output else lambda m: typer.echo(m, err=True))
+    if json_output:
+        typer.echo(json.dumps(figures, default=lambda v: v.tolist() if hasattr(v, "tolist") else str(v), indent=2))
+    else:
+        typer.echo(render_benchmark(figures))
 
 
 def main() -> None:  # pragma: no cover - console entry point

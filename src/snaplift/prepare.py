@@ -5,9 +5,11 @@ points weighted by ``sqrt(w)``, ``mu`` its temporal mean (only when centring), `
 factor per field. The default scale divides each field by its (weighted, and centred if
 centring is on) RMS over space and time, so fields of different units are comparable.
 
-The statistics (row sums, per-field sums of squares) are gathered in the same read as the
-first sketch ``X_w Omega``; because ``A`` is an affine, row-scaled image of ``X_w`` the
-sketch is corrected afterwards: ``A Omega = S (X_w Omega - mu (1^T Omega))``.
+The statistics (row sums, per-field sums of squares per snapshot) are gathered in the same
+read as the first sketches; because ``A`` is an affine, row-scaled image of ``X_w`` the
+sketches are corrected afterwards without touching the data again:
+``A Omega = S (X_w Omega - mu (1^T Omega))`` and, for the co-range sketch of field ``f``
+with scale ``s_f``, ``Psi A = sum_f s_f (Psi_f X_f - (Psi_f mu_f) 1^T)``.
 """
 
 from __future__ import annotations
@@ -20,7 +22,8 @@ import numpy as np
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.errors import ArchiveError
 
-__all__ = ["Preparation", "first_pass", "finish_preparation", "prepared_matrix", "corrected_sketch"]
+__all__ = ["Preparation", "finish_preparation", "prepared_matrix", "corrected_sketch", "corrected_corange",
+           "prepared_column_squares", "field_sums", "to_physical"]
 
 
 @dataclass(frozen=True)
@@ -40,16 +43,6 @@ class Preparation:
     @property
     def centered(self) -> bool:
         return self.mean is not None
-
-
-def first_pass(matrix: SnapshotMatrix, x: da.Array, omega: np.ndarray) -> tuple[da.Array, ...]:
-    """Lazy outputs of the first read: sketch ``X_w Omega``, row sums, per-field column sums of squares."""
-    omega_d = da.from_array(omega, chunks=(x.chunks[1], (omega.shape[1],)))
-    sketch = x @ omega_d
-    row_sum = x.sum(axis=1)
-    squares = abs(x) ** 2
-    per_field = [squares[f.offset:f.stop].sum(axis=0) for f in matrix.fields]
-    return (sketch, row_sum, *per_field)
 
 
 def finish_preparation(
@@ -104,6 +97,52 @@ def corrected_sketch(sketch: np.ndarray, preparation: Preparation, omega: np.nda
     if preparation.mean is not None:
         y = y - np.outer(preparation.mean, omega.sum(axis=0))
     return y * preparation.row_scale[:, np.newaxis]
+
+
+def corrected_corange(corange: list[np.ndarray], preparation: Preparation,
+                      psi_mean: list[np.ndarray] | None) -> np.ndarray:
+    """``(Psi A)^T`` (m x l) from the per-field ``(Psi_f X_f)^T`` and ``Psi_f mu_f`` (when centred)."""
+    total = None
+    for index, (name, values) in enumerate(zip(preparation.fields, corange)):
+        part = np.asarray(values)
+        if preparation.mean is not None and psi_mean is not None:
+            part = part - psi_mean[index][np.newaxis, :]
+        part = part / preparation.field_scale[name]
+        total = part if total is None else total + part
+    assert total is not None
+    return total
+
+
+def prepared_column_squares(preparation: Preparation, squares: np.ndarray, fields,
+                            mean_cross: np.ndarray | None = None) -> np.ndarray:
+    """``||a_j||^2`` of the prepared snapshots from the raw per-field ``||x_fj||^2``.
+
+    Uncentred this is exact. Centred, ``||a_j||^2 = sum_f s_f^2 (||x_fj||^2 - ||mu_f||^2)
+    - 2 sum_f s_f Re(mu_f^H a_fj)``; ``mean_cross[f, j]`` must hold ``Re(mu_f^H a_fj)``
+    (exact from another pass, or estimated from a low-rank reconstruction).
+    """
+    squares = np.asarray(squares, dtype=np.float64)
+    total = np.zeros(squares.shape[1])
+    for index, field in enumerate(fields):
+        s = 1.0 / preparation.field_scale[field.name]
+        part = squares[index]
+        if preparation.mean is not None:
+            mu = preparation.mean[field.offset:field.stop]
+            part = part - float(np.vdot(mu, mu).real)
+            if mean_cross is not None:
+                part = part - 2.0 * mean_cross[index] / s
+        total += s * s * part
+    return np.clip(total, 0.0, None)
+
+
+def field_sums(row_sum: np.ndarray, squares: np.ndarray, fields) -> dict[str, dict[str, float | complex]]:
+    """Per-field sum and sum of squares of the weighted values (same pass as the sketches)."""
+    out: dict[str, dict[str, float | complex]] = {}
+    for index, field in enumerate(fields):
+        total = complex(np.sum(row_sum[field.offset:field.stop]))
+        out[field.name] = {"sum": total.real if total.imag == 0 else total,
+                           "sum_of_squares": float(np.sum(squares[index]))}
+    return out
 
 
 def to_physical(values: np.ndarray, field_rows, preparation: Preparation, *, add_mean: bool) -> np.ndarray:

@@ -91,3 +91,75 @@ def test_bad_yaml_names_line(tmp_path: Path) -> None:
     path.write_text("archive: [\n  path: x\n")
     with pytest.raises(ConfigError, match=r"w.yaml line \d+, column \d+ is not valid YAML"):
         load_workflow(path)
+
+
+# -- cluster profiles -------------------------------------------------------------------
+
+PROFILES = sorted((ROOT / "configs").glob("*.yaml"))
+
+
+def test_every_kind_has_an_example_profile() -> None:
+    kinds = {yaml.safe_load(p.read_text()).get("kind", "local") for p in PROFILES}
+    assert {"threads", "local", "slurm", "pbs", "allocation"} <= kinds
+
+
+@pytest.mark.parametrize("path", PROFILES, ids=lambda p: p.name)
+def test_profiles_by_name_and_file_in_a_workflow(path: Path, tmp_path: Path) -> None:
+    workflow_file = ROOT / "workflows" / "fin-duct.yaml"
+    data = yaml.safe_load(workflow_file.read_text())
+    by_name = parse_workflow({**data, "cluster": path.stem}, folder=workflow_file.parent)
+    assert by_name.cluster.profile == str(path)
+    by_file = parse_workflow({**data, "cluster": f"../configs/{path.name}"}, folder=workflow_file.parent)
+    assert by_file.cluster == by_name.cluster
+    with_override = parse_workflow({**data, "cluster": {"profile": path.stem, "start_timeout": 5}},
+                                   folder=workflow_file.parent)
+    assert with_override.cluster.start_timeout == 5
+    assert with_override.cluster.kind == by_name.cluster.kind
+
+
+def test_profile_found_through_environment(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    (tmp_path / "site.yaml").write_text("kind: slurm\ncores: 4\nmemory: 8GiB\nqueue: long\n")
+    monkeypatch.setenv("SNAPLIFT_PROFILES", str(tmp_path))
+    data = _base()
+    data["cluster"] = {"profile": "site", "queue": "short"}
+    cluster = parse_workflow(data).cluster
+    assert (cluster.kind, cluster.queue, cluster.cores) == ("slurm", "short", 4)
+
+
+def test_unknown_profile_lists_kinds_and_profiles() -> None:
+    data = _base()
+    data["cluster"] = "nowhere"
+    with pytest.raises(ConfigError, match=r"cluster profile 'nowhere' not found; kinds: threads, local, .*"):
+        parse_workflow(data, folder=ROOT / "workflows")
+
+
+def test_cluster_key_of_another_kind_is_an_error() -> None:
+    data = _base()
+    data["cluster"] = {"kind": "local", "queue": "short"}
+    with pytest.raises(ConfigError, match=r"cluster.queue does not apply to kind 'local'; it applies to kinds slurm, pbs"):
+        parse_workflow(data)
+
+
+def test_batch_kinds_need_cores_memory_and_a_lifetime_below_walltime() -> None:
+    data = _base()
+    data["cluster"] = {"kind": "slurm", "cores": 4}
+    with pytest.raises(ConfigError, match="needs cluster.cores and cluster.memory"):
+        parse_workflow(data)
+    data["cluster"] = {"kind": "pbs", "cores": 4, "memory": "8GiB", "walltime": "01:00:00", "worker_lifetime": "1h"}
+    with pytest.raises(ConfigError, match="worker_lifetime .* must be shorter than the walltime"):
+        parse_workflow(data)
+    data["cluster"] = {"kind": "address"}
+    with pytest.raises(ConfigError, match="needs cluster.address"):
+        parse_workflow(data)
+
+
+def test_durations_and_walltimes() -> None:
+    from snaplift.workflow.schema import parse_duration, parse_walltime
+
+    assert parse_duration("1h30m") == 5400.0 and parse_duration("90s") == 90.0 and parse_duration(12) == 12.0
+    assert parse_walltime("02:00:00") == 7200.0 and parse_walltime("1-00:30:00") == 88200.0
+    assert parse_walltime("45:00") == 2700.0
+    with pytest.raises(ValueError, match="not a duration"):
+        parse_duration("soon")
+    with pytest.raises(ValueError, match="not HH:MM:SS"):
+        parse_walltime("2h")

@@ -1,9 +1,14 @@
-"""The snapshot matrix ``X`` (points x snapshots) as a lazy dask array of tiles.
+"""The snapshot matrix ``X`` (points x snapshots): its rows, columns and tile reads.
 
 Rows are the requested fields stacked, masked points dropped, each point multiplied by
 ``sqrt(w)`` so that the Euclidean inner product is the physical one. Columns are the
-selected snapshots. A tile is one field's kept points x one block of snapshots; its task
-carries only the picklable reader descriptor and small index arrays.
+selected snapshots. A tile is one block of one field's kept rows x one block of
+snapshots; a task carries only the picklable reader descriptor and small index arrays.
+
+Two ways to read: :func:`read_snapshot_block` returns a tile *snapshot-major*
+(``(snapshots, rows)``, the layout time-major archives store, with no transpose copy),
+which the streaming compress uses; :meth:`SnapshotMatrix.to_dask` gives a lazy dask
+array of ``(rows, snapshots)`` tiles for code that wants one.
 """
 
 from __future__ import annotations
@@ -17,7 +22,8 @@ from dask import delayed
 from snaplift.archive._base import Reader
 from snaplift.errors import ArchiveError, FieldNotFoundError, NonFiniteError
 
-__all__ = ["FieldRows", "SnapshotMatrix", "build_snapshot_matrix", "read_prepared_tile"]
+__all__ = ["FieldRows", "SnapshotMatrix", "build_snapshot_matrix", "read_prepared_tile",
+           "read_snapshot_block", "check_finite", "column_blocks"]
 
 
 @dataclass(frozen=True)
@@ -73,31 +79,111 @@ class SnapshotMatrix:
 
 
 def read_prepared_tile(reader: Reader, field: FieldRows, snapshots: np.ndarray) -> np.ndarray:
-    """Read one tile, drop masked points, apply ``sqrt(w)``; fail on NaN/Inf.
+    """Read one whole-field tile as ``(rows, snapshots)``, masked, ``sqrt(w)``-weighted, finite.
 
     Snapshots are read as one contiguous range (so stored chunks are read whole) and
     strided in memory when ``every > 1``.
     """
+    values = read_snapshot_block(reader, field, snapshots)
+    check_finite(values, reader, field, snapshots, (0, field.n_rows))
+    return np.ascontiguousarray(values.T)
+
+
+def _raw_points(reader: Reader, name: str, p0: int, p1: int, s0: int, s1: int) -> np.ndarray:
+    """``(snapshots, points)`` of one field as float64/complex128, preferably without a copy.
+
+    HDF5 and zarr readers (:class:`~snaplift.archive._grouped.GroupedReader`) store
+    fields snapshot axis first, so the block comes straight from the file; the generic
+    path transposes what ``read_tile`` returns (a view, never a copy).
+    """
+    from snaplift.archive._cf import decode
+    from snaplift.archive._common import read_block
+    from snaplift.archive._grouped import GroupedReader
+
+    if isinstance(reader, GroupedReader):
+        # same reads as GroupedReader.read_tile, minus its (points, snapshots) copy
+        _, entry = reader._field_entry(name)
+        array = reader._array(reader._root(), entry.key)
+        block = read_block(lambda sel: array[sel], entry.grid, (p0, p1), slice(s0, s1))
+        if entry.decoding.is_identity and block.dtype in (np.float64, np.complex128) and block.flags.writeable:
+            return block
+        return decode(block, entry.decoding)
+    tile = reader.read_tile(name, slice(p0, p1), slice(s0, s1))
+    return tile.T if tile.flags.writeable else np.array(tile.T)
+
+
+def read_snapshot_block(
+    reader: Reader, field: FieldRows, snapshots: np.ndarray, rows: tuple[int, int] | None = None
+) -> np.ndarray:
+    """``X[rows, snapshots]^T`` of one field: ``(len(snapshots), r1 - r0)``, masked and weighted.
+
+    ``rows`` are kept-row positions within the field (default all). Stored values are
+    decoded to float64/complex128; the result is a fresh, writeable array. Finiteness is
+    not checked here (:func:`check_finite`), so that a tile kernel can fold the check
+    into a reduction it makes anyway.
+    """
+    snapshots = np.asarray(snapshots, dtype=np.int64)
+    r0, r1 = (0, field.n_rows) if rows is None else (int(rows[0]), int(rows[1]))
+    if field.keep is None:
+        p0, p1 = r0, r1
+    else:
+        p0, p1 = int(field.keep[r0]), int(field.keep[r1 - 1]) + 1
     first, last = int(snapshots[0]), int(snapshots[-1])
-    raw = reader.read_tile(field.name, slice(0, int(np.prod(field.grid))), slice(first, last + 1))
+    raw = _raw_points(reader, field.name, p0, p1, first, last + 1)
     if snapshots.size != last - first + 1:
-        raw = raw[:, snapshots - first]
-    values = raw if field.keep is None else raw[field.keep]
+        raw = raw[snapshots - first]
+    if field.keep is not None:
+        local = field.keep[r0:r1] - p0
+        if local.size != p1 - p0:
+            raw = raw[:, local]
+    if not raw.flags.writeable:  # e.g. a memory map: never write through to a file
+        raw = np.array(raw)
     if field.sqrt_weight is not None:
-        values = values * field.sqrt_weight[:, np.newaxis]
+        raw *= field.sqrt_weight[r0:r1][np.newaxis, :]
+    return raw
+
+
+def check_finite(values: np.ndarray, reader: Reader, field: FieldRows, snapshots: np.ndarray,
+                 rows: tuple[int, int], squares: np.ndarray | None = None) -> None:
+    """Raise :class:`NonFiniteError` naming the snapshot and grid index of the first NaN/Inf.
+
+    ``values`` is snapshot-major (``(snapshots, rows)``). When ``squares`` (the per-snapshot
+    sums of squares of the same tile) is given and finite, the tile is finite and no
+    further scan is made.
+    """
+    if squares is not None and np.all(np.isfinite(squares)):
+        return
     finite = np.isfinite(values)
-    if not finite.all():
-        row, column = np.argwhere(~finite)[0]
-        point = int(field.keep[row]) if field.keep is not None else int(row)
-        index = np.unravel_index(point, field.grid)
-        count = int((~finite).sum())
-        raise NonFiniteError(
-            f"{reader.path}: field '{field.name}' has {count} non-finite value(s) in snapshots "
-            f"{first}..{last}; first at snapshot {int(snapshots[column])}, grid index {tuple(int(i) for i in index)} "
-            f"(value {values[row, column]}); "
-            "mask these points (archive.mask) or repair the archive"
-        )
-    return np.ascontiguousarray(values)
+    if finite.all():
+        return
+    column, row = np.argwhere(~finite)[0]
+    kept = int(rows[0]) + int(row)
+    point = int(field.keep[kept]) if field.keep is not None else kept
+    index = np.unravel_index(point, field.grid)
+    count = int((~finite).sum())
+    first, last = int(snapshots[0]), int(snapshots[-1])
+    raise NonFiniteError(
+        f"{reader.path}: field '{field.name}' has {count} non-finite value(s) in snapshots "
+        f"{first}..{last}; first at snapshot {int(snapshots[column])}, grid index {tuple(int(i) for i in index)} "
+        f"(value {values[column, row]}); "
+        "mask these points (archive.mask) or repair the archive"
+    )
+
+
+def column_blocks(snapshot_index: np.ndarray, snapshot_blocks: tuple[tuple[int, int], ...]) -> tuple[tuple[int, int], ...]:
+    """Column ranges of the selected snapshots that fall in each planned archive block.
+
+    The planner cuts the archive's snapshot axis at stored-chunk boundaries; a selection
+    (``start``/``stop``/``every``) keeps the columns inside each block together, so each
+    tile still reads whole chunks. Empty blocks are dropped.
+    """
+    index = np.asarray(snapshot_index, dtype=np.int64)
+    out = []
+    for s0, s1 in snapshot_blocks:
+        c0, c1 = int(np.searchsorted(index, s0, "left")), int(np.searchsorted(index, s1, "left"))
+        if c1 > c0:
+            out.append((c0, c1))
+    return tuple(out)
 
 
 def _grid_dataset(reader: Reader, name: str, grid: tuple[int, ...], field: str, role: str) -> np.ndarray:
@@ -125,10 +211,13 @@ def build_snapshot_matrix(
     snapshot_block: int,
     weights: str | dict[str, str] | None = None,
     mask: str | dict[str, str] | None = None,
+    snapshot_blocks: tuple[tuple[int, int], ...] | None = None,
 ) -> SnapshotMatrix:
     """Describe ``X`` for the given fields and snapshots; reads only weights and mask.
 
-    ``snapshot_block`` is the number of selected snapshots per tile (from the planner).
+    ``snapshot_block`` is the number of selected snapshots per tile; ``snapshot_blocks``
+    (the planner's archive snapshot ranges, :attr:`TilePlan.snapshot_blocks`) takes
+    precedence and keeps every tile on whole stored chunks (:func:`column_blocks`).
     """
     info = reader.describe()
     missing = [name for name in fields if name not in info.fields]
@@ -174,7 +263,10 @@ def build_snapshot_matrix(
     total = next(iter(n_snapshots))
     if snapshots.size == 0 or snapshots.min() < 0 or snapshots.max() >= total:
         raise ArchiveError(f"{reader.path}: snapshot selection is empty or outside 0..{total - 1}")
-    block = max(1, int(snapshot_block))
-    blocks = tuple((c0, min(c0 + block, snapshots.size)) for c0 in range(0, snapshots.size, block))
+    if snapshot_blocks is not None:
+        blocks = column_blocks(snapshots, tuple(snapshot_blocks))
+    else:
+        block = max(1, int(snapshot_block))
+        blocks = tuple((c0, min(c0 + block, snapshots.size)) for c0 in range(0, snapshots.size, block))
     dtype = np.dtype(np.complex128 if complex_valued else np.float64)
     return SnapshotMatrix(reader, tuple(rows), snapshots, blocks, dtype)

@@ -1,26 +1,43 @@
-"""A first tile planner: whole fields by blocks of snapshots aligned to stored chunks.
+"""The tile planner: stored chunks read whole and once, memory planned, not hoped for.
 
-A tile is *(all points of one field) x (one block of snapshots)*. Blocks are shared by
-all requested fields (the snapshot matrix stacks the fields' points) and are a whole
-multiple of every field's stored snapshot chunk, so each stored chunk is read whole
-and exactly once. The block is as long as the memory budget allows.
+A tile is *(a block of one field's points) x (a block of snapshots)*. Snapshot blocks are
+shared by all requested fields (the snapshot matrix stacks the fields' points) and are a
+whole multiple of every field's stored snapshot chunk, so each stored chunk is read whole
+and exactly once per pass; the block is as long as the memory budget allows. Time-major
+archives (one chunk per snapshot or per few snapshots) are the common case: their tiles
+are full-height, nothing is rechunked.
 
-Memory model (estimates, in bytes; ``s`` = 8 for real, 16 for complex fields, ``n`` =
-points of the field, ``b`` = snapshots per block, ``k`` = ``sketch_width``):
+Two memory models, in bytes (``s`` = 8 for real, 16 for complex fields; ``n_t`` points of
+the tile, ``b`` snapshots per block):
 
-- tile: ``n * b * s`` (the decoded double-precision tile);
-- accumulators: ``s * k * (2 * n + 2 * b)`` -- the field's rows of the range sketch
-  ``X Omega`` (``n x k``), its rows of the co-range test matrix (``k x n``), the block
-  of ``Omega`` (``b x k``) and the block's share of the co-range sketch (``k x b``);
-- each worker must fit ``tile + accumulators`` in ``memory_bytes / (2 * workers)``; the
-  factor 2 leaves room for the raw read buffer and the copy the decoding makes.
+*Compress model* (``method`` given: ``sketch``, ``randomized`` or ``tsqr``), matching the
+streaming loop of :mod:`snaplift.linalg.streaming` with ``k`` range and ``l`` co-range
+widths (:func:`method_widths`):
 
-``peak_bytes_estimate = 2 * workers * (tile + accumulators)`` of the largest field.
+- per tile being read: ``2 n_t b s`` (the decoded tile and the read/decoding buffer);
+- per tile result waiting to be folded: ``s (n_t k + b (k + l))``;
+- per worker: the cached row test matrix ``s n l`` (``sketch`` only; all rows, since a
+  worker sees every row of a time-major archive);
+- driver accumulators: ``sketch`` ``s (2 n k + n r + F m l + n + n l)`` (with its own copy of
+  the row test matrix for finishing); ``randomized``
+  ``s (3 n k + m k + n)``; ``tsqr`` ``s (n r + L m^2 + n)`` (``F`` fields, ``L`` leaves);
+- ``peak_bytes_estimate = workers x (2 tile + cache) + in_flight x result + driver``
+  (the cache once when the workers are threads of one process, ``shared_memory``),
+  which must fit ``memory_bytes``. The snapshot block is the longest that fits, but
+  short enough to give each worker :data:`TILES_PER_WORKER` blocks when the archive has
+  enough stored chunks.
 
-Seam for row (point) blocking: ``point_blocks`` holds, per field, the point ranges of
-its tiles; this planner always gives one range covering the whole field. A later
-planner that splits rows (for fields too tall for one tile) fills it with several
-ranges aligned to the grid chunks and keeps the same ``tiles()`` iteration.
+When not even one stored snapshot chunk at full height fits, rows are split into
+blocks aligned to the grid's chunk rows (partial-chunk reads; for compressed chunks the
+bytes decompressed are counted per row block). ``tsqr`` needs every snapshot of a row
+block in one tile, so its tiles are row blocks x all snapshots.
+
+*Legacy model* (``method=None``, the first planner's, kept for callers that plan
+without a method): per worker ``tile + s k (2 n + 2 b)`` with ``k = sketch_width`` must fit
+``memory_bytes / (2 workers)``; ``peak_bytes_estimate = 2 workers (tile + accumulators)``.
+
+``point_blocks`` holds, per field, the point ranges of its tiles; ``tiles()`` iterates
+block by block, fields in order.
 """
 
 from __future__ import annotations
@@ -36,9 +53,12 @@ from snaplift.archive._base import ArchiveInfo
 from snaplift.archive._common import missing_field_error
 from snaplift.errors import ArchiveError
 
-__all__ = ["TilePlan", "Tile", "plan_tiles"]
+__all__ = ["TilePlan", "Tile", "plan_tiles", "method_widths", "method_passes"]
 
 _MIB = 2.0**20
+#: the compress model keeps at least this many snapshot blocks per worker when it can,
+#: so that all workers have work and checkpoints come at a useful granularity
+TILES_PER_WORKER = 4
 
 
 def _mib(nbytes: float) -> str:
@@ -98,6 +118,15 @@ class TilePlan:
     memory_bytes: int
     workers: int
     sketch_width: int
+    method: str | None = None
+    passes: int = 1
+    range_width: int = 0
+    corange_width: int = 0
+    in_flight: int = 1
+    driver_bytes: int = 0
+    cache_bytes: int = 0
+    result_bytes: int = 0
+    partial_chunk_reads: bool = False
 
     @property
     def n_points(self) -> int:
@@ -137,17 +166,59 @@ class TilePlan:
             "bytes_to_read": int(self.bytes_to_read),
             "tile_bytes": int(self.tile_bytes),
             "accumulator_bytes": int(self.accumulator_bytes),
-            "memory_per_tile_bytes": int(2 * (self.tile_bytes + self.accumulator_bytes)),
+            "memory_per_tile_bytes": int(2 * (self.tile_bytes + self.accumulator_bytes)) if self.method is None
+            else int(2 * self.tile_bytes + self.result_bytes),
             "peak_bytes_estimate": int(self.peak_bytes_estimate),
             "memory_bytes": int(self.memory_bytes),
             "workers": int(self.workers),
             "sketch_width": int(self.sketch_width),
-            "row_blocking": "none (one point block per field)",
+            "row_blocking": (f"{max(len(b) for b in self.point_blocks)} point blocks per field"
+                             + (" (partial-chunk reads)" if self.partial_chunk_reads else ""))
+            if any(len(b) > 1 for b in self.point_blocks) else "none (one point block per field)",
+            "method": self.method,
+            "passes": int(self.passes),
+            "bytes_all_passes": int(self.passes * self.bytes_to_read),
+            "range_width": int(self.range_width),
+            "corange_width": int(self.corange_width),
+            "in_flight": int(self.in_flight),
+            "driver_bytes": int(self.driver_bytes),
+            "cache_bytes_per_worker": int(self.cache_bytes),
+            "peak_bytes_per_worker": int(2 * (self.tile_bytes + self.accumulator_bytes)) if self.method is None
+            else int(2 * self.tile_bytes + self.cache_bytes + self.result_bytes),
+            "partial_chunk_reads": bool(self.partial_chunk_reads),
         }
 
 
 def _accumulator_bytes(points: int, block: int, width: int, itemsize: int) -> int:
     return itemsize * width * (2 * points + 2 * block)
+
+
+def method_widths(method: str, rank: int, *, oversample: int = 10,
+                  sketch_widths: tuple[int, int] | None = None) -> tuple[int, int]:
+    """Range and co-range widths ``(k, l)`` a compress method accumulates next to each tile.
+
+    ``sketch``: ``(2r + 1, 2k + 1)`` (Tropp et al. 2017) unless given; ``randomized``:
+    ``(r + oversample, 0)`` (Halko et al. 2011); ``tsqr``: ``(0, 0)``.
+    """
+    if method == "sketch":
+        if sketch_widths is not None:
+            return int(sketch_widths[0]), int(sketch_widths[1])
+        k = 2 * int(rank) + 1
+        return k, 2 * k + 1
+    if method == "randomized":
+        return int(rank) + int(oversample), 0
+    if method == "tsqr":
+        return 0, 0
+    raise ArchiveError(f"compress.method {method!r} is not one of sketch, randomized, tsqr")
+
+
+def method_passes(method: str, *, power_iterations: int = 1, check_pass: bool = False) -> int:
+    """Reads of the archive: sketch 1 (+1 check pass), randomized 2 + 2q, tsqr 2."""
+    if method == "sketch":
+        return 2 if check_pass else 1
+    if method == "randomized":
+        return 2 + 2 * int(power_iterations)
+    return 2
 
 
 def plan_tiles(
@@ -157,8 +228,21 @@ def plan_tiles(
     memory_bytes: int,
     sketch_width: int = 50,
     workers: int = 1,
+    method: str | None = None,
+    rank: int = 40,
+    oversample: int = 10,
+    power_iterations: int = 1,
+    check_pass: bool = False,
+    sketch_widths: tuple[int, int] | None = None,
+    in_flight: int | None = None,
+    shared_memory: bool = False,
 ) -> TilePlan:
-    """Plan tiles of whole fields by snapshot blocks that fit a memory budget.
+    """Plan tiles aligned to stored chunks that fit a memory budget.
+
+    Without ``method`` this is the first planner's legacy model (whole fields by
+    snapshot blocks, see the module docstring); with ``method`` the compress model of
+    the streaming loop, with row blocks when a full-height chunk does not fit and
+    row-block x all-snapshot tiles for ``tsqr``.
 
     Parameters
     ----------
@@ -172,6 +256,13 @@ def plan_tiles(
         Columns of the sketches accumulated next to each tile.
     workers
         Tiles processed at the same time.
+    method, rank, oversample, power_iterations, check_pass, sketch_widths
+        The compress settings (``compress`` section of the workflow).
+    in_flight
+        Tile tasks outstanding (default ``workers + 1``).
+    shared_memory
+        Workers are threads of one process (dask's threaded scheduler): the cached row
+        test matrix is held once, not once per worker.
 
     Returns
     -------
@@ -209,6 +300,12 @@ def plan_tiles(
             f"got {listing}"
         )
     n_snapshots = chosen[0].n_snapshots
+    if method is not None:
+        return _plan_compress(info, names, chosen, memory_bytes=int(memory_bytes), workers=int(workers),
+                              in_flight=int(in_flight or workers + 1), method=method, rank=int(rank),
+                              widths=method_widths(method, rank, oversample=oversample, sketch_widths=sketch_widths),
+                              passes=method_passes(method, power_iterations=power_iterations,
+                                                   check_pass=check_pass), shared_memory=shared_memory)
     chunks = [max(1, min(f.snapshot_chunk, n_snapshots)) for f in chosen]
     unit = math.lcm(*chunks) if chunks else 1
     budget = memory_bytes // (2 * workers)
@@ -280,4 +377,133 @@ def plan_tiles(
         memory_bytes=int(memory_bytes),
         workers=int(workers),
         sketch_width=int(sketch_width),
+    )
+
+
+def _row_unit(f: Any) -> tuple[int, int]:
+    """(points per whole chunk row block, points per grid row) of a field, flattened in C order."""
+    grid = f.grid
+    if not grid:
+        return 1, 1
+    trailing = int(np.prod(grid[1:], dtype=np.int64)) if len(grid) > 1 else 1
+    first = int(f.chunks[1]) if f.chunks and len(f.chunks) > 1 else int(grid[0])
+    return max(1, min(first, grid[0]) * trailing), max(1, trailing)
+
+
+def _compressed(info: ArchiveInfo, f: Any) -> bool:
+    return bool(f.attrs.get("compression")) or info.format.startswith("zarr")
+
+
+def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any], *, memory_bytes: int,
+                   workers: int, in_flight: int, method: str, rank: int, widths: tuple[int, int],
+                   passes: int, shared_memory: bool = False) -> TilePlan:
+    """The compress memory model of the module docstring; see :func:`plan_tiles`."""
+    if workers < 1 or in_flight < 1 or memory_bytes <= 0:
+        raise ArchiveError(f"tile plan for {info.path}: memory, workers and in_flight must be positive")
+    m = chosen[0].n_snapshots
+    k, l = widths
+    itemsizes = [np.dtype(f.dtype).itemsize for f in chosen]
+    s = max(itemsizes)
+    points = [f.n_points for f in chosen]
+    n = int(sum(points))
+    chunks = [max(1, min(f.snapshot_chunk, max(m, 1))) for f in chosen]
+    unit = math.lcm(*chunks) if chunks else 1
+    if method == "sketch":
+        # the driver regenerates the row test matrix to form Psi Q when the sketch is finished
+        driver = s * (2 * n * k + n * rank + len(chosen) * m * l + n + n * l)
+        cache = s * n * l
+    elif method == "randomized":
+        driver = s * (3 * n * k + m * k + n)
+        cache = 0
+    else:
+        leaves_hint = max(1, len(chosen))
+        driver = s * (n * rank + leaves_hint * m * m + n)
+        cache = 0
+
+    def rows_of(cap: int) -> list[int]:
+        out = []
+        for f in chosen:
+            whole, grid_row = _row_unit(f)
+            if cap >= f.n_points:
+                out.append(f.n_points)
+                continue
+            step = whole if whole <= cap else grid_row
+            out.append(max(step, (cap // step) * step) if cap >= step else grid_row)
+        return out
+
+    def cost(cap: int, block: int) -> tuple[int, int, int]:
+        rows = rows_of(cap)
+        tile = max(r * block * sz for r, sz in zip(rows, itemsizes))
+        if method == "tsqr":
+            result = max(sz * (m * m + r * rank) for r, sz in zip(rows, itemsizes))
+        else:
+            result = max(sz * (r * k + block * (k + l)) for r, sz in zip(rows, itemsizes))
+        caches = cache if shared_memory else workers * cache
+        return workers * 2 * tile + caches + in_flight * result + driver, tile, result
+
+    full = max(points)
+    if method == "tsqr":
+        block = m
+        cap = full
+        if cost(cap, block)[0] > memory_bytes:
+            low, high = 1, full
+            while low < high:
+                mid = (low + high + 1) // 2
+                if cost(mid, block)[0] <= memory_bytes:
+                    low = mid
+                else:
+                    high = mid - 1
+            cap = low
+    else:
+        cap = full
+        first = min(unit, m) if m else 1
+        if cost(cap, max(first, 1))[0] <= memory_bytes:
+            multiples = max(1, math.ceil(m / unit))
+            low, high = 1, multiples
+            while low < high:
+                mid = (low + high + 1) // 2
+                if cost(cap, min(mid * unit, m))[0] <= memory_bytes:
+                    low = mid
+                else:
+                    high = mid - 1
+            # keep every worker busy: at least TILES_PER_WORKER tiles each when the archive allows
+            target = math.ceil(max(m, 1) / (TILES_PER_WORKER * workers))
+            block = min(low * unit, max(unit, math.ceil(target / unit) * unit), m)
+        else:
+            block = max(first, 1)
+            low, high = 1, full
+            while low < high:
+                mid = (low + high + 1) // 2
+                if cost(mid, block)[0] <= memory_bytes:
+                    low = mid
+                else:
+                    high = mid - 1
+            cap = low
+    peak, tile, result = cost(cap, block)
+    if peak > memory_bytes:
+        raise ArchiveError(
+            f"tile plan for {info.path}: compress.method {method!r} needs at least {peak} bytes "
+            f"({_mib(peak)}) for its smallest tiles ({block} snapshots x {min(rows_of(cap))} points) with "
+            f"{workers} workers, {in_flight} tiles in flight and {_mib(driver)} of accumulators, but "
+            f"compress.memory is {_mib(memory_bytes)}; raise compress.memory to at least {peak} bytes "
+            "or use fewer workers"
+        )
+    rows = rows_of(cap)
+    point_blocks = tuple(tuple((p0, min(p0 + r, f.n_points)) for p0 in range(0, f.n_points, r))
+                         for f, r in zip(chosen, rows))
+    partial = any(len(b) > 1 and (r % _row_unit(f)[0] != 0 or _row_unit(f)[0] >= f.n_points)
+                  for b, r, f in zip(point_blocks, rows, chosen))
+    blocks = tuple((s0, min(s0 + block, m)) for s0 in range(0, m, block or 1)) if block else ()
+    bytes_to_read = 0
+    for f, b in zip(chosen, point_blocks):
+        stored = f.n_points * f.n_snapshots * np.dtype(f.stored_dtype).itemsize
+        # a compressed chunk cut by several row blocks is decompressed once per row block
+        bytes_to_read += stored * (len(b) if len(b) > 1 and partial and _compressed(info, f) else 1)
+    return TilePlan(
+        fields=names, n_snapshots=m, field_points=tuple(points), chunk=unit if method != "tsqr" else m,
+        block=block, snapshot_blocks=blocks, point_blocks=point_blocks, bytes_to_read=int(bytes_to_read),
+        tile_bytes=int(tile), accumulator_bytes=int(driver), peak_bytes_estimate=int(peak),
+        memory_bytes=int(memory_bytes), workers=int(workers), sketch_width=int(k + l), method=method,
+        passes=int(passes), range_width=int(k), corange_width=int(l), in_flight=int(in_flight),
+        driver_bytes=int(driver), cache_bytes=int(cache), result_bytes=int(result), partial_chunk_reads=partial,
     )

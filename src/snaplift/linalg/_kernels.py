@@ -1,15 +1,31 @@
-"""Tiny pure numpy kernels used by the graph builders of :mod:`snaplift.linalg`.
+"""Tiny pure numpy kernels used by the graph builders and tile tasks of :mod:`snaplift.linalg`.
 
-They see one block at a time and know nothing about dask, files or tiling.
+They see one block at a time and know nothing about dask, files, schedulers or tiling.
+Tiles arrive *snapshot-major*: ``raw`` is ``(snapshots, rows)``, the transpose of the
+tile of ``X``; products are written with transposed operands so that no tile is copied
+(BLAS takes the transpose flag for free).
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-__all__ = ["orthonormalize", "gaussian_block", "normalize_signs", "TEST_BLOCK_ROWS"]
+__all__ = [
+    "orthonormalize",
+    "gaussian_block",
+    "normalize_signs",
+    "TEST_BLOCK_ROWS",
+    "column_squares",
+    "range_product",
+    "corange_product",
+    "adjoint_product",
+    "qr_factor",
+    "reduce_r_factors",
+    "leaf_factors",
+    "solve_small",
+]
 
-#: snapshots per generated block of a random test matrix; part of the key, so fixed
+#: snapshots (or rows) per generated block of a random test matrix; part of the key, so fixed
 TEST_BLOCK_ROWS = 256
 
 
@@ -47,3 +63,91 @@ def normalize_signs(u: np.ndarray, vh: np.ndarray) -> tuple[np.ndarray, np.ndarr
     if not np.iscomplexobj(vh) and not np.iscomplexobj(u):
         phase = np.real(phase)
     return u * np.conj(phase)[np.newaxis, :], phase[:, np.newaxis] * vh
+
+
+def column_squares(raw: np.ndarray) -> np.ndarray:
+    """``||x_j||^2`` of every snapshot of a snapshot-major tile, without a tile-sized temporary."""
+    out = np.empty(raw.shape[0], dtype=np.float64)
+    for j in range(raw.shape[0]):
+        row = raw[j]
+        out[j] = np.vdot(row, row).real
+    return out
+
+
+def range_product(raw: np.ndarray, right: np.ndarray) -> np.ndarray:
+    """This tile's share of ``X @ right``: ``(rows, width)`` from ``raw`` = X_tile^T."""
+    return raw.T @ right
+
+
+def corange_product(raw: np.ndarray, left_t: np.ndarray) -> np.ndarray:
+    """This tile's columns of ``left @ X`` as ``(snapshots, width)``, given ``left^T`` (rows, width).
+
+    Tropp et al. (2017) apply the co-range test matrix without conjugation: ``W = Psi X``.
+    """
+    return raw @ left_t
+
+
+def adjoint_product(raw: np.ndarray, basis_rows: np.ndarray) -> np.ndarray:
+    """This tile's rows of ``X^H @ basis``: ``(snapshots, width)``; conjugates only small arrays."""
+    if np.iscomplexobj(raw) or np.iscomplexobj(basis_rows):
+        return np.conj(raw @ np.conj(basis_rows))
+    return raw @ basis_rows
+
+
+def qr_factor(a: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Householder QR (LAPACK geqrf via numpy) with ``R`` of shape ``(min(n, m), m)``."""
+    q, r = np.linalg.qr(a, mode="reduced")
+    return q, r
+
+
+def reduce_r_factors(factors: list[np.ndarray]) -> tuple[np.ndarray, list[tuple[int, int, np.ndarray, int]]]:
+    """Binary reduction tree of R factors (Demmel, Grigori, Hoemmen, Langou 2012, Alg. 1).
+
+    ``factors`` are the leaves' R factors (each ``(r_i, m)``). Returns the root ``R`` and
+    the tree: a list of ``(left, right, Q_node, split)`` records, one per inner node, in
+    the order they were formed; nodes are numbered leaves first (0..L-1), then inner
+    nodes L, L+1, ... ``split`` is the number of rows of ``Q_node`` that belong to the
+    left child.
+    """
+    nodes: list[tuple[int, np.ndarray]] = list(enumerate(factors))
+    tree: list[tuple[int, int, np.ndarray, int]] = []
+    next_id = len(factors)
+    while len(nodes) > 1:
+        merged: list[tuple[int, np.ndarray]] = []
+        for i in range(0, len(nodes) - 1, 2):
+            (left, r_left), (right, r_right) = nodes[i], nodes[i + 1]
+            q, r = qr_factor(np.concatenate([r_left, r_right], axis=0))
+            tree.append((left, right, q, r_left.shape[0]))
+            merged.append((next_id, r))
+            next_id += 1
+        if len(nodes) % 2:
+            merged.append(nodes[-1])
+        nodes = merged
+    return nodes[0][1], tree
+
+
+def leaf_factors(n_leaves: int, tree: list[tuple[int, int, np.ndarray, int]], top: np.ndarray) -> list[np.ndarray]:
+    """Push ``top`` (rows of the root R x width) down the tree: ``Q_tree`` block of every leaf times ``top``.
+
+    Leaf ``i``'s share of ``Q`` is then ``Q_i @ result[i]`` (the implicit product of the
+    tree's Q factors; Demmel et al. 2012, Sec. 3).
+    """
+    if not tree:
+        return [top]
+    value: dict[int, np.ndarray] = {n_leaves + len(tree) - 1: top}
+    for offset in range(len(tree) - 1, -1, -1):
+        left, right, q, split = tree[offset]
+        node = n_leaves + offset
+        product = q @ value.pop(node)
+        value[left], value[right] = product[:split], product[split:]
+    return [value[i] for i in range(n_leaves)]
+
+
+def solve_small(a: np.ndarray, b: np.ndarray) -> np.ndarray:
+    """Least-squares ``a^+ b`` through a QR of ``a`` (Tropp et al. 2017, Alg. 4 step 2)."""
+    q, r = np.linalg.qr(a, mode="reduced")
+    rhs = q.conj().T @ b
+    try:
+        return np.linalg.solve(r, rhs) if r.shape[0] == r.shape[1] else np.linalg.lstsq(r, rhs, rcond=None)[0]
+    except np.linalg.LinAlgError:
+        return np.linalg.lstsq(a, b, rcond=None)[0]

@@ -1,4 +1,4 @@
-"""Randomized SVD of a lazy snapshot matrix on dask.
+"""Randomized SVD: over an archive in a bounded streaming loop, or of a lazy dask array.
 
 Halko, Martinsson & Tropp (2011), "Finding structure with randomness: probabilistic
 algorithms for constructing approximate matrix decompositions", SIAM Review 53(2),
@@ -6,9 +6,10 @@ Algorithms 4.3/4.4 (randomized range finder with QR-stabilised subspace iteratio
 Algorithm 5.1 (direct SVD of the small projected matrix).
 
 Passes over the data: one for the range sketch, two per power iteration, one for the
-projection ``B = Q^H A``: ``2 + 2q`` in all. The caller may supply the range sketch
-(computed in a pass it shares with other statistics), which saves nothing in count but
-lets centring and scaling be gathered in that same read.
+projection ``B = Q^H A``: ``2 + 2q`` in all. :func:`randomized_compress` streams the
+archive tile by tile (the statistics for centring and scaling come from the first read,
+whose sketch is corrected afterwards; later passes centre and scale inside each tile);
+:func:`randomized_svd` does the same on a dask array that fits a task graph.
 """
 
 from __future__ import annotations
@@ -21,9 +22,10 @@ import dask
 import dask.array as da
 import numpy as np
 
-from snaplift.linalg._kernels import TEST_BLOCK_ROWS, normalize_signs, gaussian_block
+from snaplift.linalg._kernels import normalize_signs
+from snaplift.linalg._testmatrix import gaussian_map
 
-__all__ = ["LowRank", "randomized_svd", "gaussian_map"]
+__all__ = ["LowRank", "randomized_svd", "gaussian_map", "randomized_compress"]
 
 ComputeFn = Callable[..., Sequence[Any]]
 PersistFn = Callable[..., Sequence[Any]]
@@ -33,16 +35,19 @@ PersistFn = Callable[..., Sequence[Any]]
 class LowRank:
     """``A ~= basis @ diag(singular_value) @ vh`` with ``coefficient = diag(s) @ vh``.
 
-    ``basis`` is lazy (n x rank, dask); everything else is in memory. ``column_norm`` is
-    the exact norm of every column of A (gathered during the last pass), so the energy
-    the basis misses per snapshot is known without another read.
+    ``basis`` is ``(n, rank)``: a numpy array from the streaming methods, a lazy dask
+    array from :func:`randomized_svd`. ``column_norm`` is the norm of every column of A,
+    so the energy the basis misses per snapshot is known without another read.
+    ``projection_kind`` says whether coefficients and column norms are ``"exact"`` or
+    single-pass ``"estimate"`` s (sketch without a check pass).
     """
 
-    basis: da.Array
+    basis: Any
     singular_value: np.ndarray
     vh: np.ndarray
     column_norm: np.ndarray
     passes: int
+    projection_kind: str = "exact"
 
     @property
     def coefficient(self) -> np.ndarray:
@@ -53,36 +58,11 @@ class LowRank:
         return int(self.singular_value.size)
 
     def projection_error(self) -> np.ndarray:
-        """Relative norm of each column of A outside span(basis): exact, not estimated."""
+        """Relative norm of each column of A outside span(basis) (see ``projection_kind``)."""
         captured = np.sum(np.abs(self.coefficient) ** 2, axis=0)
         total = self.column_norm**2
         missed = np.sqrt(np.clip(total - captured, 0.0, None))
         return np.divide(missed, self.column_norm, out=np.zeros_like(missed), where=self.column_norm > 0)
-
-
-def gaussian_map(
-    snapshot_index: np.ndarray, width: int, *, seed: int, complex_valued: bool, stream: int = 0
-) -> np.ndarray:
-    """Gaussian test matrix whose row ``j`` depends only on global snapshot index ``j``.
-
-    Rows are generated in fixed blocks of :data:`TEST_BLOCK_ROWS` global snapshots keyed
-    by the seed, so the same snapshot gets the same row whatever tiling or subset is used.
-
-    Example
-    -------
-    >>> omega = gaussian_map(np.arange(10), 4, seed=0, complex_valued=False)
-    >>> omega.shape
-    (10, 4)
-    """
-    snapshot_index = np.asarray(snapshot_index, dtype=np.int64)
-    dtype = np.complex128 if complex_valued else np.float64
-    out = np.empty((snapshot_index.size, width), dtype=dtype)
-    blocks = snapshot_index // TEST_BLOCK_ROWS
-    for block in np.unique(blocks):
-        rows = np.flatnonzero(blocks == block)
-        generated = gaussian_block(seed, stream, int(block), width, complex_valued)
-        out[rows] = generated[snapshot_index[rows] - block * TEST_BLOCK_ROWS]
-    return out
 
 
 def _orth(y: da.Array) -> da.Array:
@@ -184,3 +164,59 @@ def randomized_svd(
         column_norm=np.sqrt(np.asarray(column_norm_sq, dtype=np.float64)),
         passes=passes,
     )
+
+
+def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, rank: int, oversample: int,
+                        power_iterations: int, seed: int, center: bool, scale: Any,
+                        first_read: Any = None) -> tuple[Any, LowRank]:
+    """Randomized SVD of the prepared snapshot matrix over the archive: ``2 + 2q`` streamed passes.
+
+    Pass 0 reads ``Y = X_w Omega`` with the statistics (corrected to ``A Omega``
+    afterwards); each power iteration is one pass for ``A^H Q`` and one for ``A Z``
+    (each factor re-orthonormalised, Halko et al. 2011, Alg. 4.4); the last pass gives
+    ``B^H = A^H Q`` and the exact column norms of ``A``. Every pass resumes from
+    ``state`` (a :class:`~snaplift.linalg.streaming.StreamState`).
+
+    Returns ``(Preparation, LowRank)``; the basis is in memory (n x rank).
+    """
+    from snaplift.linalg._passes import preparing_of, product_read, sketch_read
+    from snaplift.linalg.tsqr import tsqr
+    from snaplift.prepare import corrected_sketch, finish_preparation
+
+    n, m = matrix.shape
+    if rank > min(n, m):
+        raise ValueError(f"rank {rank} exceeds the matrix size {n} x {m}")
+    width = min(rank + oversample, n, m)
+    complex_valued = np.issubdtype(matrix.dtype, np.complexfloating)
+    if state.pass_number == 0:
+        sketch_read(run, matrix, jobs, state, width, 0)
+    preparation = finish_preparation(matrix, state.arrays["row_sum"], list(state.arrays["squares"]),
+                                     center=center, scale=scale)
+    if state.pass_number == 0:
+        omega = gaussian_map(matrix.snapshot_index, width, seed=seed, complex_valued=complex_valued)
+        state.arrays["q"] = tsqr(corrected_sketch(state.arrays.pop("range"), preparation, omega))[0]
+        run.end_pass(state)
+    preparing = run.runner.share(preparing_of(preparation))
+    for iteration in range(power_iterations):
+        first = 1 + 2 * iteration
+        if state.pass_number == first:
+            product_read(run, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="adjoint")
+            state.arrays["z"] = np.linalg.qr(state.arrays.pop("adjoint"))[0]
+            state.arrays.pop("adjoint_norm_squares", None)
+            run.end_pass(state)
+        if state.pass_number == first + 1:
+            product_read(run, matrix, jobs, state, preparing, state.arrays["z"], "range", name="range")
+            state.arrays["q"] = tsqr(state.arrays.pop("range"))[0]
+            state.arrays.pop("z", None)
+            run.end_pass(state)
+    final = 1 + 2 * power_iterations
+    if state.pass_number == final:
+        product_read(run, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="projection")
+        run.end_pass(state)
+    b = np.asarray(state.arrays["projection"]).conj().T  # B = Q^H A (width x m)
+    u_small, s, vh = np.linalg.svd(b, full_matrices=False)
+    u_small, vh = normalize_signs(u_small[:, :rank], vh[:rank])
+    lowrank = LowRank(basis=state.arrays["q"] @ u_small, singular_value=s[:rank].astype(np.float64), vh=vh,
+                      column_norm=np.sqrt(np.asarray(state.arrays["projection_norm_squares"], dtype=np.float64)),
+                      passes=2 + 2 * power_iterations, projection_kind="exact")
+    return preparation, lowrank

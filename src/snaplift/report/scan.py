@@ -71,12 +71,19 @@ def render_scan(report: ScanReport) -> Any:
         tiles = Table.grid(padding=(0, 2))
         tiles.add_column(style="bold")
         tiles.add_column()
-        tiles.add_row("tile plan", f"{plan['n_tiles']} tiles of {plan['tile_shape'][0]} points x "
-                                   f"{plan['tile_shape'][1]} snapshots ({plan['n_snapshot_blocks']} snapshot blocks)")
-        tiles.add_row("bytes to read", f"{human_bytes(plan['bytes_to_read'])} per pass")
+        method = f"compress.method {plan['method']}, " if plan.get("method") else ""
+        tiles.add_row("tile plan", f"{method}{plan['n_tiles']} tiles of {plan['tile_shape'][0]} points x "
+                                   f"{plan['tile_shape'][1]} snapshots ({plan['n_snapshot_blocks']} snapshot blocks; "
+                                   f"row blocking: {plan.get('row_blocking', 'none')})")
+        passes = int(plan.get("passes") or 1)
+        tiles.add_row("bytes to read", f"{human_bytes(plan['bytes_to_read'])} per pass"
+                                       + (f", {passes} passes: {human_bytes(plan['bytes_to_read'] * passes)}"
+                                          if passes > 1 else ", 1 pass"))
+        per_worker = plan.get("peak_bytes_per_worker")
         tiles.add_row("memory", f"{human_bytes(plan['memory_per_tile_bytes'])} per tile in flight, "
-                                f"peak estimate {human_bytes(plan['peak_bytes_estimate'])} "
-                                f"(budget {human_bytes(plan['memory_bytes'])})")
+                                + (f"{human_bytes(per_worker)} per worker, " if per_worker else "")
+                                + f"peak estimate {human_bytes(plan['peak_bytes_estimate'])} "
+                                f"(budget {human_bytes(plan['memory_bytes'])}, {plan.get('workers', 1)} worker(s))")
         parts.append(tiles)
     elif data.get("plan_error"):
         parts.append(f"[red]tile plan: {data['plan_error']}[/red]")

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 from pathlib import Path
 from typing import Annotated, Any, Literal, Union
 
@@ -30,6 +31,8 @@ __all__ = [
     "load_workflow",
     "parse_workflow",
     "section_fingerprint",
+    "parse_duration",
+    "parse_walltime",
 ]
 
 
@@ -76,6 +79,17 @@ class PrepareSection(_Section):
 
 
 class CompressSection(_Section):
+    """How the snapshot matrix is compressed (see :mod:`snaplift.linalg.compress`).
+
+    ``sketch``: one read (Tropp et al. 2017/2019), widths ``sketch_widths: [k, l]``
+    (default ``[2 rank + 1, 2 k + 1]``), coefficients and projection errors estimated
+    unless ``check_pass: true`` (one more read, exact). ``randomized``: ``2 + 2
+    power_iterations`` reads (Halko et al. 2011). ``tsqr``: two reads, exact (Demmel et al.
+    2012), for archives with few snapshots. ``memory``: budget of the tile plan (default:
+    from the cluster). ``checkpoint_every``: tiles (``200``) or a duration (``60s``)
+    between checkpoints of the streaming loop, when the runner gives it a folder.
+    """
+
     method: Literal["randomized", "sketch", "tsqr"] = "randomized"
     rank: int = Field(40, ge=1)
     oversample: int = Field(10, ge=0)
@@ -83,6 +97,13 @@ class CompressSection(_Section):
     seed: int = Field(0, ge=0)
     memory: str | int | None = Field(
         None, description="memory budget for tiles, e.g. '2GiB' (default: from the cluster)"
+    )
+    sketch_widths: tuple[int, int] | None = Field(
+        None, description="sketch only: range and co-range widths [k, l], rank <= k <= l"
+    )
+    check_pass: bool = Field(False, description="sketch only: one more read for exact coefficients and errors")
+    checkpoint_every: int | str | None = Field(
+        None, description="tiles (e.g. 200) or a duration (e.g. 60s, 5m) between checkpoints"
     )
 
     @field_validator("memory")
@@ -92,12 +113,29 @@ class CompressSection(_Section):
             parse_bytes(value)
         return value
 
+    @field_validator("checkpoint_every")
+    @classmethod
+    def _every(cls, value: int | str | None) -> int | str | None:
+        if value is not None:
+            from snaplift.linalg.streaming import parse_every
+
+            try:
+                parse_every(value)
+            except ConfigError as error:
+                raise ValueError(str(error).split(": ", 1)[-1]) from None
+        return value
+
     @model_validator(mode="after")
-    def _supported(self) -> CompressSection:
-        if self.method != "randomized":
-            raise NotImplementedError(
-                f"compress.method {self.method!r} is not available in this version; "
-                "use 'randomized'"
+    def _combinations(self) -> CompressSection:
+        if self.sketch_widths is not None:
+            if self.method != "sketch":
+                raise ValueError(f"sketch_widths applies to method 'sketch', not {self.method!r}")
+            k, l = self.sketch_widths
+            if not self.rank <= k <= l:
+                raise ValueError(f"sketch_widths [k, l] = [{k}, {l}] must satisfy rank ({self.rank}) <= k <= l")
+        if self.check_pass and self.method != "sketch":
+            raise ValueError(
+                f"check_pass applies to method 'sketch'; {self.method!r} already gives exact coefficients"
             )
         return self
 
@@ -111,11 +149,141 @@ class OutputSection(_Section):
     path: str = "results/snaplift.zarr"
 
 
+_BATCH_KINDS = ("slurm", "pbs")
+#: which keys apply to which kinds (a key given for another kind is an error, not ignored)
+_CLUSTER_KEYS: dict[str, tuple[str, ...]] = {
+    "workers": ("threads", "local", "slurm", "pbs", "allocation"),
+    "threads_per_worker": ("local", "allocation"),
+    "memory_per_worker": ("threads", "local", "address", "allocation"),
+    "address": ("address",),
+    "queue": _BATCH_KINDS, "account": _BATCH_KINDS, "walltime": _BATCH_KINDS,
+    "cores": _BATCH_KINDS, "memory": _BATCH_KINDS, "processes": _BATCH_KINDS,
+    "job_extra_directives": _BATCH_KINDS, "job_script_prologue": _BATCH_KINDS,
+    "worker_lifetime": _BATCH_KINDS, "lifetime_stagger": _BATCH_KINDS,
+    "log_directory": _BATCH_KINDS, "python": _BATCH_KINDS,
+    "interface": ("local", "slurm", "pbs", "allocation"),
+    "local_directory": ("local", "slurm", "pbs", "allocation"),
+    "launcher": ("allocation",),
+}
+
+
 class ClusterSection(_Section):
-    kind: Literal["threads", "local"] = "local"
-    workers: int | None = Field(None, ge=1)
+    """Where the work runs; see :mod:`snaplift.cluster` and the profiles in ``configs/``.
+
+    ``threads`` (dask's threaded scheduler, no scheduler process), ``local`` (a
+    LocalCluster sized to the machine), ``address`` (an existing scheduler), ``slurm`` /
+    ``pbs`` (worker jobs submitted through dask-jobqueue) and ``allocation`` (workers
+    started inside the batch allocation this run is already in).
+    """
+
+    kind: Literal["threads", "local", "address", "slurm", "pbs", "allocation"] = "local"
+    profile: str | None = Field(None, description="where the settings came from (set by the loader)")
+    workers: int | None = Field(None, ge=1, description="worker processes in all (batch: jobs x processes)")
     threads_per_worker: int | None = Field(None, ge=1)
     memory_per_worker: str | None = None
+    address: str | None = Field(None, description="scheduler address, e.g. tcp://10.0.0.5:8786")
+    queue: str | None = None
+    account: str | None = None
+    walltime: str | None = Field(None, description="per worker job, HH:MM:SS")
+    cores: int | None = Field(None, ge=1, description="cores per worker job")
+    memory: str | None = Field(None, description="memory per worker job, e.g. 64GiB")
+    processes: int | None = Field(None, ge=1, description="worker processes per job (cores shared)")
+    job_extra_directives: list[str] = Field(default_factory=list)
+    job_script_prologue: list[str] = Field(default_factory=list)
+    worker_lifetime: str | None = Field(None, description="retire workers before the walltime, e.g. 55m")
+    lifetime_stagger: str | None = Field(None, description="spread retirements, e.g. 4m")
+    log_directory: str | None = None
+    python: str | None = Field(None, description="python on the compute nodes (default: this one)")
+    interface: str | None = Field(None, description="network interface for workers, e.g. ib0")
+    local_directory: str | None = Field(None, description="node-local scratch for spilling")
+    launcher: Literal["auto", "srun", "local"] = "auto"
+    start_timeout: float = Field(600.0, gt=0, description="seconds to wait for the workers to start")
+
+    @field_validator("memory_per_worker", "memory")
+    @classmethod
+    def _sizes(cls, value: str | None) -> str | None:
+        if value is not None:
+            parse_bytes(value)
+        return value
+
+    @field_validator("worker_lifetime", "lifetime_stagger")
+    @classmethod
+    def _durations(cls, value: str | None) -> str | None:
+        if value is not None:
+            parse_duration(value)
+        return value
+
+    @field_validator("walltime")
+    @classmethod
+    def _walltime(cls, value: str | None) -> str | None:
+        if value is not None:
+            parse_walltime(value)
+        return value
+
+    @model_validator(mode="after")
+    def _keys_fit_kind(self) -> ClusterSection:
+        given = self.model_fields_set - {"kind", "profile", "start_timeout"}
+        for key in sorted(given):
+            kinds = _CLUSTER_KEYS.get(key, ())
+            value = getattr(self, key)
+            if value in (None, []) or self.kind in kinds:
+                continue
+            raise ValueError(
+                f"cluster.{key} does not apply to kind {self.kind!r}; it applies to kinds {', '.join(kinds)}"
+            )
+        if self.kind == "address" and not self.address:
+            raise ValueError("cluster kind 'address' needs cluster.address, e.g. tcp://10.0.0.5:8786")
+        if self.kind in _BATCH_KINDS:
+            if self.cores is None or self.memory is None:
+                raise ValueError(
+                    f"cluster kind {self.kind!r} needs cluster.cores and cluster.memory (per worker job), "
+                    "e.g. cores: 8, memory: 32GiB"
+                )
+            if self.processes and self.cores and self.processes > self.cores:
+                raise ValueError(f"cluster.processes ({self.processes}) cannot exceed cluster.cores ({self.cores})")
+            if self.worker_lifetime and self.walltime:
+                if parse_duration(self.worker_lifetime) >= parse_walltime(self.walltime):
+                    raise ValueError(
+                        f"cluster.worker_lifetime ({self.worker_lifetime}) must be shorter than the "
+                        f"walltime ({self.walltime}) so workers retire before the job is killed"
+                    )
+        return self
+
+
+def parse_duration(value: str | float | int) -> float:
+    """``'55m'`` -> 3300.0 seconds; ``'1h30m'``, ``'90s'``, numbers are seconds."""
+    if isinstance(value, int | float) and not isinstance(value, bool):
+        if value <= 0:
+            raise ValueError(f"a duration must be positive, got {value}")
+        return float(value)
+    text = str(value).strip().lower().replace(" ", "")
+    parts = re.fullmatch(r"(?:(\d+(?:\.\d+)?)h)?(?:(\d+(?:\.\d+)?)m)?(?:(\d+(?:\.\d+)?)s?)?", text)
+    if not text or parts is None or not any(parts.groups()):
+        raise ValueError(f"{value!r} is not a duration; expected e.g. 90s, 55m, 1h30m")
+    hours, minutes, seconds = (float(p) if p else 0.0 for p in parts.groups())
+    total = 3600 * hours + 60 * minutes + seconds
+    if total <= 0:
+        raise ValueError(f"a duration must be positive, got {value!r}")
+    return total
+
+
+def parse_walltime(value: str) -> float:
+    """``'02:00:00'`` / ``'1-12:00:00'`` / ``'30:00'`` -> seconds (SLURM and PBS notation)."""
+    text = str(value).strip()
+    days = 0
+    if "-" in text:
+        head, text = text.split("-", 1)
+        days = int(head) if head.isdigit() else -1
+    fields = text.split(":")
+    if days < 0 or not 1 <= len(fields) <= 3 or not all(f.isdigit() for f in fields):
+        raise ValueError(f"walltime {value!r} is not HH:MM:SS (or D-HH:MM:SS, MM:SS)")
+    numbers = [int(f) for f in fields]
+    while len(numbers) < 3:
+        numbers.insert(0, 0)
+    total = days * 86400 + numbers[0] * 3600 + numbers[1] * 60 + numbers[2]
+    if total <= 0:
+        raise ValueError(f"walltime {value!r} must be positive")
+    return float(total)
 
 
 class Workflow(_Section):
@@ -130,9 +298,11 @@ class Workflow(_Section):
     @field_validator("cluster", mode="before")
     @classmethod
     def _cluster_name(cls, value: Any) -> Any:
-        if isinstance(value, str):
-            return {"kind": value}
-        return value
+        from snaplift.workflow.profiles import resolve_cluster
+
+        # profile names resolve against the current folder here; load_workflow resolves
+        # them against the workflow file's folder before validation
+        return resolve_cluster(value, None)
 
     @field_validator("lift")
     @classmethod
@@ -219,10 +389,18 @@ def _allowed_keys(loc: tuple[Any, ...]) -> list[str]:
     return sorted(model.model_fields)
 
 
-def parse_workflow(data: Any, *, source: str = "<text>") -> Workflow:
-    """Validate a mapping (the parsed YAML) into a :class:`Workflow`."""
+def parse_workflow(data: Any, *, source: str = "<text>", folder: Path | None = None) -> Workflow:
+    """Validate a mapping (the parsed YAML) into a :class:`Workflow`.
+
+    ``folder`` is where cluster profile files and names are looked up (see
+    :mod:`snaplift.workflow.profiles`); default: the current folder.
+    """
     if not isinstance(data, dict):
         raise ConfigError(f"invalid workflow {source}: expected a mapping of sections, got {type(data).__name__}")
+    if "cluster" in data:
+        from snaplift.workflow.profiles import resolve_cluster
+
+        data = {**data, "cluster": resolve_cluster(data["cluster"], folder)}
     try:
         return Workflow.model_validate(data)
     except ValidationError as error:
@@ -249,7 +427,8 @@ def load_workflow(path: str | Path) -> tuple[Workflow, str, Path]:
         mark = getattr(error, "problem_mark", None)
         where = f" line {mark.line + 1}, column {mark.column + 1}" if mark else ""
         raise ConfigError(f"workflow {path}{where} is not valid YAML: {getattr(error, 'problem', error)}") from None
-    return parse_workflow(data, source=str(path)), text, path.resolve().parent
+    folder = path.resolve().parent
+    return parse_workflow(data, source=str(path), folder=folder), text, folder
 
 
 def resolve_path(folder: Path, value: str) -> str:

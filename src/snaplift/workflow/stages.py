@@ -14,14 +14,16 @@ import numpy as np
 
 from snaplift.archive import Reader, check_times, open_archive, plan_tiles, snapshot_times
 from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
+from snaplift.archive.plan import TilePlan
 from snaplift.cluster import Scheduler
 from snaplift.errors import ArchiveError, FieldNotFoundError, FitError, TimeSpacingError
 from snaplift.fitting import DMDFit, fit_dmd
-from snaplift.linalg.randomized import LowRank, randomized_svd, gaussian_map
-from snaplift.prepare import Preparation, corrected_sketch, finish_preparation, first_pass, prepared_matrix
+from snaplift.linalg.randomized import LowRank
+from snaplift.prepare import Preparation
 from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path
 
-__all__ = ["Scanned", "Compressed", "scan_stage", "compress_stage", "fit_stage", "TIME_RTOL"]
+__all__ = ["Scanned", "Compressed", "scan_stage", "compress_stage", "fit_stage", "plan_compress",
+           "compress_memory", "TIME_RTOL"]
 
 #: relative tolerance on the spread of time steps before spacing counts as non-uniform
 #: (common practice: a 0.1 % jitter in dt shifts frequencies by about as much)
@@ -37,15 +39,27 @@ class Scanned:
     snapshot_block: int
     memory_bytes: int
     warnings: tuple[str, ...] = ()
+    plan: TilePlan | None = None
 
 
 @dataclass(frozen=True)
 class Compressed:
+    """What compress hands on: the matrix description, preparation, factors and their record.
+
+    ``projection_kind`` is ``"exact"`` or ``"estimate"`` (single-pass sketch without a
+    check pass); ``sketch_state`` the arrays a later append needs (``sketch`` only; the
+    store's ``sketch/`` group); ``info`` widths, tiles, runner, resume facts.
+    """
+
     matrix: SnapshotMatrix
     preparation: Preparation
     lowrank: LowRank
     passes: int
     bytes_read: int
+    projection_kind: str = "exact"
+    method: str = "randomized"
+    sketch_state: dict[str, np.ndarray] = field(default_factory=dict)
+    info: dict[str, object] = field(default_factory=dict)
 
 
 def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler) -> Scanned:
@@ -84,57 +98,74 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler) -> Scanne
             "archive.snapshots"
         )
     dt = float(spacing.dt)
-    memory = parse_bytes(workflow.compress.memory) if workflow.compress.memory else scheduler.memory_per_worker
-    width = workflow.compress.rank + workflow.compress.oversample
-    plan = plan_tiles(info, list(section.fields), memory_bytes=memory, sketch_width=width,
-                      workers=scheduler.workers)
+    plan = plan_compress(workflow, info, scheduler)
     block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
     # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
     snapshot_block = max(1, block // section.snapshots.every)
-    return Scanned(reader, index, times, dt, snapshot_block, memory)
+    return Scanned(reader, index, times, dt, snapshot_block, plan.memory_bytes, plan=plan)
 
 
-def _bytes_per_pass(matrix: SnapshotMatrix) -> int:
-    info = matrix.reader.describe()
-    total = 0
-    for c0, c1 in matrix.blocks:
-        span = int(matrix.snapshot_index[c1 - 1] - matrix.snapshot_index[c0] + 1)
-        for rows in matrix.fields:
-            f = info.fields[rows.name]
-            total += span * f.n_points * f.stored_dtype.itemsize
-    return total
+def compress_memory(workflow: Workflow, scheduler: Scheduler) -> int:
+    """``compress.memory``, else what the cluster gives: the process's memory under threads,
+    memory per worker times workers for worker processes."""
+    if workflow.compress.memory:
+        return parse_bytes(workflow.compress.memory)
+    if scheduler.kind == "threads":
+        return int(scheduler.memory_per_worker)
+    return int(scheduler.memory_per_worker) * max(1, int(scheduler.workers))
 
 
-def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler) -> Compressed:
-    """Randomized SVD of the prepared snapshot matrix; statistics from the first read."""
+def plan_compress(workflow: Workflow, info, scheduler: Scheduler) -> TilePlan:
+    """The tile plan of the compress stage for this workflow and scheduler (metadata only)."""
+    settings = workflow.compress
+    return plan_tiles(
+        info, list(workflow.archive.fields), memory_bytes=compress_memory(workflow, scheduler),
+        workers=scheduler.workers, method=settings.method, rank=settings.rank, oversample=settings.oversample,
+        power_iterations=settings.power_iterations, check_pass=settings.check_pass,
+        sketch_widths=settings.sketch_widths, shared_memory=scheduler.kind == "threads",
+    )
+
+
+def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, *,
+                   checkpoint: str | Path | None = None, checkpoint_dir: str | Path | None = None) -> Compressed:
+    """Compress the prepared snapshot matrix with ``compress.method`` in bounded streaming passes.
+
+    Statistics for centring and scaling come from the first read. With ``checkpoint``
+    (a folder; ``checkpoint_dir`` is the same) the loop state is saved there every
+    ``compress.checkpoint_every`` (default 60 s) and at each pass end, and a repeated call
+    with the same settings resumes from it.
+    """
+    checkpoint_dir = checkpoint if checkpoint is not None else checkpoint_dir
+    from snaplift.linalg.compress import CompressOptions, compress
+    from snaplift.linalg.streaming import runner_for
+
     section = workflow.archive
+    plan = scanned.plan
     matrix = build_snapshot_matrix(
         scanned.reader, list(section.fields), snapshots=scanned.snapshot_index,
         snapshot_block=scanned.snapshot_block, weights=section.weights, mask=section.mask,
+        snapshot_blocks=None if plan is None else plan.snapshot_blocks,
     )
     n, m = matrix.shape
     settings = workflow.compress
-    rank = min(settings.rank, n, m)
-    if rank < settings.rank:
+    if settings.rank > min(n, m):
         raise ArchiveError(
             f"compress.rank = {settings.rank} exceeds what the data allow (min of {n} points and {m} snapshots)"
         )
-    x = matrix.to_dask()
-    width = min(rank + settings.oversample, n, m)
-    complex_valued = np.issubdtype(matrix.dtype, np.complexfloating)
-    omega = gaussian_map(matrix.snapshot_index, width, seed=settings.seed, complex_valued=complex_valued)
-    sketch, row_sum, *column_squares = scheduler.compute(*first_pass(matrix, x, omega))
-    preparation = finish_preparation(matrix, np.asarray(row_sum), [np.asarray(c) for c in column_squares],
-                                     center=workflow.prepare.center, scale=workflow.prepare.scale)
-    a = prepared_matrix(x, preparation)
-    lowrank = randomized_svd(
-        a, rank, oversample=settings.oversample, power_iterations=settings.power_iterations,
-        seed=settings.seed, snapshot_index=matrix.snapshot_index,
-        range_sketch=corrected_sketch(sketch, preparation, omega),
-        compute=scheduler.compute, persist=scheduler.persist,
+    options = CompressOptions(
+        method=settings.method, rank=settings.rank, oversample=settings.oversample,
+        power_iterations=settings.power_iterations, seed=settings.seed,
+        sketch_widths=None if settings.sketch_widths is None else tuple(settings.sketch_widths),
+        check_pass=settings.check_pass, center=workflow.prepare.center, scale=workflow.prepare.scale,
     )
-    passes = lowrank.passes + 1
-    return Compressed(matrix, preparation, lowrank, passes, passes * _bytes_per_pass(matrix))
+    with runner_for(scheduler) as runner:
+        result = compress(matrix, plan, options, runner=runner,
+                          in_flight=None if plan is None else plan.in_flight,
+                          checkpoint_dir=checkpoint_dir, checkpoint_every=settings.checkpoint_every,
+                          progress=getattr(scheduler, "progress", None))
+    return Compressed(matrix, result.preparation, result.lowrank, result.passes, result.bytes_read,
+                      projection_kind=result.projection_kind, method=result.method,
+                      sketch_state=result.sketch_state, info=result.info)
 
 
 def fit_stage(workflow: Workflow, compressed: Compressed, scanned: Scanned) -> DMDFit:

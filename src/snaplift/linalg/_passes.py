@@ -1,0 +1,231 @@
+"""Passes over the archive for the compress methods: jobs, and what each pass folds.
+
+A pass is :func:`snaplift.linalg.streaming.run_tiles` over the plan's tiles with one tile
+task and one fold. Accumulators live in ``StreamState.arrays`` under fixed names, so the
+state can be checkpointed between any two tiles:
+
+- ``range``: ``(n, k)`` rows of a range product (``X Omega`` or ``A Z``), summed over
+  the time blocks of each row block;
+- ``corange_<f>``: ``(m, l)`` columns of ``(Psi_f X_f)^T`` for field ``f``;
+- ``adjoint``: ``(m, k)`` rows of ``A^H Q``, summed over row blocks;
+- ``row_sum`` ``(n,)``, ``squares`` ``(fields, m)``: statistics of the raw weighted data;
+- ``<name>_norm_squares`` ``(m,)``: exact squared column norms of the prepared ``A``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+import uuid
+
+import numpy as np
+
+from snaplift.archive.matrix import SnapshotMatrix
+from snaplift.linalg._tasks import Preparing, TileRef, TileSource, product_task, sketch_task
+from snaplift.linalg.streaming import Checkpointer, Job, StreamState, TileRunner, run_tiles
+
+__all__ = ["build_jobs", "kept_row_blocks", "sketch_read", "product_read", "Pass", "preparing_of"]
+
+
+def kept_row_blocks(matrix: SnapshotMatrix, point_blocks: Sequence[Sequence[tuple[int, int]]] | None
+                    ) -> list[list[tuple[int, int]]]:
+    """Planned grid-point ranges of every field as ranges of its kept rows (masked points dropped)."""
+    out: list[list[tuple[int, int]]] = []
+    for index, field in enumerate(matrix.fields):
+        blocks = point_blocks[index] if point_blocks is not None else [(0, int(np.prod(field.grid)))]
+        ranges = []
+        for p0, p1 in blocks:
+            if field.keep is None:
+                r0, r1 = int(p0), int(p1)
+            else:
+                r0, r1 = int(np.searchsorted(field.keep, p0)), int(np.searchsorted(field.keep, p1))
+            if r1 > r0:
+                ranges.append((r0, r1))
+        out.append(ranges)
+    return out
+
+
+def build_jobs(matrix: SnapshotMatrix, row_blocks: list[list[tuple[int, int]]],
+               columns: Sequence[tuple[int, int]]) -> list[Job]:
+    """Tiles in read order (time block by time block, fields in order), with stored bytes read."""
+    info = matrix.reader.describe()
+    jobs: list[Job] = []
+    index = matrix.snapshot_index
+    for c0, c1 in columns:
+        span = int(index[c1 - 1] - index[c0] + 1)
+        for f, field in enumerate(matrix.fields):
+            itemsize = int(np.dtype(info.fields[field.name].stored_dtype).itemsize)
+            for r0, r1 in row_blocks[f]:
+                points = (int(field.keep[r1 - 1]) + 1 - int(field.keep[r0])) if field.keep is not None else r1 - r0
+                jobs.append(Job(len(jobs), TileRef(f, (r0, r1), (int(c0), int(c1)), len(jobs)),
+                                span * points * itemsize))
+    return jobs
+
+
+class Pass:
+    """How one method runs a pass: runner, shared source, in-flight bound, checkpointing."""
+
+    def __init__(self, runner: TileRunner, source: TileSource, *, in_flight: int,
+                 checkpoint: Checkpointer | None = None, progress: Any = None) -> None:
+        self.runner = runner
+        self.source = source
+        self.shared_source = runner.share(source)
+        self.in_flight = in_flight
+        self.checkpoint = checkpoint
+        self.progress = progress
+
+    def slot_key(self, state: StreamState) -> str:
+        # unique per run of a pass: a stopped run's slots never meet a resumed run's
+        return f"{state.key}:{state.pass_number}:{uuid.uuid4().hex[:12]}"
+
+    def run(self, task: Any, shared: tuple[Any, ...], jobs: Sequence[Job], fold: Any, state: StreamState,
+            *, slot: str | None = None) -> None:
+        """Run a pass; the task is called as ``task(source, *shared, slot_spec, tile)``.
+
+        With ``slot`` (an accumulator name) and a runner that has slots, range products are
+        summed in place in ordered slots (:mod:`snaplift.linalg._slots`) and collected
+        into ``state.arrays[slot]``; otherwise ``slot_spec`` is None and ``fold`` adds the
+        returned products.
+        """
+        if self.progress is not None and hasattr(self.progress, "add_work"):
+            self.progress.add_work(len([j for j in jobs if j.id not in state.done]))
+        count = int(getattr(self.runner, "slots", 0) or 0) if slot is not None else 0
+        key = self.slot_key(state)
+        by_id = {job.id: job for job in jobs}
+        pending: set[int] = set()
+        last: dict[int, int] = {}
+        order = {job.id: position for position, job in enumerate(j for j in jobs if j.id not in state.done)}
+
+        def per_job(job: Job) -> tuple[Any, int | None]:
+            if not count:
+                return None, None
+            index = order[job.id] % count
+            after = last.get(index, -1)
+            last[index] = job.id
+            return (key, index, after), index
+
+        def fold_and_note(tile: Any, result: Any) -> None:
+            fold(tile, result)
+            pending.add(_tile_id(tile))
+
+        def flush() -> None:
+            if not count:
+                return
+            parts = self.runner.collect(key, "range")
+            ids = [i for index in sorted(parts) for i in parts[index][1]]
+            if len(ids) != len(set(ids)) or not set(ids) <= pending:
+                raise RuntimeError(f"compress pass {state.pass_number}: a tile was counted twice "
+                                   "(a task ran twice); run again to resume from the last checkpoint")
+            for index in sorted(parts):  # a fixed order of summation
+                value = parts[index][0]
+                state.arrays[slot] = state.arrays[slot] + value if slot in state.arrays else value.copy()
+            missing = pending - set(ids)
+            if missing:
+                # a worker died and took its slot with it: read those tiles again, returning
+                # their products (their small results are already folded)
+                again = StreamState(state.key)
+
+                def add_only(tile: Any, result: Any) -> None:
+                    _add_rows(state, slot, self.source, tile, result)
+
+                run_tiles(self.runner, task, (self.shared_source, *shared, None),
+                          [by_id[i] for i in sorted(missing)], add_only, again, in_flight=self.in_flight)
+                state.bytes_read += again.bytes_read
+            pending.clear()
+            last.clear()
+
+        try:
+            run_tiles(self.runner, task, (self.shared_source, *shared), jobs, fold_and_note, state,
+                      in_flight=self.in_flight, checkpoint=self.checkpoint, progress=self.progress, flush=flush,
+                      per_job=per_job)
+            flush()
+        except BaseException:
+            if count:  # wake and fail tiles waiting for a predecessor that will never come
+                self.runner.discard(key, abort=True)
+            raise
+
+    def end_pass(self, state: StreamState) -> None:
+        """Close a pass once its derived arrays are in ``state`` (and checkpoint that)."""
+        state.finish_pass()
+        if self.checkpoint is not None:
+            self.checkpoint.save(state)
+
+
+def _add_rows(state: StreamState, name: str, source: TileSource, tile: Any, result: dict[str, Any]) -> None:
+    """Fold a returned range product (``result['range']`` or ``['product']``) into its rows."""
+    value = result.get("range", result.get("product"))
+    if value is None:
+        return
+    g0, g1 = tile.global_rows(source)
+    if name not in state.arrays:
+        state.arrays[name] = np.zeros((source.n_rows, value.shape[1]), dtype=value.dtype)
+    state.arrays[name][g0:g1] += value
+
+
+def _tile_id(tile: Any) -> int:
+    return int(tile[0].id if isinstance(tile, tuple) else tile.id)
+
+
+def _zeros(state: StreamState, name: str, shape: tuple[int, ...], dtype: Any) -> np.ndarray:
+    if name not in state.arrays:
+        state.arrays[name] = np.zeros(shape, dtype=dtype)
+    return state.arrays[name]
+
+
+def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: StreamState,
+                range_width: int, corange_width: int) -> None:
+    """The first read: ``range`` = X_w Omega, ``corange_<f>`` = (Psi_f X_f)^T, statistics."""
+    n, m = matrix.shape
+    dtype = matrix.dtype
+    corange = [_zeros(state, f"corange_{f}", (m, corange_width), dtype) for f in range(len(matrix.fields))] \
+        if corange_width else []
+    row_sum = _zeros(state, "row_sum", (n,), dtype)
+    squares = _zeros(state, "squares", (len(matrix.fields), m), np.float64)
+    fields = matrix.fields
+
+    def fold(tile: TileRef, result: dict[str, Any]) -> None:
+        g0 = fields[tile.field].offset + tile.rows[0]
+        g1 = fields[tile.field].offset + tile.rows[1]
+        c0, c1 = tile.columns
+        _add_rows(state, "range", run.source, tile, result)
+        row_sum[g0:g1] += result["row_sum"]
+        squares[tile.field, c0:c1] += result["squares"]
+        if corange:
+            corange[tile.field][c0:c1] += result["corange"]
+
+    run.run(sketch_task, ((int(range_width), int(corange_width)),), jobs, fold, state, slot="range")
+    if "range" not in state.arrays:
+        state.arrays["range"] = np.zeros((n, range_width), dtype=dtype)
+
+
+def product_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: StreamState,
+                 preparing_handle: Any, operand: np.ndarray, kind: str, *, name: str) -> None:
+    """``kind='range'``: ``state.arrays[name] = A @ operand`` (n x k); ``'adjoint'``: ``A^H @ operand``
+    (m x k) plus ``<name>_norm_squares`` (exact squared column norms of A)."""
+    n, m = matrix.shape
+    width = operand.shape[1]
+    dtype = np.result_type(matrix.dtype, operand.dtype)
+    shared_operand = run.runner.share(operand)
+    fields = matrix.fields
+    if kind == "range":
+        def fold(tile: TileRef, result: dict[str, Any]) -> None:
+            _add_rows(state, name, run.source, tile, result)  # only when not summed in slots
+    else:
+        out = _zeros(state, name, (m, width), dtype)
+        norms = _zeros(state, f"{name}_norm_squares", (m,), np.float64)
+
+        def fold(tile: TileRef, result: dict[str, Any]) -> None:
+            c0, c1 = tile.columns
+            out[c0:c1] += result["product"]
+            norms[c0:c1] += result["squares"]
+
+    run.run(product_task, (preparing_handle, shared_operand, kind), jobs, fold, state,
+            slot=name if kind == "range" else None)
+    if kind == "range" and name not in state.arrays:
+        state.arrays[name] = np.zeros((n, width), dtype=dtype)
+
+
+def preparing_of(preparation: Any) -> Preparing:
+    return Preparing(np.asarray(preparation.row_scale, dtype=np.float64),
+                     None if preparation.mean is None else np.asarray(preparation.mean))

@@ -1,0 +1,136 @@
+"""Per-process accumulation slots: range products summed in place where the tile was read.
+
+A range product ``Y = X M`` (n x k) gets one term per time block; returning every term
+to the driver would move ``n k`` values per tile and fold them serially there, which
+costs more than the product itself for time-major tiles. Instead tiles add their terms
+into one of ``S`` slots with one BLAS ``gemm`` (``beta = 1``, no temporary), and the
+driver collects the slots at the end of a pass (and before a checkpoint, with no task
+running) and sums them in slot order. Tile ``i`` of a pass goes to slot ``i mod S`` and
+waits for its predecessor in that slot, so every sum is formed in the same order on
+every run (bitwise reproducible for a plan and a worker count, also across a resume
+whose checkpoints fall on the same tiles). A slot records the tiles it holds, so the
+driver can check that every tile was counted exactly once (a worker that died loses
+its slots; their tiles are read again).
+
+Slots live in the process (threads share the driver's; each worker process has its
+own) and are never pickled. :func:`collect` empties them.
+"""
+
+from __future__ import annotations
+
+import os
+import threading
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+__all__ = ["add_range_product", "collect", "discard"]
+
+_lock = threading.Lock()
+_pid = os.getpid()
+
+
+@dataclass
+class _Slot:
+    value: np.ndarray
+    tiles: set[int] = field(default_factory=set)
+    last: int = -1
+    aborted: bool = False
+    ready: threading.Condition = field(default_factory=threading.Condition)
+
+
+_slots: dict[tuple[str, str], dict[int, _Slot]] = {}
+_aborted: set[str] = set()
+
+
+def _check_pid() -> None:
+    global _pid, _slots, _aborted
+    if os.getpid() != _pid:
+        _pid = os.getpid()
+        _slots = {}
+        _aborted = set()
+
+
+def _gemm_into(out_rows: np.ndarray, raw: np.ndarray, right: np.ndarray) -> None:
+    """``out_rows += raw^T @ right`` in place (out_rows: C-contiguous rows x k)."""
+    from scipy.linalg import blas
+
+    dtype = np.result_type(out_rows, raw, right)
+    gemm = blas.zgemm if np.issubdtype(dtype, np.complexfloating) else blas.dgemm
+    right = np.asarray(right, dtype=dtype)
+    raw = np.asarray(raw, dtype=dtype)
+    # op(a) @ op(b) with c = out_rows^T (k x rows, F-contiguous): a = right^T, b = raw
+    if raw.flags.c_contiguous:
+        b, trans_b = raw.T, 1
+    else:
+        b, trans_b = np.asfortranarray(raw), 0
+    result = gemm(1.0, right.T, b, beta=1.0, c=out_rows.T, trans_a=0, trans_b=trans_b, overwrite_c=1)
+    if not np.shares_memory(result, out_rows):  # pragma: no cover - f2py copied: fall back
+        out_rows += result.T
+
+
+#: a tile waits at most this long for its predecessor in a slot before giving up
+WAIT_SECONDS = 3600.0
+
+
+def add_range_product(key: str, name: str, shape: tuple[int, int], tile_id: int, rows: tuple[int, int],
+                      raw: np.ndarray, right: np.ndarray, slot_index: int = 0, after: int | None = None) -> None:
+    """Add ``raw^T @ right`` (raw = the tile, snapshot-major) to rows ``rows`` of slot ``slot_index``.
+
+    With ``after`` (the previous tile of this slot, -1 for the first) the addition waits
+    until that tile has been added, which fixes the order of the sum.
+    """
+    dtype = np.result_type(raw, right)
+    with _lock:
+        _check_pid()
+        if key in _aborted:
+            raise RuntimeError(f"compress job {key} was stopped")
+        group = _slots.setdefault((key, name), {})
+        slot = group.get(slot_index)
+        if slot is None:
+            slot = group[slot_index] = _Slot(np.zeros(shape, dtype=dtype))
+    with slot.ready:
+        if after is not None:
+            arrived = slot.ready.wait_for(lambda: slot.last == after or slot.aborted, timeout=WAIT_SECONDS)
+            if slot.aborted:
+                raise RuntimeError(f"compress job {key} was stopped")
+            if not arrived:
+                raise RuntimeError(f"tile {tile_id} waited {WAIT_SECONDS:g} s for tile {after} in slot {slot_index}")
+        if tile_id in slot.tiles:
+            raise RuntimeError(f"tile {tile_id} added twice to one accumulation slot")
+        _gemm_into(slot.value[rows[0]:rows[1]], raw, right)
+        slot.tiles.add(tile_id)
+        slot.last = tile_id
+        slot.ready.notify_all()
+
+
+def collect(key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
+    """Empty this process's slots for ``(key, name)``: ``{slot index: (value, tile ids)}``."""
+    with _lock:
+        _check_pid()
+        group = _slots.pop((key, name), {})
+    out = {}
+    for index, slot in group.items():
+        with slot.ready:
+            out[int(index)] = (slot.value, sorted(slot.tiles))
+    return out
+
+
+def discard(key: str, *, abort: bool = False) -> None:
+    """Drop every slot of a job; with ``abort`` also fail its waiting and later tiles (after an error)."""
+    with _lock:
+        _check_pid()
+        if abort:
+            _aborted.add(key)
+        dropped = [_slots.pop(name) for name in [k for k in _slots if k[0] == key]]
+    for group in dropped:
+        for slot in group.values():
+            with slot.ready:
+                slot.aborted = abort or slot.aborted
+                slot.ready.notify_all()
+
+
+def collect_remote(key: str, name: str) -> dict[int, tuple[Any, list[int]]]:
+    """:func:`collect`, as run on every worker by ``Client.run``."""
+    return collect(key, name)

@@ -1,0 +1,181 @@
+"""Tile tasks: what a worker does with one tile. Plain functions of picklable values.
+
+A task receives the shared :class:`TileSource` (reader descriptor, field rows, selected
+snapshots, seed), possibly other shared arrays, and one :class:`TileRef` (which field,
+which kept rows, which columns). It opens the archive through the per-process handle
+cache, reads the tile snapshot-major, and returns small products for the driver to fold.
+No task ever carries an open file.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from snaplift.archive._base import Reader
+from snaplift.archive.matrix import FieldRows, check_finite, read_snapshot_block
+from snaplift.errors import ArchiveError
+from snaplift.linalg._kernels import adjoint_product, column_squares, corange_product, qr_factor, range_product
+from snaplift.linalg._slots import add_range_product
+from snaplift.linalg._testmatrix import cached_row_map, gaussian_map, set_cache_limit
+
+__all__ = ["TileSource", "TileRef", "Preparing", "sketch_task", "product_task", "tsqr_task", "tsqr_leaf_task"]
+
+
+@dataclass(frozen=True)
+class TileSource:
+    """What every tile task of one compress shares (scattered once to each worker)."""
+
+    reader: Reader
+    fields: tuple[FieldRows, ...]
+    snapshot_index: np.ndarray
+    complex_valued: bool
+    seed: int
+    cache_bytes: int = 1 << 30
+
+    @property
+    def n_rows(self) -> int:
+        return int(self.fields[-1].stop)
+
+
+@dataclass(frozen=True)
+class TileRef:
+    """One tile: kept rows ``rows`` of field ``field`` (an index) x selected columns ``columns``."""
+
+    field: int
+    rows: tuple[int, int]
+    columns: tuple[int, int]
+    id: int = -1
+
+    def global_rows(self, source: TileSource) -> tuple[int, int]:
+        offset = source.fields[self.field].offset
+        return offset + self.rows[0], offset + self.rows[1]
+
+
+@dataclass(frozen=True)
+class Preparing:
+    """Per-row centring and scaling applied inside the tile: ``a = (x - mean) * row_scale``."""
+
+    row_scale: np.ndarray
+    mean: np.ndarray | None
+
+
+def _read(source: TileSource, tile: TileRef, *, check: bool) -> tuple[np.ndarray, np.ndarray | None]:
+    field = source.fields[tile.field]
+    snapshots = source.snapshot_index[tile.columns[0]:tile.columns[1]]
+    raw = read_snapshot_block(source.reader, field, snapshots, tile.rows)
+    if raw.shape[0] == 0 or raw.shape[1] == 0:
+        return raw, np.zeros(raw.shape[0])
+    squares = column_squares(raw) if check else None
+    if check:
+        check_finite(raw, source.reader, field, snapshots, tile.rows, squares)
+    return raw, squares
+
+
+def _prepare(raw: np.ndarray, preparing: Preparing | None, g0: int, g1: int) -> np.ndarray:
+    if preparing is None:
+        return raw
+    if preparing.mean is not None:
+        raw -= preparing.mean[g0:g1][np.newaxis, :]
+    scale = preparing.row_scale[g0:g1]
+    if scale.size and not (scale[0] == 1.0 and np.all(scale == 1.0)):  # skip a sweep for scale 'none'
+        raw *= scale[np.newaxis, :]
+    return raw
+
+
+def _range(out: dict[str, Any], slot: Any, source: TileSource, tile: TileRef, a: np.ndarray,
+           right: np.ndarray) -> None:
+    """``slot`` is None (return the product) or ``(key, slot index, previous tile of the slot)``."""
+    if slot is None:
+        out["range"] = range_product(a, right)
+    else:  # summed in place, in a fixed order, in a slot (snaplift.linalg._slots)
+        key, index, after = slot
+        add_range_product(key, "range", (source.n_rows, right.shape[1]), tile.id, tile.global_rows(source), a,
+                          right, index, after)
+        out["range"] = None
+
+
+def sketch_task(source: TileSource, widths: tuple[int, int], slot: Any, tile: TileRef) -> dict[str, Any]:
+    """First read of a tile: range sketch ``X Omega``, co-range sketch ``Psi X`` (if any), statistics.
+
+    Returns ``range`` (rows x k; None when summed into the worker's ``slot``), ``corange``
+    (snapshots x l, this tile's columns of ``(Psi X)^T``, None when ``l == 0``),
+    ``row_sum`` (rows) and ``squares`` (snapshots). The test matrices are keyed by global
+    snapshot and row index (Tropp et al. 2017).
+    """
+    set_cache_limit(source.cache_bytes)
+    range_width, corange_width = widths
+    raw, squares = _read(source, tile, check=True)
+    c0, c1 = tile.columns
+    omega = gaussian_map(source.snapshot_index[c0:c1], range_width, seed=source.seed,
+                         complex_valued=source.complex_valued)
+    out: dict[str, Any] = {"corange": None, "row_sum": raw.sum(axis=0), "squares": squares}
+    _range(out, slot, source, tile, raw, omega)
+    if corange_width:
+        g0, g1 = tile.global_rows(source)
+        psi_t = cached_row_map(g0, g1, corange_width, seed=source.seed, complex_valued=source.complex_valued)
+        out["corange"] = corange_product(raw, psi_t)
+    return out
+
+
+def product_task(source: TileSource, preparing: Preparing, operand: np.ndarray, kind: str, slot: Any,
+                 tile: TileRef) -> dict[str, Any]:
+    """A later pass over a prepared tile ``A_t``.
+
+    ``kind == "range"``: ``A_t @ operand[columns]`` (rows x k), for ``Y = A Z``;
+    ``kind == "adjoint"``: ``A_t^H @ operand[rows]`` (snapshots x k), for ``A^H Q``, with
+    the exact per-snapshot ``squares`` of ``A_t`` (column norms for projection errors).
+    """
+    raw, _ = _read(source, tile, check=False)
+    g0, g1 = tile.global_rows(source)
+    a = _prepare(raw, preparing, g0, g1)
+    if kind == "range":
+        c0, c1 = tile.columns
+        out: dict[str, Any] = {}
+        _range(out, slot, source, tile, a, operand[c0:c1])
+        return {"product": out["range"]}
+    if kind == "adjoint":
+        return {"product": adjoint_product(a, operand[g0:g1]), "squares": column_squares(a)}
+    raise ValueError(f"unknown product kind {kind!r}")
+
+
+def tsqr_task(source: TileSource, center: bool, slot: None, tile: TileRef,
+              leaf: tuple[np.ndarray, np.ndarray] | None = None) -> dict[str, Any]:
+    """TSQR leaf: QR of the tile ``X_i`` (all snapshots of a row block), centred on its own rows.
+
+    With every snapshot in the tile, the row means are the global ones, so centring is
+    exact here. Without ``leaf`` returns ``r`` (the leaf's R factor) and the statistics;
+    with ``leaf = (r_first_pass, factor)`` recomputes the same factorisation and returns
+    ``basis = Q_i @ factor`` (Demmel et al. 2012: the implicit Q of the tree, applied to
+    the small singular vectors), refusing if ``R`` came out different (archive changed).
+    """
+    raw, squares = _read(source, tile, check=leaf is None)
+    out: dict[str, Any] = {}
+    if leaf is None:
+        out["row_sum"] = raw.sum(axis=0)
+        out["squares"] = squares
+    if center:
+        raw -= raw.mean(axis=0)[np.newaxis, :]
+    q, r = qr_factor(raw.T)
+    if leaf is None:
+        out["r"] = r
+        return out
+    first, factor = leaf
+    scale = max(float(np.abs(first).max(initial=0.0)), 1e-300)
+    if r.shape != first.shape or float(np.abs(r - first).max(initial=0.0)) > 1e-8 * scale:
+        field = source.fields[tile.field]
+        raise ArchiveError(
+            f"{source.reader.path}: field '{field.name}' rows {tile.rows[0]}..{tile.rows[1] - 1} read "
+            "differently in the second TSQR pass than in the first; the archive changed during compress"
+        )
+    out["basis"] = q @ factor
+    return out
+
+
+def tsqr_leaf_task(source: TileSource, center: bool, slot: None, item: tuple[TileRef, np.ndarray, np.ndarray]
+                   ) -> dict[str, Any]:
+    """Second TSQR pass for one leaf: ``item = (tile, r_first_pass, factor)``."""
+    tile, r, factor = item
+    return tsqr_task(source, center, None, tile, (r, factor))

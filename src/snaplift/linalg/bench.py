@@ -1,0 +1,380 @@
+"""The compression benchmark behind ``snaplift bench``: how fast is compress, next to reading?
+
+One run on a synthetic time-major archive (invented data: ``X = U diag(sigma) V^T`` with
+random orthonormal ``U``, ``V`` and ``sigma_j = 0.95^(j-1)`` for ``j <= 120``, so every
+singular value is known; HDF5, float64, one snapshot per chunk, written block by block
+in bounded memory) measures, in order:
+
+- the raw chunk-by-chunk read of the archive;
+- **the floor**: a hand-written numpy single pass that reads each chunk once and forms
+  the two thin products ``X Omega`` and ``Psi X`` of width ``rank + 10`` (test matrices
+  generated before the clock starts; the best of single- and multi-threaded BLAS);
+- each compress method through :func:`snaplift.linalg.compress.compress` (matrix
+  description, every pass, finishing), as a ratio to the floor, with passes, bytes read
+  per archive byte, accuracy of the leading singular values, and peak resident memory of
+  the whole process tree (psutil, sampled in a thread);
+- ``dask.array.linalg.svd_compressed`` at the same rank with 0 and 1 power iterations;
+- the sketch at ``m/2`` and ``m`` snapshots (is peak memory flat in the archive length?);
+- a zarr v3 copy (no compressor, one snapshot per chunk, default async concurrency):
+  read time against HDF5, and the sketch under threads and worker processes for each
+  reader, which decides the default ``cluster``.
+
+Timings are wall-clock on whatever else the machine is doing; they are reported, never
+asserted (pass/fail tests never depend on wall time).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import shutil
+import tempfile
+import threading
+import time
+from collections.abc import Callable, Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+__all__ = ["BenchSettings", "run_benchmark", "write_archive", "render_benchmark", "ProcessTreeMemory"]
+
+GRID = (512, 512)
+MODES = 120
+DECAY = 0.95
+
+
+@dataclass(frozen=True)
+class BenchSettings:
+    size_bytes: int = 4 * 2**30
+    rank: int = 40
+    memory_bytes: int = 2 * 2**30
+    workers: int = 2
+    folder: str | None = None
+    methods: tuple[str, ...] = ("sketch", "randomized")
+    zarr: bool = True
+    clusters: bool = True
+    dask: bool = True
+    keep: bool = False
+
+
+def spectrum() -> np.ndarray:
+    return DECAY ** np.arange(MODES, dtype=np.float64)
+
+
+class ProcessTreeMemory:
+    """Peak RSS of this process and all its children, sampled every ``interval`` seconds."""
+
+    def __init__(self, interval: float = 0.01) -> None:
+        import psutil
+
+        self._process = psutil.Process()
+        self.interval = interval
+        self.peak = 0
+        self._stop = threading.Event()
+        self._thread: threading.Thread | None = None
+
+    def current(self) -> int:
+        total = 0
+        for proc in [self._process, *self._process.children(recursive=True)]:
+            with contextlib.suppress(Exception):
+                total += proc.memory_info().rss
+        return total
+
+    def __enter__(self) -> ProcessTreeMemory:
+        self.baseline = self.current()
+        self.peak = self.baseline
+        self._thread = threading.Thread(target=self._sample, daemon=True)
+        self._thread.start()
+        return self
+
+    def _sample(self) -> None:
+        while not self._stop.wait(self.interval):
+            self.peak = max(self.peak, self.current())
+
+    def __exit__(self, *exc: Any) -> None:
+        self._stop.set()
+        assert self._thread is not None
+        self._thread.join()
+        self.peak = max(self.peak, self.current())
+
+
+def write_archive(path: Path, n_snapshots: int, *, seed: int = 0, block: int = 64) -> np.ndarray:
+    """Write the synthetic archive; returns its singular values (exact by construction)."""
+    import h5py
+
+    rng = np.random.default_rng(seed)
+    n = GRID[0] * GRID[1]
+    modes = min(MODES, n_snapshots)
+    u, _ = np.linalg.qr(rng.standard_normal((n, modes)))
+    v, _ = np.linalg.qr(rng.standard_normal((n_snapshots, modes)))
+    sigma = spectrum()[:modes]
+    with h5py.File(path, "w") as h5:
+        h5["t"] = 0.01 * np.arange(n_snapshots)
+        data = h5.create_dataset("u", shape=(n_snapshots, *GRID), dtype="f8", chunks=(1, *GRID))
+        for j0 in range(0, n_snapshots, block):
+            j1 = min(j0 + block, n_snapshots)
+            data[j0:j1] = ((v[j0:j1] * sigma) @ u.T).reshape(j1 - j0, *GRID)
+    return sigma
+
+
+def copy_to_zarr(source: Path, target: Path, *, block: int = 64) -> None:
+    """The same data as zarr v3: no compressor, one snapshot per chunk (see module docstring)."""
+    import h5py
+    import zarr
+
+    with h5py.File(source, "r") as h5:
+        data = h5["u"]
+        group = zarr.open_group(str(target), mode="w")
+        group.create_array("t", data=np.asarray(h5["t"]))
+        out = group.create_array("u", shape=data.shape, dtype="f8", chunks=(1, *data.shape[1:]), compressors=None)
+        for j0 in range(0, data.shape[0], block):
+            out[j0:j0 + block] = data[j0:j0 + block]
+
+
+def _timed(function: Callable[[], Any]) -> tuple[float, Any, ProcessTreeMemory]:
+    with ProcessTreeMemory() as memory:
+        start = time.perf_counter()
+        value = function()
+        elapsed = time.perf_counter() - start
+    return elapsed, value, memory
+
+
+def raw_read(path: Path, fmt: str, *, block: int = 1) -> float:
+    """Read every stored chunk once (blocks of ``block`` snapshots), nothing else."""
+    if fmt == "hdf5":
+        import h5py
+
+        with h5py.File(path, "r") as h5:
+            data = h5["u"]
+            buffer = np.empty((block, *data.shape[1:]))
+            start = time.perf_counter()
+            for j0 in range(0, data.shape[0], block):
+                j1 = min(j0 + block, data.shape[0])
+                data.read_direct(buffer[: j1 - j0], np.s_[j0:j1])
+            return time.perf_counter() - start
+    import zarr
+
+    data = zarr.open_group(str(path), mode="r")["u"]
+    start = time.perf_counter()
+    for j0 in range(0, data.shape[0], block):
+        data[j0:j0 + block]
+    return time.perf_counter() - start
+
+
+def floor_pass(path: Path, width: int, block: int, *, seed: int = 1) -> float:
+    """The floor: one read, ``Y = X Omega`` and ``W = Psi X`` of ``width`` columns (best BLAS setting)."""
+    import h5py
+
+    from snaplift.linalg._blas import blas_threads
+
+    with h5py.File(path, "r") as h5:
+        data = h5["u"]
+        m, n = data.shape[0], int(np.prod(data.shape[1:]))
+        rng = np.random.default_rng(seed)
+        omega = rng.standard_normal((m, width))
+        psi_t = rng.standard_normal((n, width))
+        buffer = np.empty((block, *data.shape[1:]))
+        times = []
+        for threads in (1, None):
+            with blas_threads(threads) if threads else contextlib.nullcontext():
+                start = time.perf_counter()
+                y = np.zeros((n, width))
+                w = np.zeros((m, width))
+                for j0 in range(0, m, block):
+                    j1 = min(j0 + block, m)
+                    view = buffer[: j1 - j0]
+                    data.read_direct(view, np.s_[j0:j1])
+                    flat = view.reshape(j1 - j0, n)
+                    y += flat.T @ omega[j0:j1]
+                    w[j0:j1] = flat @ psi_t
+                times.append(time.perf_counter() - start)
+    return min(times)
+
+
+def _accuracy(found: np.ndarray, sigma: np.ndarray, count: int) -> float:
+    count = min(count, found.size)
+    return float(np.max(np.abs(found[:count] - sigma[:count]) / sigma[:count]))
+
+
+@contextlib.contextmanager
+def _runner(kind: str, workers: int) -> Iterator[Any]:
+    from snaplift.cluster import open_scheduler
+    from snaplift.linalg.streaming import runner_for
+    from snaplift.workflow.schema import ClusterSection
+
+    with open_scheduler(ClusterSection(kind=kind, workers=workers)) as scheduler, runner_for(scheduler) as runner:
+        yield runner
+
+
+def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *, snapshots: int | None = None,
+               sketch_widths: tuple[int, int] | None = None, power_iterations: int = 1) -> dict[str, Any]:
+    """One compress run through the library, as the compress stage does it."""
+    from snaplift.archive import open_archive, plan_tiles
+    from snaplift.archive.matrix import build_snapshot_matrix
+    from snaplift.linalg.compress import CompressOptions, compress
+
+    reader = open_archive(str(path))
+    info = reader.describe()
+    m = info.fields["u"].n_snapshots if snapshots is None else snapshots
+
+    def work() -> Any:
+        plan = plan_tiles(info, ["u"], memory_bytes=settings.memory_bytes, workers=runner.workers, method=method,
+                          rank=settings.rank, power_iterations=power_iterations, sketch_widths=sketch_widths,
+                          shared_memory=runner.kind == "threads")
+        matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(m), snapshot_block=1,
+                                       snapshot_blocks=plan.snapshot_blocks)
+        options = CompressOptions(method=method, rank=settings.rank, power_iterations=power_iterations,
+                                  sketch_widths=sketch_widths, scale="none")
+        return plan, compress(matrix, plan, options, runner=runner, in_flight=plan.in_flight)
+
+    elapsed, (plan, result), memory = _timed(work)
+    archive_bytes = m * info.fields["u"].n_points * 8
+    return {"seconds": elapsed, "passes": result.passes, "bytes_ratio": result.bytes_read / archive_bytes,
+            "singular_value": result.lowrank.singular_value, "peak_rss": memory.peak, "baseline_rss": memory.baseline,
+            "plan_peak": plan.peak_bytes_estimate, "block": plan.block, "tiles": plan.n_tiles,
+            "widths": (result.info["range_width"], result.info["corange_width"]), "kind": result.projection_kind}
+
+
+def run_svd_compressed(path: Path, rank: int, power_iterations: int, block: int) -> dict[str, Any]:
+    import dask
+    import dask.array as da
+    import h5py
+
+    with h5py.File(path, "r") as h5:
+        data = h5["u"]
+        flat_shape = (data.shape[0], int(np.prod(data.shape[1:])))
+        x = da.from_array(data, chunks=(block, *data.shape[1:]), lock=True).reshape(flat_shape)
+        with dask.config.set(scheduler="threads"):
+            elapsed, (u, s, v), memory = _timed(lambda: da.linalg.svd_compressed(
+                x, k=rank, n_power_iter=power_iterations, seed=0, compute=True))
+            s = np.asarray(s.compute() if hasattr(s, "compute") else s)
+    return {"seconds": elapsed, "singular_value": s, "peak_rss": memory.peak, "passes": 2 + 2 * power_iterations}
+
+
+def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
+    """Run the whole benchmark once; returns a plain dict of figures (see :func:`render_benchmark`).
+
+    Example
+    -------
+    >>> figures = run_benchmark(BenchSettings(size_bytes=2**28, zarr=False, clusters=False))  # doctest: +SKIP
+    >>> figures["methods"]["sketch"]["ratio"]                                                # doctest: +SKIP
+    1.4
+    """
+    say = progress or (lambda message: None)
+    n = GRID[0] * GRID[1]
+    m = max(8, int(settings.size_bytes // (8 * n)))
+    folder = Path(settings.folder) if settings.folder else Path(tempfile.mkdtemp(prefix="snaplift-bench-"))
+    folder.mkdir(parents=True, exist_ok=True)
+    h5_path = folder / "bench.h5"
+    out: dict[str, Any] = {"snapshots": m, "points": n, "archive_bytes": m * n * 8, "rank": settings.rank,
+                           "memory_budget": settings.memory_bytes, "workers": settings.workers, "methods": {}}
+    try:
+        say(f"writing {m * n * 8 / 2**30:.2f} GiB time-major HDF5 archive ({m} snapshots of {n} points)")
+        start = time.perf_counter()
+        sigma = write_archive(h5_path, m)
+        out["write_seconds"] = time.perf_counter() - start
+        raw_read(h5_path, "hdf5")  # warm the page cache (issue 3 measures warm)
+        out["raw_read_seconds"] = raw_read(h5_path, "hdf5")
+        width = settings.rank + 10
+        from snaplift.archive import open_archive, plan_tiles
+
+        block = plan_tiles(open_archive(str(h5_path)).describe(), ["u"], memory_bytes=settings.memory_bytes,
+                           workers=settings.workers, method="sketch", rank=settings.rank, shared_memory=True).block
+        say(f"floor: one pass forming two products of width {width} (blocks of {block} snapshots)")
+        out["floor_seconds"] = floor = floor_pass(h5_path, width, block)
+        out["floor_block"] = block
+        cases: list[tuple[str, str, dict[str, Any]]] = []
+        for method in settings.methods:
+            if method == "sketch":
+                cases.append(("sketch", "sketch", {}))
+                k = settings.rank + 10
+                cases.append(("sketch (k=r+10, l=2k+1)", "sketch", {"sketch_widths": (k, 2 * k + 1)}))
+            elif method == "randomized":
+                cases.append(("randomized q=1", "randomized", {"power_iterations": 1}))
+                cases.append(("randomized q=0", "randomized", {"power_iterations": 0}))
+            else:
+                cases.append((method, method, {}))
+        with _runner("threads", settings.workers) as runner:
+            for label, method, extra in cases:
+                say(f"compress: {label} (threads)")
+                figures = run_method(h5_path, method, settings, runner, **extra)
+                figures["ratio"] = figures["seconds"] / floor
+                figures["error_top10"] = _accuracy(figures["singular_value"], sigma, 10)
+                figures["error_top_rank"] = _accuracy(figures["singular_value"], sigma, settings.rank)
+                out["methods"][label] = figures
+            say("peak memory of the sketch at m/2 and m snapshots")
+            half = run_method(h5_path, "sketch", settings, runner, snapshots=m // 2)
+            full = run_method(h5_path, "sketch", settings, runner)
+            out["memory_half"], out["memory_full"] = half["peak_rss"], full["peak_rss"]
+        if settings.dask:
+            out["svd_compressed"] = {}
+            for q in (0, 1):
+                say(f"dask.array.linalg.svd_compressed k={settings.rank} n_power_iter={q}")
+                figures = run_svd_compressed(h5_path, settings.rank, q, block)
+                figures["ratio"] = figures["seconds"] / floor
+                figures["error_top10"] = _accuracy(figures["singular_value"], sigma, 10)
+                figures["error_top_rank"] = _accuracy(figures["singular_value"], sigma, settings.rank)
+                out["svd_compressed"][q] = figures
+        paths = {"hdf5": h5_path}
+        if settings.zarr:
+            zarr_path = folder / "bench.zarr"
+            say("zarr v3 copy (no compressor, one snapshot per chunk)")
+            copy_to_zarr(h5_path, zarr_path)
+            raw_read(zarr_path, "zarr")
+            out["zarr_raw_read_seconds"] = raw_read(zarr_path, "zarr")
+            out["zarr_block_read_seconds"] = raw_read(zarr_path, "zarr", block=block)
+            out["hdf5_block_read_seconds"] = raw_read(h5_path, "hdf5", block=block)
+            paths["zarr"] = zarr_path
+        if settings.clusters:
+            out["clusters"] = {}
+            for kind in ("threads", "local"):
+                with _runner(kind, settings.workers) as runner:
+                    for fmt, path in paths.items():
+                        say(f"sketch with {kind} on {fmt}")
+                        figures = run_method(path, "sketch", settings, runner)
+                        out["clusters"][f"{kind}/{fmt}"] = {"seconds": figures["seconds"],
+                                                            "ratio": figures["seconds"] / floor,
+                                                            "peak_rss": figures["peak_rss"]}
+    finally:
+        if not settings.keep and not settings.folder:
+            shutil.rmtree(folder, ignore_errors=True)
+    return out
+
+
+def render_benchmark(figures: dict[str, Any]) -> str:
+    """Plain text summary, ratios to the floor measured in the same run."""
+    gib = 2.0**30
+    floor = figures["floor_seconds"]
+    lines = [
+        f"archive: {figures['archive_bytes'] / gib:.2f} GiB time-major HDF5, {figures['snapshots']} snapshots x "
+        f"{figures['points']} points, float64, one snapshot per chunk; rank {figures['rank']}, "
+        f"budget {figures['memory_budget'] / gib:.2f} GiB, {figures['workers']} workers",
+        f"raw chunk-by-chunk read: {figures['raw_read_seconds']:.2f} s "
+        f"({figures['archive_bytes'] / figures['raw_read_seconds'] / gib:.2f} GiB/s)",
+        f"floor (one pass, two products of width rank+10, blocks of {figures['floor_block']}): {floor:.2f} s "
+        f"= {floor / figures['raw_read_seconds']:.1f}x the raw read",
+        "",
+        f"{'compress':28s} {'x floor':>8s} {'passes':>6s} {'read/arch':>9s} {'err top10':>10s} {'err top r':>10s} "
+        f"{'peak RSS':>9s} {'plan':>9s}",
+    ]
+    for label, f in figures["methods"].items():
+        lines.append(f"{label:28s} {f['ratio']:8.2f} {f['passes']:6d} {f['bytes_ratio']:9.3f} "
+                     f"{f['error_top10']:10.2e} {f['error_top_rank']:10.2e} {f['peak_rss'] / gib:8.2f}G "
+                     f"{f['plan_peak'] / gib:8.2f}G")
+    for q, f in (figures.get("svd_compressed") or {}).items():
+        lines.append(f"{'svd_compressed q=' + str(q):28s} {f['ratio']:8.2f} {f['passes']:6d} {'-':>9s} "
+                     f"{f['error_top10']:10.2e} {f['error_top_rank']:10.2e} {f['peak_rss'] / gib:8.2f}G {'-':>9s}")
+    if "memory_half" in figures:
+        change = figures["memory_full"] / figures["memory_half"] - 1
+        lines += ["", f"sketch peak RSS at m/2: {figures['memory_half'] / gib:.2f} GiB, at m: "
+                      f"{figures['memory_full'] / gib:.2f} GiB ({100 * change:+.1f} %)"]
+    if "zarr_raw_read_seconds" in figures:
+        lines += [f"zarr/HDF5 read: chunk by chunk {figures['zarr_raw_read_seconds'] / figures['raw_read_seconds']:.2f}x, "
+                  f"in tiles of {figures['floor_block']} snapshots "
+                  f"{figures['zarr_block_read_seconds'] / figures['hdf5_block_read_seconds']:.2f}x "
+                  "(zarr v3, no compressor, one snapshot per chunk, default async concurrency)"]
+    for key, f in (figures.get("clusters") or {}).items():
+        lines.append(f"sketch on {key:14s}: {f['seconds']:.2f} s ({f['ratio']:.2f}x floor), peak RSS "
+                     f"{f['peak_rss'] / gib:.2f} GiB")
+    return "\n".join(lines)

@@ -1,0 +1,254 @@
+"""Compress the prepared snapshot matrix: one front door for the three methods.
+
+``compress(matrix, plan, options, runner=...)`` runs the method's passes over the
+planned tiles as bounded streaming loops (:mod:`snaplift.linalg.streaming`) and returns
+a :class:`Compression`: the preparation (centring, scales, statistics of the first
+read), the low-rank factors, passes, bytes read, whether coefficients/projection errors
+are exact or estimates, and the sketch state for later appends.
+
+- ``sketch``: Tropp, Yurtsever, Udell, Cevher (2017/2019), one read (+1 with
+  ``check_pass``); :mod:`snaplift.linalg.sketch`.
+- ``randomized``: Halko, Martinsson, Tropp (2011), ``2 + 2q`` reads;
+  :func:`snaplift.linalg.randomized.randomized_compress`.
+- ``tsqr``: Demmel, Grigori, Hoemmen, Langou (2012), two reads, exact;
+  :func:`snaplift.linalg.tsqr.tsqr_compress`.
+
+With ``checkpoint_dir`` the loop state is saved atomically every ``checkpoint_every``
+(tiles or a duration) and at every pass end; calling :func:`compress` again with the
+same arguments resumes from it, skipping finished passes and tiles.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from snaplift.archive.matrix import SnapshotMatrix
+from snaplift.archive.plan import TilePlan
+from snaplift.errors import ArchiveError
+from snaplift.linalg._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
+from snaplift.linalg._kernels import normalize_signs
+from snaplift.linalg._tasks import TileSource
+from snaplift.linalg.randomized import LowRank, randomized_compress
+from snaplift.linalg.sketch import SketchState, default_sketch_widths, finish_sketch, merge_sketches
+from snaplift.linalg.streaming import Checkpointer, StreamState, ThreadRunner, TileRunner
+from snaplift.linalg.tsqr import tsqr_compress
+from snaplift.prepare import Preparation
+
+__all__ = ["CompressOptions", "Compression", "compress", "sketch_append", "default_in_flight"]
+
+
+@dataclass(frozen=True)
+class CompressOptions:
+    """The ``compress`` and ``prepare`` settings the methods need, as plain values."""
+
+    method: str = "randomized"
+    rank: int = 40
+    oversample: int = 10
+    power_iterations: int = 1
+    seed: int = 0
+    sketch_widths: tuple[int, int] | None = None
+    check_pass: bool = False
+    center: bool = False
+    scale: Any = "rms"
+
+    def widths(self, n: int, m: int) -> tuple[int, int]:
+        """Sketch widths ``(k, l)`` of the first read for this method."""
+        if self.method == "sketch":
+            if self.sketch_widths is not None:
+                k, l = (int(w) for w in self.sketch_widths)
+                return min(k, n, m), min(max(l, k), n)
+            return default_sketch_widths(self.rank, n, m)
+        if self.method == "randomized":
+            return min(self.rank + self.oversample, n, m), 0
+        return 0, 0
+
+
+@dataclass(frozen=True)
+class Compression:
+    preparation: Preparation
+    lowrank: LowRank
+    passes: int
+    #: bytes read from the archive by this call (a resumed call excludes what was checkpointed)
+    bytes_read: int
+    projection_kind: str
+    method: str
+    sketch_state: dict[str, np.ndarray] = field(default_factory=dict)
+    info: dict[str, Any] = field(default_factory=dict)
+
+
+def default_in_flight(workers: int) -> int:
+    """Tasks outstanding: one per worker plus one queued, so no worker waits for the driver."""
+    return int(workers) + 1
+
+
+def _job_key(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOptions, jobs: list[Any]) -> str:
+    from snaplift.archive import _handles
+
+    try:
+        signature = list(_handles.signature(matrix.reader.path))
+    except Exception:  # a series of files: the reader's own description is the signature
+        signature = [matrix.reader.describe().size_bytes]
+    payload = {
+        "archive": matrix.reader.path, "signature": signature, "options": repr(options),
+        "fields": [(f.name, f.n_rows) for f in matrix.fields],
+        "snapshots": hashlib.sha256(np.ascontiguousarray(matrix.snapshot_index).tobytes()).hexdigest(),
+        "tiles": [(j.tile.field, j.tile.rows, j.tile.columns) for j in jobs],
+    }
+    return hashlib.sha256(json.dumps(payload, sort_keys=True, default=str).encode()).hexdigest()[:24]
+
+
+def _columns(matrix: SnapshotMatrix, plan: TilePlan | None, method: str) -> list[tuple[int, int]]:
+    m = matrix.shape[1]
+    if method == "tsqr":
+        return [(0, m)]
+    return list(matrix.blocks)
+
+
+def _source(matrix: SnapshotMatrix, options: CompressOptions, corange_width: int, row_blocks: list) -> TileSource:
+    itemsize = np.dtype(matrix.dtype).itemsize
+    cache = itemsize * corange_width * matrix.shape[0] + (1 << 20)
+    return TileSource(matrix.reader, matrix.fields, np.asarray(matrix.snapshot_index, dtype=np.int64),
+                      bool(np.issubdtype(matrix.dtype, np.complexfloating)), int(options.seed), int(cache))
+
+
+def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOptions, *,
+             runner: TileRunner | None = None, in_flight: int | None = None,
+             checkpoint_dir: str | os.PathLike[str] | None = None, checkpoint_every: int | str | None = None,
+             progress: Any = None) -> Compression:
+    """Compress ``matrix`` with the method of ``options`` in bounded streaming passes.
+
+    Parameters
+    ----------
+    matrix
+        From :func:`snaplift.archive.matrix.build_snapshot_matrix` (its column blocks follow the plan).
+    plan
+        The tile plan (row blocks per field); None reads whole fields.
+    options
+        Method and settings.
+    runner
+        An entered :class:`~snaplift.linalg.streaming.ThreadRunner` or ``ClientRunner``
+        (default: one thread).
+    in_flight
+        Tasks outstanding at once (default :func:`default_in_flight`).
+    checkpoint_dir, checkpoint_every
+        Save the loop state there, every so many tiles or seconds (default 60 s); resume
+        from it when it matches this job.
+    progress
+        Object with ``add_work(n)`` / ``advance(n)`` (e.g. ``Scheduler.progress``).
+
+    Returns
+    -------
+    Compression
+
+    Example
+    -------
+    >>> result = compress(matrix, plan, CompressOptions(method="sketch", rank=20))  # doctest: +SKIP
+    >>> result.passes, result.projection_kind                                        # doctest: +SKIP
+    (1, 'estimate')
+    """
+    if runner is None:
+        with ThreadRunner(1) as own:
+            return compress(matrix, plan, options, runner=own, in_flight=in_flight, checkpoint_dir=checkpoint_dir,
+                            checkpoint_every=checkpoint_every, progress=progress)
+    n, m = matrix.shape
+    rank = int(options.rank)
+    if rank > min(n, m):
+        raise ArchiveError(f"compress.rank = {rank} exceeds what the data allow (min of {n} points and {m} snapshots)")
+    if options.method not in ("sketch", "randomized", "tsqr"):
+        raise ArchiveError(f"compress.method {options.method!r} is not one of sketch, randomized, tsqr")
+    row_blocks = kept_row_blocks(matrix, plan.point_blocks if plan is not None else None)
+    jobs = build_jobs(matrix, row_blocks, _columns(matrix, plan, options.method))
+    range_width, corange_width = options.widths(n, m)
+    source = _source(matrix, options, corange_width, row_blocks)
+    checkpoint = Checkpointer(checkpoint_dir, checkpoint_every) if checkpoint_dir is not None else None
+    key = _job_key(matrix, plan, options, jobs)
+    state = (checkpoint.load(key) if checkpoint is not None else None) or StreamState(key)
+    resumed = state.pass_number > 0 or bool(state.done)
+    bytes_before = int(state.bytes_read)
+    run = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers), checkpoint=checkpoint,
+               progress=progress)
+    sketch_arrays: dict[str, np.ndarray] = {}
+    if options.method == "sketch":
+        if state.pass_number == 0:
+            sketch_read(run, matrix, jobs, state, range_width, corange_width)
+            run.end_pass(state)
+        sketch = SketchState.from_stream(state.arrays, len(matrix.fields), matrix.snapshot_index,
+                                         options.seed, source.complex_valued)
+        global_blocks = row_blocks
+        preparation, lowrank = finish_sketch(sketch, matrix, rank, center=options.center, scale=options.scale,
+                                             row_blocks=global_blocks)
+        sketch_arrays = sketch.to_arrays()
+        if options.check_pass:
+            lowrank = _check_pass(run, matrix, jobs, state, preparation, lowrank)
+    elif options.method == "randomized":
+        preparation, lowrank = randomized_compress(
+            run, matrix, jobs, state, rank=rank, oversample=options.oversample,
+            power_iterations=options.power_iterations, seed=options.seed, center=options.center,
+            scale=options.scale)
+    else:
+        preparation, lowrank = tsqr_compress(run, matrix, jobs, state, rank=rank, center=options.center,
+                                             scale=options.scale)
+    passes = int(state.pass_number)
+    info = {"method": options.method, "range_width": range_width, "corange_width": corange_width,
+            "tiles": len(jobs), "in_flight": run.in_flight, "runner": getattr(runner, "kind", "?"),
+            "resumed": resumed, "checkpoints_saved": checkpoint.saves if checkpoint is not None else 0,
+            "bytes_read_all_runs": int(state.bytes_read), "bytes_read_before_resume": bytes_before}
+    if checkpoint is not None:
+        checkpoint.remove()
+    # bytes read by this call; a resumed run does not count what the killed one read
+    return Compression(preparation, lowrank, passes, int(state.bytes_read) - bytes_before,
+                       lowrank.projection_kind, options.method, sketch_arrays, info)
+
+
+def _check_pass(run: Pass, matrix: SnapshotMatrix, jobs: list[Any], state: StreamState,
+                preparation: Preparation, lowrank: LowRank) -> LowRank:
+    """One more read: exact ``C = U^H A`` and column norms; the SVD of C refines the factors."""
+    if state.pass_number == 1:
+        preparing = run.runner.share(preparing_of(preparation))
+        product_read(run, matrix, jobs, state, preparing, np.asarray(lowrank.basis), "adjoint", name="check")
+        run.end_pass(state)
+    coefficient = np.asarray(state.arrays["check"]).conj().T  # r x m, exact
+    u_c, s, vh = np.linalg.svd(coefficient, full_matrices=False)
+    u_c, vh = normalize_signs(u_c, vh)
+    return LowRank(basis=np.asarray(lowrank.basis) @ u_c, singular_value=s.astype(np.float64), vh=vh,
+                   column_norm=np.sqrt(np.asarray(state.arrays["check_norm_squares"], dtype=np.float64)),
+                   passes=2, projection_kind="exact")
+
+
+def sketch_append(old: SketchState | dict[str, np.ndarray], new_matrix: SnapshotMatrix, plan: TilePlan | None, *,
+                  runner: TileRunner | None = None, in_flight: int | None = None) -> SketchState:
+    """Update a stored sketch with snapshots appended to the archive, reading only those.
+
+    ``new_matrix`` is the snapshot matrix of the *new* snapshots only (same fields, mask,
+    weights; archive snapshot numbers after the stored ones). The merged state finished
+    by :func:`snaplift.linalg.sketch.finish_sketch` equals a from-scratch sketch of all
+    snapshots with the same seed to rounding, because both sketches are linear in the
+    data and the test matrices are keyed by global index (Tropp et al. 2019, Sec. 2.3).
+
+    Example
+    -------
+    >>> merged = sketch_append(stored_arrays, new_matrix, plan)            # doctest: +SKIP
+    >>> preparation, lowrank = finish_sketch(merged, full_matrix, 20, center=False, scale="rms")  # doctest: +SKIP
+    """
+    old_state = old if isinstance(old, SketchState) else SketchState.from_arrays(old)
+    if runner is None:
+        with ThreadRunner(1) as own:
+            return sketch_append(old_state, new_matrix, plan, runner=own, in_flight=in_flight)
+    k, l = old_state.widths
+    options = CompressOptions(method="sketch", rank=1, seed=old_state.seed, sketch_widths=(k, l))
+    row_blocks = kept_row_blocks(new_matrix, plan.point_blocks if plan is not None else None)
+    jobs = build_jobs(new_matrix, row_blocks, list(new_matrix.blocks))
+    source = _source(new_matrix, options, l, row_blocks)
+    state = StreamState("append")
+    run = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers))
+    sketch_read(run, new_matrix, jobs, state, k, l)
+    new = SketchState.from_stream(state.arrays, len(new_matrix.fields), new_matrix.snapshot_index,
+                                  old_state.seed, source.complex_valued)
+    return merge_sketches(old_state, new)

@@ -1,0 +1,445 @@
+"""The bounded streaming loop over tiles, its runners, and its checkpointable state.
+
+Compression reads the archive as a sequence of tiles. Each tile is a small task (reader
+descriptor + index ranges) submitted to the scheduler with at most ``in_flight`` tasks
+outstanding; small results are folded, *in tile order*, into per-row-block accumulators
+held by the driver, and full-height range products are summed in place in per-worker
+slots (:mod:`snaplift.linalg._slots`) that the driver collects at pass ends and before
+checkpoints. So memory is ``accumulators x (workers + 1) + in_flight x (tile + its
+result)`` whatever the archive length, and no lazy graph of full-height partial sums is
+ever built. Results depend on the seed and the data only; which worker summed which
+tile changes them at rounding level.
+
+The loop's state (:class:`StreamState`: accumulators, the ledger of tiles already folded,
+the pass number, bytes read) is a plain object that :meth:`StreamState.save` writes
+atomically (temporary file + ``os.replace``); a loop given a loaded state skips the
+tiles in its ledger, so a killed run resumes and reads at most one checkpoint interval
+again.
+
+Runners: :class:`ThreadRunner` (a thread pool in this process, BLAS single-threaded
+while it runs) and :class:`ClientRunner` (a ``distributed`` client: worker processes,
+large read-only inputs scattered once). :func:`runner_for` picks one for a scheduler.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import tempfile
+import time
+from collections import deque
+from collections.abc import Callable, Iterable, Iterator
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Protocol
+
+import numpy as np
+
+from snaplift.errors import ConfigError
+from snaplift.linalg._blas import blas_threads
+
+__all__ = ["TileRunner", "ThreadRunner", "ClientRunner", "runner_for", "StreamState", "Checkpointer",
+           "run_tiles", "parse_every", "save_checkpoint", "load_checkpoint"]
+
+
+class TileRunner(Protocol):
+    """What the loop needs of a scheduler."""
+
+    workers: int
+    kind: str
+
+    def share(self, value: Any) -> Any: ...
+
+    def submit(self, function: Callable[..., Any], *args: Any, where: int | None = None) -> Any: ...
+
+    def result(self, future: Any) -> Any: ...
+
+    def cancel(self, future: Any) -> None: ...
+
+    def collect(self, key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]: ...
+
+    def discard(self, key: str, *, abort: bool) -> None: ...
+
+    @property
+    def slots(self) -> int:
+        """Accumulation slots for range products (0: tasks return their products instead)."""
+        ...
+
+
+class ThreadRunner:
+    """Tiles in a pool of ``workers`` threads of this process; BLAS limited to one thread each."""
+
+    kind = "threads"
+
+    def __init__(self, workers: int) -> None:
+        self.workers = max(1, int(workers))
+        self._pool: ThreadPoolExecutor | None = None
+        self._blas: Any = None
+
+    def __enter__(self) -> ThreadRunner:
+        self._pool = ThreadPoolExecutor(self.workers, thread_name_prefix="snaplift-tile")
+        self._blas = blas_threads(1)
+        self._blas.__enter__()
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        assert self._pool is not None
+        self._pool.shutdown(wait=True, cancel_futures=True)
+        self._blas.__exit__(*exc)
+        self._pool = None
+
+    def share(self, value: Any) -> Any:
+        return value
+
+    @property
+    def slots(self) -> int:
+        return self.workers
+
+    def submit(self, function: Callable[..., Any], *args: Any, where: int | None = None) -> Any:
+        if self._pool is None:
+            raise RuntimeError("ThreadRunner used outside its 'with' block")
+        return self._pool.submit(function, *args)
+
+    def result(self, future: Any) -> Any:
+        return future.result()
+
+    def cancel(self, future: Any) -> None:
+        future.cancel()
+
+    def collect(self, key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
+        from snaplift.linalg._slots import collect
+
+        return collect(key, name)
+
+    def discard(self, key: str, *, abort: bool) -> None:
+        from snaplift.linalg._slots import discard
+
+        discard(key, abort=abort)
+
+
+class ClientRunner:
+    """Tiles as ``distributed`` futures; shared inputs scattered once to every worker."""
+
+    kind = "distributed"
+
+    def __init__(self, client: Any, *, retries: int = 0, use_slots: bool = True) -> None:
+        self.client = client
+        self.retries = int(retries)
+        self.addresses = sorted(client.scheduler_info().get("workers", {}))
+        self.workers = max(1, len(self.addresses))
+        # slot s lives in worker s; batch clusters whose workers retire return products instead
+        self.use_slots = bool(use_slots) and bool(self.addresses)
+        self._shared: list[Any] = []
+
+    @property
+    def slots(self) -> int:
+        return len(self.addresses) if self.use_slots else 0
+
+    def __enter__(self) -> ClientRunner:
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        for future in self._shared:
+            future.release()
+        self._shared = []
+
+    def share(self, value: Any) -> Any:
+        future = self.client.scatter(value, broadcast=True, hash=False)
+        self._shared.append(future)
+        return future
+
+    def submit(self, function: Callable[..., Any], *args: Any, where: int | None = None) -> Any:
+        if where is not None and self.use_slots:
+            return self.client.submit(function, *args, pure=False, retries=self.retries,
+                                      workers=[self.addresses[where % len(self.addresses)]],
+                                      allow_other_workers=False)
+        return self.client.submit(function, *args, pure=False, retries=self.retries)
+
+    def result(self, future: Any) -> Any:
+        if self.use_slots:
+            # a task pinned to a worker that died would wait forever: notice and stop
+            while True:
+                try:
+                    value = future.result(timeout=5)
+                    break
+                except TimeoutError:
+                    alive = set(self.client.scheduler_info().get("workers", {}))
+                    if not set(self.addresses) <= alive:
+                        raise RuntimeError(
+                            "a worker holding compress accumulators was lost; run again to resume from "
+                            "the last checkpoint"
+                        ) from None
+        else:
+            value = future.result()
+        future.release()
+        return value
+
+    def cancel(self, future: Any) -> None:
+        future.cancel()
+
+    def collect(self, key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
+        """The slots of every worker process (``Client.run``: outside the task queue)."""
+        from snaplift.linalg._slots import collect_remote
+
+        out: dict[int, tuple[np.ndarray, list[int]]] = {}
+        for part in self.client.run(collect_remote, key, name).values():
+            out.update(part)
+        return out
+
+    def discard(self, key: str, *, abort: bool) -> None:
+        from snaplift.linalg._slots import discard
+
+        try:
+            self.client.run(discard, key, abort=abort)
+        except Exception:  # a lost worker has no slots left to discard
+            pass
+
+
+def runner_for(scheduler: Any) -> ThreadRunner | ClientRunner:
+    """The runner matching a :class:`snaplift.cluster.Scheduler` (use it as a context manager)."""
+    client = getattr(scheduler, "client", None)
+    if client is not None:
+        from snaplift import cluster
+
+        # workers of batch jobs retire on a lifetime: keep no state in them
+        stable = getattr(scheduler, "kind", "local") in ("local", "allocation")
+        return ClientRunner(client, retries=getattr(cluster, "TASK_RETRIES", 0), use_slots=stable)
+    return ThreadRunner(getattr(scheduler, "workers", 1))
+
+
+@dataclass
+class StreamState:
+    """Everything a compress loop needs to resume: plain arrays and numbers.
+
+    ``key`` identifies the job (method, settings, plan, archive): a state saved for a
+    different key is not resumed. ``pass_number`` counts finished passes; ``done`` holds
+    the ids of the tiles of the current pass already folded into ``arrays``.
+    """
+
+    key: str
+    pass_number: int = 0
+    arrays: dict[str, np.ndarray] = field(default_factory=dict)
+    done: set[int] = field(default_factory=set)
+    bytes_read: int = 0
+    info: dict[str, Any] = field(default_factory=dict)
+
+    def finish_pass(self) -> None:
+        self.pass_number += 1
+        self.done = set()
+
+    def save(self, path: str | os.PathLike[str]) -> None:
+        """Write atomically: a reader sees the old file or the new one, never a torn one."""
+        save_checkpoint(self, path)
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str]) -> StreamState:
+        return load_checkpoint(path)
+
+
+def save_checkpoint(state: StreamState, path: str | os.PathLike[str]) -> None:
+    """Save ``state`` to ``path`` (``.npz``) through a temporary file and ``os.replace``.
+
+    Example
+    -------
+    >>> state = StreamState("job", arrays={"y": np.zeros(3)}, done={0, 2})
+    >>> save_checkpoint(state, "/tmp/snaplift-doctest.npz")
+    >>> sorted(load_checkpoint("/tmp/snaplift-doctest.npz").done)
+    [0, 2]
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    meta = {"key": state.key, "pass_number": int(state.pass_number), "bytes_read": int(state.bytes_read),
+            "info": state.info, "names": sorted(state.arrays)}
+    payload = {f"array_{i}": np.asarray(state.arrays[name]) for i, name in enumerate(meta["names"])}
+    payload["done"] = np.array(sorted(state.done), dtype=np.int64)
+    payload["meta"] = np.frombuffer(json.dumps(meta, default=str).encode(), dtype=np.uint8)
+    handle, temporary = tempfile.mkstemp(prefix=path.name + ".", suffix=".tmp", dir=path.parent)
+    try:
+        with os.fdopen(handle, "wb") as stream:
+            np.savez(stream, **payload)
+            stream.flush()
+            os.fsync(stream.fileno())
+        os.replace(temporary, path)
+    except BaseException:
+        with _suppress():
+            os.unlink(temporary)
+        raise
+
+
+class _suppress:
+    def __enter__(self) -> None:
+        return None
+
+    def __exit__(self, *exc: Any) -> bool:
+        return True
+
+
+def load_checkpoint(path: str | os.PathLike[str]) -> StreamState:
+    """Read a state written by :func:`save_checkpoint`."""
+    with np.load(path, allow_pickle=False) as data:
+        meta = json.loads(bytes(data["meta"]).decode())
+        arrays = {name: np.array(data[f"array_{i}"]) for i, name in enumerate(meta["names"])}
+        done = {int(i) for i in data["done"]}
+    return StreamState(meta["key"], int(meta["pass_number"]), arrays, done, int(meta["bytes_read"]),
+                       dict(meta.get("info") or {}))
+
+
+_DURATION = re.compile(r"^(?:(\d+(?:\.\d+)?)h)?(?:(\d+(?:\.\d+)?)m(?:in)?)?(?:(\d+(?:\.\d+)?)s)?$")
+
+
+def parse_every(value: int | float | str | None) -> tuple[int | None, float | None]:
+    """``compress.checkpoint_every``: a number of tiles (``200``, ``"200 tiles"``) or a duration.
+
+    Returns ``(tiles, seconds)`` with one of them set (both None for None).
+
+    Example
+    -------
+    >>> parse_every("90s"), parse_every(50), parse_every("1h30m")
+    ((None, 90.0), (50, None), (None, 5400.0))
+    """
+    if value is None:
+        return None, None
+    if isinstance(value, bool):
+        raise ConfigError(f"compress.checkpoint_every = {value!r}: expected a number of tiles or a duration like 60s")
+    if isinstance(value, int):
+        if value < 1:
+            raise ConfigError(f"compress.checkpoint_every = {value}: a number of tiles must be >= 1")
+        return value, None
+    text = str(value).strip().lower().replace(" ", "")
+    tiles = re.fullmatch(r"(\d+)(tiles?)?", text)
+    if tiles and int(tiles.group(1)) >= 1:
+        return int(tiles.group(1)), None
+    match = _DURATION.fullmatch(text)
+    if text and match and any(match.groups()):
+        hours, minutes, seconds = (float(g) if g else 0.0 for g in match.groups())
+        total = 3600 * hours + 60 * minutes + seconds
+        if total > 0:
+            return None, total
+    raise ConfigError(
+        f"compress.checkpoint_every = {value!r}: expected a number of tiles (e.g. 200) or a duration "
+        "such as 60s, 5m, 1h"
+    )
+
+
+class Checkpointer:
+    """Saves a :class:`StreamState` under ``directory`` every so many tiles or seconds.
+
+    Parameters
+    ----------
+    directory
+        Where ``compress.npz`` lives (created when first needed).
+    every
+        ``compress.checkpoint_every``; default 60 seconds.
+    """
+
+    def __init__(self, directory: str | os.PathLike[str], every: int | float | str | None = None,
+                 *, name: str = "compress") -> None:
+        self.path = Path(directory) / f"{name}.npz"
+        tiles, seconds = parse_every(every if every is not None else "60s")
+        self.every_tiles, self.every_seconds = tiles, seconds
+        self._count = 0
+        self._last = time.monotonic()
+        self.saves = 0
+
+    def load(self, key: str) -> StreamState | None:
+        """The saved state for ``key``, or None (no file, or a file for another job)."""
+        if not self.path.exists():
+            return None
+        try:
+            state = load_checkpoint(self.path)
+        except (OSError, ValueError, KeyError):
+            return None  # a damaged checkpoint only costs a fresh start
+        return state if state.key == key else None
+
+    def tick(self) -> bool:
+        """Count one folded tile; True when the interval is reached (the caller then saves)."""
+        self._count += 1
+        return (self.every_tiles is not None and self._count >= self.every_tiles) or (
+            self.every_seconds is not None and time.monotonic() - self._last >= self.every_seconds)
+
+    def save(self, state: StreamState) -> None:
+        state.save(self.path)
+        self.saves += 1
+        self._count = 0
+        self._last = time.monotonic()
+
+    def remove(self) -> None:
+        with _suppress():
+            self.path.unlink()
+
+
+@dataclass(frozen=True)
+class Job:
+    """One tile task of a pass: its id in the ledger, its descriptor, bytes it reads."""
+
+    id: int
+    tile: Any
+    nbytes: int
+
+
+def run_tiles(
+    runner: TileRunner,
+    task: Callable[..., Any],
+    shared: tuple[Any, ...],
+    jobs: Iterable[Job],
+    fold: Callable[[Any, Any], None],
+    state: StreamState,
+    *,
+    in_flight: int,
+    checkpoint: Checkpointer | None = None,
+    progress: Any = None,
+    flush: Callable[[], None] | None = None,
+    per_job: Callable[[Job], tuple[Any, int | None]] | None = None,
+) -> None:
+    """Run ``task(*shared, job.tile)`` for every job not in ``state.done``; fold results in order.
+
+    At most ``in_flight`` tasks are outstanding. ``fold(tile, result)`` updates
+    ``state.arrays``; after it the job's id enters the ledger and its bytes are counted.
+    When a checkpoint is due, the outstanding tasks are drained and folded, ``flush()``
+    brings what workers hold in their slots into ``state``, and only then is the state
+    saved, so a checkpoint is always consistent. ``per_job(job)`` gives an extra argument
+    (placed before the tile) and a placement hint for each task. On an error the
+    outstanding tasks are cancelled and the error propagates (a task's own error keeps
+    its type).
+    """
+    todo: Iterator[Job] = (job for job in jobs if job.id not in state.done)
+    queue: deque[tuple[Job, Any]] = deque()
+    limit = max(1, int(in_flight))
+
+    def fold_head() -> None:
+        job, future = queue.popleft()
+        result = runner.result(future)
+        fold(job.tile, result)
+        state.done.add(job.id)
+        state.bytes_read += job.nbytes
+        if progress is not None:
+            progress.advance(1)
+        return checkpoint is not None and checkpoint.tick()
+
+    def save() -> None:
+        while queue:
+            fold_head()
+        if flush is not None:
+            flush()
+        assert checkpoint is not None
+        checkpoint.save(state)
+
+    try:
+        for job in todo:
+            if per_job is None:
+                future = runner.submit(task, *shared, job.tile)
+            else:
+                extra, where = per_job(job)
+                future = runner.submit(task, *shared, extra, job.tile, where=where)
+            queue.append((job, future))
+            if len(queue) >= limit and fold_head():
+                save()
+        while queue:
+            if fold_head():
+                save()
+    except BaseException:
+        for _, future in queue:
+            runner.cancel(future)
+        raise

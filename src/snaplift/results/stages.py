@@ -1,0 +1,277 @@
+"""What each stage writes to the result store, and how a later stage reads it back.
+
+The runner writes each stage's outputs as soon as the stage finishes (into the staging
+store, :mod:`snaplift.results.staging`); later stages read them back from there with
+:func:`load_compressed`, whether they were computed a moment ago, kept from a killed run
+or hard-linked from the previous complete store. So ``fit`` and ``modes`` see the same
+numbers in all three cases.
+
+What compress leaves (DESIGN.md, "Result store"), and what ``fit``/``modes`` need of it:
+
+- ``basis/singular_value`` (rank,), ``basis/coefficient`` (rank, snapshot) and
+  ``basis/<field>`` (rank, *grid): the basis vectors in field units (scale, weights and
+  mask undone; NaN at masked points). Loading redoes ``sqrt(w) / scale`` on the kept
+  points, which gives back the prepared basis rows to rounding (~1e-16 relative).
+- ``prepare/scale`` (field,), ``prepare/mean_<field>``, ``prepare/weights_<field>``,
+  ``prepare/mask_<field>`` and the group attributes ``center`` / ``scale``.
+- ``diagnostics/column_norm`` (norm of every prepared snapshot, for the energy outside
+  the basis), ``diagnostics/snapshot_norm`` (weighted raw norm), ``projection_error``.
+- ``sketch/<name>``: the state a compress method keeps for appending snapshots later,
+  if it has any (``Compressed.sketch_state``, a mapping of arrays).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, replace
+from typing import Any
+
+import dask.array as da
+import numpy as np
+import zarr
+
+from snaplift.archive._base import Reader
+from snaplift.archive.matrix import FieldRows, SnapshotMatrix
+from snaplift.errors import ResultStoreError
+from snaplift.prepare import Preparation, to_physical
+from snaplift.results.store import StoreWriter, grid_dimensions
+
+__all__ = [
+    "LoadedCompressed",
+    "basis_bytes",
+    "load_compressed",
+    "modes_bytes",
+    "write_compressed",
+    "write_fit",
+    "write_modes",
+    "write_scan",
+]
+
+
+def basis_bytes(matrix: SnapshotMatrix, rank: int) -> int:
+    """Bytes ``basis/<field>`` takes on disk (uncompressed upper bound)."""
+    itemsize = np.dtype(matrix.dtype).itemsize
+    return int(sum(rank * int(np.prod(f.grid)) * itemsize for f in matrix.fields))
+
+
+def modes_bytes(matrix: SnapshotMatrix, n_modes: int) -> int:
+    return int(sum(n_modes * int(np.prod(f.grid)) * 16 for f in matrix.fields))
+
+
+def write_scan(writer: StoreWriter, time: np.ndarray, snapshot_index: np.ndarray) -> None:
+    writer.array("diagnostics", "time", np.asarray(time), ("snapshot",))
+    writer.array("diagnostics", "snapshot_index", np.asarray(snapshot_index), ("snapshot",))
+
+
+def _unscaled(preparation: Preparation) -> Preparation:
+    return replace(preparation, field_scale={f: 1.0 for f in preparation.fields})
+
+
+def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scale_setting: Any) -> None:
+    """Write everything ``fit`` and ``modes`` need of a compress result (module docstring)."""
+    matrix, preparation, lowrank = compressed.matrix, compressed.preparation, compressed.lowrank
+    dims = grid_dimensions({f.name: f.grid for f in matrix.fields})
+    writer.array("basis", "singular_value", np.asarray(lowrank.singular_value), ("rank",))
+    writer.array("basis", "coefficient", np.asarray(lowrank.coefficient), ("rank", "snapshot"))
+    writer.array("diagnostics", "column_norm", np.asarray(lowrank.column_norm), ("snapshot",),
+                 attrs={"meaning": "norm of each prepared (weighted, scaled, centred) snapshot"})
+    writer.array("diagnostics", "snapshot_norm", np.asarray(preparation.snapshot_norm), ("snapshot",),
+                 attrs={"meaning": "weighted norm of each raw snapshot"})
+    writer.array("diagnostics", "projection_error", lowrank.projection_error(), ("snapshot",),
+                 attrs={"kind": getattr(compressed, "projection_kind", "exact"),
+                        "norm": "relative, weighted and scaled (physical inner product)"})
+    writer.array("prepare", "scale", np.array([preparation.field_scale[f] for f in preparation.fields]),
+                 ("field",), attrs={"fields": list(preparation.fields), "meaning": "each field was divided by this"})
+    writer.group_attrs("prepare", {"center": preparation.centered,
+                                   "scale": scale_setting if isinstance(scale_setting, str) else dict(scale_setting)})
+    for rows in matrix.fields:
+        (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
+        physical = to_physical(np.asarray(basis_rows).T, rows, preparation, add_mean=False)
+        writer.array("basis", rows.name, rows.expand(physical), ("rank", *dims[rows.name]),
+                     chunks=(1, *rows.grid))
+        if rows.keep is not None:
+            mask = np.ones(int(np.prod(rows.grid)), dtype=bool)
+            mask[rows.keep] = False
+            writer.array("prepare", f"mask_{rows.name}", mask.reshape(rows.grid), dims[rows.name])
+        if rows.sqrt_weight is not None:
+            writer.array("prepare", f"weights_{rows.name}", rows.expand(rows.sqrt_weight**2), dims[rows.name])
+        if preparation.mean is not None:
+            mean = to_physical(preparation.mean[rows.offset:rows.stop], rows, _unscaled(preparation), add_mean=False)
+            writer.array("prepare", f"mean_{rows.name}", rows.expand(mean), dims[rows.name])
+    for name, value in (getattr(compressed, "sketch_state", None) or {}).items():
+        value = np.asarray(value)
+        writer.array("sketch", name, value, tuple(f"{name}_{i}" for i in range(value.ndim)))
+
+
+@dataclass(frozen=True)
+class _StoredLowRank:
+    """The compress result as read back: same attributes fit/modes use of ``LowRank``."""
+
+    basis: da.Array
+    singular_value: np.ndarray
+    coefficient: np.ndarray
+    column_norm: np.ndarray
+    passes: int
+
+    @property
+    def rank(self) -> int:
+        return int(self.singular_value.size)
+
+    @property
+    def vh(self) -> np.ndarray:
+        s = self.singular_value
+        return np.divide(self.coefficient, s[:, np.newaxis], out=np.zeros_like(self.coefficient),
+                         where=s[:, np.newaxis] > 0)
+
+    def projection_error(self) -> np.ndarray:
+        captured = np.sum(np.abs(self.coefficient) ** 2, axis=0)
+        missed = np.sqrt(np.clip(self.column_norm**2 - captured, 0.0, None))
+        return np.divide(missed, self.column_norm, out=np.zeros_like(missed), where=self.column_norm > 0)
+
+
+@dataclass(frozen=True)
+class LoadedCompressed:
+    """A compress result read back from a store (``matrix``, ``preparation``, ``lowrank``)."""
+
+    matrix: SnapshotMatrix
+    preparation: Preparation
+    lowrank: _StoredLowRank
+    passes: int
+    bytes_read: int
+    sketch_state: dict[str, np.ndarray]
+
+
+def _group(root: Any, name: str, where: str) -> Any:
+    if name not in root:
+        raise ResultStoreError(f"{where} has no group '{name}'; the compress stage did not finish there")
+    return root[name]
+
+
+def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int = 0,
+                    snapshot_block: int = 1, where: str = "result store") -> LoadedCompressed:
+    """Read a compress result back from ``root`` (a staging or complete store) without the archive.
+
+    Example
+    -------
+    >>> compressed = load_compressed(zarr.open_group("r.zarr"), reader, ["u"])  # doctest: +SKIP
+    >>> compressed.lowrank.coefficient.shape                                      # doctest: +SKIP
+    (40, 2000)
+    """
+    basis, prepare, diagnostics = (_group(root, g, where) for g in ("basis", "prepare", "diagnostics"))
+    scale = np.asarray(prepare["scale"][...], dtype=np.float64)
+    stored_fields = list(prepare["scale"].attrs.get("fields", fields))
+    if stored_fields != list(fields):
+        raise ResultStoreError(f"{where}: compress result is for fields {stored_fields}, the workflow asks for {fields}")
+    rows: list[FieldRows] = []
+    basis_blocks: list[np.ndarray] = []
+    means: list[np.ndarray] = []
+    offset = 0
+    centered = bool(prepare.attrs.get("center", False))
+    for name, field_scale in zip(fields, scale):
+        physical = np.asarray(basis[name][...])
+        grid = tuple(int(s) for s in physical.shape[1:])
+        flat = physical.reshape(physical.shape[0], -1)
+        keep = None
+        if f"mask_{name}" in prepare:
+            keep = np.flatnonzero(~np.asarray(prepare[f"mask_{name}"][...], dtype=bool).ravel())
+        kept = flat if keep is None else flat[:, keep]
+        sqrt_weight = None
+        if f"weights_{name}" in prepare:
+            w = np.asarray(prepare[f"weights_{name}"][...], dtype=np.float64).ravel()
+            sqrt_weight = np.sqrt(w if keep is None else w[keep])
+        factor = (sqrt_weight if sqrt_weight is not None else 1.0) / field_scale
+        # physical = prepared * scale / sqrt(w); at w == 0 the prepared rows are zero
+        prepared = np.where(np.isfinite(kept), kept * factor, 0.0)
+        basis_blocks.append(prepared.T)
+        n_rows = int(prepared.shape[1])
+        if centered:
+            mean = np.asarray(prepare[f"mean_{name}"][...]).ravel()
+            mean = mean if keep is None else mean[keep]
+            means.append(np.where(np.isfinite(mean), mean * (sqrt_weight if sqrt_weight is not None else 1.0), 0.0))
+        rows.append(FieldRows(name, grid, keep, sqrt_weight, offset, n_rows))
+        offset += n_rows
+    row_scale = np.concatenate([np.full(r.n_rows, 1.0 / s) for r, s in zip(rows, scale)])
+    preparation = Preparation(tuple(fields), {f: float(s) for f, s in zip(fields, scale)}, row_scale,
+                              np.concatenate(means) if centered else None,
+                              np.asarray(diagnostics["snapshot_norm"][...], dtype=np.float64))
+    snapshot_index = np.asarray(diagnostics["snapshot_index"][...], dtype=np.int64)
+    block = max(1, int(snapshot_block))
+    blocks = tuple((c0, min(c0 + block, snapshot_index.size)) for c0 in range(0, snapshot_index.size, block))
+    coefficient = np.asarray(basis["coefficient"][...])
+    dtype = np.dtype(np.complex128 if np.iscomplexobj(coefficient) or any(np.iscomplexobj(b) for b in basis_blocks)
+                     else np.float64)
+    matrix = SnapshotMatrix(reader, tuple(rows), snapshot_index, blocks, dtype)
+    stacked = np.concatenate(basis_blocks, axis=0)
+    lowrank = _StoredLowRank(
+        basis=da.from_array(stacked, chunks=(tuple(r.n_rows for r in rows), (stacked.shape[1],))),
+        singular_value=np.asarray(basis["singular_value"][...], dtype=np.float64),
+        coefficient=coefficient,
+        column_norm=np.asarray(diagnostics["column_norm"][...], dtype=np.float64),
+        passes=passes,
+    )
+    sketch = {name: np.asarray(a[...]) for name, a in root["sketch"].arrays()} if "sketch" in root else {}
+    return LoadedCompressed(matrix, preparation, lowrank, passes, 0, sketch)
+
+
+def write_fit(writer: StoreWriter, fit: Any, dt: float) -> tuple[np.ndarray, list[str]]:
+    """Spectrum (sorted by amplitude) and operator; returns the sort order and warnings."""
+    from snaplift.fitting import spectrum_table
+
+    warnings: list[str] = []
+    table = spectrum_table(fit, sort="amplitude")
+    order = np.asarray(table["index"])
+    n_modes = order.size
+    for name in ("eigenvalue", "rate", "frequency", "growth", "period", "amplitude", "phase", "near_nyquist"):
+        writer.array("spectrum", name, np.asarray(table[name]), ("mode",))
+    # partner: position (in this sorted table) of the complex-conjugate eigenvalue, -1 if none
+    position = np.empty(n_modes, dtype=np.int64)
+    position[order] = np.arange(n_modes)
+    partner = np.asarray(table["partner"])
+    writer.array("spectrum", "partner", np.where(partner >= 0, position[np.maximum(partner, 0)], -1), ("mode",))
+    flagged = np.flatnonzero(np.asarray(table["near_nyquist"]))
+    if flagged.size:
+        warnings.append(
+            f"{flagged.size} mode(s) lie within 10 % of the Nyquist frequency 1/(2 dt) = {0.5 / dt:.6g} Hz "
+            f"(sorted positions {', '.join(map(str, flagged[:10]))}); their frequencies may be aliased"
+        )
+    writer.group_attrs("spectrum", {"sorted_by": "amplitude", "dt": dt,
+                                    "frequency_units": "Hz (1/time unit of the archive)"})
+    writer.array("operator", "matrix", np.asarray(fit.operator), ("mode_in", "mode_out"),
+                 attrs={"convention": "column-vector: c_next = matrix @ c (reduced coordinates)"})
+    return order, warnings
+
+
+def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarray, compute: Any) -> None:
+    """Physical modes chunk by chunk, fixed points (affine fits), reconstruction error."""
+    from snaplift.fitting import reconstruct
+
+    matrix, preparation, lowrank = compressed.matrix, compressed.preparation, compressed.lowrank
+    dims = grid_dimensions({f.name: f.grid for f in matrix.fields})
+    modes_rows = fit.modes[:, order]  # coefficient space (rank x mode)
+    n_modes = int(order.size)
+    for rows in matrix.fields:
+        (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
+        basis_rows = np.asarray(basis_rows)
+        mode_array = writer.empty("modes", rows.name, (n_modes, *rows.grid), np.complex128,
+                                  ("mode", *dims[rows.name]), chunks=(1, *rows.grid))
+        for k in range(n_modes):
+            values = basis_rows @ modes_rows[:, k]
+            mode_array[k] = rows.expand(to_physical(values, rows, preparation, add_mean=False))
+        if preparation.mean is not None:
+            mean = to_physical(preparation.mean[rows.offset:rows.stop], rows, _unscaled(preparation), add_mean=False)
+            # with the affine term the model is x_j = fixed_point + sum_k mode_k b_k lambda_k^j
+            fixed = basis_rows @ fit.fixed_point if fit.fixed_point is not None else np.zeros(rows.n_rows)
+            steady = to_physical(fixed, rows, preparation, add_mean=False) + mean
+            writer.array("prepare", f"fixed_point_{rows.name}", rows.expand(np.real_if_close(steady)),
+                         dims[rows.name], attrs={"meaning": "x_j = fixed_point + sum_k mode_k b_k lambda_k^j"})
+    coefficient, column_norm = lowrank.coefficient, lowrank.column_norm
+    projection = lowrank.projection_error()
+    model = reconstruct(fit, n_steps=coefficient.shape[1])
+    if not np.iscomplexobj(coefficient):
+        model = model.real
+    # the basis is orthonormal: the error splits into the part outside the basis
+    # (projection error) and the model's error inside it (Pythagoras)
+    inside = np.linalg.norm(coefficient - model, axis=0)
+    total = np.sqrt(inside**2 + (projection * column_norm) ** 2)
+    reconstruction = np.divide(total, column_norm, out=np.zeros_like(total), where=column_norm > 0)
+    writer.array("diagnostics", "reconstruction_error", reconstruction, ("snapshot",),
+                 attrs={"norm": "relative, weighted and scaled (physical inner product)"})

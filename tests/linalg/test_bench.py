@@ -1,0 +1,34 @@
+"""The benchmark machinery on a tiny archive (figures only; no timing is asserted)."""
+
+from __future__ import annotations
+
+import numpy as np
+from typer.testing import CliRunner
+
+from snaplift.cli import app
+from snaplift.linalg.bench import BenchSettings, render_benchmark, run_benchmark, spectrum
+
+
+def test_tiny_benchmark_reports_every_figure(tmp_path):
+    settings = BenchSettings(size_bytes=40 * 2**20, rank=8, memory_bytes=512 * 2**20, folder=str(tmp_path),
+                             zarr=False, clusters=False, dask=False)
+    figures = run_benchmark(settings)
+    assert figures["snapshots"] == 20 and figures["archive_bytes"] == 20 * 512 * 512 * 8
+    randomized = figures["methods"]["randomized q=1"]
+    # the archive's singular values are 0.95^j by construction; with 18 of 20 columns sketched
+    # and q = 1 the error factor is ~(sigma_19 / sigma_9)^3 ~ 0.2 of the tail (Halko et al.
+    # 2011, Cor. 10.10): a few per cent at most
+    assert randomized["error_top10"] < 5e-2 and randomized["passes"] == 4
+    assert figures["methods"]["sketch"]["bytes_ratio"] == 1.0
+    assert np.isclose(spectrum()[0], 1.0)
+    text = render_benchmark(figures)
+    assert "floor" in text and "sketch" in text and "m/2" in text
+
+
+def test_bench_command_dry_run_says_what_it_writes(tmp_path):
+    result = CliRunner().invoke(app, ["bench", "--size", "1GiB", "--folder", str(tmp_path), "--dry-run"])
+    assert result.exit_code == 0
+    assert "1.00 GiB HDF5 archive" in result.output and str(tmp_path) in result.output
+    assert not list(tmp_path.iterdir())
+    bad = CliRunner().invoke(app, ["bench", "--methods", "fast"])
+    assert bad.exit_code == 2 and "allowed are sketch, randomized, tsqr" in bad.output
