@@ -176,7 +176,9 @@ class ClusterSection(_Section):
     started inside the batch allocation this run is already in).
     """
 
-    kind: Literal["threads", "local", "address", "slurm", "pbs", "allocation"] = "local"
+    # default: threads, which snaplift bench measured faster than local worker processes on a
+    # workstation for both HDF5 and zarr archives (README, "cluster")
+    kind: Literal["threads", "local", "address", "slurm", "pbs", "allocation"] = "threads"
     profile: str | None = Field(None, description="where the settings came from (set by the loader)")
     workers: int | None = Field(None, ge=1, description="worker processes in all (batch: jobs x processes)")
     threads_per_worker: int | None = Field(None, ge=1)
