@@ -165,3 +165,37 @@ def test_non_finite_value_names_snapshot_and_point(tmp_path: Path) -> None:
     with pytest.raises(ArchiveError, match=r"field 'u' has 1 non-finite .* snapshot 11, grid index \(2, 3\)"):
         run_workflow(_workflow(tmp_path, compress={"rank": 2}))
     assert not (tmp_path / "r.zarr").exists()
+
+
+def test_residuals_mark_true_eigenvalues_trusted(tmp_path: Path) -> None:
+    # data of a linear system: its eigenpairs are exact on held-out pairs, so their
+    # residual ||(Y - lambda X) g|| / ||X g|| vanishes (Colbrook & Townsend 2024, CPAM);
+    # the extra modes a too-large rank adds fit only rounding and are not trusted
+    pairs = np.array([0.98 * np.exp(0.3j), 0.9 * np.exp(1.1j)])
+    eigenvalues = np.concatenate([pairs, pairs.conj()])
+    rng = np.random.default_rng(7)
+    u = _linear_system_snapshots((9, 8), 80, eigenvalues) + 1e-6 * rng.standard_normal((80, 9, 8))
+    _write_archive(tmp_path / "a.h5", {"u": u}, 0.1 * np.arange(80))
+    summary = run_workflow(_workflow(tmp_path, compress={"rank": 8, "oversample": 4},
+                                     fit={"holdout": 0.25, "debias": "total-least-squares"}))
+    spectrum = read_group(summary.path, "spectrum")
+    for value in eigenvalues:
+        closest = np.argmin(np.abs(spectrum["eigenvalue"] - value))
+        assert abs(spectrum["eigenvalue"][closest] - value) < 1e-4
+        assert spectrum["trusted"][closest] and spectrum["residual"][closest] < 1e-3
+    assert (~spectrum["trusted"]).sum() >= 2  # the noise modes
+    assert spectrum["trusted"].dtype == bool
+
+
+def test_rank_by_energy_and_optimal_threshold(tmp_path: Path) -> None:
+    # four modes carry all the energy: both the energy rule and the Gavish-Donoho optimal
+    # hard threshold (Gavish & Donoho 2014) keep exactly four on noisy data
+    pairs = np.array([0.99 * np.exp(0.4j), 0.95 * np.exp(1.2j)])
+    rng = np.random.default_rng(3)
+    u = _linear_system_snapshots((10, 10), 60, np.concatenate([pairs, pairs.conj()])) \
+        + 1e-8 * rng.standard_normal((60, 10, 10))
+    _write_archive(tmp_path / "a.h5", {"u": u}, 0.1 * np.arange(60))
+    for rank in ({"energy": 0.999999}, "optimal"):
+        summary = run_workflow(_workflow(tmp_path, compress={"rank": 10, "oversample": 4}, fit={"rank": rank},
+                                         output={"path": f"r-{len(str(rank))}.zarr"}))
+        assert read_group(summary.path, "spectrum")["eigenvalue"].size == 4

@@ -163,3 +163,20 @@ def test_durations_and_walltimes() -> None:
         parse_duration("soon")
     with pytest.raises(ValueError, match="not HH:MM:SS"):
         parse_walltime("2h")
+
+
+def test_fit_keys() -> None:
+    data = _base()
+    data["fit"] = {"rank": {"energy": 0.99}, "debias": "forward-backward", "holdout": 0.1}
+    assert parse_workflow(data).fit.rank_argument() == 0.99
+    data["fit"] = {"rank": "optimal"}
+    assert parse_workflow(data).fit.rank_argument() == "optimal"
+    data["fit"] = {"rank": 0}
+    with pytest.raises(ConfigError, match="fit.rank"):
+        parse_workflow(data)
+    data["fit"] = {"method": "edmd"}
+    with pytest.raises(ConfigError, match="fit.method 'edmd' is available in the Python API"):
+        parse_workflow(data)
+    data["fit"] = {"debias": "both"}
+    with pytest.raises(ConfigError, match="fit.debias"):
+        parse_workflow(data)

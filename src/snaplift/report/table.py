@@ -13,7 +13,7 @@ from snaplift.results.store import open_result, read_group
 
 __all__ = ["load_spectrum", "spectrum_records", "render_spectrum", "spectrum_json"]
 
-COLUMNS = ("eigenvalue", "rate", "frequency", "growth", "period", "amplitude")
+COLUMNS = ("eigenvalue", "rate", "frequency", "growth", "period", "amplitude", "residual", "trusted", "partner")
 
 
 def load_spectrum(path: str | Path) -> dict[str, np.ndarray]:
@@ -37,7 +37,9 @@ def spectrum_records(spectrum: dict[str, np.ndarray], *, sort: str = "amplitude"
             if name not in spectrum:
                 continue
             value = spectrum[name][i]
-            if np.iscomplexobj(value):
+            if name in ("trusted", "partner"):
+                record[name] = bool(value) if name == "trusted" else int(value)
+            elif np.iscomplexobj(value):
                 record[name] = {"real": float(np.real(value)), "imag": float(np.imag(value))}
             else:
                 # JSON has no infinity: an infinite period (zero frequency) is null
@@ -65,13 +67,19 @@ def render_spectrum(path: str | Path, *, sort: str = "amplitude", limit: int | N
 
     records = spectrum_records(load_spectrum(path), sort=sort)
     table = Table(title=f"spectrum of {path} (sorted by {sort})", title_justify="left")
-    for header in ("mode", "|eigenvalue|", "frequency [Hz]", "growth [1/s]", "period [s]", "amplitude"):
+    has_residual = bool(records) and "residual" in records[0]
+    headers = ["mode", "|eig|", "f [Hz]", "growth [1/s]", "period [s]", "amplitude"]
+    headers += ["residual", "trusted"] if has_residual else []
+    for header in headers:
         table.add_column(header, justify="right")
     for record in records[: limit or None]:
         eig = record["eigenvalue"]
-        table.add_row(str(record["mode"]), _number(abs(complex(eig["real"], eig["imag"])), 6),
-                      _number(record["frequency"]), _number(record["growth"]),
-                      _number(record["period"]), _number(record["amplitude"]))
+        row = [str(record["mode"]), _number(abs(complex(eig["real"], eig["imag"])), 6),
+               _number(record["frequency"]), _number(record["growth"]),
+               _number(record["period"]), _number(record["amplitude"])]
+        if has_residual:
+            row += [_number(record["residual"], 2), "yes" if record["trusted"] else "no"]
+        table.add_row(*row)
     if limit and len(records) > limit:
         table.caption = f"{len(records) - limit} more modes not shown (use --all)"
     return table

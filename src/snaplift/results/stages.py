@@ -212,23 +212,39 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     return LoadedCompressed(matrix, preparation, lowrank, passes, 0, sketch)
 
 
-def write_fit(writer: StoreWriter, fit: Any, dt: float) -> tuple[np.ndarray, list[str]]:
-    """Spectrum (sorted by amplitude) and operator; returns the sort order and warnings."""
+def write_fit(writer: StoreWriter, fit: Any, dt: float, *, residuals: Any = None) -> tuple[np.ndarray, list[str]]:
+    """Spectrum (sorted by amplitude) and operator; returns the sort order and warnings.
+
+    ``residuals`` (a :class:`~snaplift.fitting.ResidualReport`) fills ``spectrum/residual``
+    and ``spectrum/trusted``.
+    """
     from snaplift.fitting import spectrum_table
 
     warnings: list[str] = []
-    table = spectrum_table(fit, sort="amplitude")
+    extra = {} if residuals is None else {"residual": residuals.residual, "trusted": residuals.trusted}
+    table = spectrum_table(fit, sort="amplitude", **extra)
     order = np.asarray(table["index"])
     n_modes = order.size
-    for name in ("eigenvalue", "rate", "frequency", "growth", "period", "amplitude", "phase", "near_nyquist"):
+    names = ["eigenvalue", "rate", "frequency", "growth", "period", "amplitude", "phase", "near_nyquist"]
+    for name in names + list(extra):
         writer.array("spectrum", name, np.asarray(table[name]), ("mode",))
+    if residuals is not None:
+        writer.group_attrs("spectrum", {"residual_pairs": residuals.pairs, "residual_pair_count": residuals.n_pairs,
+                                        "trust_threshold": residuals.threshold,
+                                        "residual_reference": "Colbrook & Townsend 2024, CPAM (arXiv 2111.14889)"})
+        untrusted = int(np.count_nonzero(~np.asarray(residuals.trusted)))
+        if untrusted:
+            warnings.append(f"{untrusted} of {n_modes} eigenvalue(s) have residual above the trust threshold "
+                            f"{residuals.threshold:g} on {residuals.n_pairs} {residuals.pairs} pairs")
     # partner: position (in this sorted table) of the complex-conjugate eigenvalue, -1 if none
     position = np.empty(n_modes, dtype=np.int64)
     position[order] = np.arange(n_modes)
     partner = np.asarray(table["partner"])
     writer.array("spectrum", "partner", np.where(partner >= 0, position[np.maximum(partner, 0)], -1), ("mode",))
     flagged = np.flatnonzero(np.asarray(table["near_nyquist"]))
-    if flagged.size:
+    if residuals is not None:
+        warnings.extend(residuals.warnings)
+    elif flagged.size:
         warnings.append(
             f"{flagged.size} mode(s) lie within 10 % of the Nyquist frequency 1/(2 dt) = {0.5 / dt:.6g} Hz "
             f"(sorted positions {', '.join(map(str, flagged[:10]))}); their frequencies may be aliased"

@@ -461,8 +461,8 @@ def _fit_and_modes(workflow: Workflow, scanned: Any, scheduler: Scheduler, store
     # fit is cheap (no archive read): recompute it whenever modes must be written again
     started = _now()
     store.begin("fit")
-    fit = stage_functions.fit_stage(workflow, compressed, scanned)
-    order, fit_warnings = stored.write_fit(store.writer, fit, scanned.dt)
+    fit, residuals = stage_functions.fit_stage(workflow, compressed, scanned)
+    order, fit_warnings = stored.write_fit(store.writer, fit, scanned.dt, residuals=residuals)
     warnings.extend(fit_warnings)
     n_modes = int(order.size)
     records["fit"] = (store.finish("fit", {

@@ -140,9 +140,48 @@ class CompressSection(_Section):
         return self
 
 
+class EnergyRank(_Section):
+    energy: float = Field(gt=0, lt=1, description="smallest rank keeping this fraction of the energy")
+
+
 class FitSection(_Section):
+    """``fit:`` — DMD on the coefficients, with residuals on held-out pairs.
+
+    ``rank`` is a number, ``{energy: 0.999}`` or ``optimal`` (Gavish & Donoho 2014);
+    ``debias`` is forward-backward (Dawson et al. 2016) or total least squares (Hemati et
+    al. 2017); ``holdout`` pairs are kept out of the fit and give each eigenvalue its
+    residual (Colbrook & Townsend 2024), ``trust_threshold`` marks it trusted.
+    """
+
     method: Literal["dmd"] = "dmd"
-    rank: int | None = Field(None, ge=1, description="second truncation of the coefficients")
+    rank: int | Literal["optimal"] | EnergyRank | None = Field(
+        None, description="second truncation: a number, {energy: 0.999}, or optimal"
+    )
+    debias: Literal["none", "forward-backward", "total-least-squares"] = "none"
+    holdout: float = Field(0.2, ge=0, lt=0.9, description="fraction of pairs held out for residuals")
+    trust_threshold: float = Field(0.01, gt=0, description="residual below which an eigenvalue is trusted")
+    seed: int = Field(0, ge=0, description="seed of the choice of held-out pairs")
+
+    @field_validator("rank", mode="before")
+    @classmethod
+    def _rank(cls, value: Any) -> Any:
+        if isinstance(value, bool) or (isinstance(value, int) and value < 1):
+            raise ValueError(f"must be a number >= 1, {{energy: fraction}} or 'optimal', got {value!r}")
+        return value
+
+    @field_validator("method", mode="before")
+    @classmethod
+    def _later_methods(cls, value: Any) -> Any:
+        if value in ("edmd", "optimized"):
+            raise NotImplementedError(
+                f"fit.method {value!r} is available in the Python API (snaplift.fitting) but not yet "
+                "from the workflow file; use method: dmd"
+            )
+        return value
+
+    def rank_argument(self) -> int | float | str | None:
+        """The ``rank`` argument of :func:`snaplift.fitting.fit_dmd`."""
+        return float(self.rank.energy) if isinstance(self.rank, EnergyRank) else self.rank
 
 
 class OutputSection(_Section):
@@ -317,7 +356,7 @@ class Workflow(_Section):
 
     @model_validator(mode="after")
     def _combinations(self) -> Workflow:
-        if self.fit.rank is not None and self.fit.rank > self.compress.rank:
+        if isinstance(self.fit.rank, int) and self.fit.rank > self.compress.rank:
             raise ValueError(
                 f"fit.rank ({self.fit.rank}) cannot exceed compress.rank ({self.compress.rank})"
             )

@@ -17,7 +17,7 @@ from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
 from snaplift.archive.plan import TilePlan
 from snaplift.cluster import Scheduler
 from snaplift.errors import ArchiveError, FieldNotFoundError, FitError, TimeSpacingError
-from snaplift.fitting import DMDFit, fit_dmd
+from snaplift.fitting import DMDFit, ResidualReport, fit_dmd_with_residuals
 from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation
 from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path
@@ -168,11 +168,20 @@ def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, *
                       sketch_state=result.sketch_state, info=result.info)
 
 
-def fit_stage(workflow: Workflow, compressed: Compressed, scanned: Scanned) -> DMDFit:
-    """DMD of the coefficients; affine term when the data were centred."""
+def fit_stage(workflow: Workflow, compressed: Compressed, scanned: Scanned) -> tuple[DMDFit, ResidualReport]:
+    """DMD of the coefficients (affine term when the data were centred), with residuals.
+
+    Returns the fit and its :class:`~snaplift.fitting.ResidualReport` (residual and trust
+    of every eigenvalue on the held-out pairs, Colbrook & Townsend 2024).
+    """
     coefficients = compressed.lowrank.coefficient
+    settings = workflow.fit
     try:
-        return fit_dmd(coefficients, scanned.dt, rank=workflow.fit.rank, affine=workflow.prepare.center)
+        return fit_dmd_with_residuals(
+            coefficients, scanned.dt, holdout=settings.holdout, seed=settings.seed,
+            trust_threshold=settings.trust_threshold, rank=settings.rank_argument(),
+            affine=workflow.prepare.center, debias=settings.debias,
+        )
     except FitError:
         raise
     except np.linalg.LinAlgError as error:
