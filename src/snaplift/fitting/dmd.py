@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import numbers
 from collections.abc import Callable
-from dataclasses import dataclass, fields
+from dataclasses import dataclass
 from typing import Literal
 
 import numpy as np
@@ -20,6 +20,7 @@ from numpy.typing import ArrayLike
 
 from snaplift.errors import FitError
 from snaplift.fitting import spectrum
+from snaplift.fitting._spectral import SpectrumProperties, freeze_arrays
 from snaplift.fitting._checks import finite_vector, pair_keep, positive_step, snapshot_matrix
 from snaplift.fitting.amplitudes import optimal_amplitudes
 from snaplift.fitting.debias import DEBIAS_METHODS, Debias, debiased_operator
@@ -36,7 +37,7 @@ PHASE_TIE = 1e-10
 
 
 @dataclass(frozen=True, eq=False)
-class DMDFit:
+class DMDFit(SpectrumProperties):
     """A DMD fit in coefficient space (arrays are read-only).
 
     Attributes
@@ -89,39 +90,11 @@ class DMDFit:
     mode_type: str
 
     def __post_init__(self) -> None:
-        for item in fields(self):
-            value = getattr(self, item.name)
-            if isinstance(value, np.ndarray):
-                value.setflags(write=False)
+        freeze_arrays(self)
 
     @property
     def affine(self) -> bool:
         return self.offset is not None
-
-    @property
-    def rate(self) -> np.ndarray:
-        """``log(eigenvalue) / dt`` (complex, 1/s)."""
-        return spectrum.continuous_rate(self.eigenvalue, self.dt)
-
-    @property
-    def frequency(self) -> np.ndarray:
-        """Signed frequency in Hz."""
-        return spectrum.frequency(self.eigenvalue, self.dt)
-
-    @property
-    def growth(self) -> np.ndarray:
-        """Growth rate in 1/s."""
-        return spectrum.growth(self.eigenvalue, self.dt)
-
-    @property
-    def period(self) -> np.ndarray:
-        """Period in s (``inf`` for non-oscillating modes)."""
-        return spectrum.period(self.eigenvalue, self.dt)
-
-    @property
-    def partner(self) -> np.ndarray:
-        """Index of the conjugate partner of each mode, -1 if none."""
-        return spectrum.conjugate_pairs(self.eigenvalue)
 
 
 def fit_dmd(
