@@ -397,7 +397,10 @@ def run_tiles(
 
     At most ``in_flight`` tasks are outstanding. ``fold(tile, result)`` updates
     ``state.arrays``; after it the job's id enters the ledger and its bytes are counted.
-    When a checkpoint is due, the outstanding tasks are drained and folded, ``flush()``
+    With a tile-count interval no more than that many tiles are submitted between two
+    saves, so a killed run reads at most one interval again (with a duration, at most the
+    tiles of one interval plus those in flight). When a checkpoint is due, the
+    outstanding tasks are drained and folded, ``flush()``
     brings what workers hold in their slots into ``state``, and only then is the state
     saved, so a checkpoint is always consistent. ``per_job(job)`` gives an extra argument
     (placed before the tile) and a placement hint for each task. On an error the
@@ -418,16 +421,26 @@ def run_tiles(
             progress.advance(1)
         return checkpoint is not None and checkpoint.tick()
 
+    # tiles submitted since the last save: with a tile-count interval, no more than one
+    # interval is ever outstanding or unsaved, so a kill re-reads at most that many tiles
+    since_save = 0
+    quota = checkpoint.every_tiles if checkpoint is not None else None
+
     def save() -> None:
+        nonlocal since_save
         while queue:
             fold_head()
         if flush is not None:
             flush()
         assert checkpoint is not None
         checkpoint.save(state)
+        since_save = 0
 
     try:
         for job in todo:
+            if quota is not None and since_save >= quota:
+                save()
+            since_save += 1
             if per_job is None:
                 future = runner.submit(task, *shared, job.tile)
             else:
