@@ -68,7 +68,7 @@ def render_spectrum(path: str | Path, *, sort: str = "amplitude", limit: int | N
     records = spectrum_records(load_spectrum(path), sort=sort)
     table = Table(title=f"spectrum of {path} (sorted by {sort})", title_justify="left")
     has_residual = bool(records) and "residual" in records[0]
-    headers = ["mode", "|eig|", "f [Hz]", "growth [1/s]", "period [s]", "amplitude"]
+    headers = ["mode", "|eigenvalue|", "frequency [Hz]", "growth [1/s]", "period [s]", "amplitude"]
     headers += ["residual", "trusted"] if has_residual else []
     for header in headers:
         table.add_column(header, justify="right")
