@@ -38,9 +38,13 @@ def _user_errors(function: Callable[..., Any]) -> Callable[..., Any]:
 
 
 def _console(quiet: bool = False):
+    import shutil
+
     from rich.console import Console
 
-    return Console(stderr=False, quiet=quiet)
+    # the spectrum table needs ~110 columns; cropping its digits would be worse than wrapping
+    width = max(112, shutil.get_terminal_size((112, 24)).columns)
+    return Console(stderr=False, quiet=quiet, width=width)
 
 
 @app.command()
