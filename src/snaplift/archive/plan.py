@@ -43,7 +43,7 @@ block by block, fields in order.
 from __future__ import annotations
 
 import math
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass
 from typing import Any
 
@@ -446,39 +446,19 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
         block = m
         cap = full
         if cost(cap, block)[0] > memory_bytes:
-            low, high = 1, full
-            while low < high:
-                mid = (low + high + 1) // 2
-                if cost(mid, block)[0] <= memory_bytes:
-                    low = mid
-                else:
-                    high = mid - 1
-            cap = low
+            cap = _largest(lambda rows: cost(rows, block)[0] <= memory_bytes, full)
     else:
         cap = full
         first = min(unit, m) if m else 1
         if cost(cap, max(first, 1))[0] <= memory_bytes:
             multiples = max(1, math.ceil(m / unit))
-            low, high = 1, multiples
-            while low < high:
-                mid = (low + high + 1) // 2
-                if cost(cap, min(mid * unit, m))[0] <= memory_bytes:
-                    low = mid
-                else:
-                    high = mid - 1
+            low = _largest(lambda n: cost(cap, min(n * unit, m))[0] <= memory_bytes, multiples)
             # keep every worker busy: at least TILES_PER_WORKER tiles each when the archive allows
             target = math.ceil(max(m, 1) / (TILES_PER_WORKER * workers))
             block = min(low * unit, max(unit, math.ceil(target / unit) * unit), m)
         else:
             block = max(first, 1)
-            low, high = 1, full
-            while low < high:
-                mid = (low + high + 1) // 2
-                if cost(mid, block)[0] <= memory_bytes:
-                    low = mid
-                else:
-                    high = mid - 1
-            cap = low
+            cap = _largest(lambda rows: cost(rows, block)[0] <= memory_bytes, full)
     peak, tile, result = cost(cap, block)
     if peak > memory_bytes:
         raise ArchiveError(
@@ -507,3 +487,15 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
         passes=int(passes), range_width=int(k), corange_width=int(l), in_flight=int(in_flight),
         driver_bytes=int(driver), cache_bytes=int(cache), result_bytes=int(result), partial_chunk_reads=partial,
     )
+
+
+def _largest(fits: Callable[[int], bool], high: int) -> int:
+    """Largest n in 1..high with ``fits(n)`` (fits is monotone); 1 if none fits."""
+    low = 1
+    while low < high:
+        mid = (low + high + 1) // 2
+        if fits(mid):
+            low = mid
+        else:
+            high = mid - 1
+    return low
