@@ -17,7 +17,6 @@ described in :mod:`snaplift.archive._cf`. Complex data stored as an HDF5 compoun
 from __future__ import annotations
 
 import os
-from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
@@ -100,11 +99,6 @@ class HDF5Reader(GroupedReader):
 
     format_name = "hdf5"
     suffixes = (".h5", ".hdf5", ".hdf", ".he5", ".nc", ".nc4", ".netcdf")
-
-    def __init__(
-        self, path: str, *, fields: Sequence[str] | None = None, time: str | None = None
-    ) -> None:
-        super().__init__(path, fields=fields, time=time)
 
     @classmethod
     def guess_can_open(cls, path: str) -> bool:

@@ -12,7 +12,6 @@ reported in ``FieldInfo.attrs["shards"]``.
 from __future__ import annotations
 
 import os
-from collections.abc import Sequence
 from typing import Any
 
 import numpy as np
@@ -82,11 +81,6 @@ class ZarrReader(GroupedReader):
 
     format_name = "zarr"
     suffixes = (".zarr",)
-
-    def __init__(
-        self, path: str, *, fields: Sequence[str] | None = None, time: str | None = None
-    ) -> None:
-        super().__init__(path, fields=fields, time=time)
 
     @classmethod
     def guess_can_open(cls, path: str) -> bool:

@@ -80,3 +80,14 @@ def pair_keep(pair_mask: ArrayLike | None, n_snapshots: int) -> np.ndarray:
             f"snapshots of {n_snapshots}; got shape {mask.shape}"
         )
     return ~mask
+
+
+def run_lengths_array(run_lengths: ArrayLike) -> np.ndarray:
+    """Snapshots per run as int64, each at least 1; FitError otherwise."""
+    lengths = np.asarray(run_lengths)
+    if lengths.ndim != 1 or lengths.size == 0 or not np.issubdtype(lengths.dtype, np.integer):
+        raise FitError(f"run_lengths must be a non-empty 1-D list of integers; got {run_lengths!r}")
+    bad = np.flatnonzero(lengths < 1)
+    if bad.size:
+        raise FitError(f"run_lengths[{bad[0]}] is {lengths[bad[0]]}; every run needs >= 1 snapshot")
+    return lengths.astype(np.int64)

@@ -21,7 +21,7 @@ from numpy.typing import ArrayLike
 from snaplift.errors import FitError
 from snaplift.fitting import spectrum
 from snaplift.fitting._spectral import SpectrumProperties, freeze_arrays
-from snaplift.fitting._checks import finite_vector, pair_keep, positive_step, snapshot_matrix
+from snaplift.fitting._checks import run_lengths_array, finite_vector, pair_keep, positive_step, snapshot_matrix
 from snaplift.fitting.amplitudes import optimal_amplitudes
 from snaplift.fitting.debias import DEBIAS_METHODS, Debias, debiased_operator
 from snaplift.fitting.rank import choose_rank
@@ -319,12 +319,7 @@ def run_pair_mask(run_lengths: ArrayLike) -> np.ndarray:
     >>> run_pair_mask([3, 2])
     array([False, False,  True, False])
     """
-    lengths = np.asarray(run_lengths)
-    if lengths.ndim != 1 or lengths.size == 0 or not np.issubdtype(lengths.dtype, np.integer):
-        raise FitError(f"run_lengths must be a non-empty 1-D list of integers; got {run_lengths!r}")
-    bad = np.flatnonzero(lengths < 1)
-    if bad.size:
-        raise FitError(f"run_lengths[{bad[0]}] is {lengths[bad[0]]}; every run needs >= 1 snapshot")
+    lengths = run_lengths_array(run_lengths)
     mask = np.zeros(int(lengths.sum()) - 1, dtype=bool)
     mask[np.cumsum(lengths)[:-1] - 1] = True
     return mask

@@ -14,7 +14,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from snaplift.errors import FitError
-from snaplift.fitting._checks import pair_keep, snapshot_matrix
+from snaplift.fitting._checks import run_lengths_array, pair_keep, snapshot_matrix
 from snaplift.fitting.amplitudes import optimal_amplitudes
 
 __all__ = ["run_lengths_from_mask", "run_starts", "run_amplitudes", "run_amplitude_table"]
@@ -44,12 +44,7 @@ def _lengths(run_lengths: ArrayLike | None, pair_mask: ArrayLike | None, n: int)
         raise FitError("give run_lengths or pair_mask, not both")
     if run_lengths is None:
         return run_lengths_from_mask(pair_mask, n)
-    lengths = np.asarray(run_lengths)
-    if lengths.ndim != 1 or lengths.size == 0 or not np.issubdtype(lengths.dtype, np.integer):
-        raise FitError(f"run_lengths must be a non-empty 1-D list of integers; got {run_lengths!r}")
-    bad = np.flatnonzero(lengths < 1)
-    if bad.size:
-        raise FitError(f"run_lengths[{bad[0]}] is {lengths[bad[0]]}; every run needs >= 1 snapshot")
+    lengths = run_lengths_array(run_lengths)
     if int(lengths.sum()) != n:
         raise FitError(f"run_lengths add up to {int(lengths.sum())} snapshots; the data have {n}")
     return lengths.astype(np.int64)
