@@ -16,13 +16,12 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-import dask.array as da
 import numpy as np
 
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.errors import ArchiveError
 
-__all__ = ["Preparation", "finish_preparation", "prepared_matrix", "corrected_sketch", "corrected_corange",
+__all__ = ["Preparation", "finish_preparation", "corrected_sketch", "corrected_corange",
            "prepared_column_squares", "field_sums", "to_physical"]
 
 
@@ -79,16 +78,6 @@ def finish_preparation(
         row_scale[field.offset:field.stop] = 1.0 / value
     snapshot_norm = np.sqrt(np.sum(np.asarray(column_squares), axis=0))
     return Preparation(tuple(f.name for f in matrix.fields), field_scale, row_scale, mean, snapshot_norm)
-
-
-def prepared_matrix(x: da.Array, preparation: Preparation) -> da.Array:
-    """Lazy ``A = S (X_w - mu 1^T)``; elementwise, so it fuses into the tile tasks."""
-    chunks = x.chunks[0]
-    scale = da.from_array(preparation.row_scale[:, np.newaxis], chunks=(chunks, (1,)))
-    if preparation.mean is None:
-        return x * scale
-    mean = da.from_array(preparation.mean[:, np.newaxis], chunks=(chunks, (1,)))
-    return (x - mean) * scale
 
 
 def corrected_sketch(sketch: np.ndarray, preparation: Preparation, omega: np.ndarray) -> np.ndarray:

@@ -5,24 +5,21 @@ Rows are the requested fields stacked, masked points dropped, each point multipl
 selected snapshots. A tile is one block of one field's kept rows x one block of
 snapshots; a task carries only the picklable reader descriptor and small index arrays.
 
-Two ways to read: :func:`read_snapshot_block` returns a tile *snapshot-major*
-(``(snapshots, rows)``, the layout time-major archives store, with no transpose copy),
-which the streaming compress uses; :meth:`SnapshotMatrix.to_dask` gives a lazy dask
-array of ``(rows, snapshots)`` tiles for code that wants one.
+:func:`read_snapshot_block` returns a tile *snapshot-major* (``(snapshots, rows)``, the
+layout time-major archives store, with no transpose copy); the streaming compress folds
+these tiles into its accumulators.
 """
 
 from __future__ import annotations
 
 from dataclasses import dataclass
 
-import dask.array as da
 import numpy as np
-from dask import delayed
 
 from snaplift.archive._base import Reader
 from snaplift.errors import ArchiveError, FieldNotFoundError, NonFiniteError
 
-__all__ = ["FieldRows", "SnapshotMatrix", "build_snapshot_matrix", "read_prepared_tile",
+__all__ = ["FieldRows", "SnapshotMatrix", "build_snapshot_matrix",
            "read_snapshot_block", "check_finite", "column_blocks"]
 
 
@@ -63,30 +60,6 @@ class SnapshotMatrix:
     @property
     def shape(self) -> tuple[int, int]:
         return (self.fields[-1].stop, int(self.snapshot_index.size))
-
-    def to_dask(self) -> da.Array:
-        """The weighted, masked snapshot matrix, one task per (field, snapshot block)."""
-        rows = []
-        for field in self.fields:
-            row = []
-            for c0, c1 in self.blocks:
-                tile = delayed(read_prepared_tile, pure=True)(
-                    self.reader, field, self.snapshot_index[c0:c1]
-                )
-                row.append(da.from_delayed(tile, shape=(field.n_rows, c1 - c0), dtype=self.dtype))
-            rows.append(row)
-        return da.block(rows)
-
-
-def read_prepared_tile(reader: Reader, field: FieldRows, snapshots: np.ndarray) -> np.ndarray:
-    """Read one whole-field tile as ``(rows, snapshots)``, masked, ``sqrt(w)``-weighted, finite.
-
-    Snapshots are read as one contiguous range (so stored chunks are read whole) and
-    strided in memory when ``every > 1``.
-    """
-    values = read_snapshot_block(reader, field, snapshots)
-    check_finite(values, reader, field, snapshots, (0, field.n_rows))
-    return np.ascontiguousarray(values.T)
 
 
 def _raw_points(reader: Reader, name: str, p0: int, p1: int, s0: int, s1: int) -> np.ndarray:
