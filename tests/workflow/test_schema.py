@@ -175,7 +175,10 @@ def test_fit_keys() -> None:
     with pytest.raises(ConfigError, match="fit.rank"):
         parse_workflow(data)
     data["fit"] = {"method": "edmd"}
-    with pytest.raises(ConfigError, match="fit.method 'edmd' is available in the Python API"):
+    with pytest.raises(ConfigError, match="fit.method edmd needs a dictionary in lift"):
+        parse_workflow(data)
+    data["fit"] = {"method": "dmd", "coefficients": 4}
+    with pytest.raises(ConfigError, match="coefficients applies to methods 'edmd' and 'optimized'"):
         parse_workflow(data)
     data["fit"] = {"debias": "both"}
     with pytest.raises(ConfigError, match="fit.debias"):

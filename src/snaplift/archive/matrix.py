@@ -18,6 +18,7 @@ import numpy as np
 
 from snaplift.archive._base import Reader
 from snaplift.errors import ArchiveError, FieldNotFoundError, NonFiniteError
+from snaplift.lifting.fields import FieldLift, LiftedField
 
 __all__ = ["FieldRows", "SnapshotMatrix", "build_snapshot_matrix",
            "read_snapshot_block", "check_finite", "column_blocks"]
@@ -33,6 +34,19 @@ class FieldRows:
     sqrt_weight: np.ndarray | None  # one per kept point
     offset: int
     n_rows: int
+    #: lifted fields (``lift:`` pointwise / delays): the archive field read, the pointwise
+    #: function applied to its raw values, and the snapshot shift of the delay block
+    source: str | None = None
+    term: str = "x"
+    snapshot_shift: int = 0
+
+    @property
+    def archive_field(self) -> str:
+        return self.source or self.name
+
+    @property
+    def lifted(self) -> bool:
+        return self.source not in (None, self.name) or self.term != "x" or self.snapshot_shift != 0
 
     @property
     def stop(self) -> int:
@@ -90,25 +104,32 @@ def read_snapshot_block(
 ) -> np.ndarray:
     """``X[rows, snapshots]^T`` of one field: ``(len(snapshots), r1 - r0)``, masked and weighted.
 
-    ``rows`` are kept-row positions within the field (default all). Stored values are
+    ``rows`` are kept-row positions within the field (default all). A lifted field
+    (:class:`~snaplift.lifting.FieldLift`) reads its archive field at the snapshots shifted
+    by its delay and applies its pointwise function to the raw values, before the
+    weights: the lifted rows exist only inside the tile. Stored values are
     decoded to float64/complex128; the result is a fresh, writeable array. Finiteness is
     not checked here (:func:`check_finite`), so that a tile kernel can fold the check
     into a reduction it makes anyway.
     """
-    snapshots = np.asarray(snapshots, dtype=np.int64)
+    snapshots = np.asarray(snapshots, dtype=np.int64) + int(field.snapshot_shift)
     r0, r1 = (0, field.n_rows) if rows is None else (int(rows[0]), int(rows[1]))
     if field.keep is None:
         p0, p1 = r0, r1
     else:
         p0, p1 = int(field.keep[r0]), int(field.keep[r1 - 1]) + 1
     first, last = int(snapshots[0]), int(snapshots[-1])
-    raw = _raw_points(reader, field.name, p0, p1, first, last + 1)
+    raw = _raw_points(reader, field.archive_field, p0, p1, first, last + 1)
     if snapshots.size != last - first + 1:
         raw = raw[snapshots - first]
     if field.keep is not None:
         local = field.keep[r0:r1] - p0
         if local.size != p1 - p0:
             raw = raw[:, local]
+    if field.term != "x":
+        from snaplift.lifting.fields import POINTWISE
+
+        raw = POINTWISE[field.term](raw)  # a new array: never writes through to a file
     if not raw.flags.writeable:  # e.g. a memory map: never write through to a file
         raw = np.array(raw)
     if field.sqrt_weight is not None:
@@ -134,9 +155,11 @@ def check_finite(values: np.ndarray, reader: Reader, field: FieldRows, snapshots
     point = int(field.keep[kept]) if field.keep is not None else kept
     index = np.unravel_index(point, field.grid)
     count = int((~finite).sum())
+    snapshots = np.asarray(snapshots, dtype=np.int64) + int(field.snapshot_shift)
     first, last = int(snapshots[0]), int(snapshots[-1])
+    lifted = f" (lifted as '{field.name}')" if field.lifted else ""
     raise NonFiniteError(
-        f"{reader.path}: field '{field.name}' has {count} non-finite value(s) in snapshots "
+        f"{reader.path}: field '{field.archive_field}'{lifted} has {count} non-finite value(s) in snapshots "
         f"{first}..{last}; first at snapshot {int(snapshots[column])}, grid index {tuple(int(i) for i in index)} "
         f"(value {values[column, row]}); "
         "mask these points (archive.mask) or repair the archive"
@@ -185,12 +208,19 @@ def build_snapshot_matrix(
     weights: str | dict[str, str] | None = None,
     mask: str | dict[str, str] | None = None,
     snapshot_blocks: tuple[tuple[int, int], ...] | None = None,
+    lift: FieldLift | None = None,
+    run_lengths: np.ndarray | None = None,
 ) -> SnapshotMatrix:
     """Describe ``X`` for the given fields and snapshots; reads only weights and mask.
 
     ``snapshot_block`` is the number of selected snapshots per tile; ``snapshot_blocks``
     (the planner's archive snapshot ranges, :attr:`TilePlan.snapshot_blocks`) takes
     precedence and keeps every tile on whole stored chunks (:func:`column_blocks`).
+
+    ``lift`` (pointwise terms and delays of the raw fields) makes every lifted field a row
+    block of its own (:meth:`FieldLift.lifted`); with delays the columns are the windows
+    that fit inside a run (``run_lengths`` of the selected snapshots, default one run),
+    and column j carries the archive snapshot of the window's first copy.
     """
     info = reader.describe()
     missing = [name for name in fields if name not in info.fields]
@@ -203,12 +233,36 @@ def build_snapshot_matrix(
     if len(n_snapshots) != 1:
         counts = ", ".join(f"{name}: {info.fields[name].n_snapshots}" for name in fields)
         raise ArchiveError(f"{reader.path}: fields must have the same number of snapshots; found {counts}")
+    snapshots = np.asarray(snapshots, dtype=np.int64)
+    total = next(iter(n_snapshots))
+    if snapshots.size == 0 or snapshots.min() < 0 or snapshots.max() >= total:
+        raise ArchiveError(f"{reader.path}: snapshot selection is empty or outside 0..{total - 1}")
+    entries = [LiftedField(name, name) for name in fields] if lift is None else lift.lifted(fields)
+    shifts = {0: 0}
+    if lift is not None and lift.delays > 1:
+        lengths = np.array([snapshots.size]) if run_lengths is None else np.asarray(run_lengths, dtype=np.int64)
+        plan = lift.columns(lengths)
+        for block in range(1, lift.delays):
+            shift = np.unique(snapshots[plan[block]] - snapshots[plan[0]])
+            if shift.size != 1:  # selections are arange(start, stop, every): never happens
+                raise ArchiveError(f"{reader.path}: delays need evenly spaced selected snapshots")
+            shifts[block] = int(shift[0])
+        snapshots = snapshots[plan[0]]
     rows: list[FieldRows] = []
     offset = 0
     complex_valued = False
-    for name in fields:
+    grids: dict[str, tuple[np.ndarray | None, np.ndarray | None]] = {}
+    for entry in entries:
+        name = entry.source
         field_info = info.fields[name]
         grid = field_info.grid
+        if name in grids:
+            keep, sqrt_weight = grids[name]
+            n_rows = int(keep.size if keep is not None else field_info.n_points)
+            rows.append(FieldRows(entry.name, grid, keep, sqrt_weight, offset, n_rows, source=name,
+                                  term=entry.term, snapshot_shift=shifts[entry.block]))
+            offset += n_rows
+            continue
         keep = None
         mask_name = mask.get(name) if isinstance(mask, dict) else mask
         if mask_name is not None:
@@ -228,14 +282,13 @@ def build_snapshot_matrix(
                     f"found {w[bad]} at kept point {bad}"
                 )
             sqrt_weight = np.sqrt(w)
+        grids[name] = (keep, sqrt_weight)
         n_rows = int(keep.size if keep is not None else field_info.n_points)
-        rows.append(FieldRows(name, grid, keep, sqrt_weight, offset, n_rows))
+        source = None if entry.name == name else name
+        rows.append(FieldRows(entry.name, grid, keep, sqrt_weight, offset, n_rows, source=source,
+                              term=entry.term, snapshot_shift=shifts[entry.block]))
         offset += n_rows
         complex_valued |= np.issubdtype(field_info.dtype, np.complexfloating)
-    snapshots = np.asarray(snapshots, dtype=np.int64)
-    total = next(iter(n_snapshots))
-    if snapshots.size == 0 or snapshots.min() < 0 or snapshots.max() >= total:
-        raise ArchiveError(f"{reader.path}: snapshot selection is empty or outside 0..{total - 1}")
     if snapshot_blocks is not None:
         blocks = column_blocks(snapshots, tuple(snapshot_blocks))
     else:

@@ -27,6 +27,8 @@ from snaplift.lifting.expressions import (
 )
 from snaplift.lifting.fields import (
     POINTWISE,
+    FieldLift,
+    LiftedField,
     delay_columns,
     delayed_run_lengths,
     hankel,
@@ -68,6 +70,8 @@ __all__ = [
     "FUNCTIONS",
     "CONSTANTS",
     "POINTWISE",
+    "FieldLift",
+    "LiftedField",
     "pointwise_terms",
     "pointwise_size",
     "delay_columns",

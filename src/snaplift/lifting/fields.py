@@ -17,6 +17,7 @@ runs have :func:`delayed_run_lengths` snapshots and the fit's pair mask follows 
 from __future__ import annotations
 
 from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import ArrayLike
@@ -25,6 +26,8 @@ from snaplift.errors import ConfigError
 from snaplift.lifting._base import positive_int
 
 __all__ = [
+    "FieldLift",
+    "LiftedField",
     "POINTWISE",
     "pointwise_terms",
     "pointwise_size",
@@ -183,3 +186,89 @@ def hankel(
         )
     plan = delay_columns(lengths, count, spacing)
     return np.concatenate([data[:, columns] for columns in plan], axis=0)
+
+
+@dataclass(frozen=True)
+class LiftedField:
+    """One row block of the lifted snapshot matrix: ``term`` of archive field ``source``, delay ``block``."""
+
+    name: str
+    source: str
+    term: str = "x"
+    block: int = 0
+
+
+@dataclass(frozen=True)
+class FieldLift:
+    """Observables of the raw fields, fused into the tile read (``lift:`` entries ``pointwise``, ``delays``).
+
+    Parameters
+    ----------
+    terms : tuple of str
+        Pointwise functions (names of :data:`POINTWISE`); ``("x",)`` keeps the field itself.
+    fields : tuple of str or None
+        Fields the pointwise terms apply to (default: every field); other fields keep ``x``.
+    delays : int
+        Delayed copies d of every lifted row (1: none).
+    spacing : int
+        Snapshots between copies s (in selected snapshots).
+
+    The lifted fields are named ``<field>`` for ``x``, ``<field>_<term>`` for other terms
+    and ``..._delay<b>`` for delay block ``b >= 1`` (``u_square_delay2``). Each is a field
+    of its own downstream: its own RMS scale, basis and modes.
+
+    Examples
+    --------
+    >>> [f.name for f in FieldLift(terms=("x", "square"), delays=2).lifted(["u"])]
+    ['u', 'u_square', 'u_delay1', 'u_square_delay1']
+    """
+
+    terms: tuple[str, ...] = ("x",)
+    fields: tuple[str, ...] | None = None
+    delays: int = 1
+    spacing: int = 1
+
+    def __post_init__(self) -> None:
+        _functions(list(self.terms))
+        positive_int(self.delays, "delays count")
+        positive_int(self.spacing, "delays spacing")
+
+    @property
+    def is_identity(self) -> bool:
+        return self.terms == ("x",) and self.delays == 1
+
+    def lifted(self, fields: Sequence[str]) -> list[LiftedField]:
+        """The lifted fields of ``fields`` in row order (delay block, field, term)."""
+        if self.fields is not None:
+            unknown = sorted(set(self.fields) - set(fields))
+            if unknown:
+                raise ConfigError(
+                    f"pointwise fields {unknown} are not among the archive fields {list(fields)}"
+                )
+        out: list[LiftedField] = []
+        for block in range(int(self.delays)):
+            suffix = f"_delay{block}" if block else ""
+            for name in fields:
+                terms = self.terms if self.fields is None or name in self.fields else ("x",)
+                for term in terms:
+                    base = name if term == "x" else f"{name}_{term}"
+                    out.append(LiftedField(base + suffix, name, term, block))
+        names = [f.name for f in out]
+        clash = sorted(set(names) & (set(fields) - {f.name for f in out if f.term == "x" and f.block == 0}))
+        repeated = [n for i, n in enumerate(names) if n in names[:i]]
+        if clash or repeated:
+            raise ConfigError(
+                f"lifted field name {(clash or repeated)[0]!r} is also the name of an archive field; "
+                "rename the field or lift fewer terms"
+            )
+        return out
+
+    def columns(self, run_lengths: ArrayLike) -> list[np.ndarray]:
+        """Positions (in the selected snapshots) feeding each delay block (:func:`delay_columns`)."""
+        return delay_columns(run_lengths, self.delays, self.spacing)
+
+    def apply(self, term: str, values: np.ndarray) -> np.ndarray:
+        """``term`` of a raw tile, in place where the function allows it."""
+        if term == "x":
+            return values
+        return POINTWISE[term](values)

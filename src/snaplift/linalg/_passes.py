@@ -55,7 +55,7 @@ def build_jobs(matrix: SnapshotMatrix, row_blocks: list[list[tuple[int, int]]],
     for c0, c1 in columns:
         span = int(index[c1 - 1] - index[c0] + 1)
         for f, field in enumerate(matrix.fields):
-            itemsize = int(np.dtype(info.fields[field.name].stored_dtype).itemsize)
+            itemsize = int(np.dtype(info.fields[field.archive_field].stored_dtype).itemsize)
             for r0, r1 in row_blocks[f]:
                 points = (int(field.keep[r1 - 1]) + 1 - int(field.keep[r0])) if field.keep is not None else r1 - r0
                 jobs.append(Job(len(jobs), TileRef(f, (r0, r1), (int(c0), int(c1)), len(jobs)),

@@ -42,6 +42,7 @@ __all__ = [
     "modes_bytes",
     "write_compressed",
     "write_fit",
+    "write_fit_details",
     "write_modes",
     "write_scan",
 ]
@@ -54,7 +55,7 @@ def basis_bytes(matrix: SnapshotMatrix, rank: int) -> int:
 
 
 def modes_bytes(matrix: SnapshotMatrix, n_modes: int) -> int:
-    return int(sum(n_modes * int(np.prod(f.grid)) * 16 for f in matrix.fields))
+    return int(sum(n_modes * int(np.prod(f.grid)) * 16 for f in _mode_fields(matrix)))
 
 
 def write_scan(writer: StoreWriter, time: np.ndarray, snapshot_index: np.ndarray) -> None:
@@ -81,8 +82,11 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
                         "norm": "relative, weighted and scaled (physical inner product)"})
     writer.array("prepare", "scale", np.array([preparation.field_scale[f] for f in preparation.fields]),
                  ("field",), attrs={"fields": list(preparation.fields), "meaning": "each field was divided by this"})
+    lifted = {rows.name: {"source": rows.archive_field, "term": rows.term, "snapshot_shift": int(rows.snapshot_shift)}
+              for rows in matrix.fields if rows.lifted}
     writer.group_attrs("prepare", {"center": preparation.centered,
-                                   "scale": scale_setting if isinstance(scale_setting, str) else dict(scale_setting)})
+                                   "scale": scale_setting if isinstance(scale_setting, str) else dict(scale_setting),
+                                   "lifted": lifted})
     for rows in matrix.fields:
         (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
         physical = to_physical(np.asarray(basis_rows).T, rows, preparation, add_mean=False)
@@ -166,6 +170,7 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     means: list[np.ndarray] = []
     offset = 0
     centered = bool(prepare.attrs.get("center", False))
+    lifted = dict(prepare.attrs.get("lifted", {}))
     for name, field_scale in zip(fields, scale):
         physical = np.asarray(basis[name][...])
         grid = tuple(int(s) for s in physical.shape[1:])
@@ -187,7 +192,9 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
             mean = np.asarray(prepare[f"mean_{name}"][...]).ravel()
             mean = mean if keep is None else mean[keep]
             means.append(np.where(np.isfinite(mean), mean * (sqrt_weight if sqrt_weight is not None else 1.0), 0.0))
-        rows.append(FieldRows(name, grid, keep, sqrt_weight, offset, n_rows))
+        lift = lifted.get(name, {})
+        rows.append(FieldRows(name, grid, keep, sqrt_weight, offset, n_rows, source=lift.get("source"),
+                              term=lift.get("term", "x"), snapshot_shift=int(lift.get("snapshot_shift", 0))))
         offset += n_rows
     row_scale = np.concatenate([np.full(r.n_rows, 1.0 / s) for r, s in zip(rows, scale)])
     preparation = Preparation(tuple(fields), {f: float(s) for f, s in zip(fields, scale)}, row_scale,
@@ -256,15 +263,54 @@ def write_fit(writer: StoreWriter, fit: Any, dt: float, *, residuals: Any = None
     return order, warnings
 
 
-def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarray, compute: Any) -> None:
-    """Physical modes chunk by chunk, fixed points (affine fits), reconstruction error."""
-    from snaplift.fitting import reconstruct
+def _mode_fields(matrix: SnapshotMatrix) -> list[FieldRows]:
+    """Fields that get modes: every field and pointwise term at the window's first time
+    (delay copies hold the same modes later in the window)."""
+    return [rows for rows in matrix.fields if rows.snapshot_shift == 0]
 
+
+def write_fit_details(writer: StoreWriter, outcome: Any, order: np.ndarray, time: np.ndarray) -> None:
+    """Amplitudes per run (``runs/``), eigenfunctions on the snapshots and the dictionary (EDMD)."""
+    lengths = np.asarray(outcome.run_lengths, dtype=np.int64)
+    starts = np.concatenate(([0], np.cumsum(lengths)[:-1])).astype(np.int64)
+    writer.array("runs", "run_start", starts, ("run",), attrs={"meaning": "first snapshot (column) of each run"})
+    writer.array("runs", "run_length", lengths, ("run",))
+    writer.array("runs", "amplitude", np.asarray(outcome.run_amplitude)[:, order], ("run", "mode"),
+                 attrs={"meaning": "optimal amplitude of each mode in each run (Jovanovic et al. 2014)"})
+    if outcome.eigenfunction is not None:
+        writer.array("eigenfunctions", "value", np.asarray(outcome.eigenfunction)[order], ("mode", "snapshot"),
+                     attrs={"meaning": "Koopman eigenfunctions evaluated on the snapshots, scaled so that "
+                                       "x_j = sum_k mode_k value[k, j]"})
+        writer.array("eigenfunctions", "time", np.asarray(time), ("snapshot",))
+    attrs = {"method": outcome.method, "space": outcome.space}
+    if outcome.lift:
+        attrs["lift"] = dict(outcome.lift)
+    writer.group_attrs("operator", attrs)
+
+
+def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarray, compute: Any) -> None:
+    """Physical modes chunk by chunk, fixed points (affine fits), reconstruction error.
+
+    ``fit`` is a :class:`~snaplift.workflow.fit_methods.FitOutcome`. Modes fitted on the
+    coefficients are the basis times the modes' coefficients (missing trailing
+    coefficients are zero); modes fitted on the raw state are its values on the grid.
+    """
     matrix, preparation, lowrank = compressed.matrix, compressed.preparation, compressed.lowrank
     dims = grid_dimensions({f.name: f.grid for f in matrix.fields})
-    modes_rows = fit.modes[:, order]  # coefficient space (rank x mode)
     n_modes = int(order.size)
-    for rows in matrix.fields:
+    if fit.space == "state":
+        _write_state_modes(writer, fit, matrix, order, dims)
+        return
+    rank = lowrank.rank
+    modes_rows = np.zeros((rank, n_modes), dtype=np.complex128)  # coefficient space (rank x mode)
+    modes_rows[: fit.modes.shape[0]] = fit.modes[:, order]
+    writer.array("operator", "mode_coefficient", modes_rows, ("rank", "mode"),
+                 attrs={"meaning": "modes in the coordinates of basis/coefficient (prepared data = basis @ this)"})
+    if fit.fixed_point is not None:
+        fixed_point = np.zeros(rank, dtype=np.result_type(fit.fixed_point, float))
+        fixed_point[: fit.fixed_point.size] = fit.fixed_point
+        writer.array("operator", "fixed_point_coefficient", fixed_point, ("rank",))
+    for rows in _mode_fields(matrix):
         (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
         basis_rows = np.asarray(basis_rows)
         mode_array = writer.empty("modes", rows.name, (n_modes, *rows.grid), np.complex128,
@@ -281,7 +327,8 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
                          dims[rows.name], attrs={"meaning": "x_j = fixed_point + sum_k mode_k b_k lambda_k^j"})
     coefficient, column_norm = lowrank.coefficient, lowrank.column_norm
     projection = lowrank.projection_error()
-    model = reconstruct(fit, n_steps=coefficient.shape[1])
+    model = np.zeros(coefficient.shape, dtype=np.complex128)
+    model[: fit.model.shape[0]] = fit.model
     if not np.iscomplexobj(coefficient):
         model = model.real
     # the basis is orthonormal: the error splits into the part outside the basis
@@ -291,3 +338,19 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
     reconstruction = np.divide(total, column_norm, out=np.zeros_like(total), where=column_norm > 0)
     writer.array("diagnostics", "reconstruction_error", reconstruction, ("snapshot",),
                  attrs={"norm": "relative, weighted and scaled (physical inner product)"})
+
+
+def _write_state_modes(writer: StoreWriter, fit: Any, matrix: SnapshotMatrix, order: np.ndarray,
+                       dims: dict[str, tuple[str, ...]]) -> None:
+    modes = np.asarray(fit.modes)[:, order]
+    for rows in matrix.fields:
+        values = modes[rows.offset:rows.stop].T  # (mode, kept points), raw units
+        writer.array("modes", rows.name, rows.expand(values).astype(np.complex128), ("mode", *dims[rows.name]),
+                     chunks=(1, *rows.grid))
+    data, model = np.asarray(fit.data), np.asarray(fit.model)
+    model = model.real if not np.iscomplexobj(data) else model
+    norm = np.linalg.norm(data, axis=0)
+    error = np.linalg.norm(data - model, axis=0)
+    writer.array("diagnostics", "reconstruction_error", np.divide(error, norm, out=np.zeros_like(error),
+                                                                  where=norm > 0), ("snapshot",),
+                 attrs={"norm": "relative, raw state values (unweighted, unscaled)"})

@@ -34,6 +34,11 @@ def can_append(workflow: Workflow, old_index: np.ndarray | None, new_index: np.n
         return f"compress.method {workflow.compress.method!r} has no append path (only 'sketch' does)"
     if workflow.compress.check_pass:
         return "compress.check_pass needs every snapshot again"
+    lift = workflow.field_lift
+    if lift is not None and lift.delays > 1:
+        return "delay windows at the old end change when snapshots are added"
+    if workflow.archive.runs is not None or isinstance(workflow.archive.path, list):
+        return "an archive of several runs is recomputed (appends extend one run)"
     if not sketch_state or old_index is None:
         return "the previous result kept no sketch state"
     old_index = np.asarray(old_index, dtype=np.int64)
@@ -64,7 +69,7 @@ def append_compress(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, 
     def matrix_of(snapshots: np.ndarray) -> Any:
         return build_snapshot_matrix(scanned.reader, list(section.fields), snapshots=snapshots,
                                      snapshot_block=scanned.snapshot_block, weights=section.weights,
-                                     mask=section.mask)
+                                     mask=section.mask, lift=workflow.field_lift)
 
     new_matrix = matrix_of(index[old_count:])
     full_matrix = matrix_of(index)

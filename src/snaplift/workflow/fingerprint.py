@@ -44,6 +44,7 @@ from typing import Any
 import numpy as np
 
 from snaplift.archive._base import Reader
+from snaplift.workflow.lift_section import RAW_KINDS
 from snaplift.workflow.schema import Workflow, section_fingerprint
 
 __all__ = [
@@ -218,19 +219,23 @@ def classify_archive(reader: Reader, fields: list[str], chunk: int, current: dic
 
 def workflow_identity(workflow: Workflow, archive_path: str) -> str:
     """What makes a store 'of this workflow': the archive it reduces and the fields."""
-    return section_fingerprint("identity", os.path.abspath(archive_path), list(workflow.archive.fields))
+    paths = [os.path.abspath(p) for p in archive_path] if isinstance(archive_path, list) else os.path.abspath(archive_path)
+    return section_fingerprint("identity", paths, list(workflow.archive.fields))
 
 
 def stage_fingerprints(workflow: Workflow, archive_identity: str) -> dict[str, str]:
     """Fingerprint of every stage (module docstring)."""
     compress = {k: v for k, v in workflow.compress.model_dump(mode="json").items() if k not in NOT_RESULT_KEYS}
+    # raw-field lifting changes the matrix compress reads; a state dictionary only the fit
+    raw = [e.model_dump(mode="json") for e in workflow.lift if e.kind in RAW_KINDS]
+    states = [e.model_dump(mode="json") for e in workflow.lift if e.kind not in RAW_KINDS]
     scan = section_fingerprint("scan", workflow.archive, archive_identity)
-    compressed = section_fingerprint("compress", scan, workflow.prepare, workflow.lift, compress)
-    fit = section_fingerprint("fit", compressed, workflow.fit)
+    compressed = section_fingerprint("compress", scan, workflow.prepare, raw, compress)
+    fit = section_fingerprint("fit", compressed, workflow.fit, states)
     modes = section_fingerprint("modes", fit)
     report = section_fingerprint("report", modes)
     # the compress settings without the archive's content: equal for a grown archive whose
     # stored sketch may be extended (snaplift.workflow.append)
-    settings = section_fingerprint("compress-settings", workflow.archive, workflow.prepare, workflow.lift, compress)
+    settings = section_fingerprint("compress-settings", workflow.archive, workflow.prepare, raw, compress)
     return {"scan": scan, "compress": compressed, "fit": fit, "modes": modes, "report": report,
             "compress_settings": settings}

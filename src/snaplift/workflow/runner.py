@@ -363,7 +363,7 @@ def _compress(workflow: Workflow, scanned: Any, scheduler: Scheduler, store: Sta
         # accumulators of a streaming compress are ~2 x n x (rank + oversample) values;
         # the basis written afterwards is n x rank
         info = scanned.reader.describe()
-        n_points = sum(info.fields[f].n_points for f in workflow.archive.fields)
+        n_points = scanned.lifted_rows or sum(info.fields[f].n_points for f in workflow.archive.fields)
         width = workflow.compress.rank + workflow.compress.oversample
         check_free_space(store.area, 16 * n_points * (2 * width + workflow.compress.rank), "compress checkpoints and basis")
         result = _compress_with_retries(workflow, scanned, scheduler, keywords, warnings)
@@ -412,7 +412,9 @@ def _compress_with_retries(workflow: Workflow, scanned: Any, scheduler: Schedule
 def _load(workflow: Workflow, scanned: Any, store: StagedStore, record: dict[str, Any]) -> Any:
     # fit and modes always read the compress result back from the staging store, so a
     # computed, kept or reused result gives them the very same numbers
-    return stored.load_compressed(store.writer.root, scanned.reader, list(workflow.archive.fields),
+    lift = workflow.field_lift
+    fields = [f.name for f in lift.lifted(list(workflow.archive.fields))] if lift else list(workflow.archive.fields)
+    return stored.load_compressed(store.writer.root, scanned.reader, fields,
                                   passes=int(record.get("passes", 0)), snapshot_block=scanned.snapshot_block,
                                   where=str(store.store_path))
 
@@ -461,12 +463,18 @@ def _fit_and_modes(workflow: Workflow, scanned: Any, scheduler: Scheduler, store
     # fit is cheap (no archive read): recompute it whenever modes must be written again
     started = _now()
     store.begin("fit")
-    fit, residuals = stage_functions.fit_stage(workflow, compressed, scanned)
-    order, fit_warnings = stored.write_fit(store.writer, fit, scanned.dt, residuals=residuals)
+    fit = stage_functions.fit_stage(workflow, compressed, scanned,
+                                    memory_budget=stage_functions.compress_memory(workflow, scheduler),
+                                    say=reporter.message)
+    order, fit_warnings = stored.write_fit(store.writer, fit, scanned.dt, residuals=fit.residuals)
+    stored.write_fit_details(store.writer, fit, order, scanned.time)
+    fit_warnings = list(fit.warnings) + fit_warnings
     warnings.extend(fit_warnings)
     n_modes = int(order.size)
+    lift = {"lift": dict(fit.lift)} if fit.lift else {}
     records["fit"] = (store.finish("fit", {
-        "fingerprint": fingerprints["fit"], "status": "computed", "passes": 0, "bytes_read": 0,
+        "fingerprint": fingerprints["fit"], "status": "computed", "passes": 0,
+        "bytes_read": int(fit.lift.get("bytes_read", 0)), "method": fit.method, **lift,
         "n_modes": n_modes, "warnings": fit_warnings, "started": started.isoformat(), "finished": _now().isoformat()}))
     reporter.end("fit", f"computed; {n_modes} modes")
     faults.finished("fit")

@@ -18,6 +18,7 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from snaplift.errors import ConfigError
+from snaplift.workflow.lift_section import LiftEntry, check_lift, field_lift, state_source
 
 __all__ = [
     "Workflow",
@@ -55,7 +56,12 @@ class SnapshotRange(_Section):
 
 
 class ArchiveSection(_Section):
-    path: str = Field(description="HDF5/netCDF-4 file, .zarr, .npy, or a glob of per-snapshot files")
+    """``archive:`` — where the snapshots are. ``path`` may be a list of files, each one run
+    (same fields and grids); ``runs`` names a dataset of run labels (one per snapshot,
+    each run's snapshots contiguous). No pair and no delay window crosses a run boundary."""
+
+    path: str | list[str] = Field(
+        description="HDF5/netCDF-4 file, .zarr, .npy, a glob of per-snapshot files, or a list of files, one per run")
     fields: list[str] = Field(min_length=1)
     time: str | None = Field(None, description="dataset holding the snapshot times")
     step: float | None = Field(None, gt=0, description="fixed time step when there is no time dataset")
@@ -63,9 +69,24 @@ class ArchiveSection(_Section):
     mask: str | None = Field(None, description="boolean dataset, true = excluded point")
     snapshots: SnapshotRange = SnapshotRange()
     format: Literal["hdf5", "zarr", "series", "npy"] | None = None
+    runs: str | None = Field(None, description="dataset with one run label per snapshot")
+
+    @field_validator("path")
+    @classmethod
+    def _paths(cls, value: str | list[str]) -> str | list[str]:
+        if isinstance(value, list):
+            if not value:
+                raise ValueError("a list of archive files needs at least one path")
+            if len(set(value)) != len(value):
+                raise ValueError("the archive files of a list must be distinct")
+            if len(value) == 1:
+                return value[0]
+        return value
 
     @model_validator(mode="after")
     def _time_source(self) -> ArchiveSection:
+        if self.runs is not None and isinstance(self.path, list):
+            raise ValueError("give either a list of files (each a run) or 'runs' (a dataset of run labels), not both")
         if self.time is not None and self.step is not None:
             raise ValueError("give either 'time' (a dataset) or 'step' (a number), not both")
         if len(set(self.fields)) != len(self.fields):
@@ -153,10 +174,12 @@ class FitSection(_Section):
     residual (Colbrook & Townsend 2024), ``trust_threshold`` marks it trusted.
     """
 
-    method: Literal["dmd"] = "dmd"
+    method: Literal["dmd", "edmd", "optimized"] = "dmd"
     rank: int | Literal["optimal"] | EnergyRank | None = Field(
-        None, description="second truncation: a number, {energy: 0.999}, or optimal"
+        None, description="dmd: second truncation; edmd: truncation of the lifted data; optimized: exponentials"
     )
+    coefficients: int | None = Field(
+        None, ge=1, description="edmd/optimized on coefficients: how many leading coefficients form the state")
     debias: Literal["none", "forward-backward", "total-least-squares"] = "none"
     holdout: float = Field(0.2, ge=0, lt=0.9, description="fraction of pairs held out for residuals")
     trust_threshold: float = Field(0.01, gt=0, description="residual below which an eigenvalue is trusted")
@@ -169,15 +192,16 @@ class FitSection(_Section):
             raise ValueError(f"must be a number >= 1, {{energy: fraction}} or 'optimal', got {value!r}")
         return value
 
-    @field_validator("method", mode="before")
-    @classmethod
-    def _later_methods(cls, value: Any) -> Any:
-        if value in ("edmd", "optimized"):
-            raise NotImplementedError(
-                f"fit.method {value!r} is available in the Python API (snaplift.fitting) but not yet "
-                "from the workflow file; use method: dmd"
-            )
-        return value
+    @model_validator(mode="after")
+    def _method_options(self) -> FitSection:
+        if self.debias != "none" and self.method != "dmd":
+            raise ValueError(f"debias applies to method 'dmd', not {self.method!r} (optimized DMD is itself "
+                             "robust to noise; for edmd use a truncation rank)")
+        if self.method == "optimized" and self.rank is not None and not isinstance(self.rank, int):
+            raise ValueError("method 'optimized' needs rank as a number of exponentials (or none: all coefficients)")
+        if self.coefficients is not None and self.method == "dmd":
+            raise ValueError("coefficients applies to methods 'edmd' and 'optimized'; for dmd use rank")
+        return self
 
     def rank_argument(self) -> int | float | str | None:
         """The ``rank`` argument of :func:`snaplift.fitting.fit_dmd`."""
@@ -330,7 +354,7 @@ def parse_walltime(value: str) -> float:
 class Workflow(_Section):
     archive: ArchiveSection
     prepare: PrepareSection = PrepareSection()
-    lift: list[dict[str, Any]] = Field(default_factory=list)
+    lift: list[LiftEntry] = Field(default_factory=list)
     compress: CompressSection = CompressSection()
     fit: FitSection = FitSection()
     output: OutputSection = OutputSection()
@@ -345,30 +369,52 @@ class Workflow(_Section):
         # them against the workflow file's folder before validation
         return resolve_cluster(value, None)
 
-    @field_validator("lift")
-    @classmethod
-    def _lift(cls, value: list[dict[str, Any]]) -> list[dict[str, Any]]:
-        if value:
-            raise NotImplementedError(
-                "lift: dictionaries of observables are not available in this version; use lift: []"
-            )
-        return value
-
     @model_validator(mode="after")
     def _combinations(self) -> Workflow:
         if isinstance(self.fit.rank, int) and self.fit.rank > self.compress.rank:
             raise ValueError(
                 f"fit.rank ({self.fit.rank}) cannot exceed compress.rank ({self.compress.rank})"
             )
+        check_lift(list(self.lift), list(self.archive.fields), self.fit.method)
         if isinstance(self.prepare.scale, dict):
-            missing = sorted(set(self.archive.fields) - set(self.prepare.scale))
-            extra = sorted(set(self.prepare.scale) - set(self.archive.fields))
+            expected = set(self.archive.fields) | set(scaled_lifted_names(self))
+            missing = sorted(expected - set(self.prepare.scale))
+            extra = sorted(set(self.prepare.scale) - expected)
             if missing or extra:
                 raise ValueError(
-                    "prepare.scale must give one positive number per archive field "
-                    f"{self.archive.fields}; missing {missing}, unknown {extra}"
+                    "prepare.scale must give one positive number per archive field and pointwise term "
+                    f"{sorted(expected)}; missing {missing}, unknown {extra}"
                 )
         return self
+
+    @property
+    def field_lift(self) -> Any:
+        """The raw-field lifting (:class:`~snaplift.lifting.FieldLift`) or None."""
+        return field_lift(list(self.lift))
+
+    @property
+    def state_source(self) -> str | None:
+        """``"coefficients"`` / ``"state"`` for a state dictionary (EDMD), else None."""
+        return state_source(list(self.lift))
+
+
+def scaled_lifted_names(workflow: Workflow) -> list[str]:
+    """Lifted field names (other than the fields themselves) a ``prepare.scale`` mapping must give.
+
+    Delay copies share the scale of the undelayed field.
+    """
+    lift = field_lift(list(workflow.lift))
+    if lift is None:
+        return []
+    return [f.name for f in lift.lifted(list(workflow.archive.fields)) if f.block == 0 and f.term != "x"]
+
+
+def scale_of(scale: dict[str, float], name: str) -> float:
+    """The ``prepare.scale`` value of a lifted field: its own name, else without the delay suffix."""
+    if name in scale:
+        return float(scale[name])
+    base = re.sub(r"_delay\d+$", "", name)
+    return float(scale[base])
 
 
 _UNITS = {"": 1, "b": 1, "k": 10**3, "kb": 10**3, "m": 10**6, "mb": 10**6, "g": 10**9,
@@ -412,8 +458,11 @@ def _format_validation_error(error: ValidationError, source: str) -> str:
                 message += f"; allowed keys: {', '.join(allowed)}"
             parts.append(f"{key}: {message}")
             continue
+        if not key:  # a rule across sections: its message names the keys
+            parts.append(message)
+            continue
         shown = json.dumps(given, default=str) if not isinstance(given, dict) else "{...}"
-        parts.append(f"{key or '(top level)'} = {shown}: {message}")
+        parts.append(f"{key} = {shown}: {message}")
     return f"invalid workflow {source}: " + "; ".join(parts)
 
 
@@ -472,8 +521,10 @@ def load_workflow(path: str | Path) -> tuple[Workflow, str, Path]:
     return parse_workflow(data, source=str(path), folder=folder), text, folder
 
 
-def resolve_path(folder: Path, value: str) -> str:
-    """Resolve a path (or glob) from the workflow against the workflow file's folder."""
+def resolve_path(folder: Path, value: Any) -> Any:
+    """Resolve a path (or glob, or a list of them) from the workflow against the workflow file's folder."""
+    if isinstance(value, list):
+        return [resolve_path(folder, v) for v in value]
     candidate = Path(value).expanduser()
     return str(candidate if candidate.is_absolute() else (folder / candidate))
 

@@ -7,20 +7,34 @@ the previous stage's result and returns a frozen record. None of them writes: th
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
 from snaplift.archive import Reader, check_times, open_archive, plan_tiles, snapshot_times
+try:  # TEMPORARY until archive/runs.py lands
+    from snaplift.archive import run_lengths_from_labels, selected_run_lengths
+except ImportError:
+    def selected_run_lengths(run_lengths, snapshot_index):
+        edges = np.concatenate(([0], np.cumsum(run_lengths)))
+        counts = np.diff(np.searchsorted(snapshot_index, edges))
+        return counts[counts > 0]
+
+    def run_lengths_from_labels(labels, *, name, path):
+        change = np.flatnonzero(labels[1:] != labels[:-1]) + 1
+        return np.diff(np.concatenate(([0], change, [labels.size])))
+from snaplift.archive._base import ArchiveInfo
 from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
 from snaplift.archive.plan import TilePlan
 from snaplift.cluster import Scheduler
-from snaplift.errors import ArchiveError, FieldNotFoundError, FitError, TimeSpacingError
-from snaplift.fitting import DMDFit, ResidualReport, fit_dmd_with_residuals
+from snaplift.errors import ArchiveError, ConfigError, FieldNotFoundError, TimeSpacingError
 from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation
-from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path
+from snaplift.lifting import delayed_run_lengths
+from snaplift.workflow.fit_methods import FitOutcome, fit_outcome
+from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path, scale_of
 
 __all__ = ["Scanned", "Compressed", "scan_stage", "compress_stage", "fit_stage", "plan_compress",
            "compress_memory", "TIME_RTOL"]
@@ -32,6 +46,11 @@ TIME_RTOL = 1e-3
 
 @dataclass(frozen=True)
 class Scanned:
+    """What scan hands on. ``snapshot_index``, ``time`` and ``run_lengths`` describe the
+    columns of the snapshot matrix (with delays: the windows, each carrying its first
+    snapshot); ``selected_index`` / ``selected_run_lengths`` the snapshots selected
+    before the delay windows are formed; ``uniform`` whether the time step is fixed."""
+
     reader: Reader
     snapshot_index: np.ndarray
     time: np.ndarray
@@ -40,6 +59,15 @@ class Scanned:
     memory_bytes: int
     warnings: tuple[str, ...] = ()
     plan: TilePlan | None = None
+    run_lengths: np.ndarray | None = None
+    selected_index: np.ndarray | None = None
+    selected_run_lengths: np.ndarray | None = None
+    uniform: bool = True
+    lifted_rows: int = 0
+
+    @property
+    def columns_run_lengths(self) -> np.ndarray:
+        return np.array([self.snapshot_index.size]) if self.run_lengths is None else self.run_lengths
 
 
 @dataclass(frozen=True)
@@ -67,6 +95,7 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler) -> Scanne
     section = workflow.archive
     reader = open_archive(resolve_path(folder, section.path), format=section.format)
     info = reader.describe()
+    _check_state_size(workflow, info)
     for name in section.fields:
         if name not in info.fields:
             raise FieldNotFoundError(
@@ -82,27 +111,105 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler) -> Scanne
         )
     all_times = snapshot_times(reader, time=section.time, step=section.step, n_snapshots=total)
     times = np.asarray(all_times, dtype=np.float64)[index]
-    spacing = check_times(times, rtol=TIME_RTOL)
-    if not spacing.increasing:
-        bad = int(np.flatnonzero(np.diff(times) <= 0)[0])
-        raise TimeSpacingError(
-            f"{reader.path}: snapshot times must increase; time[{index[bad + 1]}] = {times[bad + 1]} "
-            f"follows time[{index[bad]}] = {times[bad]}"
-        )
-    if not spacing.uniform:
-        gap = spacing.worst_gap_index
-        raise TimeSpacingError(
-            f"{reader.path}: snapshot times are not uniformly spaced (median step {spacing.dt:.6g}, "
-            f"tolerance {TIME_RTOL:g} relative); worst gap {spacing.worst_gap_value:.6g} between snapshots "
-            f"{index[gap]} and {index[gap + 1]}; DMD needs a fixed step: select a uniform range with "
-            "archive.snapshots"
-        )
-    dt = float(spacing.dt)
+    selected_runs = selected_run_lengths(archive_run_lengths(reader, section.runs, total), index)
+    dt, uniform = _run_time_step(reader.path, times, index, selected_runs,
+                                 allow_uneven=workflow.fit.method == "optimized")
+    columns, column_runs = np.arange(index.size), selected_runs
+    lift = workflow.field_lift
+    if lift is not None and lift.delays > 1:
+        try:
+            columns = lift.columns(selected_runs)[0]
+            column_runs = delayed_run_lengths(selected_runs, lift.delays, lift.spacing)
+        except ConfigError as error:
+            raise ConfigError(f"lift delays on {reader.path}: {error}") from None
     plan = plan_compress(workflow, info, scheduler)
     block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
     # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
     snapshot_block = max(1, block // section.snapshots.every)
-    return Scanned(reader, index, times, dt, snapshot_block, plan.memory_bytes, plan=plan)
+    lifted = lifted_info(info, workflow)
+    lifted_rows = sum(f.n_points for f in lifted.fields.values()) if lifted is not info else 0
+    return Scanned(reader, index[columns], times[columns], dt, snapshot_block, plan.memory_bytes, plan=plan,
+                   run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
+                   selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
+                   lifted_rows=int(lifted_rows))
+
+
+def archive_run_lengths(reader: Reader, runs: str | None, total: int) -> np.ndarray:
+    """Snapshots per run of the whole archive: from a run-label dataset, the files of a
+    several-file archive, or one run."""
+    if runs is not None:
+        info = reader.describe()
+        if runs not in info.variables and runs not in info.fields:
+            raise FieldNotFoundError(
+                f"archive.runs dataset '{runs}' not found in {reader.path}; datasets present: "
+                f"{', '.join(sorted(info.variables)) or '(none)'}"
+            )
+        labels = np.asarray(reader.read_variable(runs))
+        if labels.shape != (total,):
+            raise ArchiveError(f"{reader.path}: run dataset '{runs}' has shape {labels.shape}; expected "
+                               f"({total},), one run label per snapshot")
+        return run_lengths_from_labels(labels, name=runs, path=str(reader.path))
+    lengths = getattr(reader, "run_lengths", None)
+    return np.asarray(lengths(), dtype=np.int64) if callable(lengths) else np.array([total], dtype=np.int64)
+
+
+def _run_time_step(path: str, times: np.ndarray, index: np.ndarray, run_lengths: np.ndarray, *,
+                   allow_uneven: bool) -> tuple[float, bool]:
+    """Time step shared by every run (times may restart in each run); (dt, uniform)."""
+    steps: list[np.ndarray] = []
+    start = 0
+    for length in np.asarray(run_lengths, dtype=np.int64):
+        segment, where = times[start:start + length], index[start:start + length]
+        start += int(length)
+        if segment.size < 2:
+            continue
+        spacing = check_times(segment, rtol=TIME_RTOL)
+        if not spacing.increasing:
+            bad = int(np.flatnonzero(np.diff(segment) <= 0)[0])
+            raise TimeSpacingError(
+                f"{path}: snapshot times must increase within a run; time[{where[bad + 1]}] = {segment[bad + 1]} "
+                f"follows time[{where[bad]}] = {segment[bad]}"
+            )
+        steps.append(np.column_stack([np.diff(segment), where[:-1], where[1:]]))
+    if not steps:
+        raise ArchiveError(f"{path}: no run has two selected snapshots; DMD needs snapshot pairs")
+    table = np.concatenate(steps)
+    dt = float(np.median(table[:, 0]))
+    deviation = np.abs(table[:, 0] - dt)
+    worst = int(np.argmax(deviation))
+    uniform = bool(deviation[worst] <= TIME_RTOL * abs(dt) + 4 * np.finfo(np.float64).eps * np.max(np.abs(times)))
+    if not uniform and not allow_uneven:
+        raise TimeSpacingError(
+            f"{path}: snapshot times are not uniformly spaced (median step {dt:.6g}, tolerance {TIME_RTOL:g} "
+            f"relative); worst gap {table[worst, 0]:.6g} between snapshots {int(table[worst, 1])} and "
+            f"{int(table[worst, 2])}; DMD needs a fixed step: select a uniform range with archive.snapshots, "
+            "or use fit.method: optimized (any spacing)"
+        )
+    return dt, uniform
+
+
+def lifted_info(info: ArchiveInfo, workflow: Workflow) -> ArchiveInfo:
+    """The archive as the planner sees it after raw-field lifting: one field per lifted field."""
+    lift = workflow.field_lift
+    if lift is None:
+        return info
+    fields = {f.name: replace(info.fields[f.source], name=f.name)
+              for f in lift.lifted(list(workflow.archive.fields))}
+    return replace(info, fields=fields)
+
+
+def _check_state_size(workflow: Workflow, info: ArchiveInfo) -> None:
+    if workflow.state_source != "state":
+        return
+    from snaplift.workflow.lift_section import STATE_LIMIT
+
+    values = sum(info.fields[f].n_points for f in workflow.archive.fields if f in info.fields)
+    if values > STATE_LIMIT:
+        raise ConfigError(
+            f"lift on: state needs a small state; the fields {workflow.archive.fields} have {values} values per "
+            f"snapshot (at most {STATE_LIMIT}); use on: coefficients (the dictionary lifts the reduced "
+            "coefficients) or mask points out (archive.mask)"
+        )
 
 
 def compress_memory(workflow: Workflow, scheduler: Scheduler) -> int:
@@ -118,8 +225,10 @@ def compress_memory(workflow: Workflow, scheduler: Scheduler) -> int:
 def plan_compress(workflow: Workflow, info, scheduler: Scheduler) -> TilePlan:
     """The tile plan of the compress stage for this workflow and scheduler (metadata only)."""
     settings = workflow.compress
+    info = lifted_info(info, workflow)
     return plan_tiles(
-        info, list(workflow.archive.fields), memory_bytes=compress_memory(workflow, scheduler),
+        info, list(info.fields) if workflow.field_lift is not None else list(workflow.archive.fields),
+        memory_bytes=compress_memory(workflow, scheduler),
         workers=scheduler.workers, method=settings.method, rank=settings.rank, oversample=settings.oversample,
         power_iterations=settings.power_iterations, check_pass=settings.check_pass,
         sketch_widths=settings.sketch_widths, shared_memory=scheduler.kind == "threads",
@@ -141,22 +250,22 @@ def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, *
 
     section = workflow.archive
     plan = scanned.plan
-    matrix = build_snapshot_matrix(
-        scanned.reader, list(section.fields), snapshots=scanned.snapshot_index,
-        snapshot_block=scanned.snapshot_block, weights=section.weights, mask=section.mask,
-        snapshot_blocks=None if plan is None else plan.snapshot_blocks,
-    )
+    matrix = snapshot_matrix_of(workflow, scanned)
     n, m = matrix.shape
     settings = workflow.compress
-    if settings.rank > min(n, m):
-        raise ArchiveError(
-            f"compress.rank = {settings.rank} exceeds what the data allow (min of {n} points and {m} snapshots)"
-        )
+    rank = settings.rank
+    if rank > min(n, m):
+        if workflow.state_source != "state":
+            raise ArchiveError(
+                f"compress.rank = {settings.rank} exceeds what the data allow (min of {n} points and {m} snapshots)"
+            )
+        rank = min(n, m)  # a small raw state: its basis is only kept for the diagnostics
     options = CompressOptions(
-        method=settings.method, rank=settings.rank, oversample=settings.oversample,
+        method=settings.method, rank=rank, oversample=settings.oversample,
         power_iterations=settings.power_iterations, seed=settings.seed,
         sketch_widths=None if settings.sketch_widths is None else tuple(settings.sketch_widths),
-        check_pass=settings.check_pass, center=workflow.prepare.center, scale=workflow.prepare.scale,
+        check_pass=settings.check_pass, center=workflow.prepare.center,
+        scale=lifted_scale(workflow.prepare.scale, matrix),
     )
     with runner_for(scheduler) as runner:
         result = compress(matrix, plan, options, runner=runner,
@@ -168,21 +277,33 @@ def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, *
                       sketch_state=result.sketch_state, info=result.info)
 
 
-def fit_stage(workflow: Workflow, compressed: Compressed, scanned: Scanned) -> tuple[DMDFit, ResidualReport]:
-    """DMD of the coefficients (affine term when the data were centred), with residuals.
+def snapshot_matrix_of(workflow: Workflow, scanned: Scanned, snapshots: np.ndarray | None = None) -> SnapshotMatrix:
+    """The (lifted) snapshot matrix of the workflow over the scanned selection."""
+    section = workflow.archive
+    plan = scanned.plan
+    selected = scanned.selected_index if scanned.selected_index is not None else scanned.snapshot_index
+    return build_snapshot_matrix(
+        scanned.reader, list(section.fields), snapshots=selected if snapshots is None else snapshots,
+        snapshot_block=scanned.snapshot_block, weights=section.weights, mask=section.mask,
+        snapshot_blocks=None if plan is None else plan.snapshot_blocks,
+        lift=workflow.field_lift, run_lengths=scanned.selected_run_lengths if snapshots is None else None,
+    )
 
-    Returns the fit and its :class:`~snaplift.fitting.ResidualReport` (residual and trust
-    of every eigenvalue on the held-out pairs, Colbrook & Townsend 2024).
+
+def lifted_scale(scale: str | dict[str, float], matrix: SnapshotMatrix) -> str | dict[str, float]:
+    """``prepare.scale`` for every (lifted) field of ``matrix`` (delay copies share their field's)."""
+    if not isinstance(scale, dict):
+        return scale
+    return {f.name: scale_of(scale, f.name) for f in matrix.fields}
+
+
+def fit_stage(workflow: Workflow, compressed: Compressed, scanned: Scanned, *, memory_budget: int | None = None,
+              say: Any = None) -> FitOutcome:
+    """``fit.method`` on the compress result (:mod:`snaplift.workflow.fit_methods`).
+
+    DMD of the coefficients (affine term when the data were centred), EDMD of a
+    dictionary of the coefficients or of the raw state, or optimized DMD; each with
+    residuals (Colbrook & Townsend 2024) and amplitudes per run. ``memory_budget`` bounds
+    the lifted matrix of EDMD; ``say`` receives the lifted size before fitting.
     """
-    coefficients = compressed.lowrank.coefficient
-    settings = workflow.fit
-    try:
-        return fit_dmd_with_residuals(
-            coefficients, scanned.dt, holdout=settings.holdout, seed=settings.seed,
-            trust_threshold=settings.trust_threshold, rank=settings.rank_argument(),
-            affine=workflow.prepare.center, debias=settings.debias,
-        )
-    except FitError:
-        raise
-    except np.linalg.LinAlgError as error:
-        raise FitError(f"DMD fit failed on the {coefficients.shape} coefficients: {error}") from None
+    return fit_outcome(workflow, compressed, scanned, memory_budget=memory_budget, say=say)

@@ -1,0 +1,110 @@
+"""Forecast from a result store: advance the fitted model from any snapshot, in field units.
+
+The store holds everything the linear model needs (``DESIGN.md``, "Result store"): the
+eigenvalues (``spectrum/``), the modes in field units (``modes/``), the mean or the fixed
+point (``prepare/``) and, to start from snapshot ``j``, the amplitudes of the modes at
+``j``:
+
+- DMD and optimized DMD: the least-squares amplitudes of the modes' coefficients
+  (``operator/mode_coefficient``) against the snapshot's coefficients
+  (``basis/coefficient[:, j]``), after subtracting the fixed point (affine fits);
+- EDMD: the Koopman eigenfunctions evaluated at the snapshot (``eigenfunctions/value``),
+  so that ``x_j = sum_k mode_k phi_k(x_j)`` (Koopman mode expansion, Williams,
+  Kevrekidis & Rowley 2015).
+
+Then ``x_{j+s} = offset + sum_k mode_k b_k lambda_k^s`` with the offset the fixed point
+(affine fits), the mean (centred data) or zero. A data-driven surrogate is valid only
+near the data it was fitted to: a forecast far beyond the fitted time span is an
+extrapolation (the store's ``caution`` attribute says so).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import numpy as np
+import scipy.linalg
+
+from snaplift.errors import ResultStoreError
+from snaplift.results.store import open_result
+
+__all__ = ["forecast_fields"]
+
+
+def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
+                    fields: list[str] | None = None) -> dict[str, np.ndarray]:
+    """Model fields at steps ``0 .. n_steps`` after snapshot ``snapshot`` (a column index).
+
+    Parameters
+    ----------
+    store : path of a complete result store
+    snapshot : int
+        Column of the snapshot matrix to start from (``diagnostics/time`` gives its time);
+        negative values count from the end.
+    n_steps : int
+        Steps of ``spectrum.attrs['dt']`` to advance (0 returns the model at the start).
+    fields : list of str, optional
+        Which ``modes/`` fields (default all).
+
+    Returns
+    -------
+    dict of str to ndarray
+        ``field -> (n_steps + 1, *grid)`` real values (NaN at masked points), plus
+        ``"time"`` (n_steps + 1,).
+
+    Examples
+    --------
+    >>> out = forecast_fields("results/fin-duct.zarr", snapshot=-1, n_steps=20)  # doctest: +SKIP
+    >>> out["T"].shape                                                          # doctest: +SKIP
+    (21, 50, 250)
+    """
+    root = open_result(store)
+    for group in ("spectrum", "modes", "diagnostics"):
+        if group not in root:
+            raise ResultStoreError(f"result store {store} has no group '{group}'; it has no fit to forecast from")
+    eigenvalue = np.asarray(root["spectrum/eigenvalue"][...], dtype=np.complex128)
+    dt = float(root["spectrum"].attrs.get("dt", 1.0))
+    time = np.asarray(root["diagnostics/time"][...], dtype=np.float64)
+    if isinstance(snapshot, bool) or not isinstance(snapshot, (int, np.integer)) or not -time.size <= snapshot < time.size:
+        raise ResultStoreError(f"snapshot must be a column index in -{time.size}..{time.size - 1}; got {snapshot!r}")
+    if isinstance(n_steps, bool) or not isinstance(n_steps, (int, np.integer)) or n_steps < 0:
+        raise ResultStoreError(f"n_steps must be an integer >= 0; got {n_steps!r}")
+    column = int(snapshot) % time.size
+    amplitude = _amplitudes(root, column, eigenvalue, store)
+    powers = np.power.outer(eigenvalue, np.arange(int(n_steps) + 1))  # (mode, step)
+    weights = amplitude[:, None] * powers
+    names = sorted(root["modes"].array_keys()) if fields is None else list(fields)
+    out: dict[str, np.ndarray] = {"time": time[column] + dt * np.arange(int(n_steps) + 1)}
+    for name in names:
+        if name not in root["modes"]:
+            raise ResultStoreError(f"result store {store} has no modes of field '{name}'; "
+                                   f"fields: {', '.join(sorted(root['modes'].array_keys()))}")
+        modes = np.asarray(root[f"modes/{name}"][...])  # (mode, *grid)
+        values = np.tensordot(weights, modes, axes=([0], [0])).real  # (step, *grid)
+        state_space = "operator" in root and root["operator"].attrs.get("space") == "state"
+        out[name] = values if state_space else values + _offset(root, name)
+    return out
+
+
+def _amplitudes(root, column: int, eigenvalue: np.ndarray, store) -> np.ndarray:
+    if "eigenfunctions" in root:
+        return np.asarray(root["eigenfunctions/value"][:, column], dtype=np.complex128)
+    if "operator" not in root or "mode_coefficient" not in root["operator"]:
+        raise ResultStoreError(f"result store {store} has no operator/mode_coefficient (written by snaplift 0.2 "
+                               "and later); run the workflow again to forecast from it")
+    modes = np.asarray(root["operator/mode_coefficient"][...], dtype=np.complex128)
+    state = np.asarray(root["basis/coefficient"][:, column], dtype=np.complex128)
+    if "fixed_point_coefficient" in root["operator"]:
+        state = state - np.asarray(root["operator/fixed_point_coefficient"][...])
+    amplitude, *_ = scipy.linalg.lstsq(modes, state, lapack_driver="gelsd")
+    return amplitude
+
+
+def _offset(root, name: str) -> np.ndarray | float:
+    prepare = root["prepare"] if "prepare" in root else None
+    if prepare is None:
+        return 0.0
+    for key in (f"fixed_point_{name}", f"mean_{name}"):
+        if key in prepare:
+            return np.asarray(prepare[key][...], dtype=np.float64)
+    return 0.0
