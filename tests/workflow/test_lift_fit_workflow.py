@@ -186,7 +186,7 @@ def test_edmd_on_state_from_many_short_runs(tmp_path: Path) -> None:
     assert values.shape == (rate.size, 120)
     assert read_group(store, "runs")["run_length"].tolist() == [12] * 10
     modes = read_group(store, "modes")
-    assert modes["x1"].shape == (rate.size,)  # a one-point field: one value per mode
+    assert modes["x1"].shape == (rate.size, 1)  # the field is stored (snapshot, 1): one point
 
 
 def test_edmd_on_coefficients_of_a_field(tmp_path: Path) -> None:
@@ -264,3 +264,20 @@ def test_schema_rejects_bad_lift(lift: list, fit: dict, message: str) -> None:
 
     with pytest.raises(ConfigError, match=message):
         parse_workflow({"archive": {"path": "a.h5", "fields": ["u"]}, "lift": lift, "fit": fit})
+
+
+def test_unquoted_on_key_in_yaml() -> None:
+    # YAML 1.1 reads an unquoted `on` as true (PyYAML, yaml.org/type/bool.html); the lift
+    # entry must still mean `on: state`
+    from snaplift.workflow.schema import parse_workflow
+
+    text = """
+archive: {path: a.h5, fields: [x1, x2]}
+lift:
+  - kind: monomials
+    degree: 2
+    on: state
+fit: {method: edmd}
+"""
+    workflow = parse_workflow(yaml.safe_load(text))
+    assert workflow.state_source == "state"

@@ -235,10 +235,14 @@ def fit_optimized_dmd(
     )
     rate = solution.x[:k] + 1j * solution.x[k:]
     exponentials = np.exp(tau[:, None] * rate[None, :])
+    # columns scaled to unit norm first: a fast-growing exponential would otherwise push
+    # every other column below the solver's rank cut-off
+    column = np.linalg.norm(exponentials, axis=0)
+    column = np.where(column > 0, column, 1.0)
     coefficient, *_ = scipy.linalg.lstsq(
-        exponentials, data.T.astype(np.complex128), lapack_driver="gelsd"
+        exponentials / column, data.T.astype(np.complex128), lapack_driver="gelsd"
     )
-    raw = coefficient.T  # (n, k): modes times amplitudes
+    raw = (coefficient / column[:, None]).T  # (n, k): modes times amplitudes
     modes = normalize_modes(raw)
     # modes = raw conj(p) / (|p| ||raw||) with p the reference entry, so raw = modes * a:
     norm = np.linalg.norm(raw, axis=0)

@@ -28,7 +28,7 @@ from __future__ import annotations
 
 from typing import Annotated, Any, Literal, Union
 
-from pydantic import BaseModel, ConfigDict, Field, field_validator
+from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from snaplift.errors import ConfigError
 
@@ -89,6 +89,14 @@ class PointwiseEntry(_Entry):
 
 class _StateEntry(_Entry):
     on: Literal["coefficients", "state"] = "coefficients"
+
+    @model_validator(mode="before")
+    @classmethod
+    def _yaml_on(cls, data: Any) -> Any:
+        # YAML 1.1 (PyYAML) reads an unquoted key `on` as the boolean true
+        if isinstance(data, dict) and True in data and "on" not in data:
+            data = {("on" if key is True else key): value for key, value in data.items()}
+        return data
 
 
 class MonomialsEntry(_StateEntry):

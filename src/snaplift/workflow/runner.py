@@ -337,8 +337,14 @@ def _compress(workflow: Workflow, scanned: Any, scheduler: Scheduler, store: Sta
               faults: _Faults, warnings: list[str]) -> tuple[Any, dict[str, Any]]:
     fingerprint = fingerprints["compress"]
     faults.enter("compress")
+    lifted = ""
+    if scanned.lifted_rows:
+        from snaplift.lifting import format_bytes
+
+        size = format_bytes(8 * scanned.lifted_rows * int(scanned.snapshot_index.size))
+        lifted = f", lifted to {scanned.lifted_rows} values per snapshot ({size} per read, never stored)"
     reporter.begin("compress", f"{workflow.compress.method}, rank {workflow.compress.rank}, "
-                   f"{scanned.snapshot_index.size} snapshots")
+                   f"{scanned.snapshot_index.size} snapshots{lifted}")
     record = _kept_or_reused(store, "compress", fingerprint)
     if record is None:
         started = _now()

@@ -13,18 +13,15 @@ from typing import Any
 
 import numpy as np
 
-from snaplift.archive import Reader, check_times, open_archive, plan_tiles, snapshot_times
-try:  # TEMPORARY until archive/runs.py lands
-    from snaplift.archive import run_lengths_from_labels, selected_run_lengths
-except ImportError:
-    def selected_run_lengths(run_lengths, snapshot_index):
-        edges = np.concatenate(([0], np.cumsum(run_lengths)))
-        counts = np.diff(np.searchsorted(snapshot_index, edges))
-        return counts[counts > 0]
-
-    def run_lengths_from_labels(labels, *, name, path):
-        change = np.flatnonzero(labels[1:] != labels[:-1]) + 1
-        return np.diff(np.concatenate(([0], change, [labels.size])))
+from snaplift.archive import (
+    Reader,
+    check_times,
+    open_archive,
+    plan_tiles,
+    run_lengths_from_labels,
+    selected_run_lengths,
+    snapshot_times,
+)
 from snaplift.archive._base import ArchiveInfo
 from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
 from snaplift.archive.plan import TilePlan

@@ -1,0 +1,65 @@
+"""Forecasts from a result store against the exact future of the systems that made the data."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+import yaml
+
+from snaplift.errors import ResultStoreError
+from snaplift.results.forecast import forecast_fields
+from snaplift.workflow.runner import run_workflow
+
+
+def _run(folder: Path, fields: dict[str, np.ndarray], t: np.ndarray, settings: dict) -> Path:
+    with h5py.File(folder / "a.h5", "w") as h5:
+        h5["t"] = t
+        for name, values in fields.items():
+            h5.create_dataset(name, data=values, chunks=(1, *values.shape[1:]))
+    data = {"archive": {"path": "a.h5", "fields": list(fields), "time": "t"}, "output": {"path": "r.zarr"},
+            "cluster": "threads", **settings}
+    (folder / "w.yaml").write_text(yaml.safe_dump(data))
+    return run_workflow(folder / "w.yaml").path
+
+
+def test_dmd_forecast_of_a_centred_linear_system(tmp_path: Path) -> None:
+    # x_j = c + Re(sum_k phi_k lambda_k^j): an affine DMD fit (Hirsh et al. 2020) continues
+    # the data exactly; the forecast from snapshot 20 must equal the stored future snapshots
+    rng = np.random.default_rng(0)
+    pairs = np.array([0.99 * np.exp(0.3j), 0.95 * np.exp(0.8j)])
+    eigenvalues = np.concatenate([pairs, pairs.conj()])
+    phi = rng.standard_normal((6 * 7, 4)) + 1j * rng.standard_normal((6 * 7, 4))
+    u = (phi @ eigenvalues[:, None] ** np.arange(80)).real.T.reshape(80, 6, 7) + 3.0
+    store = _run(tmp_path, {"u": u}, 0.1 * np.arange(80),
+                 {"prepare": {"center": True}, "compress": {"rank": 4, "oversample": 4}})
+    out = forecast_fields(store, 20, 40)
+    np.testing.assert_allclose(out["u"], u[20:61], rtol=0, atol=1e-8 * np.abs(u).max())
+    np.testing.assert_allclose(out["time"], 0.1 * np.arange(20, 61), rtol=1e-12)
+
+
+def test_edmd_forecast_on_the_slow_manifold(tmp_path: Path) -> None:
+    # x1' = mu x1, x2' = lam (x2 - x1^2) (Brunton et al. 2016): the Koopman mode expansion on
+    # the degree-2 monomials is exact, so the forecast follows the closed-form solution
+    mu, lam, dt = -0.05, -1.0, 0.1
+    t = dt * np.arange(100)
+    b = lam / (lam - 2 * mu)
+    x1 = 0.9 * np.exp(mu * t)
+    x2 = (0.2 - b * 0.81) * np.exp(lam * t) + b * x1**2
+    store = _run(tmp_path, {"x1": x1[:, None], "x2": x2[:, None]}, t,
+                 {"prepare": {"scale": "none"}, "compress": {"rank": 2, "oversample": 0, "method": "tsqr"},
+                  "lift": [{"kind": "monomials", "degree": 2, "on": "state"}], "fit": {"method": "edmd"}})
+    out = forecast_fields(store, 10, 50)
+    np.testing.assert_allclose(out["x1"][:, 0], x1[10:61], atol=1e-8)
+    np.testing.assert_allclose(out["x2"][:, 0], x2[10:61], atol=1e-8)
+
+
+def test_forecast_rejects_a_bad_start(tmp_path: Path) -> None:
+    u = np.random.default_rng(1).standard_normal((20, 5))
+    store = _run(tmp_path, {"u": u}, 0.1 * np.arange(20), {"compress": {"rank": 2, "oversample": 2}})
+    with pytest.raises(ResultStoreError, match="snapshot must be a column index in -20..19"):
+        forecast_fields(store, 20, 3)
+    with pytest.raises(ResultStoreError, match="no modes of field 'p'"):
+        forecast_fields(store, 0, 3, fields=["p"])
