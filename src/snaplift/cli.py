@@ -30,6 +30,9 @@ def _user_errors(function: Callable[..., Any]) -> Callable[..., Any]:
         except SnapliftError as error:
             typer.echo(f"snaplift: error: {error}", err=True)
             raise typer.Exit(2) from None
+        except NotImplementedError as error:  # a valid request this version does not support
+            typer.echo(f"snaplift: not supported yet: {error}", err=True)
+            raise typer.Exit(2) from None
         except KeyboardInterrupt:
             typer.echo("snaplift: interrupted; nothing was committed to the result store", err=True)
             raise typer.Exit(130) from None

@@ -1,7 +1,8 @@
 """Archive readers, scan and tile planner: the first stage of the pipeline.
 
 Importing this package registers the built-in readers (HDF5/netCDF-4, zarr v2/v3,
-``.npy`` and series of per-snapshot files); :func:`open_archive` picks one for a path.
+``.npy`` and series of per-snapshot files); :func:`open_archive` picks one for a path
+(and reads a list of paths, one run each, as one archive: :class:`RunsReader`).
 """
 
 from __future__ import annotations
@@ -15,6 +16,11 @@ from snaplift.archive import zarrstore as _zarrstore  # noqa: E402,F401  isort: 
 from snaplift.archive import npy as _npy  # noqa: E402,F401  isort: skip
 from snaplift.archive import series as _series  # noqa: E402,F401  isort: skip
 from snaplift.archive.plan import Tile, TilePlan, plan_tiles  # noqa: E402
+from snaplift.archive.runs import (  # noqa: E402
+    RunsReader,
+    run_lengths_from_labels,
+    selected_run_lengths,
+)
 from snaplift.archive.scan import (  # noqa: E402
     ScanReport,
     TimeSpacing,
@@ -39,4 +45,7 @@ __all__ = [
     "check_times",
     "TimeSpacing",
     "snapshot_times",
+    "RunsReader",
+    "run_lengths_from_labels",
+    "selected_run_lengths",
 ]

@@ -4,7 +4,9 @@ Choice order: a glob pattern (``*``, ``?`` or ``[``) goes to the series reader; 
 file's magic bytes (HDF5 signature, numpy magic, a zarr metadata document in a
 directory) decide; only when they say nothing does the suffix decide. Every reader's
 ``guess_can_open`` follows the same rule through :func:`sniff_format`, so a file named
-``.npy`` that starts with the HDF5 signature opens as HDF5.
+``.npy`` that starts with the HDF5 signature opens as HDF5. A list of two or more paths
+is an archive of several runs (:mod:`snaplift.archive.runs`), each entry opened by the
+same rule.
 """
 
 from __future__ import annotations
@@ -109,23 +111,49 @@ def _guess(path: str) -> type[Reader] | None:
     return None
 
 
+def _paths_of_runs(paths: list[object] | tuple[object, ...]) -> list[str]:
+    """The members of a several-run archive as strings, checked: no empties, no repeats."""
+    if not paths:
+        raise ArchiveError("an archive given as a list needs at least one path; got an empty list")
+    seen: dict[str, int] = {}
+    out = []
+    for position, item in enumerate(paths):
+        if not isinstance(item, str | os.PathLike):
+            raise ArchiveError(
+                f"archive path {position} of the list must be a file name, got "
+                f"{type(item).__name__} {item!r}"
+            )
+        member = os.fspath(item)
+        key = os.path.normpath(os.path.abspath(member))
+        if key in seen:
+            raise ArchiveError(
+                f"archive file {member} is listed twice (positions {seen[key]} and {position}); "
+                "each file of the list is one run"
+            )
+        seen[key] = position
+        out.append(member)
+    return out
+
+
 def open_archive(
-    path: str | os.PathLike[str],
+    path: str | os.PathLike[str] | Sequence[str | os.PathLike[str]],
     *,
     format: str | None = None,
     fields: Sequence[str] | None = None,
     time: str | None = None,
 ) -> Reader:
-    """Return a reader for ``path`` (a file, a zarr directory or a glob pattern).
+    """Return a reader for ``path`` (a file, a zarr directory, a glob pattern or a list).
 
     Parameters
     ----------
     path
         HDF5/netCDF-4 file, zarr v2/v3 store, ``.npy`` file, or a glob pattern of
-        per-snapshot files (``"run/frame_*.h5"``).
+        per-snapshot files (``"run/frame_*.h5"``). A list (or tuple) of two or more of
+        them is an archive of several runs, one per entry, read as one archive by
+        :class:`snaplift.archive.runs.RunsReader`; a list of one opens that entry.
     format
         Skip guessing and use this reader (see :func:`available_readers`; ``netcdf4``
-        is an alias of ``hdf5``).
+        is an alias of ``hdf5``). For a list: the reader of every entry.
     fields
         Datasets to treat as snapshot fields instead of the reader's own rule (for a
         single ``.npy`` or a ``.npy`` series: the one field's name).
@@ -142,7 +170,21 @@ def open_archive(
     >>> reader = open_archive("wake.h5")                      # doctest: +SKIP
     >>> reader.describe().fields["u"].shape                   # doctest: +SKIP
     (400, 96, 64)
+    >>> open_archive(["case_a.h5", "case_b.h5"]).run_lengths()  # doctest: +SKIP
+    array([400, 350])
     """
+    if isinstance(path, list | tuple):
+        members = _paths_of_runs(path)
+        if len(members) > 1:
+            from snaplift.archive.runs import RunsReader  # runs.py opens its members here
+
+            return RunsReader(members, format=format, fields=fields, time=time)
+        path = members[0]
+    if not isinstance(path, str | os.PathLike):
+        raise ArchiveError(
+            "archive path must be a file name or a list of them, got "
+            f"{type(path).__name__} {path!r}"
+        )
     path = os.fspath(path)
     if format is not None:
         name = _ALIASES.get(format.lower(), format.lower())

@@ -57,7 +57,11 @@ class TimeSpacing:
 
 
 def check_times(
-    times: Sequence[float] | np.ndarray, *, rtol: float = 1e-6, atol: float | None = None
+    times: Sequence[float] | np.ndarray,
+    *,
+    rtol: float = 1e-6,
+    atol: float | None = None,
+    run_lengths: Sequence[int] | np.ndarray | None = None,
 ) -> TimeSpacing:
     """Median step, uniformity and the worst gap of a time axis.
 
@@ -68,6 +72,10 @@ def check_times(
     rtol, atol
         Tolerance ``|dt_i - dt| <= rtol * |dt| + atol`` (see the module notes; the
         default ``atol`` is ``4 * eps * max|t|`` in the precision of ``times``).
+    run_lengths
+        Snapshots per run when ``times`` holds several runs one after the other: the
+        steps across run boundaries are left out (times may restart in each run);
+        ``worst_gap_index`` still indexes ``times``.
 
     Returns
     -------
@@ -91,11 +99,19 @@ def check_times(
     eps = float(np.finfo(values.dtype).eps)
     data = values.astype(np.float64)
     steps = np.diff(data)
+    positions = _within_run_steps(values.size, run_lengths)
+    if positions.size == 0:
+        raise ArchiveError(
+            "time spacing needs a run with 2 or more times; run lengths "
+            f"{np.asarray(run_lengths).tolist()}"
+        )
+    steps = steps[positions]
     dt = float(np.median(steps))
     if atol is None:
         atol = 4.0 * eps * float(np.max(np.abs(data)))
     deviation = np.abs(steps - dt)
-    worst = int(np.argmax(deviation))
+    worst_step = int(np.argmax(deviation))
+    worst = int(positions[worst_step])
     uniform = bool(np.all(deviation <= rtol * abs(dt) + atol)) and dt > 0
     return TimeSpacing(
         n_times=int(values.size),
@@ -103,11 +119,25 @@ def check_times(
         uniform=uniform,
         increasing=bool(np.all(steps > 0)),
         worst_gap_index=worst,
-        worst_gap_value=float(steps[worst]),
-        max_relative_deviation=float(deviation[worst] / abs(dt)) if dt else float("inf"),
+        worst_gap_value=float(steps[worst_step]),
+        max_relative_deviation=float(deviation[worst_step] / abs(dt)) if dt else float("inf"),
         rtol=float(rtol),
         atol=float(atol),
     )
+
+
+def _within_run_steps(n_times: int, run_lengths: Sequence[int] | np.ndarray | None) -> np.ndarray:
+    """Positions ``i`` of the steps ``t[i+1] - t[i]`` that stay inside one run."""
+    positions = np.arange(n_times - 1)
+    if run_lengths is None:
+        return positions
+    lengths = np.asarray(run_lengths, dtype=np.int64)
+    if lengths.ndim != 1 or int(lengths.sum()) != n_times or np.any(lengths < 0):
+        raise ArchiveError(
+            f"run lengths {lengths.tolist()} do not add up to the {n_times} times given"
+        )
+    ends = np.cumsum(lengths)[:-1] - 1  # last snapshot of every run but the last
+    return np.setdiff1d(positions, ends)
 
 
 def snapshot_times(
@@ -222,6 +252,8 @@ class ScanReport:
     plan: dict[str, Any] | None
     plan_error: str | None
     warnings: tuple[str, ...]
+    #: snapshots per run for an archive of several runs (None: one run)
+    run_lengths: tuple[int, ...] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return _plain(dataclasses.asdict(self))  # type: ignore[no-any-return]
@@ -361,6 +393,15 @@ def scan_archive(
     if not chosen:
         warnings.append(f"no snapshot fields found in {reader.path}")
 
+    runs = info.attrs.get("run_lengths")
+    run_lengths = tuple(int(n) for n in runs) if runs and len(runs) > 1 else None
+    if run_lengths is not None and sum(run_lengths) != n_snapshots:
+        run_lengths = None  # fields chosen with another count: not this archive's runs
+    if run_lengths is not None and min(run_lengths) < 2:
+        short = [k for k, n in enumerate(run_lengths) if n < 2]
+        warnings.append(f"run(s) {', '.join(map(str, short))} have fewer than 2 snapshots "
+                        "and give no snapshot pairs")
+
     source = "step" if step is not None else (time or info.attrs.get("time_variable"))
     times: np.ndarray | None = None
     if step is not None or source is not None:
@@ -375,12 +416,14 @@ def scan_archive(
             stored = np.dtype(variable.attrs.get("stored_dtype", variable.dtype))
         else:
             stored = np.dtype(np.float64)
-        if times.size >= 2:
-            # the tolerance follows the precision the times were stored in
+        within = _within_run_steps(times.size, run_lengths) if times.size >= 2 else None
+        if within is not None and within.size:
+            # the tolerance follows the precision the times were stored in; each run's
+            # times may restart, so steps across run boundaries are not checked
             precision = stored if stored.kind == "f" else np.dtype(np.float64)
-            spacing = check_times(times.astype(precision), rtol=1e-6)
+            spacing = check_times(times.astype(precision), rtol=1e-6, run_lengths=run_lengths)
             if not spacing.increasing:
-                bad = int(np.flatnonzero(np.diff(times) <= 0)[0])
+                bad = int(within[np.diff(times)[within] <= 0][0])
                 warnings.append(
                     f"snapshot times are not increasing: time[{bad + 1}] = {times[bad + 1]:g} "
                     f"follows time[{bad}] = {times[bad]:g}"
@@ -448,4 +491,5 @@ def scan_archive(
         plan=None if plan is None else plan.describe(),
         plan_error=plan_error,
         warnings=tuple(warnings),
+        run_lengths=run_lengths,
     )
