@@ -199,3 +199,27 @@ def test_rank_by_energy_and_optimal_threshold(tmp_path: Path) -> None:
         summary = run_workflow(_workflow(tmp_path, compress={"rank": 10, "oversample": 4}, fit={"rank": rank},
                                          output={"path": f"r-{len(str(rank))}.zarr"}))
         assert read_group(summary.path, "spectrum")["eigenvalue"].size == 4
+
+
+def test_zarr_archive_and_a_list_of_runs(tmp_path: Path) -> None:
+    # the same linear system from a zarr v3 store, then as two runs (zarr + HDF5): DMD
+    # recovers the eigenvalues exactly in both (Tu et al. 2014)
+    import zarr
+
+    pairs = np.array([0.97 * np.exp(0.25j), 0.9 * np.exp(0.7j)])
+    eigenvalues = np.concatenate([pairs, pairs.conj()])
+    u = _linear_system_snapshots((6, 5), 60, eigenvalues, seed=2)
+    group = zarr.open_group(str(tmp_path / "a.zarr"), mode="w", zarr_format=3)
+    group.create_array("u", data=u, chunks=(4, 6, 5))
+    group.create_array("t", data=0.1 * np.arange(60))
+    summary = run_workflow(_workflow(tmp_path, archive={"path": "a.zarr"}, compress={"rank": 4, "oversample": 4}))
+    found = read_group(summary.path, "spectrum")["eigenvalue"]
+    assert all(np.min(np.abs(found - value)) < 1e-10 for value in eigenvalues)
+
+    second = _linear_system_snapshots((6, 5), 140, eigenvalues, seed=2)[100:]  # same system, later start
+    _write_archive(tmp_path / "b.h5", {"u": second}, 0.1 * np.arange(40))
+    summary = run_workflow(_workflow(tmp_path, archive={"path": ["a.zarr", "b.h5"]}, output={"path": "runs.zarr"},
+                                     compress={"rank": 4, "oversample": 4}))
+    found = read_group(summary.path, "spectrum")["eigenvalue"]
+    assert all(np.min(np.abs(found - value)) < 1e-10 for value in eigenvalues)
+    assert read_group(summary.path, "runs")["run_length"].tolist() == [60, 40]

@@ -87,6 +87,11 @@ def _raw_points(reader: Reader, name: str, p0: int, p1: int, s0: int, s1: int) -
     from snaplift.archive._common import read_block
     from snaplift.archive._grouped import GroupedReader
 
+    from snaplift.archive.runs import RunsReader
+
+    if isinstance(reader, RunsReader):  # each member's own (fast) path, joined along time
+        parts = [_raw_points(reader.members[run], name, p0, p1, a, b) for run, a, b in reader.run_slices(s0, s1)]
+        return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=0)
     if isinstance(reader, GroupedReader):
         # same reads as GroupedReader.read_tile, minus its (points, snapshots) copy
         _, entry = reader._field_entry(name)

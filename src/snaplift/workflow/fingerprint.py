@@ -73,7 +73,11 @@ NOT_RESULT_KEYS = frozenset({"memory", "checkpoint_every"})
 def _archive_files(reader: Reader) -> list[Path]:
     info = reader.describe()
     if info.files:
-        return [Path(p) for p in info.files]
+        # a zarr store (or a run of one) is listed as its folder: fingerprint the files in it
+        out: list[Path] = []
+        for entry in map(Path, info.files):
+            out.extend(sorted(p for p in entry.rglob("*") if p.is_file()) if entry.is_dir() else [entry])
+        return out
     root = Path(reader.path)
     if root.is_file():
         return [root]
