@@ -46,6 +46,16 @@ def test_scan_table_and_json(archive: Path) -> None:
     assert data["spacing"]["uniform"] is True
 
 
+def test_scan_of_several_runs(archive: Path) -> None:
+    # the same file twice under two names: two runs of 30 snapshots each
+    copy = archive.with_name("second.h5")
+    copy.write_bytes(archive.read_bytes())
+    out = runner.invoke(app, ["scan", str(archive), str(copy)])
+    assert out.exit_code == 0, out.output
+    assert "2 runs of 30, 30 snapshots" in out.output
+    assert json.loads(runner.invoke(app, ["scan", str(archive), str(copy), "--json"]).output)["n_snapshots"] == 60
+
+
 def test_run_then_spectrum_json(archive: Path, tmp_path: Path) -> None:
     workflow = tmp_path / "w.yaml"
     workflow.write_text(yaml.safe_dump({

@@ -120,7 +120,7 @@ def run(
 @app.command()
 @_user_errors
 def scan(
-    archive: Annotated[str, typer.Argument(help="archive path or glob of per-snapshot files")],
+    archive: Annotated[list[str], typer.Argument(help="archive path or glob of per-snapshot files; several paths: one run each")],
     fields: Annotated[Optional[str], typer.Option(help="comma-separated fields (default: all)")] = None,
     time: Annotated[Optional[str], typer.Option(help="dataset of snapshot times")] = None,
     step: Annotated[Optional[float], typer.Option(help="fixed time step if there is no time dataset")] = None,
@@ -130,13 +130,13 @@ def scan(
 ) -> None:
     """Describe an archive: fields, chunks, times, size, tile plan.
 
-    Example: snaplift scan fin-duct.h5 --fields u,v,T --time t
+    Example: snaplift scan fin-duct.h5 --fields u,v,T --time t   (or: snaplift scan run1.h5 run2.h5)
     """
     from snaplift.archive import open_archive, scan_archive
     from snaplift.report.scan import render_scan, scan_json
     from snaplift.workflow.schema import parse_bytes
 
-    reader = open_archive(archive)
+    reader = open_archive(archive[0] if len(archive) == 1 else archive)
     chosen = [f.strip() for f in fields.split(",")] if fields else None
     report = scan_archive(reader, fields=chosen, time=time, step=step, full=full,
                           memory_bytes=parse_bytes(memory))

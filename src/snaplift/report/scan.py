@@ -36,6 +36,10 @@ def render_scan(report: ScanReport) -> Any:
     head.add_column()
     head.add_row("archive", f"{data['path']} ({data['format']}, {data['files']} file(s), {human_bytes(data['size_bytes'])} on disk)")
     head.add_row("snapshots", str(data["n_snapshots"]))
+    runs = data.get("run_lengths") or []
+    if len(runs) > 1:
+        shown = ", ".join(map(str, runs[:12])) + (", ..." if len(runs) > 12 else "")
+        head.add_row("runs", f"{len(runs)} runs of {shown} snapshots (no pair crosses a run boundary)")
     spacing = data.get("spacing") or {}
     if data.get("time_source"):
         unit = f" {data['time_unit']}" if data.get("time_unit") else ""
