@@ -221,8 +221,19 @@ def compress_memory(workflow: Workflow, scheduler: Scheduler) -> int:
 
 def plan_compress(workflow: Workflow, info, scheduler: Scheduler) -> TilePlan:
     """The tile plan of the compress stage for this workflow and scheduler (metadata only)."""
+    lifted = lifted_info(info, workflow)
+    try:
+        return _plan(workflow, lifted, scheduler)
+    except ArchiveError as error:
+        if lifted is info:
+            raise
+        count = len(lifted.fields)
+        raise type(error)(f"{error}; lift: makes {count} lifted fields of the {len(workflow.archive.fields)} "
+                          "archive fields: fewer delays or pointwise terms also shrink the tiles") from None
+
+
+def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler) -> TilePlan:
     settings = workflow.compress
-    info = lifted_info(info, workflow)
     return plan_tiles(
         info, list(info.fields) if workflow.field_lift is not None else list(workflow.archive.fields),
         memory_bytes=compress_memory(workflow, scheduler),
