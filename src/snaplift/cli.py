@@ -150,7 +150,7 @@ def scan(
 @_user_errors
 def spectrum(
     result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
-    sort: Annotated[str, typer.Option(help="amplitude | frequency | growth | residual")] = "amplitude",
+    sort: Annotated[str, typer.Option(help="amplitude | frequency | growth | residual | ranking")] = "amplitude",
     all_modes: Annotated[bool, typer.Option("--all", help="show every mode")] = False,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
 ) -> None:
@@ -161,8 +161,9 @@ def spectrum(
     from snaplift.errors import ConfigError
     from snaplift.report.table import render_spectrum, spectrum_json
 
-    if sort not in ("amplitude", "frequency", "growth", "residual"):
-        raise ConfigError(f"--sort {sort!r} is not allowed; use amplitude, frequency, growth or residual")
+    if sort not in ("amplitude", "frequency", "growth", "residual", "ranking"):
+        raise ConfigError(f"--sort {sort!r} is not allowed; use amplitude, frequency, growth, residual or ranking "
+                          "(trusted modes first, then by amplitude)")
     if json_output:
         typer.echo(spectrum_json(result, sort=sort))
     else:

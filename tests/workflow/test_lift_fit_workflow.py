@@ -182,6 +182,8 @@ def test_edmd_on_state_from_many_short_runs(tmp_path: Path) -> None:
         assert abs(rate[k] - value) < 1e-6
         assert spectrum["residual"][k] < 1e-8 and spectrum["trusted"][k]
     assert not np.all(spectrum["trusted"])  # x1 x2 and x2^2 do not close: spurious, untrusted
+    trusted = spectrum["trusted"].astype(bool)
+    assert spectrum["ranking"][trusted].max() < spectrum["ranking"][~trusted].min()  # trusted modes rank first
     values = read_group(store, "eigenfunctions")["value"]
     assert values.shape == (rate.size, 120)
     assert read_group(store, "runs")["run_length"].tolist() == [12] * 10

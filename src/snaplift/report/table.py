@@ -13,7 +13,8 @@ from snaplift.results.store import open_result, read_group
 
 __all__ = ["load_spectrum", "spectrum_records", "render_spectrum", "spectrum_json"]
 
-COLUMNS = ("eigenvalue", "rate", "frequency", "growth", "period", "amplitude", "residual", "trusted", "partner")
+COLUMNS = ("eigenvalue", "rate", "frequency", "growth", "period", "amplitude", "residual", "trusted", "partner",
+           "ranking")
 
 
 def load_spectrum(path: str | Path) -> dict[str, np.ndarray]:
@@ -28,6 +29,11 @@ def spectrum_records(spectrum: dict[str, np.ndarray], *, sort: str = "amplitude"
         # the store is already sorted by amplitude with conjugate pairs adjacent (+f, -f)
         order = np.arange(n)
     else:
+        if sort not in spectrum:
+            from snaplift.errors import ResultStoreError
+
+            raise ResultStoreError(f"this result store has no spectrum/{sort} (written by an older snaplift or "
+                                   "without residuals); sort by amplitude, frequency or growth")
         keys = np.asarray(spectrum[sort])
         order = np.argsort(np.abs(keys) if np.iscomplexobj(keys) else keys, kind="stable")
     records = []
@@ -37,7 +43,7 @@ def spectrum_records(spectrum: dict[str, np.ndarray], *, sort: str = "amplitude"
             if name not in spectrum:
                 continue
             value = spectrum[name][i]
-            if name in ("trusted", "partner"):
+            if name in ("trusted", "partner", "ranking"):
                 record[name] = bool(value) if name == "trusted" else int(value)
             elif np.iscomplexobj(value):
                 record[name] = {"real": float(np.real(value)), "imag": float(np.imag(value))}

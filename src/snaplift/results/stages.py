@@ -243,6 +243,13 @@ def write_fit(writer: StoreWriter, fit: Any, dt: float, *, residuals: Any = None
         if untrusted:
             warnings.append(f"{untrusted} of {n_modes} eigenvalue(s) have residual above the trust threshold "
                             f"{residuals.threshold:g} on {residuals.n_pairs} {residuals.pairs} pairs")
+    # ranking: the tool's own order of importance, trusted modes first, then by amplitude
+    # (snaplift.fitting.mode_ranking); 0 is the most important mode
+    flags = np.asarray(table["trusted"], dtype=bool) if residuals is not None else np.ones(order.size, bool)
+    ranking = np.empty(order.size, dtype=np.int64)
+    ranking[np.argsort(~flags, kind="stable")] = np.arange(order.size)
+    writer.array("spectrum", "ranking", ranking, ("mode",),
+                 attrs={"meaning": "0 = most important: trusted modes first, then by amplitude"})
     # partner: position (in this sorted table) of the complex-conjugate eigenvalue, -1 if none
     position = np.empty(n_modes, dtype=np.int64)
     position[order] = np.arange(n_modes)
