@@ -134,9 +134,12 @@ def classify(
        dimension scales; everything else is a variable.
     """
     by_name = {c.name: c for c in candidates}
-    for name in list(fields or []) + ([time] if time else []):
+    for name in list(fields or []):
         if name not in by_name:
-            raise missing_field_error(name, path, sorted(by_name), kind="dataset")
+            shown = sorted(c.name for c in candidates if len(c.shape) >= 2 and _numeric(c.dtype)) or sorted(by_name)
+            raise missing_field_error(name, path, shown)
+    if time and time not in by_name:
+        raise missing_field_error(time, path, sorted(by_name), kind="dataset")
     time_name: str | None = time
     if time is not None and len(by_name[time].shape) != 1:
         raise ArchiveFormatError(

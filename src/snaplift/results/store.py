@@ -47,7 +47,7 @@ def grid_dimensions(grids: dict[str, tuple[int, ...]]) -> dict[str, tuple[str, .
     common = len(set(grids.values())) == 1
     names: dict[str, tuple[str, ...]] = {}
     for field, grid in grids.items():
-        base = ("z", "y", "x")[-len(grid):] if len(grid) <= 3 else tuple(f"axis{i}" for i in range(len(grid)))
+        base = ("z", "y", "x")[3 - len(grid):] if len(grid) <= 3 else tuple(f"axis{i}" for i in range(len(grid)))
         names[field] = base if common else tuple(f"{field}_{b}" for b in base)
     return names
 

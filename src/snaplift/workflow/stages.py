@@ -90,7 +90,9 @@ class Compressed:
 def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler) -> Scanned:
     """Open the archive, select snapshots, check times, plan tiles. Reads metadata only."""
     section = workflow.archive
-    reader = open_archive(resolve_path(folder, section.path), format=section.format)
+    # the workflow names its fields: a one-value-per-snapshot (1-D) dataset is then a field too
+    reader = open_archive(resolve_path(folder, section.path), format=section.format, fields=list(section.fields),
+                          time=section.time)
     info = reader.describe()
     _check_state_size(workflow, info)
     for name in section.fields:
