@@ -307,3 +307,15 @@ def test_pendulum_through_the_workflow(tmp_path: Path) -> None:
     fundamental = candidates[np.argmin(spectrum["ranking"][candidates])]
     assert spectrum["trusted"][fundamental]
     assert abs(spectrum["period"][fundamental] - period) / period < 5e-3
+
+
+def test_edmd_rank_may_exceed_the_coefficients() -> None:
+    # the truncation of the lifted data: degree 2 of 6 coefficients is C(8, 2) = 28 terms
+    from snaplift.workflow.schema import parse_workflow
+
+    data = {"archive": {"path": "a.h5", "fields": ["u"]}, "compress": {"rank": 6},
+            "lift": [{"kind": "monomials", "degree": 2}], "fit": {"method": "edmd", "rank": 20}}
+    assert parse_workflow(data).fit.rank == 20
+    data["fit"] = {"method": "edmd", "coefficients": 8}
+    with pytest.raises(ConfigError, match=r"fit.coefficients \(8\) cannot exceed compress.rank \(6\)"):
+        parse_workflow(data)

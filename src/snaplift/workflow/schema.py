@@ -371,7 +371,11 @@ class Workflow(_Section):
 
     @model_validator(mode="after")
     def _combinations(self) -> Workflow:
-        if isinstance(self.fit.rank, int) and self.fit.rank > self.compress.rank:
+        if self.fit.coefficients is not None and self.fit.coefficients > self.compress.rank:
+            raise ValueError(f"fit.coefficients ({self.fit.coefficients}) cannot exceed compress.rank "
+                             f"({self.compress.rank})")
+        # for edmd, rank truncates the lifted data, which may have more terms than coefficients
+        if self.fit.method != "edmd" and isinstance(self.fit.rank, int) and self.fit.rank > self.compress.rank:
             raise ValueError(
                 f"fit.rank ({self.fit.rank}) cannot exceed compress.rank ({self.compress.rank})"
             )
