@@ -87,7 +87,7 @@ def test_pointwise_square_adds_the_doubled_rate(tmp_path: Path) -> None:
     assert scales.size == 2  # u and u_square have their own RMS scales
 
 
-def test_pointwise_read_matches_numpy(tmp_path: Path) -> None:
+def test_pointwise_read_matches_numpy(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     # the fused tile read of pointwise terms equals numpy applied to the stored values
     from snaplift.archive import open_archive
     from snaplift.archive.matrix import build_snapshot_matrix, read_snapshot_block
@@ -105,10 +105,16 @@ def test_pointwise_read_matches_numpy(tmp_path: Path) -> None:
     starts = np.array([0, 1, 2, 7])  # windows of span 4 inside runs [0..6] and [7..11]
     functions = {"x": lambda v: v, "cube": lambda v: v**3, "abs": np.abs, "cos": np.cos}
     assert matrix.shape == (3 * 4 * 20, 4)
+    import snaplift.archive.matrix as module
+
+    reads = []
+    original = module._raw_points
+    monkeypatch.setattr(module, "_raw_points", lambda *a: reads.append(a[2:]) or original(*a))
     for rows in matrix.fields:
         block = read_snapshot_block(reader, rows, matrix.snapshot_index)
         expected = functions[rows.term](flat[starts + rows.snapshot_shift]) * sw  # numpy reference
         np.testing.assert_allclose(block, expected, rtol=1e-14, atol=1e-14)
+    assert reads == [(0, 20, 0, 12)]  # one raw read (snapshots 0..7 + window 4) for all 12 lifted fields
 
 
 # -- runs ----------------------------------------------------------------------------------

@@ -12,11 +12,12 @@ these tiles into its accumulators.
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 
 from snaplift.archive._base import Reader
+from snaplift.archive._shared_reads import shared_block
 from snaplift.errors import ArchiveError, FieldNotFoundError, NonFiniteError
 from snaplift.lifting.fields import FieldLift, LiftedField
 
@@ -39,6 +40,10 @@ class FieldRows:
     source: str | None = None
     term: str = "x"
     snapshot_shift: int = 0
+    #: lifted fields reading the same archive field, and the largest shift among them:
+    #: their tiles share one raw read (:mod:`snaplift.archive._shared_reads`)
+    siblings: int = 1
+    window: int = 0
 
     @property
     def archive_field(self) -> str:
@@ -117,16 +122,25 @@ def read_snapshot_block(
     not checked here (:func:`check_finite`), so that a tile kernel can fold the check
     into a reduction it makes anyway.
     """
-    snapshots = np.asarray(snapshots, dtype=np.int64) + int(field.snapshot_shift)
+    snapshots = np.asarray(snapshots, dtype=np.int64)
     r0, r1 = (0, field.n_rows) if rows is None else (int(rows[0]), int(rows[1]))
     if field.keep is None:
         p0, p1 = r0, r1
     else:
         p0, p1 = int(field.keep[r0]), int(field.keep[r1 - 1]) + 1
-    first, last = int(snapshots[0]), int(snapshots[-1])
-    raw = _raw_points(reader, field.archive_field, p0, p1, first, last + 1)
-    if snapshots.size != last - first + 1:
-        raw = raw[snapshots - first]
+    if field.siblings > 1:
+        # one read of the column block plus the delay window serves every lifted sibling
+        base, end = int(snapshots[0]), int(snapshots[-1]) + int(field.window) + 1
+        key = (type(reader).__name__, reader.path, field.archive_field, p0, p1, base, end, snapshots.size)
+        block, _ = shared_block(key, field.siblings,
+                                lambda: _raw_points(reader, field.archive_field, p0, p1, base, end))
+        raw = block[snapshots - base + int(field.snapshot_shift)]  # a copy: the block stays shared
+    else:
+        snapshots = snapshots + int(field.snapshot_shift)
+        first, last = int(snapshots[0]), int(snapshots[-1])
+        raw = _raw_points(reader, field.archive_field, p0, p1, first, last + 1)
+        if snapshots.size != last - first + 1:
+            raw = raw[snapshots - first]
     if field.keep is not None:
         local = field.keep[r0:r1] - p0
         if local.size != p1 - p0:
@@ -294,6 +308,14 @@ def build_snapshot_matrix(
                               term=entry.term, snapshot_shift=shifts[entry.block]))
         offset += n_rows
         complex_valued |= np.issubdtype(field_info.dtype, np.complexfloating)
+    if lift is not None:
+        counts: dict[str, int] = {}
+        windows: dict[str, int] = {}
+        for entry in rows:
+            counts[entry.archive_field] = counts.get(entry.archive_field, 0) + 1
+            windows[entry.archive_field] = max(windows.get(entry.archive_field, 0), entry.snapshot_shift)
+        rows = [replace(entry, siblings=counts[entry.archive_field], window=windows[entry.archive_field])
+                for entry in rows]
     if snapshot_blocks is not None:
         blocks = column_blocks(snapshots, tuple(snapshot_blocks))
     else:

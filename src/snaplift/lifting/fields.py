@@ -238,7 +238,11 @@ class FieldLift:
         return self.terms == ("x",) and self.delays == 1
 
     def lifted(self, fields: Sequence[str]) -> list[LiftedField]:
-        """The lifted fields of ``fields`` in row order (delay block, field, term)."""
+        """The lifted fields of ``fields`` in row order (field, delay block, term).
+
+        The lifted fields of one archive field are adjacent, so that the tiles that share
+        one raw read come one after the other.
+        """
         if self.fields is not None:
             unknown = sorted(set(self.fields) - set(fields))
             if unknown:
@@ -246,9 +250,9 @@ class FieldLift:
                     f"pointwise fields {unknown} are not among the archive fields {list(fields)}"
                 )
         out: list[LiftedField] = []
-        for block in range(int(self.delays)):
-            suffix = f"_delay{block}" if block else ""
-            for name in fields:
+        for name in fields:
+            for block in range(int(self.delays)):
+                suffix = f"_delay{block}" if block else ""
                 terms = self.terms if self.fields is None or name in self.fields else ("x",)
                 for term in terms:
                     base = name if term == "x" else f"{name}_{term}"
