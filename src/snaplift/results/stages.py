@@ -172,7 +172,10 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     centered = bool(prepare.attrs.get("center", False))
     lifted = dict(prepare.attrs.get("lifted", {}))
     for name, field_scale in zip(fields, scale):
-        physical = np.asarray(basis[name][...])
+        if name not in basis:
+            raise ResultStoreError(f"{where}: basis/{name} is missing; the compress stage did not finish there")
+        # lazy: the modes stage computes one field's rows at a time
+        physical = da.from_zarr(basis[name])
         grid = tuple(int(s) for s in physical.shape[1:])
         flat = physical.reshape(physical.shape[0], -1)
         keep = None
@@ -185,7 +188,7 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
             sqrt_weight = np.sqrt(w if keep is None else w[keep])
         factor = (sqrt_weight if sqrt_weight is not None else 1.0) / field_scale
         # physical = prepared * scale / sqrt(w); at w == 0 the prepared rows are zero
-        prepared = np.where(np.isfinite(kept), kept * factor, 0.0)
+        prepared = da.where(da.isfinite(kept), kept * factor, 0.0)
         basis_blocks.append(prepared.T)
         n_rows = int(prepared.shape[1])
         if centered:
@@ -207,9 +210,8 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     dtype = np.dtype(np.complex128 if np.iscomplexobj(coefficient) or any(np.iscomplexobj(b) for b in basis_blocks)
                      else np.float64)
     matrix = SnapshotMatrix(reader, tuple(rows), snapshot_index, blocks, dtype)
-    stacked = np.concatenate(basis_blocks, axis=0)
     lowrank = _StoredLowRank(
-        basis=da.from_array(stacked, chunks=(tuple(r.n_rows for r in rows), (stacked.shape[1],))),
+        basis=da.concatenate(basis_blocks, axis=0),
         singular_value=np.asarray(basis["singular_value"][...], dtype=np.float64),
         coefficient=coefficient,
         column_norm=np.asarray(diagnostics["column_norm"][...], dtype=np.float64),
