@@ -91,7 +91,6 @@ def _raw_points(reader: Reader, name: str, p0: int, p1: int, s0: int, s1: int) -
     from snaplift.archive._cf import decode
     from snaplift.archive._common import read_block
     from snaplift.archive._grouped import GroupedReader
-
     from snaplift.archive.runs import RunsReader
 
     if isinstance(reader, RunsReader):  # each member's own (fast) path, joined along time

@@ -27,7 +27,6 @@ from typing import Any
 
 import dask.array as da
 import numpy as np
-import zarr
 
 from snaplift.archive._base import Reader
 from snaplift.archive.matrix import FieldRows, SnapshotMatrix

@@ -26,7 +26,7 @@ Example::
 
 from __future__ import annotations
 
-from typing import Annotated, Any, Literal, Union
+from typing import Annotated, Any, Literal
 
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
@@ -148,7 +148,7 @@ class IdentityEntry(_StateEntry):
 
 
 LiftEntry = Annotated[
-    Union[DelaysEntry, PointwiseEntry, MonomialsEntry, FourierEntry, RadialEntry, ExpressionsEntry, IdentityEntry],
+    DelaysEntry | PointwiseEntry | MonomialsEntry | FourierEntry | RadialEntry | ExpressionsEntry | IdentityEntry,
     Field(discriminator="kind"),
 ]
 

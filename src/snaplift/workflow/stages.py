@@ -27,9 +27,9 @@ from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
 from snaplift.archive.plan import TilePlan
 from snaplift.cluster import Scheduler
 from snaplift.errors import ArchiveError, ConfigError, FieldNotFoundError, TimeSpacingError
+from snaplift.lifting import delayed_run_lengths
 from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation
-from snaplift.lifting import delayed_run_lengths
 from snaplift.workflow.fit_methods import FitOutcome, fit_outcome
 from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path, scale_of
 
@@ -258,7 +258,6 @@ def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, *
     from snaplift.linalg.compress import CompressOptions, compress
     from snaplift.linalg.streaming import runner_for
 
-    section = workflow.archive
     plan = scanned.plan
     matrix = snapshot_matrix_of(workflow, scanned)
     n, m = matrix.shape
