@@ -291,8 +291,8 @@ def write_fit_details(writer: StoreWriter, outcome: Any, order: np.ndarray, time
                                        "x_j = sum_k mode_k value[k, j]"})
         writer.array("eigenfunctions", "time", np.asarray(time), ("snapshot",))
     attrs = {"method": outcome.method, "space": outcome.space}
-    if outcome.lift:
-        attrs["lift"] = dict(outcome.lift)
+    if outcome.details:
+        attrs[outcome.details_key] = dict(outcome.details)
     writer.group_attrs("operator", attrs)
 
 

@@ -57,7 +57,11 @@ class FitOutcome:
     residuals: ResidualReport | None
     fixed_point: np.ndarray | None = None
     eigenfunction: np.ndarray | None = None
-    lift: dict[str, Any] = field(default_factory=dict)
+    #: what the store's operator attributes describe the fit with, under ``details_key``:
+    #: ``lift`` (EDMD: the dictionary, lifted size, way back and its error) or
+    #: ``optimized`` (time spacing, relative error of the fit)
+    details: dict[str, Any] = field(default_factory=dict)
+    details_key: str = "lift"
     warnings: tuple[str, ...] = ()
     fit: Any = None
 
@@ -189,7 +193,7 @@ def _edmd(workflow: Any, compressed: Any, scanned: Any, run_lengths: np.ndarray,
             "state_projection_error": float(fit.state_projection_error), "truncation": int(fit.rank),
             "dictionary": dictionary.settings(), "bytes_read": int(bytes_read)}
     return FitOutcome("edmd", fit.eigenvalue, fit.amplitude, fit.dt, fit.operator, fit.modes, space, data, model,
-                      run_lengths, per_run, report, eigenfunction=np.asarray(fit.eigenfunction), lift=lift,
+                      run_lengths, per_run, report, eigenfunction=np.asarray(fit.eigenfunction), details=lift,
                       warnings=tuple(fit.warnings), fit=fit)
 
 
@@ -224,5 +228,6 @@ def _optimized(workflow: Any, compressed: Any, scanned: Any, run_lengths: np.nda
     warnings = () if fit.converged else (f"optimized DMD did not converge: {fit.message}",)
     return FitOutcome("optimized", eigenvalue, fit.amplitude, fit.dt, np.diag(eigenvalue), fit.modes,
                       "coefficients", data, model, run_lengths, fit.amplitude[None, :], report,
-                      lift={"uniform": bool(scanned.uniform), "relative_error": float(fit.relative_error)},
+                      details={"uniform": bool(scanned.uniform), "relative_error": float(fit.relative_error),
+                               "converged": bool(fit.converged)}, details_key="optimized",
                       warnings=warnings, fit=fit)

@@ -477,10 +477,10 @@ def _fit_and_modes(workflow: Workflow, scanned: Any, scheduler: Scheduler, store
     fit_warnings = list(fit.warnings) + fit_warnings
     warnings.extend(fit_warnings)
     n_modes = int(order.size)
-    lift = {"lift": dict(fit.lift)} if fit.lift else {}
+    details = {fit.details_key: dict(fit.details)} if fit.details else {}
     records["fit"] = (store.finish("fit", {
         "fingerprint": fingerprints["fit"], "status": "computed", "passes": 0,
-        "bytes_read": int(fit.lift.get("bytes_read", 0)), "method": fit.method, **lift,
+        "bytes_read": int(fit.details.get("bytes_read", 0)), "method": fit.method, **details,
         "n_modes": n_modes, "warnings": fit_warnings, "started": started.isoformat(), "finished": _now().isoformat()}))
     reporter.end("fit", f"computed; {n_modes} modes")
     faults.finished("fit")
