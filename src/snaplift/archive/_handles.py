@@ -12,11 +12,16 @@ numpy and zarr close the underlying file once the last reference is gone.
 
 A handle is reopened when the file's size or modification time changed, so an archive
 that grew since it was opened is seen as it is now.
+
+:func:`tile_buffer` gives each reading thread back the memory of its previous large
+tile once nothing refers to that tile any more, so that streaming a long archive does
+not fault in fresh pages for every tile (that costs about as much as the read itself).
 """
 
 from __future__ import annotations
 
 import os
+import sys
 import threading
 from collections import OrderedDict
 from collections.abc import Callable, Hashable
@@ -38,6 +43,11 @@ __all__ = [
     "forget",
     "clear",
     "cached_handle_count",
+    "tile_buffer",
+    "release_tile_buffers",
+    "TILE_BUFFER_MIN_BYTES",
+    "raw_file",
+    "read_into",
 ]
 
 #: at most this many open handles per process; older ones are dropped (LRU)
@@ -50,6 +60,8 @@ HDF5_CHUNK_CACHE_BYTES = 64 * 2**20
 HDF5_CHUNK_CACHE_SLOTS = 10007
 #: at most this many memoised layouts per process
 MAX_MEMOS = 256
+#: reads smaller than this get a new array (small allocations are cheap)
+TILE_BUFFER_MIN_BYTES = 16 * 2**20
 
 T = TypeVar("T")
 
@@ -129,6 +141,34 @@ def _open_hdf5(path: str) -> Any:
 def hdf5_file(path: str) -> Any:
     """Open (or reuse) ``path`` as a read-only :class:`h5py.File`."""
     return _get("hdf5", str(path), _open_hdf5)
+
+
+def _open_raw(path: str) -> Any:
+    try:
+        return open(path, "rb", buffering=0)  # the handle cache owns it
+    except OSError as error:
+        raise ArchiveFormatError(f"cannot open {path} for reading: {error.strerror}") from None
+
+
+def raw_file(path: str) -> Any:
+    """Open (or reuse) ``path`` as an unbuffered binary file, for positioned reads."""
+    return _get("raw", str(path), _open_raw)
+
+
+def read_into(handle: Any, out: np.ndarray, offset: int) -> None:
+    """Fill the C-contiguous ``out`` with the bytes at ``offset`` of an open file.
+
+    ``os.preadv`` releases the GIL and needs no file position, so several threads read
+    through one handle at once.
+    """
+    view = memoryview(out.reshape(-1).view(np.uint8))  # type: ignore[arg-type]
+    fd = handle.fileno()
+    done = 0
+    while done < view.nbytes:
+        count = os.preadv(fd, [view[done:]], offset + done)
+        if count <= 0:
+            raise ArchiveError(f"{handle.name}: file ended at byte {offset + done} while reading a tile")
+        done += count
 
 
 def _open_zarr(path: str) -> Any:
@@ -227,3 +267,60 @@ def cached_handles() -> list[Any]:
     with _lock:
         _check_pid()
         return [handle for _, handle in _handles.values()]
+
+
+#: per reading thread (by thread id), the memory block of its last large tile
+_buffers: dict[int, np.ndarray] = {}
+_buffers_lock = threading.Lock()
+_buffers_pid = os.getpid()
+
+
+def _free_count() -> int:
+    """References to a dict value nobody else holds, counted the way :func:`tile_buffer` counts."""
+    held = {0: np.empty(1, dtype=np.uint8)}
+    return sys.getrefcount(held[0])
+
+
+_FREE = _free_count()
+
+
+def release_tile_buffers() -> None:
+    """Forget every thread's kept tile memory in this process (end of a compress)."""
+    with _buffers_lock:
+        _buffers.clear()
+
+
+def tile_buffer(shape: tuple[int, ...], dtype: Any) -> np.ndarray:
+    """An uninitialised C-ordered array to read one tile into (the readers' ``out``).
+
+    A large request reuses this thread's previous tile memory when no array, view or
+    buffer refers to it any more (every view keeps the memory block alive, so its
+    reference count tells); otherwise, for small requests and in the main thread, the
+    memory is new. Each other thread keeps at most one block while it lives (blocks of
+    ended threads are dropped at the next request) or until :func:`release_tile_buffers`
+    (compress calls it when it is done), so the memory held is one tile per live reading
+    thread, which the tile planner already counts.
+    """
+    global _buffers_pid
+    dtype = np.dtype(dtype)
+    count = int(np.prod(shape, dtype=np.int64))
+    nbytes = count * dtype.itemsize
+    if nbytes < TILE_BUFFER_MIN_BYTES or threading.current_thread() is threading.main_thread():
+        # the main thread lives as long as the process: it keeps nothing
+        return np.empty(shape, dtype=dtype)
+    ident = threading.get_ident()
+    with _buffers_lock:
+        if os.getpid() != _buffers_pid:  # a forked child: the parent's blocks are not ours
+            _buffers.clear()
+            _buffers_pid = os.getpid()
+        if len(_buffers) > 1 or (_buffers and ident not in _buffers):
+            alive = {thread.ident for thread in threading.enumerate()}
+            for gone in [key for key in _buffers if key not in alive]:  # threads that ended
+                del _buffers[gone]
+        # reuse only a block nobody refers to, large enough and not much larger than needed
+        if ident in _buffers and nbytes <= _buffers[ident].nbytes <= 2 * nbytes \
+                and sys.getrefcount(_buffers[ident]) == _FREE:
+            block = _buffers[ident]
+        else:
+            block = _buffers[ident] = np.empty(nbytes, dtype=np.uint8)
+    return block[:nbytes].view(dtype).reshape(shape)

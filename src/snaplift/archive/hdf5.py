@@ -17,6 +17,7 @@ described in :mod:`snaplift.archive._cf`. Complex data stored as an HDF5 compoun
 from __future__ import annotations
 
 import os
+from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
@@ -78,6 +79,131 @@ def hdf5_candidates(root: Any) -> list[Candidate]:
     return found
 
 
+def _basic_shape(selection: Any, shape: tuple[int, ...]) -> tuple[int, ...] | None:
+    """Result shape of a tuple of step-1 in-range slices (one per axis), else None."""
+    if not isinstance(selection, tuple) or len(selection) != len(shape):
+        return None
+    out = []
+    for item, size in zip(selection, shape):
+        if not isinstance(item, slice) or item.step not in (None, 1):
+            return None
+        start = 0 if item.start is None else item.start
+        stop = size if item.stop is None else item.stop
+        if not 0 <= start < stop <= size:
+            return None
+        out.append(stop - start)
+    return tuple(out)
+
+
+@dataclass(frozen=True)
+class _Storage:
+    """Where whole snapshots of an unfiltered dataset lie in the file, for positioned reads.
+
+    ``starts[i]`` is the byte address of snapshot ``i * per_chunk`` (one entry per
+    chunk; a contiguous dataset is one chunk of all snapshots); ``snapshot_bytes`` the
+    bytes of one snapshot.
+    """
+
+    per_chunk: int
+    starts: tuple[int, ...]
+    snapshot_bytes: int
+
+
+def _storage(dataset: Any) -> _Storage | None:
+    """The byte layout of ``dataset`` when its snapshots can be read as plain bytes, else None.
+
+    That needs a native numeric type, no filters (compression, shuffle, checksums), no
+    user block, the default file driver, every chunk written (unwritten chunks are the
+    fill value) and chunks that hold whole snapshots (chunk shape ``(c, *grid)``).
+    """
+    file = dataset.file
+    if (len(dataset.shape) < 1 or dataset.dtype.kind not in "fiu" or not dataset.dtype.isnative
+            or file.driver != "sec2" or file.userblock_size != 0
+            or dataset.id.get_create_plist().get_nfilters() != 0):
+        return None
+    snapshot_bytes = int(np.prod(dataset.shape[1:], dtype=np.int64)) * dataset.dtype.itemsize
+    m = int(dataset.shape[0])
+    if dataset.chunks is None:
+        offset = dataset.id.get_offset()
+        return None if offset is None else _Storage(max(m, 1), (int(offset),), snapshot_bytes)
+    chunks = tuple(int(c) for c in dataset.chunks)
+    if chunks[1:] != tuple(int(n) for n in dataset.shape[1:]):
+        return None
+    per_chunk = chunks[0]
+    expected = -(-m // per_chunk)
+    found: dict[int, int] = {}
+
+    def note(info: Any) -> None:
+        found[int(info.chunk_offset[0]) // per_chunk] = int(info.byte_offset)
+
+    if hasattr(dataset.id, "chunk_iter"):
+        dataset.id.chunk_iter(note)
+    else:  # pragma: no cover - older HDF5 libraries
+        for index in range(dataset.id.get_num_chunks()):
+            note(dataset.id.get_chunk_info(index))
+    if len(found) != expected or any(i not in found for i in range(expected)):
+        return None
+    return _Storage(per_chunk, tuple(found[i] for i in range(expected)), snapshot_bytes)
+
+
+def _whole_snapshots(selection: tuple[slice, ...], shape: tuple[int, ...]) -> tuple[int, int] | None:
+    """``(s0, s1)`` when ``selection`` takes every point of snapshots ``s0 .. s1``, else None."""
+    for item, size in zip(selection[1:], shape[1:]):
+        if (item.start or 0) != 0 or (size if item.stop is None else item.stop) != size:
+            return None
+    first = selection[0]
+    return int(first.start or 0), int(shape[0] if first.stop is None else first.stop)
+
+
+class _Dataset:
+    """An h5py dataset whose box reads go straight into a reused tile buffer.
+
+    ``dataset[box]`` for a box of step-1 slices of a plain numeric dataset is read into
+    :func:`snaplift.archive._handles.tile_buffer` (no page faults on fresh memory for
+    every tile): whole snapshots of an unfiltered dataset as plain bytes with positioned
+    reads (:func:`snaplift.archive._handles.read_into`; they run in parallel, while h5py
+    serialises every call behind one lock), other boxes with ``read_direct``; everything
+    else is the dataset's own.
+    """
+
+    __slots__ = ("dataset", "path")
+
+    def __init__(self, dataset: Any, path: str) -> None:
+        self.dataset = dataset
+        self.path = path
+
+    def _layout(self) -> _Storage | None:
+        dataset = self.dataset
+        key = ("hdf5-storage", self.path, dataset.name, _handles.signature(self.path))
+        return _handles.memo(key, lambda: _storage(dataset))
+
+    def __getitem__(self, selection: Any) -> Any:
+        dataset = self.dataset
+        shape = _basic_shape(selection, tuple(dataset.shape)) if dataset.dtype.kind in "fiu" else None
+        if shape is None:
+            return dataset[selection]
+        out = _handles.tile_buffer(shape, dataset.dtype)
+        snapshots = _whole_snapshots(selection, tuple(dataset.shape))
+        layout = self._layout() if snapshots is not None else None
+        if layout is None or snapshots is None:
+            dataset.read_direct(out, source_sel=selection)
+            return out
+        handle = _handles.raw_file(self.path)
+        s0, s1 = snapshots
+        flat = out.reshape(s1 - s0, -1)
+        j = s0
+        while j < s1:
+            chunk = j // layout.per_chunk
+            stop = min(s1, (chunk + 1) * layout.per_chunk)
+            offset = layout.starts[chunk] + (j - chunk * layout.per_chunk) * layout.snapshot_bytes
+            _handles.read_into(handle, flat[j - s0:stop - s0], offset)
+            j = stop
+        return out
+
+    def __getattr__(self, name: str) -> Any:
+        return getattr(self.dataset, name)
+
+
 class HDF5Reader(GroupedReader):
     """Read snapshot fields from an HDF5 or netCDF-4 file, read-only.
 
@@ -111,7 +237,7 @@ class HDF5Reader(GroupedReader):
         return _handles.hdf5_file(self.path)
 
     def _array(self, root: Any, key: str) -> Any:
-        return root[key]
+        return _Dataset(root[key], self.path)
 
     def _candidates(self, root: Any) -> list[Candidate]:
         return hdf5_candidates(root)

@@ -22,8 +22,12 @@ widths (:func:`method_widths`):
   the row test matrix for finishing); ``randomized``
   ``s (3 n k + m k + n)``; ``tsqr`` ``s (n r + L m^2 + n)`` (``F`` fields, ``L`` leaves);
 - ``peak_bytes_estimate = workers x (2 tile + cache) + in_flight x result + driver``
-  (the cache once when the workers are threads of one process, ``shared_memory``),
-  which must fit ``memory_bytes``. The snapshot block is the longest that fits, but
+  which must fit ``memory_bytes``. When the workers are threads of one process
+  (``shared_memory``) the cache is held once and range products are summed in place
+  in one ``s n k`` slot per worker, so a result in flight is only ``s (n_t + b (k + l))``
+  and the driver holds ``s (2 n k + 2 m k + F m l + 2 n)`` while tiles are read; its
+  finishing arrays come after the pass: ``peak = max(workers x 2 tile + cache +
+  workers s n k + in_flight x result + that, cache + driver)``. The snapshot block is the longest that fits, but
   short enough to give each worker :data:`TILES_PER_WORKER` blocks when the archive has
   enough stored chunks.
 
@@ -431,14 +435,25 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
             out.append(max(step, (cap // step) * step) if cap >= step else grid_row)
         return out
 
+    # threads of one process sum range products in place in one slot per worker
+    # (snaplift.linalg._slots): results in flight are small, and the driver's finishing
+    # arrays exist only after the pass, when no tile is held
+    slotted = shared_memory and method != "tsqr"
+    driver_pass = s * (2 * n * k + 2 * m * k + len(chosen) * m * l + 2 * n)
+
     def cost(cap: int, block: int) -> tuple[int, int, int]:
         rows = rows_of(cap)
         tile = max(r * block * sz for r, sz in zip(rows, itemsizes))
         if method == "tsqr":
             result = max(sz * (m * m + r * rank) for r, sz in zip(rows, itemsizes))
+        elif slotted:
+            result = max(sz * (r + block * (k + l)) for r, sz in zip(rows, itemsizes))
         else:
             result = max(sz * (r * k + block * (k + l)) for r, sz in zip(rows, itemsizes))
         caches = cache if shared_memory else workers * cache
+        if slotted:
+            during = workers * 2 * tile + caches + workers * s * n * k + in_flight * result + driver_pass
+            return max(during, cache + driver), tile, result
         return workers * 2 * tile + caches + in_flight * result + driver, tile, result
 
     full = max(points)

@@ -347,6 +347,12 @@ def scan_archive(
     full: bool = False,
     sample_snapshots: int = 3,
     memory_bytes: int = 2**30,
+    method: str | None = "randomized",
+    rank: int = 40,
+    power_iterations: int = 1,
+    sketch_widths: tuple[int, int] | None = None,
+    workers: int = 1,
+    shared_memory: bool = True,
 ) -> ScanReport:
     """Describe an archive, check its times and values, and plan its tiles.
 
@@ -364,6 +370,11 @@ def scan_archive(
         Snapshots read per field in quick mode, spread evenly from first to last.
     memory_bytes
         Budget for the tile plan and for the reads of the scan itself.
+    method, rank, power_iterations, sketch_widths, workers, shared_memory
+        The compress settings the plan is made for: the plan shown is the one compress
+        would use (:func:`~snaplift.archive.plan.plan_tiles` with ``method``; the
+        defaults are those of the ``compress`` section and one worker thread).
+        ``method=None`` gives the planner's legacy model (no compress method).
 
     Returns
     -------
@@ -442,7 +453,12 @@ def scan_archive(
     plan_error = None
     if chosen:
         try:
-            plan = plan_tiles(info, names, memory_bytes=memory_bytes)
+            if method is None:
+                plan = plan_tiles(info, names, memory_bytes=memory_bytes)
+            else:
+                plan = plan_tiles(info, names, memory_bytes=memory_bytes, method=method, rank=rank,
+                                  power_iterations=power_iterations, sketch_widths=sketch_widths,
+                                  workers=workers, shared_memory=shared_memory)
         except ArchiveError as error:
             plan_error = str(error)
 

@@ -14,10 +14,10 @@ state can be checkpointed between any two tiles:
 
 from __future__ import annotations
 
+import contextlib
+import uuid
 from collections.abc import Sequence
 from typing import Any
-
-import uuid
 
 import numpy as np
 
@@ -118,8 +118,13 @@ class Pass:
                 raise RuntimeError(f"compress pass {state.pass_number}: a tile was counted twice "
                                    "(a task ran twice); run again to resume from the last checkpoint")
             for index in sorted(parts):  # a fixed order of summation
-                value = parts[index][0]
-                state.arrays[slot] = state.arrays[slot] + value if slot in state.arrays else value.copy()
+                value = parts[index][0]  # emptied out of its slot: ours to keep or add into
+                if slot in state.arrays:
+                    state.arrays[slot] += value
+                else:
+                    state.arrays[slot] = value
+                del value
+            parts.clear()
             missing = pending - set(ids)
             if missing:
                 # a worker died and took its slot with it: read those tiles again, returning
@@ -135,10 +140,12 @@ class Pass:
             pending.clear()
             last.clear()
 
+        running = getattr(self.runner, "tiles_running", None)
         try:
-            run_tiles(self.runner, task, (self.shared_source, *shared), jobs, fold_and_note, state,
-                      in_flight=self.in_flight, checkpoint=self.checkpoint, progress=self.progress, flush=flush,
-                      per_job=per_job)
+            with running() if running is not None else contextlib.nullcontext():
+                run_tiles(self.runner, task, (self.shared_source, *shared), jobs, fold_and_note, state,
+                          in_flight=self.in_flight, checkpoint=self.checkpoint, progress=self.progress,
+                          flush=flush, per_job=per_job)
             flush()
         except BaseException:
             if count:  # wake and fail tiles waiting for a predecessor that will never come
@@ -200,9 +207,9 @@ def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: S
 
 
 def product_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: StreamState,
-                 preparing_handle: Any, operand: np.ndarray, kind: str, *, name: str) -> None:
+                 preparing_handle: Any, operand: np.ndarray, kind: str, *, name: str, norms: bool = True) -> None:
     """``kind='range'``: ``state.arrays[name] = A @ operand`` (n x k); ``'adjoint'``: ``A^H @ operand``
-    (m x k) plus ``<name>_norm_squares`` (exact squared column norms of A)."""
+    (m x k) plus, with ``norms``, ``<name>_norm_squares`` (exact squared column norms of A)."""
     n, m = matrix.shape
     width = operand.shape[1]
     dtype = np.result_type(matrix.dtype, operand.dtype)
@@ -213,13 +220,16 @@ def product_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: 
             _add_rows(state, name, run.source, tile, result)  # only when not summed in slots
     else:
         out = _zeros(state, name, (m, width), dtype)
-        norms = _zeros(state, f"{name}_norm_squares", (m,), np.float64)
+        squares = _zeros(state, f"{name}_norm_squares", (m,), np.float64) if norms else None
 
         def fold(tile: TileRef, result: dict[str, Any]) -> None:
             c0, c1 = tile.columns
             out[c0:c1] += result["product"]
-            norms[c0:c1] += result["squares"]
+            if squares is not None:
+                squares[c0:c1] += result["squares"]
 
+        if not norms:
+            kind = "adjoint_only"
     run.run(product_task, (preparing_handle, shared_operand, kind), jobs, fold, state,
             slot=name if kind == "range" else None)
     if kind == "range" and name not in state.arrays:

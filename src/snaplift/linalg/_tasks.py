@@ -112,11 +112,13 @@ def sketch_task(source: TileSource, widths: tuple[int, int], slot: Any, tile: Ti
     omega = gaussian_map(source.snapshot_index[c0:c1], range_width, seed=source.seed,
                          complex_valued=source.complex_valued)
     out: dict[str, Any] = {"corange": None, "row_sum": raw.sum(axis=0), "squares": squares}
-    _range(out, slot, source, tile, raw, omega)
     if corange_width:
+        # before the range product: that one may wait for this slot's previous tile, and
+        # by now it has usually arrived
         g0, g1 = tile.global_rows(source)
         psi_t = cached_row_map(g0, g1, corange_width, seed=source.seed, complex_valued=source.complex_valued)
         out["corange"] = corange_product(raw, psi_t)
+    _range(out, slot, source, tile, raw, omega)
     return out
 
 
@@ -126,7 +128,8 @@ def product_task(source: TileSource, preparing: Preparing, operand: np.ndarray, 
 
     ``kind == "range"``: ``A_t @ operand[columns]`` (rows x k), for ``Y = A Z``;
     ``kind == "adjoint"``: ``A_t^H @ operand[rows]`` (snapshots x k), for ``A^H Q``, with
-    the exact per-snapshot ``squares`` of ``A_t`` (column norms for projection errors).
+    the exact per-snapshot ``squares`` of ``A_t`` (column norms for projection errors);
+    ``kind == "adjoint_only"``: the same product without the squares.
     """
     raw, _ = _read(source, tile, check=False)
     g0, g1 = tile.global_rows(source)
@@ -138,6 +141,8 @@ def product_task(source: TileSource, preparing: Preparing, operand: np.ndarray, 
         return {"product": out["range"]}
     if kind == "adjoint":
         return {"product": adjoint_product(a, operand[g0:g1]), "squares": column_squares(a)}
+    if kind == "adjoint_only":  # a power iteration: the column norms would be thrown away
+        return {"product": adjoint_product(a, operand[g0:g1]), "squares": None}
     raise ValueError(f"unknown product kind {kind!r}")
 
 

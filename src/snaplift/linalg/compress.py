@@ -174,6 +174,34 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
     bytes_before = int(state.bytes_read)
     run = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers), checkpoint=checkpoint,
                progress=progress)
+    try:
+        return _compress(matrix, options, run, jobs, state, source, checkpoint, rank, range_width, corange_width,
+                         row_blocks, resumed, bytes_before)
+    finally:
+        _release_caches(runner)
+
+
+def _release_caches(runner: TileRunner) -> None:
+    """Once a compress is done, drop what sped up its passes: the cached row test matrices
+    (``8 n l`` bytes) and the kept tile buffers (one tile per reading thread)."""
+    from snaplift.archive import _handles
+    from snaplift.linalg import _testmatrix
+
+    _testmatrix.release()
+    _handles.release_tile_buffers()
+    client = getattr(runner, "client", None)
+    if client is not None:
+        for function in (_testmatrix.release, _handles.release_tile_buffers):
+            try:
+                client.run(function)
+            except Exception:  # a lost worker has nothing left to drop
+                pass
+
+
+def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs: list[Any], state: StreamState,
+              source: TileSource, checkpoint: Checkpointer | None, rank: int, range_width: int, corange_width: int,
+              row_blocks: list, resumed: bool, bytes_before: int) -> Compression:
+    runner = run.runner
     sketch_arrays: dict[str, np.ndarray] = {}
     if options.method == "sketch":
         if state.pass_number == 0:

@@ -200,9 +200,10 @@ def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, r
     for iteration in range(power_iterations):
         first = 1 + 2 * iteration
         if state.pass_number == first:
-            product_read(run, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="adjoint")
+            product_read(run, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="adjoint",
+                         norms=False)
             state.arrays["z"] = np.linalg.qr(state.arrays.pop("adjoint"))[0]
-            state.arrays.pop("adjoint_norm_squares", None)
+            state.arrays.pop("adjoint_norm_squares", None)  # from a checkpoint of an older run
             run.end_pass(state)
         if state.pass_number == first + 1:
             product_read(run, matrix, jobs, state, preparing, state.arrays["z"], "range", name="range")

@@ -16,9 +16,10 @@ atomically (temporary file + ``os.replace``); a loop given a loaded state skips 
 tiles in its ledger, so a killed run resumes and reads at most one checkpoint interval
 again.
 
-Runners: :class:`ThreadRunner` (a thread pool in this process, BLAS single-threaded
-while it runs) and :class:`ClientRunner` (a ``distributed`` client: worker processes,
-large read-only inputs scattered once). :func:`runner_for` picks one for a scheduler.
+Runners: :class:`ThreadRunner` (a thread pool in this process, BLAS limited to a
+share of the cores while tiles run) and :class:`ClientRunner` (a ``distributed``
+client: worker processes, large read-only inputs scattered once). :func:`runner_for`
+picks one for a scheduler.
 """
 
 from __future__ import annotations
@@ -68,27 +69,43 @@ class TileRunner(Protocol):
         ...
 
 
+def _cores() -> int:
+    if hasattr(os, "sched_getaffinity"):
+        return max(1, len(os.sched_getaffinity(0)))
+    return max(1, os.cpu_count() or 1)  # pragma: no cover - platforms without affinity
+
+
 class ThreadRunner:
-    """Tiles in a pool of ``workers`` threads of this process; BLAS limited to one thread each."""
+    """Tiles in a pool of ``workers`` threads of this process.
+
+    While a pass runs (:meth:`tiles_running`) BLAS gets ``cores // workers`` threads (one
+    each when there are as many workers as cores), so tiles do not oversubscribe the
+    cores; between passes the driver's own linear algebra (TSQR of the range sketch,
+    small SVDs) uses the whole BLAS thread pool.
+    """
 
     kind = "threads"
 
     def __init__(self, workers: int) -> None:
         self.workers = max(1, int(workers))
         self._pool: ThreadPoolExecutor | None = None
-        self._blas: Any = None
 
     def __enter__(self) -> ThreadRunner:
         self._pool = ThreadPoolExecutor(self.workers, thread_name_prefix="snaplift-tile")
-        self._blas = blas_threads(1)
-        self._blas.__enter__()
         return self
 
     def __exit__(self, *exc: Any) -> None:
         assert self._pool is not None
         self._pool.shutdown(wait=True, cancel_futures=True)
-        self._blas.__exit__(*exc)
         self._pool = None
+
+    @property
+    def blas_threads_per_tile(self) -> int:
+        return max(1, _cores() // self.workers)
+
+    def tiles_running(self) -> Any:
+        """Context of a pass: BLAS limited to :attr:`blas_threads_per_tile` threads."""
+        return blas_threads(self.blas_threads_per_tile)
 
     def share(self, value: Any) -> Any:
         return value

@@ -24,6 +24,7 @@ from typing import Any
 import numpy as np
 
 from snaplift.archive.matrix import SnapshotMatrix
+from snaplift.linalg._blas import blas_threads
 from snaplift.linalg._kernels import leaf_factors, normalize_signs, qr_factor, reduce_r_factors
 
 __all__ = ["tsqr", "tsqr_compress"]
@@ -71,8 +72,9 @@ def tsqr(a: Any, *, block_rows: int | None = None) -> tuple[Any, np.ndarray]:
     a = np.asarray(a)
     n, m = a.shape
     blocks = _row_blocks(n, m, block_rows)
-    # leaves are independent and LAPACK releases the GIL: factor them on a few threads
-    with ThreadPoolExecutor(max(1, min(4, os.cpu_count() or 1))) as pool:
+    # leaves are independent and LAPACK releases the GIL: factor them on a few threads,
+    # each with a single-threaded BLAS (threads calling a threaded BLAS oversubscribe)
+    with blas_threads(1), ThreadPoolExecutor(max(1, min(4, os.cpu_count() or 1))) as pool:
         leaves = list(pool.map(lambda rows: qr_factor(a[rows[0]:rows[1]]), blocks))
         r, tree = reduce_r_factors([leaf[1] for leaf in leaves])
         factors = leaf_factors(len(leaves), tree, np.eye(r.shape[0], dtype=r.dtype))
