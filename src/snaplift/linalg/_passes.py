@@ -48,18 +48,31 @@ def kept_row_blocks(matrix: SnapshotMatrix, point_blocks: Sequence[Sequence[tupl
 
 def build_jobs(matrix: SnapshotMatrix, row_blocks: list[list[tuple[int, int]]],
                columns: Sequence[tuple[int, int]]) -> list[Job]:
-    """Tiles in read order (time block by time block, fields in order), with stored bytes read."""
+    """Tiles in read order (time block by time block, fields in order), with stored bytes read.
+
+    The lifted fields of one archive field (``lift:`` pointwise terms, delays) share one raw
+    read per point range and column block (:mod:`snaplift.archive._shared_reads`): their
+    tiles come one after the other, and the bytes of the shared read (the column block plus
+    the delay window) are counted once, on the first of them.
+    """
     info = matrix.reader.describe()
     jobs: list[Job] = []
     index = matrix.snapshot_index
+    groups: dict[str, list[int]] = {}
+    for f, field in enumerate(matrix.fields):
+        groups.setdefault(field.archive_field, []).append(f)
     for c0, c1 in columns:
         span = int(index[c1 - 1] - index[c0] + 1)
-        for f, field in enumerate(matrix.fields):
-            itemsize = int(np.dtype(info.fields[field.archive_field].stored_dtype).itemsize)
-            for r0, r1 in row_blocks[f]:
-                points = (int(field.keep[r1 - 1]) + 1 - int(field.keep[r0])) if field.keep is not None else r1 - r0
-                jobs.append(Job(len(jobs), TileRef(f, (r0, r1), (int(c0), int(c1)), len(jobs)),
-                                span * points * itemsize))
+        for members in groups.values():
+            first = matrix.fields[members[0]]
+            itemsize = int(np.dtype(info.fields[first.archive_field].stored_dtype).itemsize)
+            read = span + (int(first.window) if first.siblings > 1 else 0)
+            for block, (r0, r1) in enumerate(row_blocks[members[0]]):
+                points = (int(first.keep[r1 - 1]) + 1 - int(first.keep[r0])) if first.keep is not None else r1 - r0
+                for position, f in enumerate(members):
+                    b0, b1 = row_blocks[f][block]
+                    jobs.append(Job(len(jobs), TileRef(f, (b0, b1), (int(c0), int(c1)), len(jobs)),
+                                    read * points * itemsize if position == 0 else 0))
     return jobs
 
 
