@@ -46,6 +46,13 @@ def test_scan_table_and_json(archive: Path) -> None:
     assert data["spacing"]["uniform"] is True
 
 
+def test_scan_plan_for_a_method(archive: Path) -> None:
+    out = runner.invoke(app, ["scan", str(archive), "--method", "sketch", "--rank", "3"])
+    assert out.exit_code == 0 and "compress.method sketch" in out.output and "1 pass" in out.output
+    bad = runner.invoke(app, ["scan", str(archive), "--method", "svd"])
+    assert bad.exit_code == 2 and "not a compress method" in bad.output
+
+
 def test_scan_of_several_runs(archive: Path) -> None:
     # the same file twice under two names: two runs of 30 snapshots each
     copy = archive.with_name("second.h5")

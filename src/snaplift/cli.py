@@ -125,6 +125,8 @@ def scan(
     time: Annotated[Optional[str], typer.Option(help="dataset of snapshot times")] = None,
     step: Annotated[Optional[float], typer.Option(help="fixed time step if there is no time dataset")] = None,
     memory: Annotated[str, typer.Option(help="memory budget used to plan tiles")] = "2GiB",
+    method: Annotated[str, typer.Option(help="compress method the plan is for: sketch | randomized | tsqr")] = "randomized",
+    rank: Annotated[int, typer.Option(help="compress rank the plan is for")] = 40,
     full: Annotated[bool, typer.Option("--full", help="also count NaN/Inf in every value")] = False,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
 ) -> None:
@@ -138,8 +140,14 @@ def scan(
 
     reader = open_archive(archive[0] if len(archive) == 1 else archive)
     chosen = [f.strip() for f in fields.split(",")] if fields else None
+    from snaplift.errors import ConfigError
+
+    if method not in ("sketch", "randomized", "tsqr"):
+        raise ConfigError(f"--method {method!r} is not a compress method; use sketch, randomized or tsqr")
+    if rank < 1:
+        raise ConfigError(f"--rank must be >= 1; got {rank}")
     report = scan_archive(reader, fields=chosen, time=time, step=step, full=full,
-                          memory_bytes=parse_bytes(memory))
+                          memory_bytes=parse_bytes(memory), method=method, rank=rank)
     if json_output:
         typer.echo(scan_json(report))
     else:
