@@ -44,6 +44,17 @@ LAYOUTS = {
 PLAIN = {"one snapshot per chunk", "three snapshots per chunk", "contiguous", "float32"}
 
 
+def _check_tiles(reader, reference: np.ndarray) -> None:
+    """Tiles of 11 snapshots (whole, partial, crossing chunks; a row range) equal the reference."""
+    matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(11), snapshot_block=4)
+    field = matrix.fields[0]
+    for s0, s1 in [(0, 4), (4, 8), (8, 11), (2, 7), (10, 11)]:
+        tile = read_snapshot_block(reader, field, np.arange(s0, s1))
+        np.testing.assert_array_equal(tile, reference[s0:s1].reshape(s1 - s0, -1))
+    part = read_snapshot_block(reader, field, np.arange(3, 9), rows=(7, 22))
+    np.testing.assert_array_equal(part, reference[3:9].reshape(6, -1)[:, 7:22])
+
+
 @pytest.mark.parametrize("layout", sorted(LAYOUTS))
 def test_tile_reads_equal_h5py_slicing(tmp_path, layout):
     data = np.random.default_rng(1).standard_normal((11, 6, 5))
@@ -53,13 +64,7 @@ def test_tile_reads_equal_h5py_slicing(tmp_path, layout):
         reference = h5["u"][...].astype(np.float64)  # h5py as the reference
         assert (_storage(h5["u"]) is not None) == (layout in PLAIN)
     reader = open_archive(str(path))
-    matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(11), snapshot_block=4)
-    field = matrix.fields[0]
-    for s0, s1 in [(0, 4), (4, 8), (8, 11), (2, 7), (10, 11)]:
-        tile = read_snapshot_block(reader, field, np.arange(s0, s1))
-        np.testing.assert_array_equal(tile, reference[s0:s1].reshape(s1 - s0, -1))
-    part = read_snapshot_block(reader, field, np.arange(3, 9), rows=(7, 22))
-    np.testing.assert_array_equal(part, reference[3:9].reshape(6, -1)[:, 7:22])
+    _check_tiles(reader, reference)
 
 
 def test_unwritten_chunks_are_read_through_h5py(tmp_path):
@@ -189,13 +194,7 @@ def test_zarr_tile_reads_equal_zarr_slicing(tmp_path, layout):
     reference = np.asarray(stored[...])  # zarr as the reference
     assert (_chunk_files(stored) is not None) == (layout in ZARR_PLAIN)
     reader = open_archive(path)
-    matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(11), snapshot_block=4)
-    field = matrix.fields[0]
-    for s0, s1 in [(0, 4), (4, 8), (8, 11), (2, 7), (10, 11)]:
-        tile = read_snapshot_block(reader, field, np.arange(s0, s1))
-        np.testing.assert_array_equal(tile, reference[s0:s1].reshape(s1 - s0, -1))
-    part = read_snapshot_block(reader, field, np.arange(3, 9), rows=(7, 22))
-    np.testing.assert_array_equal(part, reference[3:9].reshape(6, -1)[:, 7:22])
+    _check_tiles(reader, reference)
 
 
 def test_zarr_unwritten_chunks_read_as_the_fill_value(tmp_path):

@@ -155,6 +155,19 @@ def raw_file(path: str) -> Any:
     return _get("raw", str(path), _open_raw)
 
 
+def read_snapshot_chunks(out: np.ndarray, s0: int, s1: int, per_chunk: int,
+                         read: Callable[[int, np.ndarray, int], None]) -> None:
+    """Fill ``out`` (snapshots ``s0 .. s1-1``, snapshot-major) chunk by chunk of ``per_chunk``
+    snapshots: ``read(chunk, rows_of_out, first_snapshot_in_chunk)`` fills each part."""
+    flat = out.reshape(s1 - s0, -1)
+    j = s0
+    while j < s1:
+        chunk = j // per_chunk
+        stop = min(s1, (chunk + 1) * per_chunk)
+        read(chunk, flat[j - s0:stop - s0], j - chunk * per_chunk)
+        j = stop
+
+
 def read_into(handle: Any, out: np.ndarray, offset: int) -> None:
     """Fill the C-contiguous ``out`` with the bytes at ``offset`` of an open file.
 

@@ -189,15 +189,10 @@ class _Dataset:
             dataset.read_direct(out, source_sel=selection)
             return out
         handle = _handles.raw_file(self.path)
-        s0, s1 = snapshots
-        flat = out.reshape(s1 - s0, -1)
-        j = s0
-        while j < s1:
-            chunk = j // layout.per_chunk
-            stop = min(s1, (chunk + 1) * layout.per_chunk)
-            offset = layout.starts[chunk] + (j - chunk * layout.per_chunk) * layout.snapshot_bytes
-            _handles.read_into(handle, flat[j - s0:stop - s0], offset)
-            j = stop
+        _handles.read_snapshot_chunks(
+            out, snapshots[0], snapshots[1], layout.per_chunk,
+            lambda chunk, rows, first: _handles.read_into(handle, rows, layout.starts[chunk]
+                                                          + first * layout.snapshot_bytes))
         return out
 
     def __getattr__(self, name: str) -> Any:

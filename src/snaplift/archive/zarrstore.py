@@ -119,15 +119,11 @@ def _chunk_files(array: Any) -> _ChunkFiles | None:
 
 
 def _read_files(files: _ChunkFiles, snapshots: tuple[int, int], out: np.ndarray) -> None:
-    s0, s1 = snapshots
-    flat = out.reshape(s1 - s0, -1)
-    j = s0
-    while j < s1:
-        chunk = j // files.per_chunk
-        stop = min(s1, (chunk + 1) * files.per_chunk)
+    def read(chunk: int, rows: np.ndarray, first: int) -> None:
         with open(files.paths[chunk], "rb", buffering=0) as handle:
-            _handles.read_into(handle, flat[j - s0:stop - s0], (j - chunk * files.per_chunk) * files.snapshot_bytes)
-        j = stop
+            _handles.read_into(handle, rows, first * files.snapshot_bytes)
+
+    _handles.read_snapshot_chunks(out, snapshots[0], snapshots[1], files.per_chunk, read)
 
 
 class _Array:
