@@ -153,33 +153,27 @@ def raw_read(path: Path, fmt: str, *, block: int = 1, fresh: bool = False) -> fl
     By default into one reused buffer (HDF5 ``read_direct``, zarr ``out=``); with
     ``fresh`` into a new array per block, as the readers return tiles.
     """
+    def timed(data, into) -> float:
+        buffer = np.empty((block, *data.shape[1:]))
+        start = time.perf_counter()
+        for j0 in range(0, data.shape[0], block):
+            j1 = min(j0 + block, data.shape[0])
+            if fresh:
+                data[j0:j1]
+            else:
+                into(data, buffer[: j1 - j0], j0, j1)
+        return time.perf_counter() - start
+
     if fmt == "hdf5":
         import h5py
 
         with h5py.File(path, "r") as h5:
-            data = h5["u"]
-            buffer = np.empty((block, *data.shape[1:]))
-            start = time.perf_counter()
-            for j0 in range(0, data.shape[0], block):
-                j1 = min(j0 + block, data.shape[0])
-                if fresh:
-                    data[j0:j1]
-                else:
-                    data.read_direct(buffer[: j1 - j0], np.s_[j0:j1])
-            return time.perf_counter() - start
+            return timed(h5["u"], lambda data, out, j0, j1: data.read_direct(out, np.s_[j0:j1]))
     import zarr
     from zarr.core.buffer.cpu import NDBuffer
 
-    data = zarr.open_group(str(path), mode="r")["u"]
-    buffer = np.empty((block, *data.shape[1:]))
-    start = time.perf_counter()
-    for j0 in range(0, data.shape[0], block):
-        j1 = min(j0 + block, data.shape[0])
-        if fresh:
-            data[j0:j1]
-        else:
-            data.get_basic_selection(np.s_[j0:j1], out=NDBuffer.from_numpy_array(buffer[: j1 - j0]))
-    return time.perf_counter() - start
+    return timed(zarr.open_group(str(path), mode="r")["u"],
+                 lambda data, out, j0, j1: data.get_basic_selection(np.s_[j0:j1], out=NDBuffer.from_numpy_array(out)))
 
 
 def reader_read(path: Path, block: int, threads: int = 1) -> float:
