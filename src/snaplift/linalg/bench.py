@@ -321,15 +321,17 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
                 cases.append(("randomized q=0", "randomized", {"power_iterations": 0}))
             else:
                 cases.append((method, method, {}))
+        def scored(run: Callable[[], dict[str, Any]]) -> dict[str, Any]:
+            # the fastest of the repeats, with its accuracy; ratios are set once the floor is final
+            figures = _best([run() for _ in range(max(1, settings.repeats))])
+            figures["error_top10"] = _accuracy(figures["singular_value"], sigma, 10)
+            figures["error_top_rank"] = _accuracy(figures["singular_value"], sigma, settings.rank)
+            return figures
+
         with _runner("threads", settings.workers) as runner:
             for label, method, extra in cases:
                 say(f"compress: {label} (threads)")
-                figures = _best([run_method(h5_path, method, settings, runner, **extra)
-                                 for _ in range(max(1, settings.repeats))])
-                figures["ratio"] = figures["seconds"] / floor
-                figures["error_top10"] = _accuracy(figures["singular_value"], sigma, 10)
-                figures["error_top_rank"] = _accuracy(figures["singular_value"], sigma, settings.rank)
-                out["methods"][label] = figures
+                out["methods"][label] = scored(lambda: run_method(h5_path, method, settings, runner, **extra))
             say("peak memory of the sketch at m/2 and m snapshots")
             half = run_method(h5_path, "sketch", settings, runner, snapshots=m // 2)
             full = run_method(h5_path, "sketch", settings, runner)
@@ -338,12 +340,7 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
             out["svd_compressed"] = {}
             for q in (0, 1):
                 say(f"dask.array.linalg.svd_compressed k={settings.rank} n_power_iter={q}")
-                figures = _best([run_svd_compressed(h5_path, settings.rank, q, block)
-                                 for _ in range(max(1, settings.repeats))])
-                figures["ratio"] = figures["seconds"] / floor
-                figures["error_top10"] = _accuracy(figures["singular_value"], sigma, 10)
-                figures["error_top_rank"] = _accuracy(figures["singular_value"], sigma, settings.rank)
-                out["svd_compressed"][q] = figures
+                out["svd_compressed"][q] = scored(lambda: run_svd_compressed(h5_path, settings.rank, q, block))
         # the floor once more, after the methods: on a shared machine the load changes during
         # a run, and the floor is the best the machine did (every ratio uses the lower one)
         say("floor again")
