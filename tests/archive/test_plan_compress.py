@@ -31,9 +31,10 @@ TIME_MAJOR = _info(_field("u", (4096, 64, 64), (1, 64, 64)), _field("p", (4096, 
 def _peak(n_t, b, k, l, *, n, m, r, fields, workers, in_flight, method, s=8):
     """The module docstring's model written out by hand."""
     tile = n_t * b * s
-    cache = s * n * l if method == "sketch" else 0
+    # the sparse sign co-range map keeps zeta = min(l, 8) int32 columns + float64 signs per row
+    cache = n * min(l, 8) * (4 + 8) if method == "sketch" else 0
     result = s * (n_t * k + b * (k + l))
-    driver = {"sketch": s * (2 * n * k + n * r + fields * m * l + n + n * l),
+    driver = {"sketch": s * (2 * n * k + n * r + fields * m * l + n) + cache,
               "randomized": s * (3 * n * k + m * k + n)}[method]
     return workers * (2 * tile + cache) + in_flight * result + driver
 

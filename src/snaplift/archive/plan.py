@@ -16,9 +16,10 @@ widths (:func:`method_widths`):
 
 - per tile being read: ``2 n_t b s`` (the decoded tile and the read/decoding buffer);
 - per tile result waiting to be folded: ``s (n_t k + b (k + l))``;
-- per worker: the cached row test matrix ``s n l`` (``sketch`` only; all rows, since a
-  worker sees every row of a time-major archive);
-- driver accumulators: ``sketch`` ``s (2 n k + n r + F m l + n + n l)`` (with its own copy of
+- per worker: the cached row test matrix ``c`` (``sketch`` only; all rows, since a worker
+  sees every row of a time-major archive): ``12 zeta n`` bytes for the sparse sign map
+  (``zeta = min(l, 8)`` int32 columns and float64 signs per row), ``s n l`` for a Gaussian one;
+- driver accumulators: ``sketch`` ``s (2 n k + n r + F m l + n) + c`` (with its own copy of
   the row test matrix for finishing); ``randomized``
   ``s (3 n k + m k + n)``; ``tsqr`` ``s (n r + L m^2 + n)`` (``F`` fields, ``L`` leaves);
 - ``peak_bytes_estimate = workers x (2 tile + cache) + in_flight x result + driver``
@@ -56,6 +57,7 @@ import numpy as np
 from snaplift.archive._base import ArchiveInfo
 from snaplift.archive._common import missing_field_error
 from snaplift.errors import ArchiveError
+from snaplift.linalg._testmatrix import row_map_bytes
 
 __all__ = ["TilePlan", "Tile", "plan_tiles", "method_widths", "method_passes"]
 
@@ -240,6 +242,7 @@ def plan_tiles(
     sketch_widths: tuple[int, int] | None = None,
     in_flight: int | None = None,
     shared_memory: bool = False,
+    corange_map: str = "sparse",
 ) -> TilePlan:
     """Plan tiles aligned to stored chunks that fit a memory budget.
 
@@ -267,6 +270,9 @@ def plan_tiles(
     shared_memory
         Workers are threads of one process (dask's threaded scheduler): the cached row
         test matrix is held once, not once per worker.
+    corange_map
+        ``sketch``'s co-range test matrix, "sparse" (``12 zeta`` bytes per row kept) or
+        "gaussian" (``s l`` bytes per row).
 
     Returns
     -------
@@ -309,7 +315,8 @@ def plan_tiles(
                               in_flight=int(in_flight or workers + 1), method=method, rank=int(rank),
                               widths=method_widths(method, rank, oversample=oversample, sketch_widths=sketch_widths),
                               passes=method_passes(method, power_iterations=power_iterations,
-                                                   check_pass=check_pass), shared_memory=shared_memory)
+                                                   check_pass=check_pass), shared_memory=shared_memory,
+                              corange_map=corange_map)
     chunks = [max(1, min(f.snapshot_chunk, n_snapshots)) for f in chosen]
     unit = math.lcm(*chunks) if chunks else 1
     budget = memory_bytes // (2 * workers)
@@ -400,7 +407,7 @@ def _compressed(info: ArchiveInfo, f: Any) -> bool:
 
 def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any], *, memory_bytes: int,
                    workers: int, in_flight: int, method: str, rank: int, widths: tuple[int, int],
-                   passes: int, shared_memory: bool = False) -> TilePlan:
+                   passes: int, shared_memory: bool = False, corange_map: str = "sparse") -> TilePlan:
     """The compress memory model of the module docstring; see :func:`plan_tiles`."""
     if workers < 1 or in_flight < 1 or memory_bytes <= 0:
         raise ArchiveError(f"tile plan for {info.path}: memory, workers and in_flight must be positive")
@@ -414,8 +421,8 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
     unit = math.lcm(*chunks) if chunks else 1
     if method == "sketch":
         # the driver regenerates the row test matrix to form Psi Q when the sketch is finished
-        driver = s * (2 * n * k + n * rank + len(chosen) * m * l + n + n * l)
-        cache = s * n * l
+        cache = row_map_bytes(corange_map, n, l, s)
+        driver = s * (2 * n * k + n * rank + len(chosen) * m * l + n) + cache
     elif method == "randomized":
         driver = s * (3 * n * k + m * k + n)
         cache = 0

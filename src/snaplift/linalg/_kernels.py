@@ -17,7 +17,6 @@ __all__ = [
     "TEST_BLOCK_ROWS",
     "column_squares",
     "range_product",
-    "corange_product",
     "adjoint_product",
     "qr_factor",
     "reduce_r_factors",
@@ -77,14 +76,6 @@ def column_squares(raw: np.ndarray) -> np.ndarray:
 def range_product(raw: np.ndarray, right: np.ndarray) -> np.ndarray:
     """This tile's share of ``X @ right``: ``(rows, width)`` from ``raw`` = X_tile^T."""
     return raw.T @ right
-
-
-def corange_product(raw: np.ndarray, left_t: np.ndarray) -> np.ndarray:
-    """This tile's columns of ``left @ X`` as ``(snapshots, width)``, given ``left^T`` (rows, width).
-
-    Tropp et al. (2017) apply the co-range test matrix without conjugation: ``W = Psi X``.
-    """
-    return raw @ left_t
 
 
 def adjoint_product(raw: np.ndarray, basis_rows: np.ndarray) -> np.ndarray:

@@ -17,9 +17,9 @@ import numpy as np
 from snaplift.archive._base import Reader
 from snaplift.archive.matrix import FieldRows, check_finite, read_snapshot_block
 from snaplift.errors import ArchiveError
-from snaplift.linalg._kernels import adjoint_product, column_squares, corange_product, qr_factor, range_product
+from snaplift.linalg._kernels import adjoint_product, column_squares, qr_factor, range_product
 from snaplift.linalg._slots import add_range_product
-from snaplift.linalg._testmatrix import cached_row_map, gaussian_map, set_cache_limit
+from snaplift.linalg._testmatrix import apply_corange, cached_row_map, gaussian_map, set_cache_limit
 
 __all__ = ["TileSource", "TileRef", "Preparing", "sketch_task", "product_task", "tsqr_task", "tsqr_leaf_task"]
 
@@ -34,6 +34,8 @@ class TileSource:
     complex_valued: bool
     seed: int
     cache_bytes: int = 1 << 30
+    #: kind of the co-range row map (``compress.corange_map``): "sparse" or "gaussian"
+    corange_map: str = "gaussian"
 
     @property
     def n_rows(self) -> int:
@@ -116,8 +118,9 @@ def sketch_task(source: TileSource, widths: tuple[int, int], slot: Any, tile: Ti
         # before the range product: that one may wait for this slot's previous tile, and
         # by now it has usually arrived
         g0, g1 = tile.global_rows(source)
-        psi_t = cached_row_map(g0, g1, corange_width, seed=source.seed, complex_valued=source.complex_valued)
-        out["corange"] = corange_product(raw, psi_t)
+        psi_t = cached_row_map(g0, g1, corange_width, seed=source.seed, complex_valued=source.complex_valued,
+                               kind=source.corange_map)
+        out["corange"] = apply_corange(raw, psi_t)
     _range(out, slot, source, tile, raw, omega)
     return out
 

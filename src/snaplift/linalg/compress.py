@@ -35,6 +35,7 @@ from snaplift.errors import ArchiveError
 from snaplift.linalg._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
 from snaplift.linalg._kernels import normalize_signs
 from snaplift.linalg._tasks import TileSource
+from snaplift.linalg._testmatrix import ROW_MAPS, row_map_bytes
 from snaplift.linalg.randomized import LowRank, randomized_compress
 from snaplift.linalg.sketch import SketchState, default_sketch_widths, finish_sketch, merge_sketches
 from snaplift.linalg.streaming import Checkpointer, StreamState, ThreadRunner, TileRunner
@@ -57,6 +58,8 @@ class CompressOptions:
     check_pass: bool = False
     center: bool = False
     scale: Any = "rms"
+    #: co-range test matrix of ``sketch``: "sparse" (sparse sign, Tropp et al. 2019) or "gaussian"
+    corange_map: str = "sparse"
 
     def widths(self, n: int, m: int) -> tuple[int, int]:
         """Sketch widths ``(k, l)`` of the first read for this method."""
@@ -112,10 +115,13 @@ def _columns(matrix: SnapshotMatrix, plan: TilePlan | None, method: str) -> list
 
 
 def _source(matrix: SnapshotMatrix, options: CompressOptions, corange_width: int, row_blocks: list) -> TileSource:
+    if options.corange_map not in ROW_MAPS:
+        raise ArchiveError(f"compress.corange_map {options.corange_map!r} is not one of {', '.join(ROW_MAPS)}")
     itemsize = np.dtype(matrix.dtype).itemsize
-    cache = itemsize * corange_width * matrix.shape[0] + (1 << 20)
+    cache = row_map_bytes(options.corange_map, matrix.shape[0], corange_width, itemsize) + (1 << 20)
     return TileSource(matrix.reader, matrix.fields, np.asarray(matrix.snapshot_index, dtype=np.int64),
-                      bool(np.issubdtype(matrix.dtype, np.complexfloating)), int(options.seed), int(cache))
+                      bool(np.issubdtype(matrix.dtype, np.complexfloating)), int(options.seed), int(cache),
+                      options.corange_map)
 
 
 def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOptions, *,
@@ -208,7 +214,7 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
             sketch_read(run, matrix, jobs, state, range_width, corange_width)
             run.end_pass(state)
         sketch = SketchState.from_stream(state.arrays, len(matrix.fields), matrix.snapshot_index,
-                                         options.seed, source.complex_valued)
+                                         options.seed, source.complex_valued, options.corange_map)
         global_blocks = row_blocks
         preparation, lowrank = finish_sketch(sketch, matrix, rank, center=options.center, scale=options.scale,
                                              row_blocks=global_blocks)
@@ -225,6 +231,7 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
                                              scale=options.scale)
     passes = int(state.pass_number)
     info = {"method": options.method, "range_width": range_width, "corange_width": corange_width,
+            "corange_map": options.corange_map if options.method == "sketch" else None,
             "tiles": len(jobs), "in_flight": run.in_flight, "runner": getattr(runner, "kind", "?"),
             "resumed": resumed, "checkpoints_saved": checkpoint.saves if checkpoint is not None else 0,
             "bytes_read_all_runs": int(state.bytes_read), "bytes_read_before_resume": bytes_before}
@@ -270,7 +277,8 @@ def sketch_append(old: SketchState | dict[str, np.ndarray], new_matrix: Snapshot
         with ThreadRunner(1) as own:
             return sketch_append(old_state, new_matrix, plan, runner=own, in_flight=in_flight)
     k, l = old_state.widths
-    options = CompressOptions(method="sketch", rank=1, seed=old_state.seed, sketch_widths=(k, l))
+    options = CompressOptions(method="sketch", rank=1, seed=old_state.seed, sketch_widths=(k, l),
+                              corange_map=old_state.corange_map)
     row_blocks = kept_row_blocks(new_matrix, plan.point_blocks if plan is not None else None)
     jobs = build_jobs(new_matrix, row_blocks, list(new_matrix.blocks))
     source = _source(new_matrix, options, l, row_blocks)
@@ -278,5 +286,5 @@ def sketch_append(old: SketchState | dict[str, np.ndarray], new_matrix: Snapshot
     run = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers))
     sketch_read(run, new_matrix, jobs, state, k, l)
     new = SketchState.from_stream(state.arrays, len(new_matrix.fields), new_matrix.snapshot_index,
-                                  old_state.seed, source.complex_valued)
+                                  old_state.seed, source.complex_valued, old_state.corange_map)
     return merge_sketches(old_state, new)

@@ -13,6 +13,14 @@ equals 2 for real data, and ``k = 2r + 1`` leaves room for the tail minimisation
 ``rho < k - 1``. ``compress.sketch_widths`` overrides it; the benchmark reports the
 accuracy and cost of both this choice and a cheaper ``k = r + 10, l = 2k + 1``.
 
+Co-range map. ``compress.corange_map: sparse`` (the default) draws ``Psi`` as a sparse
+sign matrix with ``zeta = min(l, 8)`` nonzeros per column (Tropp et al. 2019, Sec. 3.3),
+``gaussian`` as a dense Gaussian one (the map of the 2017 error bound, Thm 4.3). The
+sparse map costs ``zeta`` additions per entry of the archive instead of ``l``
+multiply-adds, so the co-range width is almost free; its errors match the Gaussian map's
+(measured: ``tests/linalg/test_sketch_maps.py`` and ``snaplift bench``). Both keep the
+range map ``Omega`` Gaussian: the basis comes from the range sketch.
+
 Because both sketches are linear in ``A`` and the test matrices are keyed by global
 snapshot/row index, snapshots appended to an archive update the sketch state by reading
 only the new ones (:func:`append_sketch`); the result equals a from-scratch run to rounding.
@@ -29,7 +37,7 @@ import numpy as np
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.errors import ArchiveError
 from snaplift.linalg._kernels import normalize_signs, solve_small
-from snaplift.linalg._testmatrix import cached_row_map, gaussian_map, row_map
+from snaplift.linalg._testmatrix import apply_left, cached_row_map, gaussian_map, row_map
 from snaplift.linalg.randomized import LowRank
 from snaplift.linalg.tsqr import tsqr
 from snaplift.prepare import (
@@ -43,6 +51,8 @@ from snaplift.prepare import (
 __all__ = ["SketchState", "default_sketch_widths", "finish_sketch", "sketch_reconstruction", "merge_sketches",
            "sketch_error_bound"]
 
+#: codes of the co-range map kinds in the stored ``sketch/parameters``
+_MAP_CODES = {"gaussian": 0, "sparse": 1}
 #: rows of Psi generated at a time when the driver forms Psi Q (bounds its memory)
 _DRIVER_ROWS = 1 << 15
 
@@ -99,6 +109,8 @@ class SketchState:
     snapshot_index: np.ndarray
     seed: int
     complex_valued: bool
+    #: the co-range map (``compress.corange_map``); stores written before it existed are Gaussian
+    corange_map: str = "gaussian"
 
     @property
     def widths(self) -> tuple[int, int]:
@@ -108,21 +120,27 @@ class SketchState:
         """Plain arrays for the result store's ``sketch/`` group (and checkpoints)."""
         return {"range_sketch": self.range_sketch, "corange_sketch": self.corange_sketch,
                 "row_sum": self.row_sum, "squares": self.squares, "snapshot_index": self.snapshot_index,
-                "parameters": np.array([self.seed, int(self.complex_valued), *self.widths], dtype=np.int64)}
+                "parameters": np.array([self.seed, int(self.complex_valued), *self.widths,
+                                        _MAP_CODES[self.corange_map]], dtype=np.int64)}
 
     @classmethod
     def from_arrays(cls, arrays: dict[str, np.ndarray]) -> SketchState:
         parameters = np.asarray(arrays["parameters"])
+        code = int(parameters[4]) if parameters.size > 4 else _MAP_CODES["gaussian"]
+        kinds = {value: key for key, value in _MAP_CODES.items()}
+        if code not in kinds:
+            raise ArchiveError(f"stored sketch: co-range map code {code} is not one of {sorted(kinds)}")
         return cls(np.asarray(arrays["range_sketch"]), np.asarray(arrays["corange_sketch"]),
                    np.asarray(arrays["row_sum"]), np.asarray(arrays["squares"]),
-                   np.asarray(arrays["snapshot_index"], dtype=np.int64), int(parameters[0]), bool(parameters[1]))
+                   np.asarray(arrays["snapshot_index"], dtype=np.int64), int(parameters[0]), bool(parameters[1]),
+                   kinds[code])
 
     @classmethod
     def from_stream(cls, arrays: dict[str, np.ndarray], n_fields: int, snapshot_index: np.ndarray,
-                    seed: int, complex_valued: bool) -> SketchState:
+                    seed: int, complex_valued: bool, corange_map: str = "gaussian") -> SketchState:
         corange = np.stack([arrays[f"corange_{f}"] for f in range(n_fields)])
         return cls(arrays["range"], corange, arrays["row_sum"], arrays["squares"],
-                   np.asarray(snapshot_index, dtype=np.int64), int(seed), bool(complex_valued))
+                   np.asarray(snapshot_index, dtype=np.int64), int(seed), bool(complex_valued), str(corange_map))
 
 
 def merge_sketches(old: SketchState, new: SketchState) -> SketchState:
@@ -131,11 +149,12 @@ def merge_sketches(old: SketchState, new: SketchState) -> SketchState:
     ``new`` must come from the same seed and widths, the same rows (fields, mask,
     weights) and snapshots that all come after the old ones.
     """
-    if (old.seed, old.complex_valued, old.widths) != (new.seed, new.complex_valued, new.widths):
+    if (old.seed, old.complex_valued, old.widths, old.corange_map) != \
+            (new.seed, new.complex_valued, new.widths, new.corange_map):
         raise ArchiveError(
             f"cannot append: the stored sketch has seed {old.seed}, widths {old.widths}, "
-            f"complex {old.complex_valued}; the new one has seed {new.seed}, widths {new.widths}, "
-            f"complex {new.complex_valued}"
+            f"complex {old.complex_valued}, co-range map {old.corange_map}; the new one has seed {new.seed}, "
+            f"widths {new.widths}, complex {new.complex_valued}, co-range map {new.corange_map}"
         )
     if old.range_sketch.shape[0] != new.range_sketch.shape[0] or old.squares.shape[0] != new.squares.shape[0]:
         raise ArchiveError(
@@ -151,11 +170,12 @@ def merge_sketches(old: SketchState, new: SketchState) -> SketchState:
     return SketchState(old.range_sketch + new.range_sketch,
                        np.concatenate([old.corange_sketch, new.corange_sketch], axis=1),
                        old.row_sum + new.row_sum, np.concatenate([old.squares, new.squares], axis=1),
-                       np.concatenate([old.snapshot_index, new.snapshot_index]), old.seed, old.complex_valued)
+                       np.concatenate([old.snapshot_index, new.snapshot_index]), old.seed, old.complex_valued,
+                       old.corange_map)
 
 
 def _psi_products(matrix: SnapshotMatrix, q: np.ndarray, mean: np.ndarray | None, l: int, seed: int,
-                  complex_valued: bool, row_blocks: list[list[tuple[int, int]]] | None
+                  complex_valued: bool, row_blocks: list[list[tuple[int, int]]] | None, kind: str = "gaussian"
                   ) -> tuple[np.ndarray, list[np.ndarray] | None]:
     """``Psi Q`` (l x k) and, when centred, ``Psi_f mu_f`` per field, formed in the driver.
 
@@ -175,10 +195,10 @@ def _psi_products(matrix: SnapshotMatrix, q: np.ndarray, mean: np.ndarray | None
             blocks = [(g0, min(g0 + _DRIVER_ROWS, field.stop)) for g0 in range(field.offset, field.stop, _DRIVER_ROWS)]
             generate = row_map
         for g0, g1 in blocks:
-            psi_t = generate(g0, g1, l, seed=seed, complex_valued=complex_valued)
-            psi_q += psi_t.T @ q[g0:g1]
+            psi_t = generate(g0, g1, l, seed=seed, complex_valued=complex_valued, kind=kind)
+            psi_q += apply_left(psi_t, q[g0:g1])
             if part is not None:
-                part += psi_t.T @ mean[g0:g1]
+                part += apply_left(psi_t, mean[g0:g1])
         if psi_mean is not None:
             psi_mean.append(part)
     return psi_q, psi_mean
@@ -202,7 +222,7 @@ def sketch_reconstruction(state: SketchState, matrix: SnapshotMatrix, *, center:
     omega = gaussian_map(state.snapshot_index, k, seed=state.seed, complex_valued=state.complex_valued)
     q, _ = tsqr(corrected_sketch(state.range_sketch, preparation, omega))
     psi_q, psi_mean = _psi_products(matrix, q, preparation.mean, l, state.seed, state.complex_valued,
-                                     row_blocks)
+                                     row_blocks, state.corange_map)
     w_t = corrected_corange(list(state.corange_sketch), preparation, psi_mean)  # (m, l) = (Psi A)^T
     return preparation, q, solve_small(psi_q, w_t.T)
 
@@ -244,4 +264,5 @@ def finish_sketch(state: SketchState, matrix: SnapshotMatrix, rank: int, *, cent
 
 def finish_info(state: SketchState) -> dict[str, Any]:
     k, l = state.widths
-    return {"range_width": k, "corange_width": l, "seed": state.seed, "snapshots": int(state.snapshot_index.size)}
+    return {"range_width": k, "corange_width": l, "corange_map": state.corange_map, "seed": state.seed,
+            "snapshots": int(state.snapshot_index.size)}

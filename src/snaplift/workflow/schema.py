@@ -104,7 +104,8 @@ class CompressSection(_Section):
 
     ``sketch``: one read (Tropp et al. 2017/2019), widths ``sketch_widths: [k, l]``
     (default ``[2 rank + 1, 2 k + 1]``), coefficients and projection errors estimated
-    unless ``check_pass: true`` (one more read, exact). ``randomized``: ``2 + 2
+    unless ``check_pass: true`` (one more read, exact); ``corange_map``: ``sparse`` (sparse
+    sign map, the default, Tropp et al. 2019) or ``gaussian``. ``randomized``: ``2 + 2
     power_iterations`` reads (Halko et al. 2011). ``tsqr``: two reads, exact (Demmel et al.
     2012), for archives with few snapshots. ``memory``: budget of the tile plan (default:
     from the cluster). ``checkpoint_every``: tiles (``200``) or a duration (``60s``)
@@ -123,6 +124,9 @@ class CompressSection(_Section):
         None, description="sketch only: range and co-range widths [k, l], rank <= k <= l"
     )
     check_pass: bool = Field(False, description="sketch only: one more read for exact coefficients and errors")
+    corange_map: Literal["sparse", "gaussian"] | None = Field(
+        None, description="sketch only: co-range test matrix, 'sparse' sign (default) or 'gaussian'"
+    )
     checkpoint_every: int | str | None = Field(
         None, description="tiles (e.g. 200) or a duration (e.g. 60s, 5m) between checkpoints"
     )
@@ -154,6 +158,8 @@ class CompressSection(_Section):
             k, l = self.sketch_widths
             if not self.rank <= k <= l:
                 raise ValueError(f"sketch_widths [k, l] = [{k}, {l}] must satisfy rank ({self.rank}) <= k <= l")
+        if self.corange_map is not None and self.method != "sketch":
+            raise ValueError(f"corange_map applies to method 'sketch', not {self.method!r}")
         if self.check_pass and self.method != "sketch":
             raise ValueError(
                 f"check_pass applies to method 'sketch'; {self.method!r} already gives exact coefficients"

@@ -242,6 +242,7 @@ def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler) -> TilePl
         workers=scheduler.workers, method=settings.method, rank=settings.rank, oversample=settings.oversample,
         power_iterations=settings.power_iterations, check_pass=settings.check_pass,
         sketch_widths=settings.sketch_widths, shared_memory=scheduler.kind == "threads",
+        corange_map=settings.corange_map or "sparse",
     )
 
 
@@ -274,7 +275,7 @@ def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, *
         power_iterations=settings.power_iterations, seed=settings.seed,
         sketch_widths=None if settings.sketch_widths is None else tuple(settings.sketch_widths),
         check_pass=settings.check_pass, center=workflow.prepare.center,
-        scale=lifted_scale(workflow.prepare.scale, matrix),
+        scale=lifted_scale(workflow.prepare.scale, matrix), corange_map=settings.corange_map or "sparse",
     )
     with runner_for(scheduler) as runner:
         result = compress(matrix, plan, options, runner=runner,
