@@ -146,8 +146,13 @@ def scan(
         raise ConfigError(f"--method {method!r} is not a compress method; use sketch, randomized or tsqr")
     if rank < 1:
         raise ConfigError(f"--rank must be >= 1; got {rank}")
+    from snaplift.cluster import resident_memory
+
+    # the plan compress makes under the default 'threads' cluster: this process's baseline
+    # (interpreter, libraries) is part of the budget (compress.memory bounds the process tree)
     report = scan_archive(reader, fields=chosen, time=time, step=step, full=full,
-                          memory_bytes=parse_bytes(memory), method=method, rank=rank)
+                          memory_bytes=parse_bytes(memory), method=method, rank=rank,
+                          baseline_bytes=resident_memory().reserve())
     if json_output:
         typer.echo(scan_json(report))
     else:

@@ -160,8 +160,10 @@ def test_worker_killed_mid_run_is_survived(tmp_path: Path) -> None:
     with h5py.File(tmp_path / "a.h5", "w") as h5:
         h5["t"] = 0.1 * np.arange(40)
         h5.create_dataset("u", data=x, chunks=(1, 8, 10))
+    # compress.memory bounds the whole process tree (interpreters included); the 40 snapshots
+    # still make 8 tiles a pass for 2 workers (snaplift.archive.plan.TILES_PER_WORKER)
     base = {"archive": {"path": "a.h5", "fields": ["u"], "time": "t"}, "compress": {"rank": 4, "oversample": 4,
-            "memory": "64KiB"}}
+            "memory": "2GiB"}}
     (tmp_path / "threads.yaml").write_text(yaml.safe_dump({**base, "cluster": "threads", "output": {"path": "t.zarr"}}))
     (tmp_path / "local.yaml").write_text(yaml.safe_dump({**base, "cluster": {"kind": "local", "workers": 2},
                                                          "output": {"path": "l.zarr"}}))

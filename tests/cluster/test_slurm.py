@@ -51,7 +51,7 @@ def _archive(folder: Path) -> None:
 
 def _workflow(folder: Path, name: str, cluster: object, output: str) -> Path:
     data = {"archive": {"path": "a.h5", "fields": ["u"], "time": "t"},
-            "compress": {"rank": 6, "oversample": 4, "memory": "256KiB"}, "fit": {"rank": 4},
+            "compress": {"rank": 6, "oversample": 4, "memory": "4GiB"}, "fit": {"rank": 4},
             "output": {"path": output}, "cluster": cluster}
     path = folder / name
     path.write_text(yaml.safe_dump(data))

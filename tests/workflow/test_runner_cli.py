@@ -19,8 +19,10 @@ def _workflow(folder: Path, cluster: object = "threads") -> Path:
         h5["t"] = 0.1 * np.arange(24)
         h5.create_dataset("u", data=rng.standard_normal((24, 5, 6)), chunks=(1, 5, 6))
     path = folder / "w.yaml"
+    # compress.memory bounds the whole process tree, interpreters included: a budget that
+    # holds them; the tiles stay small (each worker gets snaplift.archive.plan.TILES_PER_WORKER)
     path.write_text(yaml.safe_dump({"archive": {"path": "a.h5", "fields": ["u"], "time": "t"},
-                                    "compress": {"rank": 3, "oversample": 2, "memory": "64KiB"},
+                                    "compress": {"rank": 3, "oversample": 2, "memory": "2GiB"},
                                     "output": {"path": "r.zarr"}, "cluster": cluster}))
     return path
 

@@ -26,7 +26,7 @@ from snaplift.workflow.runner import FAULT_VARIABLE
 SNAPSHOTS = 64
 
 
-def _setup(folder: Path, cluster: str = "threads", **compress) -> Path:
+def _setup(folder: Path, cluster: str | dict = "threads", **compress) -> Path:
     rng = np.random.default_rng(4)
     pairs = np.array([0.98 * np.exp(0.3j), 0.92 * np.exp(1.0j), 0.95 * np.exp(0.1j)])
     phi = rng.standard_normal((120, 3)) + 1j * rng.standard_normal((120, 3))
@@ -128,17 +128,20 @@ def test_ctrl_c_keeps_finished_stages(tmp_path: Path, monkeypatch: pytest.Monkey
 def test_killed_mid_compress_rereads_at_most_one_interval(tmp_path: Path, killed_after: int) -> None:
     from snaplift.linalg.streaming import load_checkpoint
 
-    # a small tile budget: 8 snapshots per tile, 8 tiles per pass; a checkpoint every 2 tiles
-    settings = {"checkpoint_every": 2, "memory": "96KiB"}
+    # 8 snapshots per tile, 8 tiles per pass: 2 worker threads get TILES_PER_WORKER = 4 blocks
+    # each under a budget that holds the process (compress.memory bounds the whole process
+    # tree); a checkpoint every 2 tiles
+    settings = {"checkpoint_every": 2, "memory": "2GiB"}
+    threads = {"kind": "threads", "workers": 2}
     reference_folder = tmp_path / "ref"
     reference_folder.mkdir()
-    reference = _run(_setup(reference_folder, **settings))
+    reference = _run(_setup(reference_folder, threads, **settings))
     assert reference.returncode == 0, reference.stderr
     full = zarr.open_group(str(reference_folder / "r.zarr"), mode="r").attrs["stages"]["compress"]
     tile_bytes = full["bytes_read"] // (full["passes"] * 8)
     folder = tmp_path / "killed"
     folder.mkdir()
-    path = _setup(folder, **settings)
+    path = _setup(folder, threads, **settings)
     killed = _run(path, f"compress:{killed_after}")  # SIGKILL after that many tiles were folded
     assert killed.returncode == -signal.SIGKILL
     (saved,) = (folder / "r.zarr.staging" / "checkpoint").glob("compress-*/compress.npz")

@@ -102,7 +102,7 @@ def test_changed_compress_reruns_compress_and_after(tmp_path: Path) -> None:
     assert _statuses(changed)["fit"] == "computed" and _statuses(changed)["modes"] == "computed"
     assert read_group(changed.path, "basis")["singular_value"].size == 5
     # the tile budget does not change results, so it does not force a rerun
-    budget = run_workflow(_workflow(tmp_path, compress={"rank": 5, "oversample": 4, "memory": "512MiB"}))
+    budget = run_workflow(_workflow(tmp_path, compress={"rank": 5, "oversample": 4, "memory": "4GiB"}))
     assert _statuses(budget)["compress"] == "reused"
 
 

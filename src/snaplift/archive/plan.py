@@ -22,8 +22,8 @@ widths (:func:`method_widths`):
 - driver accumulators: ``sketch`` ``s (2 n k + n r + F m l + n) + c`` (with its own copy of
   the row test matrix for finishing); ``randomized``
   ``s (3 n k + m k + n)``; ``tsqr`` ``s (n r + L m^2 + n)`` (``F`` fields, ``L`` leaves);
-- ``peak_bytes_estimate = workers x (2 tile + cache) + in_flight x result + driver``
-  which must fit ``memory_bytes``. When the workers are threads of one process
+- ``peak = workers x (2 tile + cache) + in_flight x result + driver``
+  which must fit ``memory_bytes - baseline_bytes`` (below). When the workers are threads of one process
   (``shared_memory``) the cache is held once and range products are summed in place
   in one ``s n k`` slot per worker, so a result in flight is only ``s (n_t + b (k + l))``
   and the driver holds ``s (2 n k + 2 m k + F m l + 2 n)`` while tiles are read; its
@@ -39,7 +39,20 @@ block in one tile, so its tiles are row blocks x all snapshots.
 
 *Legacy model* (``method=None``, the first planner's, kept for callers that plan
 without a method): per worker ``tile + s k (2 n + 2 b)`` with ``k = sketch_width`` must fit
-``memory_bytes / (2 workers)``; ``peak_bytes_estimate = 2 workers (tile + accumulators)``.
+``(memory_bytes - baseline_bytes) / (2 workers)``; ``peak = 2 workers (tile + accumulators)``.
+
+*The budget is for the whole process tree.* ``memory_bytes`` (``compress.memory``) bounds
+the resident memory of every process of the run: this process (the driver, and under
+dask's threaded scheduler also every worker), the worker processes of a distributed
+cluster and their nannies. What those processes already hold before the pass, the
+*baseline* (``baseline_bytes``: interpreters, imported numpy/dask/h5py, the scheduler, a
+worker's own bookkeeping), is measured by the caller
+(:func:`snaplift.cluster.resident_memory`, psutil RSS) and the tiles are planned in what
+remains; none of the model's terms above is part of it (they are allocated by the pass,
+and a finished compress releases its caches). So ``peak_bytes_estimate = baseline_bytes +
+peak <= memory_bytes``, and the plan with baseline ``b`` under ``B`` is the plan with
+baseline 0 under ``B - b``. Library callers that pass no baseline get the model alone
+(``baseline_bytes = 0``): the tiles then fit ``memory_bytes`` but the processes come on top.
 
 ``point_blocks`` holds, per field, the point ranges of its tiles; ``tiles()`` iterates
 block by block, fields in order.
@@ -107,7 +120,12 @@ class TilePlan:
     accumulator_bytes
         Bytes of the largest field's sketch accumulators.
     peak_bytes_estimate
-        ``2 * workers * (tile_bytes + accumulator_bytes)``; at most ``memory_bytes``.
+        ``baseline_bytes`` plus the model's peak (module docstring); at most ``memory_bytes``.
+    memory_bytes
+        The budget of the whole process tree (``compress.memory``).
+    baseline_bytes
+        What the run's processes held before the pass (measured by the caller; 0 when
+        the plan is for the model alone); the tiles were planned in ``memory_bytes - baseline_bytes``.
     """
 
     fields: tuple[str, ...]
@@ -133,6 +151,7 @@ class TilePlan:
     cache_bytes: int = 0
     result_bytes: int = 0
     partial_chunk_reads: bool = False
+    baseline_bytes: int = 0
 
     @property
     def n_points(self) -> int:
@@ -176,6 +195,7 @@ class TilePlan:
             else int(2 * self.tile_bytes + self.result_bytes),
             "peak_bytes_estimate": int(self.peak_bytes_estimate),
             "memory_bytes": int(self.memory_bytes),
+            "baseline_bytes": int(self.baseline_bytes),
             "workers": int(self.workers),
             "sketch_width": int(self.sketch_width),
             "row_blocking": (f"{max(len(b) for b in self.point_blocks)} point blocks per field"
@@ -193,6 +213,26 @@ class TilePlan:
             else int(2 * self.tile_bytes + self.cache_bytes + self.result_bytes),
             "partial_chunk_reads": bool(self.partial_chunk_reads),
         }
+
+
+@dataclass(frozen=True)
+class _Baseline:
+    """The part of ``memory_bytes`` the run's processes hold before the pass (module docstring)."""
+
+    bytes: int
+    label: str
+    memory: int
+    shared_memory: bool
+
+    @property
+    def available(self) -> int:
+        return self.memory - self.bytes
+
+    def phrase(self, *, budget: bool = True) -> str:
+        who = self.label or "the processes of the run"
+        verb = "uses" if who == "this process" else "use"
+        return (f"{who} already {verb} {_mib(self.bytes)}"
+                + (f" of compress.memory {_mib(self.memory)}" if budget else ""))
 
 
 def _accumulator_bytes(points: int, block: int, width: int, itemsize: int) -> int:
@@ -243,6 +283,8 @@ def plan_tiles(
     in_flight: int | None = None,
     shared_memory: bool = False,
     corange_map: str = "sparse",
+    baseline_bytes: int = 0,
+    baseline_label: str = "",
 ) -> TilePlan:
     """Plan tiles aligned to stored chunks that fit a memory budget.
 
@@ -258,7 +300,8 @@ def plan_tiles(
     fields
         Fields to read, in stacking order; their snapshot counts must agree.
     memory_bytes
-        Budget for all workers together (``compress.memory`` of the workflow).
+        Budget for the whole process tree of the run (``compress.memory`` of the
+        workflow): driver, workers and nannies together, ``baseline_bytes`` included.
     sketch_width
         Columns of the sketches accumulated next to each tile.
     workers
@@ -273,6 +316,13 @@ def plan_tiles(
     corange_map
         ``sketch``'s co-range test matrix, "sparse" (``12 zeta`` bytes per row kept) or
         "gaussian" (``s l`` bytes per row).
+    baseline_bytes
+        Resident memory the run's processes hold before the pass (measured, e.g.
+        :func:`snaplift.cluster.resident_memory`); tiles are planned in ``memory_bytes -
+        baseline_bytes``. 0 (the default) plans the model alone.
+    baseline_label
+        Which processes the baseline is, for the error message (e.g. "2 worker processes,
+        2 nannies and this process").
 
     Returns
     -------
@@ -282,7 +332,7 @@ def plan_tiles(
     ------
     ArchiveError
         If one stored snapshot chunk of the largest field does not fit, with the numbers
-        and the budget that would.
+        and the budget that would; if the baseline leaves no room, with the baseline.
 
     Examples
     --------
@@ -293,11 +343,16 @@ def plan_tiles(
     names = tuple(str(f) for f in fields)
     if not names:
         raise ArchiveError(f"tile plan for {info.path}: no fields requested")
-    if memory_bytes <= 0 or workers < 1 or sketch_width < 0:
+    if memory_bytes <= 0 or workers < 1 or sketch_width < 0 or baseline_bytes < 0:
         raise ArchiveError(
-            f"tile plan for {info.path}: memory_bytes must be > 0, workers >= 1 and "
-            f"sketch_width >= 0; got {memory_bytes}, {workers}, {sketch_width}"
+            f"tile plan for {info.path}: memory_bytes must be > 0, workers >= 1, "
+            f"sketch_width >= 0 and baseline_bytes >= 0; got {memory_bytes}, {workers}, {sketch_width}, "
+            f"{baseline_bytes}"
         )
+    baseline = _Baseline(int(baseline_bytes), baseline_label, int(memory_bytes), bool(shared_memory))
+    if baseline.bytes and baseline.available <= 0:
+        raise ArchiveError(f"tile plan for {info.path}: {baseline.phrase()}; raise compress.memory"
+                           + ("" if shared_memory else " or use cluster kind 'threads' (one process for all workers)"))
     for name in names:
         if name not in info.fields:
             raise missing_field_error(name, info.path, list(info.fields))
@@ -316,10 +371,10 @@ def plan_tiles(
                               widths=method_widths(method, rank, oversample=oversample, sketch_widths=sketch_widths),
                               passes=method_passes(method, power_iterations=power_iterations,
                                                    check_pass=check_pass), shared_memory=shared_memory,
-                              corange_map=corange_map)
+                              corange_map=corange_map, baseline=baseline)
     chunks = [max(1, min(f.snapshot_chunk, n_snapshots)) for f in chosen]
     unit = math.lcm(*chunks) if chunks else 1
-    budget = memory_bytes // (2 * workers)
+    budget = baseline.available // (2 * workers)
     itemsizes = [np.dtype(f.dtype).itemsize for f in chosen]
 
     def need(block: int) -> tuple[int, int, str]:
@@ -342,13 +397,15 @@ def plan_tiles(
             if len(set(chunks)) > 1
             else f"{unit} snapshots"
         )
-        required = 2 * workers * (tile + acc)
+        required = 2 * workers * (tile + acc) + baseline.bytes
+        memory_note = (f"memory {_mib(memory_bytes)}" if not baseline.bytes
+                       else f"of compress.memory {_mib(memory_bytes)}, {baseline.phrase(budget=False)}")
         raise ArchiveError(
             f"tile plan for {info.path}: one stored snapshot chunk of field '{worst_field}' "
             f"({chunk_note} x {f.n_points} points) needs {_mib(tile)} for the tile plus "
             f"{_mib(acc)} of sketch accumulators (width {sketch_width}), but the budget "
-            f"per worker is memory / (2 x workers) = {_mib(budget)} (memory "
-            f"{_mib(memory_bytes)}, {workers} workers); raise compress.memory to at least "
+            f"per worker is {'memory' if not baseline.bytes else 'what remains'} / (2 x workers) = {_mib(budget)} "
+            f"({memory_note}, {workers} workers); raise compress.memory to at least "
             f"{required} bytes ({_mib(required)}) or use fewer workers"
         )
     # the largest multiple of the unit that fits; need() is increasing in the block
@@ -384,10 +441,11 @@ def plan_tiles(
         bytes_to_read=int(bytes_to_read),
         tile_bytes=int(tile),
         accumulator_bytes=int(acc),
-        peak_bytes_estimate=int(2 * workers * (tile + acc)),
+        peak_bytes_estimate=int(2 * workers * (tile + acc) + baseline.bytes),
         memory_bytes=int(memory_bytes),
         workers=int(workers),
         sketch_width=int(sketch_width),
+        baseline_bytes=baseline.bytes,
     )
 
 
@@ -407,10 +465,14 @@ def _compressed(info: ArchiveInfo, f: Any) -> bool:
 
 def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any], *, memory_bytes: int,
                    workers: int, in_flight: int, method: str, rank: int, widths: tuple[int, int],
-                   passes: int, shared_memory: bool = False, corange_map: str = "sparse") -> TilePlan:
+                   passes: int, shared_memory: bool = False, corange_map: str = "sparse",
+                   baseline: _Baseline | None = None) -> TilePlan:
     """The compress memory model of the module docstring; see :func:`plan_tiles`."""
     if workers < 1 or in_flight < 1 or memory_bytes <= 0:
         raise ArchiveError(f"tile plan for {info.path}: memory, workers and in_flight must be positive")
+    baseline = baseline or _Baseline(0, "", memory_bytes, shared_memory)
+    # the tiles, caches and accumulators fit in what the processes do not already hold
+    available = baseline.available
     m = chosen[0].n_snapshots
     k, l = widths
     itemsizes = [np.dtype(f.dtype).itemsize for f in chosen]
@@ -467,27 +529,31 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
     if method == "tsqr":
         block = m
         cap = full
-        if cost(cap, block)[0] > memory_bytes:
-            cap = _largest(lambda rows: cost(rows, block)[0] <= memory_bytes, full)
+        if cost(cap, block)[0] > available:
+            cap = _largest(lambda rows: cost(rows, block)[0] <= available, full)
     else:
         cap = full
         first = min(unit, m) if m else 1
-        if cost(cap, max(first, 1))[0] <= memory_bytes:
+        if cost(cap, max(first, 1))[0] <= available:
             multiples = max(1, math.ceil(m / unit))
-            low = _largest(lambda n: cost(cap, min(n * unit, m))[0] <= memory_bytes, multiples)
+            low = _largest(lambda n: cost(cap, min(n * unit, m))[0] <= available, multiples)
             # keep every worker busy: at least TILES_PER_WORKER tiles each when the archive allows
             target = math.ceil(max(m, 1) / (TILES_PER_WORKER * workers))
             block = min(low * unit, max(unit, math.ceil(target / unit) * unit), m)
         else:
             block = max(first, 1)
-            cap = _largest(lambda rows: cost(rows, block)[0] <= memory_bytes, full)
+            cap = _largest(lambda rows: cost(rows, block)[0] <= available, full)
     peak, tile, result = cost(cap, block)
-    if peak > memory_bytes:
+    if peak > available:
+        budget_note = (f"compress.memory is {_mib(memory_bytes)}" if not baseline.bytes
+                       else f"{baseline.phrase()}, leaving {_mib(available)}")
+        other = "" if shared_memory or not baseline.bytes else (
+            ", use cluster kind 'threads' (one process for all workers)")
         raise ArchiveError(
             f"tile plan for {info.path}: compress.method {method!r} needs at least {peak} bytes "
             f"({_mib(peak)}) for its smallest tiles ({block} snapshots x {min(rows_of(cap))} points) with "
             f"{workers} workers, {in_flight} tiles in flight and {_mib(driver)} of accumulators, but "
-            f"compress.memory is {_mib(memory_bytes)}; raise compress.memory to at least {peak} bytes "
+            f"{budget_note}; raise compress.memory to at least {peak + baseline.bytes} bytes{other} "
             "or use fewer workers"
         )
     rows = rows_of(cap)
@@ -504,10 +570,11 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
     return TilePlan(
         fields=names, n_snapshots=m, field_points=tuple(points), chunk=unit if method != "tsqr" else m,
         block=block, snapshot_blocks=blocks, point_blocks=point_blocks, bytes_to_read=int(bytes_to_read),
-        tile_bytes=int(tile), accumulator_bytes=int(driver), peak_bytes_estimate=int(peak),
+        tile_bytes=int(tile), accumulator_bytes=int(driver), peak_bytes_estimate=int(peak + baseline.bytes),
         memory_bytes=int(memory_bytes), workers=int(workers), sketch_width=int(k + l), method=method,
         passes=int(passes), range_width=int(k), corange_width=int(l), in_flight=int(in_flight),
         driver_bytes=int(driver), cache_bytes=int(cache), result_bytes=int(result), partial_chunk_reads=partial,
+        baseline_bytes=int(baseline.bytes),
     )
 
 

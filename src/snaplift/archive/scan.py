@@ -353,6 +353,7 @@ def scan_archive(
     sketch_widths: tuple[int, int] | None = None,
     workers: int = 1,
     shared_memory: bool = True,
+    baseline_bytes: int = 0,
 ) -> ScanReport:
     """Describe an archive, check its times and values, and plan its tiles.
 
@@ -375,6 +376,10 @@ def scan_archive(
         would use (:func:`~snaplift.archive.plan.plan_tiles` with ``method``; the
         defaults are those of the ``compress`` section and one worker thread).
         ``method=None`` gives the planner's legacy model (no compress method).
+    baseline_bytes
+        What the run's processes hold before the pass, planned around as compress does
+        (``compress.memory`` bounds the whole process tree; see
+        :func:`~snaplift.archive.plan.plan_tiles`); 0 plans the model alone.
 
     Returns
     -------
@@ -458,7 +463,8 @@ def scan_archive(
             else:
                 plan = plan_tiles(info, names, memory_bytes=memory_bytes, method=method, rank=rank,
                                   power_iterations=power_iterations, sketch_widths=sketch_widths,
-                                  workers=workers, shared_memory=shared_memory)
+                                  workers=workers, shared_memory=shared_memory, baseline_bytes=baseline_bytes,
+                                  baseline_label="this process" if baseline_bytes else "")
         except ArchiveError as error:
             plan_error = str(error)
 

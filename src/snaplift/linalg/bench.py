@@ -226,9 +226,15 @@ def _runner(kind: str, workers: int) -> Iterator[Any]:
 
 def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *, snapshots: int | None = None,
                sketch_widths: tuple[int, int] | None = None, power_iterations: int = 1) -> dict[str, Any]:
-    """One compress run through the library, as the compress stage does it."""
+    """One compress run through the library, as the compress stage does it.
+
+    As the workflow does, the tiles are planned in what the budget leaves once the
+    processes' measured baseline is taken (:func:`snaplift.cluster.resident_memory`), so
+    ``peak_rss`` (this process tree, sampled) is to be compared with ``settings.memory_bytes``.
+    """
     from snaplift.archive import open_archive, plan_tiles
     from snaplift.archive.matrix import build_snapshot_matrix
+    from snaplift.cluster import resident_memory
     from snaplift.linalg.compress import CompressOptions, compress
 
     reader = open_archive(str(path))
@@ -236,9 +242,11 @@ def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *,
     m = info.fields["u"].n_snapshots if snapshots is None else snapshots
 
     def work() -> Any:
+        resident = resident_memory(getattr(runner, "client", None), workers=runner.workers)
         plan = plan_tiles(info, ["u"], memory_bytes=settings.memory_bytes, workers=runner.workers, method=method,
                           rank=settings.rank, power_iterations=power_iterations, sketch_widths=sketch_widths,
-                          shared_memory=runner.kind == "threads")
+                          shared_memory=runner.kind == "threads", baseline_bytes=resident.reserve(),
+                          baseline_label=resident.label)
         matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(m), snapshot_block=1,
                                        snapshot_blocks=plan.snapshot_blocks)
         options = CompressOptions(method=method, rank=settings.rank, power_iterations=power_iterations,
@@ -249,7 +257,8 @@ def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *,
     archive_bytes = m * info.fields["u"].n_points * 8
     return {"seconds": elapsed, "passes": result.passes, "bytes_ratio": result.bytes_read / archive_bytes,
             "singular_value": result.lowrank.singular_value, "peak_rss": memory.peak, "baseline_rss": memory.baseline,
-            "plan_peak": plan.peak_bytes_estimate, "block": plan.block, "tiles": plan.n_tiles,
+            "plan_peak": plan.peak_bytes_estimate, "plan_baseline": plan.baseline_bytes, "block": plan.block,
+            "tiles": plan.n_tiles,
             "widths": (result.info["range_width"], result.info["corange_width"]), "kind": result.projection_kind}
 
 
@@ -303,9 +312,13 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
         out["raw_read_seconds"] = raw_read(h5_path, "hdf5")
         width = settings.rank + 10
         from snaplift.archive import open_archive, plan_tiles
+        from snaplift.cluster import resident_memory
 
+        # the floor reads in the blocks the threaded sketch would plan
+        resident = resident_memory()
         block = plan_tiles(open_archive(str(h5_path)).describe(), ["u"], memory_bytes=settings.memory_bytes,
-                           workers=settings.workers, method="sketch", rank=settings.rank, shared_memory=True).block
+                           workers=settings.workers, method="sketch", rank=settings.rank, shared_memory=True,
+                           baseline_bytes=resident.reserve(), baseline_label=resident.label).block
         say(f"floor: one pass forming two products of width {width} (blocks of {block} snapshots)")
         out["floor_seconds"], out["floor_schedules"] = floor_pass(h5_path, width, block)
         floor = out["floor_seconds"]

@@ -87,7 +87,9 @@ def render_scan(report: ScanReport) -> Any:
         tiles.add_row("memory", f"{human_bytes(plan['memory_per_tile_bytes'])} per tile in flight, "
                                 + (f"{human_bytes(per_worker)} per worker, " if per_worker else "")
                                 + f"peak estimate {human_bytes(plan['peak_bytes_estimate'])} "
-                                f"(budget {human_bytes(plan['memory_bytes'])}, {plan.get('workers', 1)} worker(s))")
+                                + (f"incl. {human_bytes(plan['baseline_bytes'])} the processes hold before the pass "
+                                   if plan.get("baseline_bytes") else "")
+                                + f"(budget {human_bytes(plan['memory_bytes'])}, {plan.get('workers', 1)} worker(s))")
         parts.append(tiles)
     elif data.get("plan_error"):
         parts.append(f"[red]tile plan: {data['plan_error']}[/red]")

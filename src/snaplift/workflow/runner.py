@@ -243,7 +243,11 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
         faults.enter("scan")
         reporter.begin("scan", f"{workflow.archive.path} ({scheduler.kind} scheduler, {scheduler.workers} workers)")
         stage_started = _now()
-        scanned = stage_functions.scan_stage(workflow, folder, scheduler)
+        # a killed run of this job left its scan record: plan around the baseline it reserved
+        # (when the processes measure no more), so that the tiles, and the checkpoint, match
+        killed_scan = store.record("scan") or {}
+        scanned = stage_functions.scan_stage(workflow, folder, scheduler,
+                                             recorded_baseline=killed_scan.get("memory_baseline"))
         fingerprint_now = archive_fingerprint(scanned.reader)
         previous_scan = store.previous_record("scan")
         info = scanned.reader.describe()
@@ -265,6 +269,7 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
             "bytes_read": classification.bytes_read, "bytes_sampled": fingerprint_now["bytes_sampled"],
             "archive": fingerprint_now, "samples": classification.samples, "identity": classification.identity,
             "classification": classification.state, "classification_reason": classification.reason,
+            "memory_baseline": int(scanned.plan.baseline_bytes) if scanned.plan is not None else 0,
             "started": stage_started.isoformat(), "finished": _now().isoformat()})
         reporter.end("scan", f"archive {classification.state} ({classification.reason})")
         warnings.extend(scanned.warnings)

@@ -25,7 +25,7 @@ from snaplift.archive import (
 from snaplift.archive._base import ArchiveInfo
 from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
 from snaplift.archive.plan import TilePlan
-from snaplift.cluster import Scheduler
+from snaplift.cluster import Scheduler, resident_memory
 from snaplift.errors import ArchiveError, ConfigError, FieldNotFoundError, TimeSpacingError
 from snaplift.lifting import delayed_run_lengths
 from snaplift.linalg.randomized import LowRank
@@ -87,8 +87,13 @@ class Compressed:
     info: dict[str, object] = field(default_factory=dict)
 
 
-def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler) -> Scanned:
-    """Open the archive, select snapshots, check times, plan tiles. Reads metadata only."""
+def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
+               recorded_baseline: int | None = None) -> Scanned:
+    """Open the archive, select snapshots, check times, plan tiles. Reads metadata only.
+
+    ``recorded_baseline``: the baseline a killed run of this job planned with (its scan
+    record's ``memory_baseline``); see :func:`plan_compress`.
+    """
     section = workflow.archive
     # the workflow names its fields: a one-value-per-snapshot (1-D) dataset is then a field too
     reader = open_archive(resolve_path(folder, section.path), format=section.format, fields=list(section.fields),
@@ -121,7 +126,7 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler) -> Scanne
             column_runs = delayed_run_lengths(selected_runs, lift.delays, lift.spacing)
         except ConfigError as error:
             raise ConfigError(f"lift delays on {reader.path}: {error}") from None
-    plan = plan_compress(workflow, info, scheduler)
+    plan = plan_compress(workflow, info, scheduler, recorded_baseline=recorded_baseline)
     block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
     # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
     snapshot_block = max(1, block // section.snapshots.every)
@@ -213,7 +218,11 @@ def _check_state_size(workflow: Workflow, info: ArchiveInfo) -> None:
 
 def compress_memory(workflow: Workflow, scheduler: Scheduler) -> int:
     """``compress.memory``, else what the cluster gives: the process's memory under threads,
-    memory per worker times workers for worker processes."""
+    memory per worker times workers for worker processes.
+
+    The budget of the whole process tree of the run (driver, workers, nannies): the
+    compress plan subtracts what those processes already hold (:func:`plan_compress`).
+    """
     if workflow.compress.memory:
         return parse_bytes(workflow.compress.memory)
     if scheduler.kind == "threads":
@@ -221,11 +230,20 @@ def compress_memory(workflow: Workflow, scheduler: Scheduler) -> int:
     return int(scheduler.memory_per_worker) * max(1, int(scheduler.workers))
 
 
-def plan_compress(workflow: Workflow, info, scheduler: Scheduler) -> TilePlan:
-    """The tile plan of the compress stage for this workflow and scheduler (metadata only)."""
+def plan_compress(workflow: Workflow, info, scheduler: Scheduler, *, recorded_baseline: int | None = None) -> TilePlan:
+    """The tile plan of the compress stage for this workflow and scheduler (metadata only).
+
+    ``compress.memory`` is the budget of the whole process tree: the resident memory the
+    scheduler's processes hold now (:func:`snaplift.cluster.resident_memory`: this process,
+    and the worker processes and nannies of a distributed cluster), plus a small margin, is
+    the plan's ``baseline_bytes``, and the tiles are planned in what remains. With
+    ``recorded_baseline`` (a resumed run) that value is kept when the processes measure no
+    more, so the resumed run plans the tiles its checkpoint was made with
+    (:meth:`snaplift.cluster.ResidentMemory.reserve`).
+    """
     lifted = lifted_info(info, workflow)
     try:
-        return _plan(workflow, lifted, scheduler)
+        return _plan(workflow, lifted, scheduler, recorded_baseline)
     except ArchiveError as error:
         if lifted is info:
             raise
@@ -234,8 +252,9 @@ def plan_compress(workflow: Workflow, info, scheduler: Scheduler) -> TilePlan:
                           "archive fields: fewer delays or pointwise terms also shrink the tiles") from None
 
 
-def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler) -> TilePlan:
+def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler, recorded_baseline: int | None) -> TilePlan:
     settings = workflow.compress
+    resident = resident_memory(scheduler.client, workers=scheduler.workers)
     return plan_tiles(
         info, list(info.fields) if workflow.field_lift is not None else list(workflow.archive.fields),
         memory_bytes=compress_memory(workflow, scheduler),
@@ -243,6 +262,7 @@ def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler) -> TilePl
         power_iterations=settings.power_iterations, check_pass=settings.check_pass,
         sketch_widths=settings.sketch_widths, shared_memory=scheduler.kind == "threads",
         corange_map=settings.corange_map or "sparse",
+        baseline_bytes=resident.reserve(recorded_baseline), baseline_label=resident.label,
     )
 
 
