@@ -39,7 +39,7 @@ from snaplift.errors import ArchiveError
 from snaplift.linalg._kernels import normalize_signs, solve_small
 from snaplift.linalg._testmatrix import apply_left, cached_row_map, gaussian_map, row_map
 from snaplift.linalg.randomized import LowRank
-from snaplift.linalg.tsqr import tsqr
+from snaplift.linalg.tsqr import orthonormal_basis
 from snaplift.prepare import (
     Preparation,
     corrected_corange,
@@ -220,7 +220,7 @@ def sketch_reconstruction(state: SketchState, matrix: SnapshotMatrix, *, center:
     k, l = state.widths
     preparation = finish_preparation(matrix, state.row_sum, list(state.squares), center=center, scale=scale)
     omega = gaussian_map(state.snapshot_index, k, seed=state.seed, complex_valued=state.complex_valued)
-    q, _ = tsqr(corrected_sketch(state.range_sketch, preparation, omega))
+    q = orthonormal_basis(corrected_sketch(state.range_sketch, preparation, omega))
     psi_q, psi_mean = _psi_products(matrix, q, preparation.mean, l, state.seed, state.complex_valued,
                                      row_blocks, state.corange_map)
     w_t = corrected_corange(list(state.corange_sketch), preparation, psi_mean)  # (m, l) = (Psi A)^T
