@@ -3,7 +3,8 @@
 References: numpy.linalg.qr / numpy.linalg.svd (LAPACK) for the factors and spectra;
 Demmel, Grigori, Hoemmen, Langou (2012) for TSQR keeping Q^H Q = I whatever the condition;
 Fukaya et al. (2014) and Yamamoto et al. (2015) for CholeskyQR2 being orthonormal to
-rounding when the condition number is below ~u^(-1/2) = 1e8 (and only then).
+rounding when the condition number is below ~u^(-1/2) = 1e8, and Fukaya et al. (2020) for the
+shifted first step beyond it.
 """
 
 from __future__ import annotations
@@ -76,13 +77,16 @@ def householder_calls(monkeypatch: pytest.MonkeyPatch) -> list[int]:
     return calls
 
 
+@pytest.mark.parametrize("order", ["C", "F"])
 @pytest.mark.parametrize("complex_valued", [False, True], ids=["real", "complex"])
-@pytest.mark.parametrize("condition", [1.0e1, 1.0e5])
-def test_cholesky_qr2_is_used_and_orthonormal_below_1e8(householder_calls, complex_valued: bool,
-                                                         condition: float) -> None:
-    a = _conditioned(30000, 50, condition, complex_valued=complex_valued, seed=3)
+@pytest.mark.parametrize("condition", [1.0e1, 1.0e5, 1.0e10])
+def test_cholesky_qr_is_used_and_orthonormal_up_to_condition_1e10(householder_calls, complex_valued: bool,
+                                                                   condition: float, order: str) -> None:
+    a = np.asarray(_conditioned(30000, 50, condition, complex_valued=complex_valued, seed=3), order=order)
     q = orthonormal_basis(a)
-    assert householder_calls == []  # CholeskyQR2 was enough (Yamamoto et al. 2015: kappa < u^-1/2)
+    # CholeskyQR2 below ~u^-1/2 = 1e8 (Yamamoto et al. 2015); above, the shifted first step
+    # (Fukaya et al. 2020) keeps Cholesky QR going up to ~1/u
+    assert householder_calls == []
     assert _orthogonality(q) < 1e-13
     # the same column space as LAPACK's Q: the projectors agree
     q_ref, _ = np.linalg.qr(a)
@@ -100,12 +104,11 @@ def test_cholesky_qr2_falls_back_to_householder_when_ill_conditioned(householder
     np.testing.assert_allclose(q @ (q.conj().T @ a), a, rtol=0, atol=1e-12 * np.abs(a).max())
 
 
-def test_rank_deficient_input_still_gets_an_orthonormal_basis(householder_calls) -> None:
+def test_rank_deficient_input_still_gets_an_orthonormal_basis() -> None:
     rng = np.random.default_rng(5)
     a = rng.standard_normal((5000, 12))
     a[:, 7] = a[:, 2] - 0.5 * a[:, 9]  # exactly dependent column: Cholesky of a^T a breaks down
     q = orthonormal_basis(a)
-    assert householder_calls == [1]
     assert q.shape == (5000, 12) and _orthogonality(q) < 1e-12
     np.testing.assert_allclose(q @ (q.T @ a), a, rtol=0, atol=1e-12 * np.abs(a).max())
 
@@ -115,3 +118,21 @@ def test_short_or_empty_input_goes_to_householder(householder_calls) -> None:
     q = orthonormal_basis(a)
     assert householder_calls == [1] and _orthogonality(q) < 1e-13
     assert orthonormal_basis(np.zeros((100, 0))).shape == (100, 0)
+
+
+@pytest.mark.parametrize("order", ["C", "F"])
+@pytest.mark.parametrize("condition", [1.0e5, 1.0e10, 1.0e12, "rank-deficient"])
+def test_overwriting_the_input_gives_the_same_basis(condition, order: str) -> None:
+    if condition == "rank-deficient":
+        a = np.random.default_rng(7).standard_normal((8000, 16))
+        a[:, 3] = 2.0 * a[:, 11]
+    else:
+        a = _conditioned(8000, 16, condition, seed=7)
+    a = np.asarray(a, order=order)
+    kept = a.copy(order="K")
+    q = orthonormal_basis(a, overwrite=True)  # a is garbage afterwards
+    assert _orthogonality(q) < 1e-12
+    # the same column space as the untouched input, to rounding (backward error ~ u ||a||)
+    np.testing.assert_allclose(q @ (q.T @ kept), kept, rtol=0, atol=1e-12 * np.abs(kept).max())
+    reference = orthonormal_basis(kept.copy(order="K"))
+    np.testing.assert_allclose(np.linalg.svd(q.T @ reference, compute_uv=False)[:15], 1.0, atol=1e-9)

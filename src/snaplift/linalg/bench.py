@@ -225,7 +225,8 @@ def _runner(kind: str, workers: int) -> Iterator[Any]:
 
 
 def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *, snapshots: int | None = None,
-               sketch_widths: tuple[int, int] | None = None, power_iterations: int = 1) -> dict[str, Any]:
+               sketch_widths: tuple[int, int] | None = None, power_iterations: int = 1,
+               corange_map: str = "sparse") -> dict[str, Any]:
     """One compress run through the library, as the compress stage does it.
 
     As the workflow does, the tiles are planned in what the budget leaves once the
@@ -246,11 +247,12 @@ def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *,
         plan = plan_tiles(info, ["u"], memory_bytes=settings.memory_bytes, workers=runner.workers, method=method,
                           rank=settings.rank, power_iterations=power_iterations, sketch_widths=sketch_widths,
                           shared_memory=runner.kind == "threads", baseline_bytes=resident.reserve(),
-                          baseline_label=resident.label)
+                          baseline_label=resident.label, corange_map=corange_map)
         matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(m), snapshot_block=1,
                                        snapshot_blocks=plan.snapshot_blocks)
         options = CompressOptions(method=method, rank=settings.rank, power_iterations=power_iterations,
-                                  sketch_widths=sketch_widths, scale="none")
+                                  sketch_widths=sketch_widths, scale="none",
+                                  **({"corange_map": corange_map} if method == "sketch" else {}))
         return plan, compress(matrix, plan, options, runner=runner, in_flight=plan.in_flight)
 
     elapsed, (plan, result), memory = _timed(work)
@@ -327,8 +329,13 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
         for method in settings.methods:
             if method == "sketch":
                 cases.append(("sketch", "sketch", {}))
+                # the Gaussian co-range map the 2017 bound is proved for, same widths
+                cases.append(("sketch, gaussian co-range", "sketch", {"corange_map": "gaussian"}))
                 k = settings.rank + 10
                 cases.append(("sketch (k=r+10, l=2k+1)", "sketch", {"sketch_widths": (k, 2 * k + 1)}))
+                # a wider co-range costs little with the sparse map (Tropp et al. 2019, Sec. 3.3)
+                k = 2 * settings.rank + 1
+                cases.append(("sketch (k=2r+1, l=4k+1)", "sketch", {"sketch_widths": (k, 4 * k + 1)}))
             elif method == "randomized":
                 cases.append(("randomized q=1", "randomized", {"power_iterations": 1}))
                 cases.append(("randomized q=0", "randomized", {"power_iterations": 0}))

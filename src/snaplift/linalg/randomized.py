@@ -194,7 +194,8 @@ def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, r
                                      center=center, scale=scale)
     if state.pass_number == 0:
         omega = gaussian_map(matrix.snapshot_index, width, seed=seed, complex_valued=complex_valued)
-        state.arrays["q"] = orthonormal_basis(corrected_sketch(state.arrays.pop("range"), preparation, omega))
+        state.arrays["q"] = orthonormal_basis(corrected_sketch(state.arrays.pop("range"), preparation, omega),
+                                                  overwrite=True)
         run.end_pass(state)
     preparing = run.runner.share(preparing_of(preparation))
     for iteration in range(power_iterations):
@@ -207,7 +208,7 @@ def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, r
             run.end_pass(state)
         if state.pass_number == first + 1:
             product_read(run, matrix, jobs, state, preparing, state.arrays["z"], "range", name="range")
-            state.arrays["q"] = orthonormal_basis(state.arrays.pop("range"))
+            state.arrays["q"] = orthonormal_basis(state.arrays.pop("range"), overwrite=True)
             state.arrays.pop("z", None)
             run.end_pass(state)
     final = 1 + 2 * power_iterations

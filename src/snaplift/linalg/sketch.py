@@ -220,7 +220,8 @@ def sketch_reconstruction(state: SketchState, matrix: SnapshotMatrix, *, center:
     k, l = state.widths
     preparation = finish_preparation(matrix, state.row_sum, list(state.squares), center=center, scale=scale)
     omega = gaussian_map(state.snapshot_index, k, seed=state.seed, complex_valued=state.complex_valued)
-    q = orthonormal_basis(corrected_sketch(state.range_sketch, preparation, omega))
+    # corrected_sketch returns a new array: it may be overwritten
+    q = orthonormal_basis(corrected_sketch(state.range_sketch, preparation, omega), overwrite=True)
     psi_q, psi_mean = _psi_products(matrix, q, preparation.mean, l, state.seed, state.complex_valued,
                                      row_blocks, state.corange_map)
     w_t = corrected_corange(list(state.corange_sketch), preparation, psi_mean)  # (m, l) = (Psi A)^T

@@ -29,11 +29,11 @@ from snaplift.linalg._kernels import leaf_factors, normalize_signs, qr_factor, r
 
 __all__ = ["tsqr", "tsqr_compress", "orthonormal_basis", "CHOLESKY_QR_TOLERANCE"]
 
-#: how far from the identity the Gram matrix of the first Cholesky QR step's ``Q`` may be
-#: for the second step to give orthonormal columns (it is then a Cholesky QR of a matrix of
-#: condition <= sqrt((1 + t) / (1 - t)), whose loss of orthogonality is a small multiple
-#: of the unit roundoff; Yamamoto, Nakatsukasa, Yanagisawa, Fukaya 2015, Thm 3.3); beyond
-#: it, Householder TSQR. The value is common practice, not taken from the paper.
+#: how far from the identity (largest entry of ``G - I``) the Gram matrix of a Cholesky QR
+#: step's input may be for its output to be kept: the step is then a Cholesky QR of a
+#: matrix of condition <= sqrt((1 + t) / (1 - t)), whose loss of orthogonality is a small
+#: multiple of the unit roundoff (Yamamoto, Nakatsukasa, Yanagisawa, Fukaya 2015). The
+#: value is common practice, not taken from the paper.
 CHOLESKY_QR_TOLERANCE = 1e-2
 
 
@@ -95,19 +95,25 @@ def tsqr(a: Any, *, block_rows: int | None = None) -> tuple[Any, np.ndarray]:
     return q, r
 
 
-def orthonormal_basis(a: np.ndarray) -> np.ndarray:
-    """Orthonormal columns spanning those of a tall ``a`` (``n x m``, ``n >= m``): ``Q`` of ``a = Q R``.
+def orthonormal_basis(a: np.ndarray, *, overwrite: bool = False) -> np.ndarray:
+    """Orthonormal columns spanning those of a tall ``a`` (``n x m``, ``n >= 2 m``): ``Q`` of ``a = Q R``.
 
-    CholeskyQR2 (Fukaya, Nakatsukasa, Yanagisawa, Yamamoto 2014, "CholeskyQR2: a simple
-    and communication-avoiding algorithm for computing a tall-skinny QR factorization"):
-    twice ``G = a^H a`` (BLAS ``syrk``/``herk``), ``G = R^H R`` (Cholesky), ``a <- a R^-1``
-    (``trsm``). Two reads of ``a`` in BLAS-3 kernels on all cores, about twice as fast as
-    the Householder tree of :func:`tsqr` on a range sketch. Cholesky QR squares the
-    condition number, so the result is used only when the second Gram matrix is within
-    :data:`CHOLESKY_QR_TOLERANCE` of the identity (then the second step restores
-    orthogonality to rounding, Yamamoto et al. 2015); otherwise (condition above ~1e7,
-    rank deficiency, a Cholesky breakdown) the Householder :func:`tsqr` is used. Either
-    way ``Q^H Q = I`` to rounding; ``Q`` may differ from :func:`tsqr`'s by column signs.
+    Cholesky QR steps ``G = a^H a`` (BLAS ``syrk``/``herk``), ``G = R^H R`` (Cholesky),
+    ``a <- a R^-1`` (``trsm``), repeated: CholeskyQR2 (Fukaya, Nakatsukasa, Yanagisawa,
+    Yamamoto 2014). Each step reads ``a`` once in BLAS-3 kernels on all cores, about twice
+    as fast as the Householder tree of :func:`tsqr` on a range sketch. One step squares
+    the condition number, so a step's result is kept only once its Gram matrix was
+    within :data:`CHOLESKY_QR_TOLERANCE` of the identity (that step then restores
+    orthogonality to rounding, Yamamoto, Nakatsukasa, Yanagisawa, Fukaya 2015); up to
+    three steps are tried. When the first Cholesky breaks down (condition above ~1e8) the
+    first step is shifted by ``11 (n m + m (m + 1)) u ||a||_F^2`` (shifted CholeskyQR3,
+    Fukaya, Kannan, Nakatsukasa, Yamamoto, Yanagisawa 2020; the constant from memory, with
+    the Frobenius norm bounding the 2-norm). If all that fails (condition near 1/u, rank
+    deficiency) the Householder :func:`tsqr` is used. Either way ``Q^H Q = I`` to rounding;
+    ``Q`` may differ from :func:`tsqr`'s by column signs. Row- or column-major ``a`` is
+    read in place; ``Q`` has the same layout. With ``overwrite`` the caller gives up ``a``:
+    the first step solves in its memory (no new array of its size; on a machine that maps
+    memory on first use a fresh one costs more than the solve), and ``a`` is garbage after.
 
     Example
     -------
@@ -120,46 +126,88 @@ def orthonormal_basis(a: np.ndarray) -> np.ndarray:
     n, m = a.shape
     if m == 0 or n < 2 * m or a.dtype not in (np.float64, np.complex128):
         return tsqr(a)[0]
-    first = _cholesky_qr_step(a)
-    if first is None:
-        return tsqr(a)[0]
-    second = _cholesky_qr_step(first[0], identity_tolerance=CHOLESKY_QR_TOLERANCE)
-    if second is None:
-        return tsqr(a)[0]
-    return second[0]
+    if not (a.flags.c_contiguous or a.flags.f_contiguous):
+        a = np.ascontiguousarray(a)
+    q, broke_down, last = _cholesky_qr(a, shifted=False, overwrite=overwrite)
+    if q is None and broke_down:  # a broke-down first step solved nothing: ``a`` is intact
+        q, _, last = _cholesky_qr(a, shifted=True, overwrite=overwrite)
+    if q is not None:
+        return q
+    # the last finite iterate spans a's columns to rounding (a backward-stable solve), so
+    # Householder on it is Householder on ``a`` (and ``a`` itself when nothing was solved)
+    return tsqr(last)[0]
 
 
-def _cholesky_qr_step(a: np.ndarray, identity_tolerance: float | None = None) -> tuple[np.ndarray, np.ndarray] | None:
-    """One Cholesky QR step ``(a R^-1, R)``; None on breakdown or a Gram matrix too far from I."""
+def _cholesky_qr(a: np.ndarray, *, shifted: bool, overwrite: bool
+                 ) -> tuple[np.ndarray | None, bool, np.ndarray]:
+    """Up to three Cholesky QR steps (the first shifted if asked).
+
+    Returns ``(Q or None, the first step broke down, the last finite iterate)``.
+    """
+    n, m = a.shape
+    q = a
+    for step in range(3):
+        gram = _gram(q)
+        if gram is None:
+            return None, step == 0, q
+        converged = step > 0 and float(np.max(np.abs(gram - np.eye(m)))) <= CHOLESKY_QR_TOLERANCE
+        if step == 0 and shifted:
+            gram[np.diag_indices_from(gram)] += (11.0 * (n * m + m * (m + 1)) * np.finfo(np.float64).eps
+                                                 * float(np.real(np.trace(gram))))
+        solved = _cholesky_solve(q, gram, overwrite=overwrite or step > 0)  # step > 0: our own iterate
+        if solved is None:
+            return None, step == 0, q
+        q = solved
+        if converged:
+            return q, False, q
+    return None, False, q
+
+
+def _gram(a: np.ndarray) -> np.ndarray | None:
+    """``a^H a`` for a row- or column-major ``a``, read in place (``syrk``/``herk``); None if not finite."""
     from scipy.linalg import blas
 
     complex_valued = np.iscomplexobj(a)
     rank_update = blas.zherk if complex_valued else blas.dsyrk
-    solve = blas.ztrsm if complex_valued else blas.dtrsm
-    # a^T is column-major (m x n) for a C-ordered a, so BLAS reads a in place: upper triangle
-    # of a^T conj(a^T)^H... = conj(a^H a) for complex data, a^T a for real
-    if not a.flags.c_contiguous:
-        a = np.ascontiguousarray(a)
-    upper = rank_update(1.0, a.T, trans=0, lower=0)
+    if a.flags.f_contiguous:  # trans=1 (real) / 2 (complex): C = a^H a
+        upper = rank_update(1.0, a, trans=2 if complex_valued else 1, lower=0)
+        conjugate = False
+    else:  # a^T is column-major: C = a^T conj(a^T)^H = conj(a^H a)
+        upper = rank_update(1.0, a.T, trans=0, lower=0)
+        conjugate = complex_valued
     gram = np.triu(upper) + np.triu(upper, 1).conj().T
-    if complex_valued:
+    if conjugate:
         gram = gram.conj()
-    if not np.all(np.isfinite(gram)):
-        return None
-    if identity_tolerance is not None and np.max(np.abs(gram - np.eye(gram.shape[0]))) > identity_tolerance:
-        return None
+    return gram if np.all(np.isfinite(gram)) else None
+
+
+def _cholesky_solve(a: np.ndarray, gram: np.ndarray, *, overwrite: bool = False) -> np.ndarray | None:
+    """``a R^-1`` with ``gram = R^H R`` (Cholesky); None on breakdown, with ``a`` untouched.
+
+    With ``overwrite`` the solve runs in ``a``'s memory (a fresh array of this size costs
+    more to map than the solve itself on a machine whose memory is mapped on first use).
+    A factor whose diagonal spans more than 1/u is a breakdown: its solve could overflow.
+    """
+    from scipy.linalg import blas
+
     try:
-        r = np.linalg.cholesky(gram).conj().T  # gram = R^H R, R upper triangular
+        r = np.linalg.cholesky(gram).conj().T  # upper triangular
     except np.linalg.LinAlgError:
         return None
-    if not np.all(np.isfinite(r)) or np.min(np.abs(np.diag(r))) <= 0:
+    diagonal = np.abs(np.diag(r))
+    if not np.all(np.isfinite(r)) or diagonal.min() <= np.finfo(np.float64).eps * diagonal.max():
         return None
-    # X R = a  <=>  R^T X^T = a^T: a left solve on the column-major a^T, no copy of a
-    x_t = solve(1.0, r, a.T, side=0, lower=0, trans_a=1)
-    q = x_t.T
+    solve = blas.ztrsm if np.iscomplexobj(a) or np.iscomplexobj(r) else blas.dtrsm
+    r = r.astype(a.dtype, copy=False)
+    if a.flags.f_contiguous:  # X R = a: a right solve on a
+        q = solve(1.0, r, a, side=1, lower=0, overwrite_b=int(overwrite))
+    else:  # X R = a  <=>  R^T X^T = a^T: a left solve on the column-major a^T
+        q = solve(1.0, r, a.T, side=0, lower=0, trans_a=1, overwrite_b=int(overwrite)).T
     if not np.all(np.isfinite(q)):
+        if overwrite:  # cannot happen with the diagonal bounded above; never return garbage
+            raise FloatingPointError(f"Cholesky QR of a {a.shape[0]} x {a.shape[1]} matrix overflowed in place")
         return None
-    return q, r
+    return q
 
 
 def _tsqr_dask(a: Any) -> tuple[Any, np.ndarray]:
