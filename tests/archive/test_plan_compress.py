@@ -32,7 +32,8 @@ def _peak(n_t, b, k, l, *, n, m, r, fields, workers, in_flight, method, s=8):
     """The module docstring's model written out by hand."""
     tile = n_t * b * s
     # the sparse sign co-range map keeps zeta = min(l, 8) int32 columns + float64 signs per row
-    cache = n * min(l, 8) * (4 + 8) if method == "sketch" else 0
+    # and one int32 column pointer per row
+    cache = n * (min(l, 8) * (4 + 8) + 4) if method == "sketch" else 0
     result = s * (n_t * k + b * (k + l))
     driver = {"sketch": s * (2 * n * k + n * r + fields * m * l + n) + cache,
               "randomized": s * (3 * n * k + m * k + n)}[method]

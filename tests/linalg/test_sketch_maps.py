@@ -69,7 +69,8 @@ def test_sparse_products_equal_dense_numpy(complex_valued):
 
 def test_kept_bytes_model():
     psi = SparseSignMap(0, 4096, 163, seed=0)
-    assert psi.nbytes == row_map_bytes("sparse", 4096, 163) == 4096 * 8 * 12
+    # per row: zeta = 8 int32 columns and float64 signs, one int32 pointer of the chunk matrices
+    assert psi.nbytes == row_map_bytes("sparse", 4096, 163) == 4096 * (8 * 12 + 4)
     assert row_map_bytes("gaussian", 4096, 163) == 4096 * 163 * 8
 
 
@@ -107,7 +108,7 @@ def test_plan_keeps_the_small_map(archive, snapshot_matrix, known):
     _, gaussian_plan = snapshot_matrix(reader, "sketch", rank=5, corange_map="gaussian")
     k, l = sparse_plan.range_width, sparse_plan.corange_width
     assert (k, l) == (11, 23)
-    assert sparse_plan.cache_bytes == 1200 * 8 * 12
+    assert sparse_plan.cache_bytes == 1200 * (8 * 12 + 4)  # zeta = 8 columns and signs, one pointer, per row
     assert gaussian_plan.cache_bytes == 1200 * l * 8
 
 

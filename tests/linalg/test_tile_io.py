@@ -158,6 +158,20 @@ def test_slots_sum_row_blocks_like_numpy(complex_valued):
     np.testing.assert_allclose(value, x @ omega, rtol=0, atol=1e-12)  # numpy as the reference
 
 
+@pytest.mark.parametrize("order", ["C", "F"])
+@pytest.mark.parametrize("complex_valued", [False, True])
+def test_range_products_are_summed_chunk_by_chunk_like_numpy(monkeypatch, complex_valued, order):
+    # rows not a multiple of the chunk: the last chunk is short (7 + 7 + 6 of 20 rows)
+    monkeypatch.setattr(_slots, "GEMM_CHUNK_ROWS", 7)
+    rng = np.random.default_rng(5)
+    raw = rng.standard_normal((9, 20)) + (1j * rng.standard_normal((9, 20)) if complex_valued else 0)
+    right = rng.standard_normal((9, 4))
+    out = np.asarray(rng.standard_normal((20, 4)), dtype=np.result_type(raw, right), order=order)
+    expected = out + raw.T @ right  # numpy as the reference (no conjugation: X_tile @ Omega)
+    _slots._gemm_into(out, raw, right)
+    np.testing.assert_allclose(out, expected, rtol=0, atol=1e-13)
+
+
 def test_floor_schedules_form_the_same_products(tmp_path):
     data = np.random.default_rng(4).standard_normal((9, 8, 8))
     path = tmp_path / "floor.h5"

@@ -17,7 +17,7 @@ widths (:func:`method_widths`):
 - per tile being read: ``2 n_t b s`` (the decoded tile and the read/decoding buffer);
 - per tile result waiting to be folded: ``s (n_t k + b (k + l))``;
 - per worker: the cached row test matrix ``c`` (``sketch`` only; all rows, since a worker
-  sees every row of a time-major archive): ``12 zeta n`` bytes for the sparse sign map
+  sees every row of a time-major archive): ``(12 zeta + 4) n`` bytes for the sparse sign map
   (``zeta = min(l, 8)`` int32 columns and float64 signs per row), ``s n l`` for a Gaussian one;
 - driver accumulators: ``sketch`` ``s (2 n k + n r + F m l + n) + c`` (with its own copy of
   the row test matrix for finishing); ``randomized``
@@ -314,7 +314,7 @@ def plan_tiles(
         Workers are threads of one process (dask's threaded scheduler): the cached row
         test matrix is held once, not once per worker.
     corange_map
-        ``sketch``'s co-range test matrix, "sparse" (``12 zeta`` bytes per row kept) or
+        ``sketch``'s co-range test matrix, "sparse" (``12 zeta + 4`` bytes per row kept) or
         "gaussian" (``s l`` bytes per row).
     baseline_bytes
         Resident memory the run's processes hold before the pass (measured, e.g.

@@ -3,10 +3,10 @@
 One read of a time-major HDF5 archive (each stored chunk read once, into a reused
 buffer: positioned reads of the chunks' bytes when they are stored unfiltered, as the
 HDF5 reader does, else h5py's ``read_direct``) forming the two thin products every
-randomized rank-r method needs at least, ``Y = X Omega`` (n x w, summed in place by
-``gemm`` with ``beta = 1``, no temporary) and ``W = Psi X`` (written straight into its
-rows), of width ``w = r + 10``; ``Y`` is column-major, the faster layout for that
-``gemm`` (see :func:`snaplift.linalg._slots._gemm_into`). The test matrices are drawn
+randomized rank-r method needs at least, ``Y = X Omega`` (n x w, summed in place a
+chunk of rows at a time outside the GIL, as compress does: see
+:func:`snaplift.linalg._slots._gemm_into`) and ``W = Psi X`` (written straight into its
+rows), of width ``w = r + 10``; ``Y`` is column-major. The test matrices are drawn
 before the clock starts. Three schedules are timed and the fastest is the floor (a best
 effort, not a strawman):
 

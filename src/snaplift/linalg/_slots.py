@@ -36,7 +36,7 @@ _pid = os.getpid()
 class _Slot:
     shape: tuple[int, int]
     dtype: np.dtype
-    #: one column-major accumulator per row block ``(r0, r1)`` (see :func:`_gemm_into`)
+    #: one column-major accumulator per row block ``(r0, r1)`` (summed by :func:`_gemm_into`)
     blocks: dict[tuple[int, int], np.ndarray] = field(default_factory=dict)
     tiles: set[int] = field(default_factory=set)
     last: int = -1
@@ -73,35 +73,29 @@ def _check_pid() -> None:
         _aborted = set()
 
 
+#: rows of ``raw^T @ right`` formed at a time by :func:`_gemm_into` (a 10 MiB temporary at k = 81)
+GEMM_CHUNK_ROWS = 16384
+
+
 def _gemm_into(out_rows: np.ndarray, raw: np.ndarray, right: np.ndarray) -> None:
-    """``out_rows += raw^T @ right`` in place, one BLAS ``gemm`` with ``beta = 1``.
+    """``out_rows += raw^T @ right`` in place, a chunk of rows at a time.
 
-    ``out_rows`` (rows x k) is best column-major (Fortran order): then ``gemm`` writes a
-    tall ``rows x k`` result with ``raw^T`` as its untransposed left operand, which
-    OpenBLAS runs about a third faster for thin ``k`` than the row-major layout (measured
-    by ``snaplift bench``'s machinery, k = 50..81). A C-ordered ``out_rows`` works too.
+    Each chunk is one numpy ``matmul`` ``right^T @ raw[:, chunk]`` (its transpose is the
+    chunk of the result, column-major like the slot accumulators), then added in place.
+    numpy releases the GIL inside BLAS; scipy's f2py BLAS wrappers (``dgemm`` with
+    ``beta = 1``, which would add in one call) hold it for the whole product, and that
+    stalls every other tile thread's Python-level work (measured: a spinning thread got
+    6 % of its idle progress beside ``scipy.linalg.blas.dgemm``, 100 % beside
+    ``numpy.matmul``). The chunked form costs ~10 % more alone and gives the same sums
+    (one K-loop per entry, in the same order).
     """
-    from scipy.linalg import blas
-
     dtype = np.result_type(out_rows, raw, right)
-    gemm = blas.zgemm if np.issubdtype(dtype, np.complexfloating) else blas.dgemm
-    right = np.asarray(right, dtype=dtype)
-    raw = np.asarray(raw, dtype=dtype)
-    if out_rows.flags.f_contiguous and out_rows.dtype == dtype:
-        # c = out_rows (rows x k, F): op(a) = raw^T (rows x b), op(b) = right (b x k)
-        a, trans_a = (raw.T, 0) if raw.flags.c_contiguous else (np.asfortranarray(raw), 1)
-        result = gemm(1.0, a, right.T, beta=1.0, c=out_rows, trans_a=trans_a, trans_b=1, overwrite_c=1)
-        if not np.shares_memory(result, out_rows):  # pragma: no cover - f2py copied: fall back
-            out_rows += result
-        return
-    # op(a) @ op(b) with c = out_rows^T (k x rows, F-contiguous): a = right^T, b = raw
-    if raw.flags.c_contiguous:
-        b, trans_b = raw.T, 1
-    else:
-        b, trans_b = np.asfortranarray(raw), 0
-    result = gemm(1.0, right.T, b, beta=1.0, c=out_rows.T, trans_a=0, trans_b=trans_b, overwrite_c=1)
-    if not np.shares_memory(result, out_rows):  # pragma: no cover - f2py copied: fall back
-        out_rows += result.T
+    left = np.ascontiguousarray(np.asarray(right, dtype=dtype).T)  # k x b
+    raw = np.asarray(raw)
+    n = raw.shape[1]
+    for r0 in range(0, n, GEMM_CHUNK_ROWS):
+        r1 = min(n, r0 + GEMM_CHUNK_ROWS)
+        out_rows[r0:r1] += np.matmul(left, raw[:, r0:r1]).T
 
 
 #: a tile waits at most this long for its predecessor in a slot before giving up

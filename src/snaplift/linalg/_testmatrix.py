@@ -26,6 +26,7 @@ import os
 import threading
 from collections import OrderedDict
 from concurrent.futures import ThreadPoolExecutor
+from typing import Any
 
 import numpy as np
 
@@ -196,6 +197,10 @@ class SparseSignMap:
             self.signs[lo - self.start:hi - self.start] = signs[lo - offset:hi - offset]
         self.columns.setflags(write=False)
         self.signs.setflags(write=False)
+        # real chunk matrices, built on first use: views of columns/signs, so they cost
+        # only their column pointers (4 bytes per row); several threads may build them at
+        # once, harmlessly (the same values)
+        self._chunk_psi: tuple[int, list[Any]] | None = None
 
     @property
     def shape(self) -> tuple[int, int]:
@@ -203,16 +208,39 @@ class SparseSignMap:
 
     @property
     def nbytes(self) -> int:
-        return int(self.columns.nbytes + self.signs.nbytes)
+        """Columns, signs and the int32 column pointers of the chunk matrices (built on first use)."""
+        return int(self.columns.nbytes + self.signs.nbytes + 4 * (self.stop - self.start))
 
-    def _psi(self, r0: int, r1: int, dtype: np.dtype) -> object:
-        """``Psi`` restricted to local rows ``r0..r1``: a ``width x (r1 - r0)`` CSC matrix."""
+    def _psi(self, r0: int, r1: int, dtype: np.dtype) -> Any:
+        """``Psi`` restricted to local rows ``r0..r1``: a ``width x (r1 - r0)`` CSC matrix.
+
+        Real: its arrays are views of ``columns`` and ``signs`` (int32 pointers, so scipy
+        keeps the int32 indices as they are); complex: the signs are copied as complex.
+        """
         import scipy.sparse as sparse
 
         count = r1 - r0
-        indptr = np.arange(0, count * self.zeta + 1, self.zeta, dtype=np.int64)
+        indptr = np.arange(0, count * self.zeta + 1, self.zeta, dtype=np.int32)
         data = self.signs[r0:r1].reshape(-1).astype(dtype, copy=False)
-        return sparse.csc_matrix((data, self.columns[r0:r1].reshape(-1), indptr), shape=(self.width, count))
+        indices = self.columns[r0:r1].reshape(-1)
+        if data.dtype != np.float64:
+            return sparse.csc_matrix((data, indices, indptr), shape=(self.width, count))
+        # the constructor copies views of read-only arrays; these arrays are valid CSC by
+        # construction (zeta distinct row indices < width per column), so set them
+        psi = sparse.csc_matrix((self.width, count), dtype=np.float64)
+        psi.data, psi.indices, psi.indptr = data, indices, indptr
+        return psi
+
+    def _chunks(self, chunk: int, dtype: np.dtype) -> list[tuple[int, int, Any]]:
+        """``(r0, r1, Psi[:, r0:r1])`` for consecutive chunks of ``chunk`` local rows."""
+        rows = self.stop - self.start
+        bounds = [(r0, min(rows, r0 + chunk)) for r0 in range(0, rows, chunk)]
+        if np.dtype(dtype) != np.float64:
+            return [(r0, r1, self._psi(r0, r1, dtype)) for r0, r1 in bounds]
+        kept = self._chunk_psi
+        if kept is None or kept[0] != chunk:
+            kept = self._chunk_psi = (chunk, [self._psi(r0, r1, np.dtype(np.float64)) for r0, r1 in bounds])
+        return [(r0, r1, matrix) for (r0, r1), matrix in zip(bounds, kept[1])]
 
     def corange(self, raw: np.ndarray) -> np.ndarray:
         """``raw @ Psi^T`` for a snapshot-major tile ``raw`` (snapshots x rows): (snapshots x width).
@@ -228,21 +256,31 @@ class SparseSignMap:
         out = np.zeros((self.width, m_t), dtype=dtype)
         chunk = max(1, min(rows, _SPARSE_CHUNK_ROWS))
         buffer = np.empty((chunk, m_t), dtype=raw.dtype)
-        for r0 in range(0, rows, chunk):
-            r1 = min(rows, r0 + chunk)
+        for r0, r1, psi in self._chunks(chunk, dtype):
             part = buffer[: r1 - r0]
             # transposed a few snapshots at a time: each source row segment stays in cache
             # while it is spread over the buffer (4x faster than one strided copy, measured)
             for s0 in range(0, m_t, _TRANSPOSE_SNAPSHOTS):
                 s1 = min(m_t, s0 + _TRANSPOSE_SNAPSHOTS)
                 np.copyto(part[:, s0:s1], raw[s0:s1, r0:r1].T)
-            out += self._psi(r0, r1, dtype) @ part
+            out += psi @ part
         return out.T
 
     def left(self, values: np.ndarray) -> np.ndarray:
-        """``Psi values`` for ``values`` with these rows (rows x k, or a vector of rows)."""
+        """``Psi values`` for ``values`` with these rows (rows x k, or a vector of rows).
+
+        A chunk of rows at a time, each made contiguous in a small buffer: a column-major
+        ``values`` (a range basis) is never copied whole.
+        """
+        values = np.asarray(values)
+        rows = self.stop - self.start
+        if values.shape[0] != rows:
+            raise ValueError(f"sparse map of {rows} rows applied to {values.shape[0]} rows")
         dtype = np.result_type(values.dtype, np.float64)
-        return np.asarray(self._psi(0, self.stop - self.start, dtype) @ np.ascontiguousarray(values))
+        out = np.zeros((self.width, *values.shape[1:]), dtype=dtype)
+        for r0, r1, psi in self._chunks(max(1, min(rows, _SPARSE_CHUNK_ROWS)), dtype):
+            out += psi @ np.ascontiguousarray(values[r0:r1])
+        return out
 
     def dense(self) -> np.ndarray:
         """The same rows as a dense ``rows x width`` array (tests, small cases)."""
@@ -270,8 +308,8 @@ def apply_left(psi: np.ndarray | SparseSignMap, values: np.ndarray) -> np.ndarra
 
 def row_map_bytes(kind: str, rows: int, width: int, itemsize: int = 8) -> int:
     """Bytes a process keeps for ``rows`` rows of a row map of this kind (the planner's model)."""
-    if kind == "sparse":
-        return int(rows) * sparse_nonzeros(width) * (4 + 8)
+    if kind == "sparse":  # int32 column + float64 sign per nonzero, an int32 column pointer per row
+        return int(rows) * (sparse_nonzeros(width) * (4 + 8) + 4)
     return int(rows) * int(width) * int(itemsize)
 
 

@@ -184,6 +184,21 @@ def _timed(function: Callable[[], Any]) -> tuple[float, Any, ProcessTreeMemory]:
     return elapsed, value, memory
 
 
+def warm(path: Path) -> None:
+    """Read every byte of an archive file (or of every file under a zarr folder) once, untimed.
+
+    Each timed case starts from a warm page cache, as issue 3 measures: a machine that
+    pages out memory it sees idle (Linux DAMON-based reclaim does so on some VMs) would
+    otherwise drop parts of the archive between cases and time the disk instead.
+    """
+    files = [path] if path.is_file() else sorted(p for p in path.rglob("*") if p.is_file())
+    buffer = bytearray(1 << 24)
+    for name in files:
+        with open(name, "rb", buffering=0) as handle:
+            while handle.readinto(buffer):
+                pass
+
+
 def raw_read(path: Path, fmt: str, *, block: int = 1, fresh: bool = False) -> float:
     """Read every stored chunk once (blocks of ``block`` snapshots), nothing else.
 
@@ -359,6 +374,7 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
                            workers=settings.workers, method="sketch", rank=settings.rank, shared_memory=True,
                            baseline_bytes=resident.reserve(), baseline_label=resident.label).block
         say(f"floor: one pass forming two products of width {width} (blocks of {block} snapshots)")
+        warm(h5_path)
         out["floor_seconds"], out["floor_schedules"] = floor_pass(h5_path, width, block)
         floor = out["floor_seconds"]
         out["floor_block"] = block
@@ -388,19 +404,24 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
         with _runner("threads", settings.workers) as runner:
             for label, method, extra in cases:
                 say(f"compress: {label} (threads)")
-                out["methods"][label] = scored(lambda: run_method(h5_path, method, settings, runner, **extra))
+                out["methods"][label] = scored(lambda: (warm(h5_path), run_method(h5_path, method, settings, runner,
+                                                                                  **extra))[1])
             say("peak memory of the sketch at m/2 and m snapshots")
+            warm(h5_path)
             half = run_method(h5_path, "sketch", settings, runner, snapshots=m // 2)
+            warm(h5_path)
             full = run_method(h5_path, "sketch", settings, runner)
             out["memory_half"], out["memory_full"] = half["peak_rss"], full["peak_rss"]
         if settings.dask:
             out["svd_compressed"] = {}
             for q in (0, 1):
                 say(f"dask.array.linalg.svd_compressed k={settings.rank} n_power_iter={q}")
-                out["svd_compressed"][q] = scored(lambda: run_svd_compressed(h5_path, settings.rank, q, block))
+                out["svd_compressed"][q] = scored(lambda: (warm(h5_path),
+                                                           run_svd_compressed(h5_path, settings.rank, q, block))[1])
         # the floor once more, after the methods: on a shared machine the load changes during
         # a run, and the floor is the best the machine did (every ratio uses the lower one)
         say("floor again")
+        warm(h5_path)
         again, again_schedules = floor_pass(h5_path, width, block)
         out["floor_seconds_first"], out["floor_seconds_again"] = out["floor_seconds"], again
         if again < floor:
@@ -415,10 +436,12 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
             raw_read(zarr_path, "zarr")
             out["zarr_raw_read_seconds"] = raw_read(zarr_path, "zarr")
             out["zarr_block_read_seconds"] = raw_read(zarr_path, "zarr", block=block)
+            warm(h5_path)
             out["hdf5_block_read_seconds"] = raw_read(h5_path, "hdf5", block=block)
             # through the readers, as compress reads its tiles
-            reader_read(zarr_path, block, settings.workers)
+            reader_read(zarr_path, block, settings.workers)  # untimed: page cache, chunk-file lists
             out["zarr_tile_read_seconds"] = reader_read(zarr_path, block, settings.workers)
+            reader_read(h5_path, block, settings.workers)
             out["hdf5_tile_read_seconds"] = reader_read(h5_path, block, settings.workers)
             out["zarr_settings"] = _zarr_settings()
             paths["zarr"] = zarr_path
@@ -428,6 +451,7 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
                 with _runner(kind, settings.workers) as runner:
                     for fmt, path in paths.items():
                         say(f"sketch with {kind} on {fmt}")
+                        warm(path)
                         figures = run_method(path, "sketch", settings, runner)
                         out["clusters"][f"{kind}/{fmt}"] = {"seconds": figures["seconds"],
                                                             "ratio": figures["seconds"] / floor,
