@@ -193,6 +193,7 @@ def bench(
     folder: Annotated[Optional[Path], typer.Option(help="where to write the archive (default: a temporary folder)")] = None,
     methods: Annotated[str, typer.Option(help="comma-separated: sketch, randomized, tsqr")] = "sketch,randomized",
     quick: Annotated[bool, typer.Option("--quick", help="skip zarr, worker processes and dask's svd_compressed")] = False,
+    repeats: Annotated[int, typer.Option(help="runs of each compress case; the fastest is reported")] = 2,
     keep: Annotated[bool, typer.Option("--keep", help="keep the archive afterwards")] = False,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="say what would be written and stop")] = False,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
@@ -216,6 +217,8 @@ def bench(
     unknown = sorted(set(chosen) - {"sketch", "randomized", "tsqr"})
     if unknown or not chosen:
         raise ConfigError(f"--methods {methods!r}: allowed are sketch, randomized, tsqr")
+    if repeats < 1:
+        raise ConfigError(f"--repeats must be >= 1; got {repeats}")
     where = str(folder) if folder else "a temporary folder"
     extra = "" if quick else " and a zarr copy of the same size"
     typer.echo(f"bench writes a {size_bytes / 2**30:.2f} GiB HDF5 archive{extra} to {where}", err=True)
@@ -223,7 +226,7 @@ def bench(
         return
     settings = BenchSettings(size_bytes=size_bytes, rank=rank, memory_bytes=memory_bytes, workers=workers,
                              folder=str(folder) if folder else None, methods=chosen, zarr=not quick,
-                             clusters=not quick, dask=not quick, keep=keep)
+                             clusters=not quick, dask=not quick, keep=keep, repeats=repeats)
     figures = run_benchmark(settings, progress=None if json_output else lambda m: typer.echo(m, err=True))
     if json_output:
         typer.echo(json.dumps(figures, default=lambda v: v.tolist() if hasattr(v, "tolist") else str(v), indent=2))
