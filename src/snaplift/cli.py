@@ -194,6 +194,8 @@ def bench(
     methods: Annotated[str, typer.Option(help="comma-separated: sketch, randomized, tsqr")] = "sketch,randomized",
     quick: Annotated[bool, typer.Option("--quick", help="skip zarr, worker processes and dask's svd_compressed")] = False,
     repeats: Annotated[int, typer.Option(help="runs of each compress case; the fastest is reported")] = 2,
+    cold: Annotated[bool, typer.Option("--cold", help="drop the page cache before every timed read (Linux, root): "
+                                                      "time the disk, as for an archive larger than memory")] = False,
     keep: Annotated[bool, typer.Option("--keep", help="keep the archive afterwards")] = False,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="say what would be written and stop")] = False,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
@@ -226,7 +228,7 @@ def bench(
         return
     settings = BenchSettings(size_bytes=size_bytes, rank=rank, memory_bytes=memory_bytes, workers=workers,
                              folder=str(folder) if folder else None, methods=chosen, zarr=not quick,
-                             clusters=not quick, dask=not quick, keep=keep, repeats=repeats)
+                             clusters=not quick, dask=not quick, keep=keep, repeats=repeats, cold=cold)
     figures = run_benchmark(settings, progress=None if json_output else lambda m: typer.echo(m, err=True))
     if json_output:
         typer.echo(json.dumps(figures, default=lambda v: v.tolist() if hasattr(v, "tolist") else str(v), indent=2))

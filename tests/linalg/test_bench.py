@@ -47,3 +47,20 @@ def test_process_tree_memory_sees_a_brief_peak_without_sampling():
     # the kernel's per-process high-water mark (proc(5), VmHWM) keeps the peak after the free
     assert memory.peak - memory.baseline >= 250 * 2**20
     assert memory.peak < memory.baseline + 400 * 2**20
+
+
+def test_cold_benchmark_drops_the_page_cache_or_says_why(tmp_path):
+    import os
+
+    from snaplift.errors import ConfigError
+
+    settings = BenchSettings(size_bytes=20 * 2**20, rank=4, memory_bytes=2 * 2**30, folder=str(tmp_path),
+                             methods=("sketch",), zarr=False, clusters=False, dask=False, cold=True)
+    if os.name != "posix" or os.geteuid() != 0:
+        with pytest.raises(ConfigError, match=r"--cold needs to drop the page cache"):
+            run_benchmark(settings)
+        return
+    figures = run_benchmark(settings)
+    assert figures["page_cache"] == "cold" and figures["methods"]["sketch"]["bytes_ratio"] == 1.0
+    assert set(figures["floor_schedules"]) == {"serial", "prefetch", "workers"}
+    assert "dropped before every timed read" in render_benchmark(figures)

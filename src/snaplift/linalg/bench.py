@@ -28,6 +28,7 @@ asserted (pass/fail tests never depend on wall time).
 from __future__ import annotations
 
 import contextlib
+import os
 import shutil
 import tempfile
 import threading
@@ -63,6 +64,9 @@ class BenchSettings:
     #: runs of each compress case and of svd_compressed; the fastest counts (the floor is
     #: always timed twice, before and after them), the largest peak memory is reported
     repeats: int = 1
+    #: drop the page cache before every timed read (the archive read from the disk, as an
+    #: archive larger than memory is) instead of warming it (Linux, root)
+    cold: bool = False
 
 
 def spectrum() -> np.ndarray:
@@ -197,6 +201,19 @@ def warm(path: Path) -> None:
         with open(name, "rb", buffering=0) as handle:
             while handle.readinto(buffer):
                 pass
+
+
+def drop_page_cache() -> None:
+    """Write dirty pages and drop the clean page cache (Linux ``/proc/sys/vm/drop_caches``, root)."""
+    from snaplift.errors import ConfigError
+
+    os.sync()
+    try:
+        with open("/proc/sys/vm/drop_caches", "w") as handle:
+            handle.write("1")
+    except OSError as error:
+        raise ConfigError(f"--cold needs to drop the page cache through /proc/sys/vm/drop_caches (Linux, "
+                          f"as root): {error}") from None
 
 
 def raw_read(path: Path, fmt: str, *, block: int = 1, fresh: bool = False) -> float:
@@ -339,6 +356,25 @@ def _zarr_settings() -> str:
             f"codec batch size {zarr.config.get('codec_pipeline.batch_size')}")
 
 
+def _floor(path: Path, width: int, block: int, settle: Callable[[Path], None], *, cold: bool
+           ) -> tuple[float, dict[str, float]]:
+    """The floor's schedules, each from the same page-cache state.
+
+    Warm: one call, which also checks that every schedule formed the same products. Cold:
+    the page cache is dropped before each schedule (each is then its own call).
+    """
+    from snaplift.linalg._floor import FLOOR_SCHEDULES
+
+    if not cold:
+        settle(path)
+        return floor_pass(path, width, block)
+    times: dict[str, float] = {}
+    for schedule in FLOOR_SCHEDULES:
+        settle(path)
+        times.update(floor_pass(path, width, block, schedules=(schedule,))[1])
+    return min(times.values()), times
+
+
 def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
     """Run the whole benchmark once; returns a plain dict of figures (see :func:`render_benchmark`).
 
@@ -362,7 +398,13 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
         start = time.perf_counter()
         sigma = write_archive(h5_path, m)
         out["write_seconds"] = time.perf_counter() - start
-        raw_read(h5_path, "hdf5")  # warm the page cache (issue 3 measures warm)
+        out["page_cache"] = "cold" if settings.cold else "warm"
+
+        def settle(path: Path) -> None:
+            """Before a timed read: the page cache dropped (cold) or holding the archive (warm)."""
+            drop_page_cache() if settings.cold else warm(path)
+
+        settle(h5_path)  # issue 3 measures warm; --cold measures the disk
         out["raw_read_seconds"] = raw_read(h5_path, "hdf5")
         width = settings.rank + 10
         from snaplift.archive import open_archive, plan_tiles
@@ -374,8 +416,7 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
                            workers=settings.workers, method="sketch", rank=settings.rank, shared_memory=True,
                            baseline_bytes=resident.reserve(), baseline_label=resident.label).block
         say(f"floor: one pass forming two products of width {width} (blocks of {block} snapshots)")
-        warm(h5_path)
-        out["floor_seconds"], out["floor_schedules"] = floor_pass(h5_path, width, block)
+        out["floor_seconds"], out["floor_schedules"] = _floor(h5_path, width, block, settle, cold=settings.cold)
         floor = out["floor_seconds"]
         out["floor_block"] = block
         cases: list[tuple[str, str, dict[str, Any]]] = []
@@ -404,13 +445,13 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
         with _runner("threads", settings.workers) as runner:
             for label, method, extra in cases:
                 say(f"compress: {label} (threads)")
-                out["methods"][label] = scored(lambda: (warm(h5_path), run_method(h5_path, method, settings, runner,
+                out["methods"][label] = scored(lambda: (settle(h5_path), run_method(h5_path, method, settings, runner,
                                                                                   **extra))[1])
             say("peak memory of the sketch at m/2 and m snapshots")
             peaks: dict[str, int] = {"half": 0, "full": 0}
             for _ in range(max(1, settings.repeats)):  # the largest peak of the repeats, for both lengths
                 for name, count in (("half", m // 2), ("full", m)):
-                    warm(h5_path)
+                    settle(h5_path)
                     peaks[name] = max(peaks[name], run_method(h5_path, "sketch", settings, runner,
                                                               snapshots=count)["peak_rss"])
             out["memory_half"], out["memory_full"] = peaks["half"], peaks["full"]
@@ -418,13 +459,12 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
             out["svd_compressed"] = {}
             for q in (0, 1):
                 say(f"dask.array.linalg.svd_compressed k={settings.rank} n_power_iter={q}")
-                out["svd_compressed"][q] = scored(lambda: (warm(h5_path),
+                out["svd_compressed"][q] = scored(lambda: (settle(h5_path),
                                                            run_svd_compressed(h5_path, settings.rank, q, block))[1])
         # the floor once more, after the methods: on a shared machine the load changes during
         # a run, and the floor is the best the machine did (every ratio uses the lower one)
         say("floor again")
-        warm(h5_path)
-        again, again_schedules = floor_pass(h5_path, width, block)
+        again, again_schedules = _floor(h5_path, width, block, settle, cold=settings.cold)
         out["floor_seconds_first"], out["floor_seconds_again"] = out["floor_seconds"], again
         if again < floor:
             out["floor_seconds"], out["floor_schedules"], floor = again, again_schedules, again
@@ -435,15 +475,19 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
             zarr_path = folder / "bench.zarr"
             say("zarr v3 copy (no compressor, one snapshot per chunk)")
             copy_to_zarr(h5_path, zarr_path)
-            raw_read(zarr_path, "zarr")
+            raw_read(zarr_path, "zarr")  # untimed: zarr's own metadata caches
+            settle(zarr_path)
             out["zarr_raw_read_seconds"] = raw_read(zarr_path, "zarr")
+            settle(zarr_path)
             out["zarr_block_read_seconds"] = raw_read(zarr_path, "zarr", block=block)
-            warm(h5_path)
+            settle(h5_path)
             out["hdf5_block_read_seconds"] = raw_read(h5_path, "hdf5", block=block)
             # through the readers, as compress reads its tiles
-            reader_read(zarr_path, block, settings.workers)  # untimed: page cache, chunk-file lists
+            reader_read(zarr_path, block, settings.workers)  # untimed: chunk-file lists
+            settle(zarr_path)
             out["zarr_tile_read_seconds"] = reader_read(zarr_path, block, settings.workers)
             reader_read(h5_path, block, settings.workers)
+            settle(h5_path)
             out["hdf5_tile_read_seconds"] = reader_read(h5_path, block, settings.workers)
             out["zarr_settings"] = _zarr_settings()
             paths["zarr"] = zarr_path
@@ -453,7 +497,7 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
                 with _runner(kind, settings.workers) as runner:
                     for fmt, path in paths.items():
                         say(f"sketch with {kind} on {fmt}")
-                        warm(path)
+                        settle(path)
                         figures = run_method(path, "sketch", settings, runner)
                         out["clusters"][f"{kind}/{fmt}"] = {"seconds": figures["seconds"],
                                                             "ratio": figures["seconds"] / floor,
@@ -471,7 +515,9 @@ def render_benchmark(figures: dict[str, Any]) -> str:
     lines = [
         f"archive: {figures['archive_bytes'] / gib:.2f} GiB time-major HDF5, {figures['snapshots']} snapshots x "
         f"{figures['points']} points, float64, one snapshot per chunk; rank {figures['rank']}, "
-        f"budget {figures['memory_budget'] / gib:.2f} GiB, {figures['workers']} workers",
+        f"budget {figures['memory_budget'] / gib:.2f} GiB, {figures['workers']} workers; page cache "
+        + ("dropped before every timed read (the disk)" if figures.get("page_cache") == "cold"
+           else "warm before every timed read"),
         f"raw chunk-by-chunk read: {figures['raw_read_seconds']:.2f} s "
         f"({figures['archive_bytes'] / figures['raw_read_seconds'] / gib:.2f} GiB/s)",
         f"floor (one pass, two products of width rank+10, blocks of {figures['floor_block']}): {floor:.2f} s "
