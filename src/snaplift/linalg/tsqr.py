@@ -114,6 +114,8 @@ def orthonormal_basis(a: np.ndarray, *, overwrite: bool = False) -> np.ndarray:
     read in place; ``Q`` has the same layout. With ``overwrite`` the caller gives up ``a``:
     the first step solves in its memory (no new array of its size; on a machine that maps
     memory on first use a fresh one costs more than the solve), and ``a`` is garbage after.
+    Meant for the driver between passes: scipy's BLAS wrappers it calls hold the GIL, so it
+    does not belong inside tile tasks that run beside others.
 
     Example
     -------
