@@ -187,17 +187,19 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
         _release_caches(runner)
 
 
-def _release_caches(runner: TileRunner) -> None:
+def _release_caches(runner: TileRunner, *, test_matrices: bool = True) -> None:
     """Once a compress is done, drop what sped up its passes: the cached row test matrices
-    (``8 n l`` bytes) and the kept tile buffers (one tile per reading thread)."""
+    (``8 n l`` bytes; kept with ``test_matrices=False``) and the kept tile buffers (one tile
+    per reading thread), in this process and in every worker."""
     from snaplift.archive import _handles
     from snaplift.linalg import _testmatrix
 
-    _testmatrix.release()
-    _handles.release_tile_buffers()
+    functions = ((_testmatrix.release,) if test_matrices else ()) + (_handles.release_tile_buffers,)
+    for function in functions:
+        function()
     client = getattr(runner, "client", None)
     if client is not None:
-        for function in (_testmatrix.release, _handles.release_tile_buffers):
+        for function in functions:
             try:
                 client.run(function)
             except Exception:  # a lost worker has nothing left to drop
@@ -213,6 +215,9 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
         if state.pass_number == 0:
             sketch_read(run, matrix, jobs, state, range_width, corange_width)
             run.end_pass(state)
+        # the single read is over: its tile buffers go before the finishing temporaries come
+        # (the row test matrices stay: finishing applies them once more)
+        _release_caches(runner, test_matrices=False)
         sketch = SketchState.from_stream(state.arrays, len(matrix.fields), matrix.snapshot_index,
                                          options.seed, source.complex_valued, options.corange_map)
         global_blocks = row_blocks
