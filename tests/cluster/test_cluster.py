@@ -179,3 +179,15 @@ def test_worker_killed_mid_run_is_survived(tmp_path: Path) -> None:
                                read_group(threads.path, "basis")["singular_value"], rtol=1e-12)
     np.testing.assert_allclose(read_group(local.path, "spectrum")["eigenvalue"],
                                read_group(threads.path, "spectrum")["eigenvalue"], rtol=1e-10)
+
+
+def test_a_cancelled_pinned_task_counts_as_a_lost_worker() -> None:
+    # distributed reports a task pinned to a worker that died either as lost or as
+    # cancelled ("already forgotten"); both resume from the checkpoint, other errors do not
+    from distributed.client import FutureCancelledError
+
+    from snaplift.workflow.runner import _worker_lost
+
+    assert _worker_lost(FutureCancelledError("sketch_task-1", reason="already forgotten"))
+    assert _worker_lost(RuntimeError("a worker holding compress accumulators was lost; run again"))
+    assert not _worker_lost(ValueError("bad tile"))

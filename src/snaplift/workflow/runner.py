@@ -398,8 +398,12 @@ WORKER_LOSS_RETRIES = 3
 
 def _worker_lost(error: BaseException) -> bool:
     # the streaming loop keeps accumulators on workers; losing one is not a task failure the
-    # scheduler can retry, but the checkpoint makes a fresh attempt cheap
-    return type(error).__name__ == "WorkerLostError" or (
+    # scheduler can retry, but the checkpoint makes a fresh attempt cheap. A task pinned to
+    # the dead worker may also come back cancelled ("already forgotten") rather than lost:
+    # compress cancels futures only after an error, never one it then waits for, so that is
+    # the same loss.
+    names = {cls.__name__ for cls in type(error).__mro__}
+    return bool(names & {"WorkerLostError", "FutureCancelledError"}) or (
         isinstance(error, RuntimeError) and "was lost" in str(error))
 
 
