@@ -222,7 +222,6 @@ class _Baseline:
     bytes: int
     label: str
     memory: int
-    shared_memory: bool
 
     @property
     def available(self) -> int:
@@ -233,6 +232,10 @@ class _Baseline:
         verb = "uses" if who == "this process" else "use"
         return (f"{who} already {verb} {_mib(self.bytes)}"
                 + (f" of compress.memory {_mib(self.memory)}" if budget else ""))
+
+    def threads_hint(self, shared_memory: bool) -> str:
+        """What else helps when worker processes' own interpreters are part of the baseline."""
+        return "" if shared_memory or not self.bytes else " or use cluster kind 'threads' (one process for all workers)"
 
 
 def _accumulator_bytes(points: int, block: int, width: int, itemsize: int) -> int:
@@ -349,10 +352,10 @@ def plan_tiles(
             f"sketch_width >= 0 and baseline_bytes >= 0; got {memory_bytes}, {workers}, {sketch_width}, "
             f"{baseline_bytes}"
         )
-    baseline = _Baseline(int(baseline_bytes), baseline_label, int(memory_bytes), bool(shared_memory))
+    baseline = _Baseline(int(baseline_bytes), baseline_label, int(memory_bytes))
     if baseline.bytes and baseline.available <= 0:
         raise ArchiveError(f"tile plan for {info.path}: {baseline.phrase()}; raise compress.memory"
-                           + ("" if shared_memory else " or use cluster kind 'threads' (one process for all workers)"))
+                           + baseline.threads_hint(shared_memory))
     for name in names:
         if name not in info.fields:
             raise missing_field_error(name, info.path, list(info.fields))
@@ -470,7 +473,7 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
     """The compress memory model of the module docstring; see :func:`plan_tiles`."""
     if workers < 1 or in_flight < 1 or memory_bytes <= 0:
         raise ArchiveError(f"tile plan for {info.path}: memory, workers and in_flight must be positive")
-    baseline = baseline or _Baseline(0, "", memory_bytes, shared_memory)
+    baseline = baseline or _Baseline(0, "", memory_bytes)
     # the tiles, caches and accumulators fit in what the processes do not already hold
     available = baseline.available
     m = chosen[0].n_snapshots
@@ -547,14 +550,12 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
     if peak > available:
         budget_note = (f"compress.memory is {_mib(memory_bytes)}" if not baseline.bytes
                        else f"{baseline.phrase()}, leaving {_mib(available)}")
-        other = "" if shared_memory or not baseline.bytes else (
-            ", use cluster kind 'threads' (one process for all workers)")
         raise ArchiveError(
             f"tile plan for {info.path}: compress.method {method!r} needs at least {peak} bytes "
             f"({_mib(peak)}) for its smallest tiles ({block} snapshots x {min(rows_of(cap))} points) with "
             f"{workers} workers, {in_flight} tiles in flight and {_mib(driver)} of accumulators, but "
-            f"{budget_note}; raise compress.memory to at least {peak + baseline.bytes} bytes{other} "
-            "or use fewer workers"
+            f"{budget_note}; raise compress.memory to at least {peak + baseline.bytes} bytes"
+            f"{baseline.threads_hint(shared_memory)} or use fewer workers"
         )
     rows = rows_of(cap)
     point_blocks = tuple(tuple((p0, min(p0 + r, f.n_points)) for p0 in range(0, f.n_points, r))

@@ -436,8 +436,13 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
             else:
                 cases.append((method, method, {}))
         def scored(run: Callable[[], dict[str, Any]]) -> dict[str, Any]:
-            # the fastest of the repeats, with its accuracy; ratios are set once the floor is final
-            figures = _best([run() for _ in range(max(1, settings.repeats))])
+            # the fastest of the repeats, each from the same page-cache state, with its
+            # accuracy; ratios are set once the floor is final
+            runs = []
+            for _ in range(max(1, settings.repeats)):
+                settle(h5_path)
+                runs.append(run())
+            figures = _best(runs)
             figures["error_top10"] = _accuracy(figures["singular_value"], sigma, 10)
             figures["error_top_rank"] = _accuracy(figures["singular_value"], sigma, settings.rank)
             return figures
@@ -445,8 +450,7 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
         with _runner("threads", settings.workers) as runner:
             for label, method, extra in cases:
                 say(f"compress: {label} (threads)")
-                out["methods"][label] = scored(lambda: (settle(h5_path), run_method(h5_path, method, settings, runner,
-                                                                                  **extra))[1])
+                out["methods"][label] = scored(lambda: run_method(h5_path, method, settings, runner, **extra))
             say("peak memory of the sketch at m/2 and m snapshots")
             peaks: dict[str, int] = {"half": 0, "full": 0}
             for _ in range(max(1, settings.repeats)):  # the largest peak of the repeats, for both lengths
@@ -459,8 +463,7 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
             out["svd_compressed"] = {}
             for q in (0, 1):
                 say(f"dask.array.linalg.svd_compressed k={settings.rank} n_power_iter={q}")
-                out["svd_compressed"][q] = scored(lambda: (settle(h5_path),
-                                                           run_svd_compressed(h5_path, settings.rank, q, block))[1])
+                out["svd_compressed"][q] = scored(lambda: run_svd_compressed(h5_path, settings.rank, q, block))
         # the floor once more, after the methods: on a shared machine the load changes during
         # a run, and the floor is the best the machine did (every ratio uses the lower one)
         say("floor again")
