@@ -50,6 +50,7 @@ from snaplift.workflow.fingerprint import (
 )
 from snaplift.workflow.lease import Lease
 from snaplift.workflow.progress import ProgressReporter
+from snaplift.workflow.store_metadata import store_metadata
 from snaplift.workflow.schema import Workflow, load_workflow, resolve_path, section_fingerprint
 
 __all__ = ["FAULT_VARIABLE", "STAGES", "RunInterrupted", "RunSummary", "run", "run_workflow"]
@@ -262,6 +263,8 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
             classification = replace(classification, state="new",
                                      reason=f"no previous result (resumed; archive {classification.reason})")
         fingerprints = stage_fingerprints(workflow, classification.identity)
+        # every array written from here on carries units, names and coordinates from the archive
+        store.writer.metadata = store_metadata(workflow, scanned.reader, info, scanned.time, scanned.time_unit)
         store.begin("scan")
         stored.write_scan(store.writer, scanned.time, scanned.snapshot_index)
         records["scan"] = store.finish("scan", {
