@@ -40,13 +40,13 @@ def _user_errors(function: Callable[..., Any]) -> Callable[..., Any]:
     return wrapper
 
 
-def _console(quiet: bool = False):
+def _console(quiet: bool = False, columns: int = 112):
     import shutil
 
     from rich.console import Console
 
     # the spectrum table needs ~110 columns; cropping its digits would be worse than wrapping
-    width = max(112, shutil.get_terminal_size((112, 24)).columns)
+    width = max(columns, shutil.get_terminal_size((columns, 24)).columns)
     return Console(stderr=False, quiet=quiet, width=width)
 
 
@@ -164,12 +164,15 @@ def scan(
 def spectrum(
     result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
     sort: Annotated[str, typer.Option(help="amplitude | frequency | growth | residual | ranking")] = "amplitude",
-    all_modes: Annotated[bool, typer.Option("--all", help="show every mode")] = False,
+    all_modes: Annotated[bool, typer.Option("--all", help="show every mode (default: the first 20)")] = False,
+    field: Annotated[Optional[list[str]], typer.Option("--field", help="add this field's peak amplitude column "
+                                                      "(field units); repeat or comma-separate")] = None,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
 ) -> None:
-    """Print the spectrum of a result store (sorted by amplitude).
+    """Print the spectrum of a result store (sorted by amplitude), in Hz and 1/s when the
+    archive's time unit converts to seconds.
 
-    Example: snaplift spectrum results/fin-duct.zarr --json
+    Example: snaplift spectrum results/fin-duct.zarr --field T --field u
     """
     from snaplift.errors import ConfigError
     from snaplift.report.table import render_spectrum, spectrum_json
@@ -177,10 +180,12 @@ def spectrum(
     if sort not in ("amplitude", "frequency", "growth", "residual", "ranking"):
         raise ConfigError(f"--sort {sort!r} is not allowed; use amplitude, frequency, growth, residual or ranking "
                           "(trusted modes first, then by amplitude)")
+    fields = [name.strip() for item in field or [] for name in item.split(",") if name.strip()]
     if json_output:
-        typer.echo(spectrum_json(result, sort=sort))
+        typer.echo(spectrum_json(result, sort=sort, fields=fields or None))
     else:
-        _console().print(render_spectrum(result, sort=sort, limit=None if all_modes else 20))
+        table = render_spectrum(result, sort=sort, limit=None if all_modes else 20, fields=fields)
+        _console(columns=112 + 18 * len(fields)).print(table)
 
 
 @app.command()
