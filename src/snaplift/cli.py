@@ -63,7 +63,7 @@ def demo(
     """
     from snaplift.demo.run import run_demo
 
-    console = _console(quiet)
+    console = _console(quiet, columns=166)  # the spectrum with peak columns of u, v, T
     summary, table = run_demo(size=size, folder=output, progress=console.print)
     console.print(table)
     console.print(f"results: {summary.path}  ({summary.passes} passes over the archive)")
@@ -165,8 +165,9 @@ def spectrum(
     result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
     sort: Annotated[str, typer.Option(help="amplitude | frequency | growth | residual | ranking")] = "amplitude",
     all_modes: Annotated[bool, typer.Option("--all", help="show every mode (default: the first 20)")] = False,
-    field: Annotated[Optional[list[str]], typer.Option("--field", help="add this field's peak amplitude column "
-                                                      "(field units); repeat or comma-separate")] = None,
+    field: Annotated[Optional[list[str]], typer.Option("--field", help="show this field's peak amplitude column "
+                                                      "(field units); repeat or comma-separate (default: every "
+                                                      "field's, up to 3)")] = None,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
 ) -> None:
     """Print the spectrum of a result store (sorted by amplitude), in Hz and 1/s when the
@@ -184,8 +185,8 @@ def spectrum(
     if json_output:
         typer.echo(spectrum_json(result, sort=sort, fields=fields or None))
     else:
-        table = render_spectrum(result, sort=sort, limit=None if all_modes else 20, fields=fields)
-        _console(columns=112 + 18 * len(fields)).print(table)
+        table = render_spectrum(result, sort=sort, limit=None if all_modes else 20, fields=fields or None)
+        _console(columns=112 + 18 * max(len(fields), 3)).print(table)
 
 
 @app.command()

@@ -105,11 +105,16 @@ def _number(value: float, digits: int = 4) -> str:
 
 def render_spectrum(path: str | Path, *, sort: str = "amplitude", limit: int | None = 20,
                     fields: list[str] | None = None) -> Any:
-    """A rich Table of the spectrum of a result store; ``fields`` adds their peak amplitudes."""
+    """A rich Table of the spectrum of a result store; ``fields`` adds their peak amplitudes
+    (None: every field's when there are at most 3)."""
     from rich.table import Table
 
     spectrum = load_spectrum(path)
-    peaks = _peak_columns(spectrum, fields, path)
+    if fields is None:
+        every = [n for n in spectrum if n.startswith("peak_")]
+        peaks = every if len(every) <= 3 else []
+    else:
+        peaks = _peak_columns(spectrum, fields, path)
     records = spectrum_records(spectrum, sort=sort, peaks=peaks)
     units = spectrum_units(path)
     table = Table(title=f"spectrum of {path} (sorted by {sort})", title_justify="left")
@@ -118,8 +123,11 @@ def render_spectrum(path: str | Path, *, sort: str = "amplitude", limit: int | N
                f"period [{units['period']}]", "amplitude"]
     headers += [f"peak {p[len('peak_'):]} [{units.get(p, '1')}]" for p in peaks]
     headers += ["residual", "trusted"] if has_residual else []
+    from rich.markup import escape
+
     for header in headers:
-        table.add_column(header, justify="right")
+        # "[s]" would be read as rich markup (strike) and vanish
+        table.add_column(escape(header), justify="right")
     for record in records[: limit or None]:
         eig = record["eigenvalue"]
         row = [str(record["mode"]), _number(abs(complex(eig["real"], eig["imag"])), 6),

@@ -83,13 +83,17 @@ class StoreWriter:
         data = np.asarray(data)
         if data.ndim != len(dimensions):
             raise ValueError(f"{group}/{name}: {data.ndim}-D data with dimensions {tuple(dimensions)}")
+        dtype: Any = data.dtype
         if data.dtype == object or data.dtype.kind == "U":
-            data = data.astype(str).astype(object) if data.dtype == object else data
+            # variable-length UTF-8 strings: the zarr v3 string type xarray reads
+            from zarr.dtype import VariableLengthUTF8
+
+            data, dtype = data.astype(str).astype(object), VariableLengthUTF8()
         node = self.root.require_group(group) if group else self.root
         array = node.create_array(
             name,
             shape=data.shape,
-            dtype=data.dtype,
+            dtype=dtype,
             chunks=chunks or tuple(max(1, s) for s in data.shape),
             dimension_names=tuple(dimensions),
             fill_value=None,
