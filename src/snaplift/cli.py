@@ -8,14 +8,62 @@ from pathlib import Path
 from typing import Annotated, Any, Callable, Optional
 
 import typer
+from typer.core import TyperGroup
+
+class _OneLineUsageErrors(TyperGroup):
+    """Usage errors (a missing or extra argument, an unknown option) as one line on stderr,
+    like every other user error, with the command's help named; exit status 2."""
+
+    def main(self, *args: Any, **kwargs: Any) -> Any:
+        try:  # recent typer vendors click; its exceptions are typer's own
+            from typer._click import exceptions as click
+        except ImportError:  # pragma: no cover - typer that uses click itself
+            from click import exceptions as click  # type: ignore[no-redef]
+
+        kwargs["standalone_mode"] = False
+        try:
+            code = super().main(*args, **kwargs)
+        except click.NoArgsIsHelpError as error:  # bare 'snaplift': the help
+            error.show()
+            sys.exit(error.exit_code)
+        except click.UsageError as error:
+            command = error.ctx.command_path if error.ctx is not None else "snaplift"
+            message = " ".join(error.format_message().split())
+            typer.echo(f"snaplift: error: {message} (see '{command} --help')", err=True)
+            sys.exit(2)
+        except click.ClickException as error:
+            typer.echo(f"snaplift: error: {' '.join(error.format_message().split())}", err=True)
+            sys.exit(error.exit_code)
+        except typer.Abort:
+            typer.echo("snaplift: interrupted", err=True)
+            sys.exit(130)
+        sys.exit(code if isinstance(code, int) else 0)
+
+
+def _version(value: bool) -> None:
+    if value:
+        from snaplift import __version__
+
+        typer.echo(f"snaplift {__version__}")
+        raise typer.Exit()
+
 
 app = typer.Typer(
+    cls=_OneLineUsageErrors,
     name="snaplift",
     help="Reduce simulation archives to modes, frequencies, growth rates and linear surrogates.",
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
 )
+
+
+@app.callback()
+def _options(
+    version: Annotated[bool, typer.Option("--version", callback=_version, is_eager=True,
+                                          help="print the version of snaplift and exit")] = False,
+) -> None:
+    """Reduce simulation archives to modes, frequencies, growth rates and linear surrogates."""
 
 
 def _user_errors(function: Callable[..., Any]) -> Callable[..., Any]:
@@ -93,8 +141,13 @@ def run(
     from snaplift.workflow.schema import load_workflow, resolve_path
 
     if dry_run:
+        from snaplift.workflow.stages import check_workflow
+
         wf, _, folder = load_workflow(workflow)
         output = resolve_path(folder, wf.output.path)
+        _, lines = check_workflow(wf, Path(folder))
+        for line in lines:
+            typer.echo(line)
         typer.echo(f"workflow {workflow} is valid; it would write {output} (staging in {output}.staging, "
                    f"lease {output}.lease) on a {wf.cluster.kind!r} cluster")
         return
@@ -170,8 +223,9 @@ def spectrum(
                                                       "field's, up to 3)")] = None,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
 ) -> None:
-    """Print the spectrum of a result store (sorted by amplitude), in Hz and 1/s when the
-    archive's time unit converts to seconds.
+    """Print the spectrum of a result store (sorted by amplitude).
+
+    Frequencies in Hz and growth rates in 1/s when the archive's time unit converts to seconds.
 
     Example: snaplift spectrum results/fin-duct.zarr --field T --field u
     """

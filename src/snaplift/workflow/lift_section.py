@@ -118,9 +118,19 @@ class RadialEntry(_StateEntry):
     """Radial basis functions around k-means centres, width from the median distance."""
 
     kind: Literal["rbf"]
-    shape: Literal["gaussian", "thin_plate"] = "gaussian"
+    function: Literal["gaussian", "thin_plate"] = Field(
+        "gaussian", description="the radial function; its width (the 'shape parameter') is the median distance")
     centres: int = Field(10, ge=1)
     seed: int = Field(0, ge=0)
+
+    @model_validator(mode="before")
+    @classmethod
+    def _renamed(cls, data: Any) -> Any:
+        # in RBF practice the "shape parameter" is the width: the choice of function is 'function'
+        if isinstance(data, dict) and "shape" in data:
+            raise ValueError(f"rbf key 'shape' ({data['shape']!r}) is now 'function': write "
+                             f"function: {data['shape']} (gaussian | thin_plate)")
+        return data
 
 
 class ExpressionsEntry(_StateEntry):
@@ -220,7 +230,7 @@ def state_dictionary(entries: list[Any], variables: list[str]) -> Any:
         elif isinstance(entry, FourierEntry):
             parts.append(fourier(entry.harmonics, scale=entry.scale))
         elif isinstance(entry, RadialEntry):
-            parts.append(rbf(entry.shape, centres=entry.centres, seed=entry.seed))
+            parts.append(rbf(entry.function, centres=entry.centres, seed=entry.seed))
         elif isinstance(entry, ExpressionsEntry):
             parts.append(expressions(entry.formulas, variables=variables))
         else:

@@ -198,6 +198,8 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
     started = _now()
     output = Path(resolve_path(folder, workflow.output.path))
     archive_path = resolve_path(folder, workflow.archive.path)
+    # names, shapes and times are checked first: an existing store never hides a typo
+    stage_functions.check_workflow(workflow, folder)
     lease = Lease(output)
     lease.acquire()
     store: StagedStore | None = None

@@ -33,8 +33,9 @@ from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation
 from snaplift.workflow.fit_methods import FitOutcome, fit_outcome
 from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path, scale_of
+from snaplift.workflow.store_metadata import store_metadata
 
-__all__ = ["Scanned", "Compressed", "scan_stage", "compress_stage", "fit_stage", "plan_compress",
+__all__ = ["Scanned", "Compressed", "scan_stage", "check_workflow", "compress_stage", "fit_stage", "plan_compress",
            "compress_memory", "TIME_RTOL"]
 
 #: relative tolerance on the spread of time steps before spacing counts as non-uniform
@@ -104,12 +105,13 @@ class Compressed:
     info: dict[str, object] = field(default_factory=dict)
 
 
-def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
-               recorded_baseline: int | None = None) -> Scanned:
+def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
+               recorded_baseline: int | None = None, with_plan: bool = True) -> Scanned:
     """Open the archive, select snapshots, check times, plan tiles. Reads metadata only.
 
     ``recorded_baseline``: the baseline a killed run of this job planned with (its scan
-    record's ``memory_baseline``); see :func:`plan_compress`.
+    record's ``memory_baseline``); see :func:`plan_compress`. ``with_plan=False`` (no
+    scheduler needed) skips the tile plan: the checks of :func:`check_workflow`.
     """
     section = workflow.archive
     # the workflow names its fields: a one-value-per-snapshot (1-D) dataset is then a field too
@@ -149,6 +151,11 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
             column_runs = delayed_run_lengths(selected_runs, lift.delays, lift.spacing)
         except ConfigError as error:
             raise ConfigError(f"lift delays on {reader.path}: {error}") from None
+    if not with_plan or scheduler is None:
+        return Scanned(reader, index[columns], times[columns], dt, 1, 0, plan=None,
+                       run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
+                       selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
+                       time_unit=unit, warnings=tuple(unit_warnings))
     plan = plan_compress(workflow, info, scheduler, recorded_baseline=recorded_baseline)
     block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
     # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
@@ -192,6 +199,38 @@ def archive_time_unit(workflow: Workflow, reader: Reader, info: ArchiveInfo) -> 
         return unit, [f"the time unit {unit.name!r} of {reader.path} does not convert to seconds: frequencies are "
                       f"in 1/({unit.name}); set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s"]
     return unit, []
+
+
+def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]]:
+    """Everything a run checks before reading a tile: the archive opens, the fields, time,
+    time unit, runs, weights, mask and coordinates exist with the right shapes.
+
+    Reads metadata and the small datasets (times, run labels, weights, mask, coordinates),
+    no field values, and needs no scheduler: ``snaplift run --dry-run`` calls it so that a
+    batch job learns a wrong name before it waits in the queue; ``run`` calls it before it
+    looks at an existing result store. Returns the scan and what a run would print.
+    """
+    scanned = scan_stage(workflow, folder, None, with_plan=False)
+    matrix = snapshot_matrix_of(workflow, scanned)
+    metadata = store_metadata(workflow, scanned.reader, scanned.reader.describe(), scanned.time, scanned.time_unit)
+    info = scanned.reader.describe()
+    lines = [f"archive {scanned.reader.path} ({info.format}): fields "
+             + ", ".join(f"{f} {info.fields[f].shape}" for f in workflow.archive.fields)]
+    unit = scanned.time_unit
+    lines.append(f"time: {scanned.snapshot_index.size} snapshots, step {scanned.dt:.6g} "
+                 f"{unit.name if unit is not None else '(no time unit)'}; frequencies in {metadata.frequency_unit}")
+    if scanned.run_lengths is not None and scanned.run_lengths.size > 1:
+        lines.append(f"runs: {scanned.run_lengths.size} ({', '.join(map(str, scanned.run_lengths.tolist()))} columns)")
+    kept = sum(rows.n_rows for rows in matrix.fields)
+    lines.append(f"snapshot matrix: {kept} rows x {matrix.shape[1]} columns"
+                 + (f" (weights '{workflow.archive.weights}')" if workflow.archive.weights else "")
+                 + (f" (mask '{workflow.archive.mask}')" if workflow.archive.mask else ""))
+    if metadata.coordinates:
+        lines.append("coordinates: " + ", ".join(f"{d} <- {c.attrs.get('archive_variable')} [{c.attrs.get('units')}]"
+                                                 for d, c in metadata.coordinates.items()))
+    else:
+        lines.append("coordinates: none in the archive (index positions; archive.coords names them)")
+    return scanned, lines
 
 
 def archive_run_lengths(reader: Reader, runs: str | None, total: int) -> np.ndarray:
