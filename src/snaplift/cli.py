@@ -104,15 +104,18 @@ def demo(
     size: Annotated[str, typer.Option(help="'small', 'default', or a size such as 500MB, 4GiB")] = "default",
     output: Annotated[Optional[Path], typer.Option(help="folder for the archive and results (default: cache)")] = None,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="print only the result path")] = False,
+    workflow_dir: Annotated[Optional[Path], typer.Option("--workflow-dir", help="also link the archive into this "
+                                                         "folder as fin-duct.h5, where the example workflows "
+                                                         "(workflows/) expect it")] = None,
 ) -> None:
     """Generate the fin-in-a-duct demo archive (once, cached) and reduce it.
 
-    Example: snaplift demo --size small
+    Example: snaplift demo --size small --workflow-dir workflows
     """
     from snaplift.demo.run import run_demo
 
     console = _console(quiet, columns=166)  # the spectrum with peak columns of u, v, T
-    summary, table = run_demo(size=size, folder=output, progress=console.print)
+    summary, table = run_demo(size=size, folder=output, progress=console.print, workflow_dir=workflow_dir)
     console.print(table)
     console.print(f"results: {summary.path}  ({summary.passes} passes over the archive)")
     if quiet:

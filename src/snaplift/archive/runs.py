@@ -12,7 +12,7 @@ Two ways to store runs:
 
 :func:`selected_run_lengths` gives the run lengths of a selection of snapshots
 (``start``/``stop``/``every`` over the archive's snapshot axis). Snapshot pairs and delay
-windows never cross a run boundary (DESIGN.md, "Data model").
+windows never cross a run boundary (README.md, "runs").
 
 Variables of a RunsReader: a variable whose leading length is its member's snapshot
 count in *every* member (times, per-snapshot values) is concatenated; any other variable

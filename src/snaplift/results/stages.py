@@ -6,7 +6,7 @@ store, :mod:`snaplift.results.staging`); later stages read them back from there 
 or hard-linked from the previous complete store. So ``fit`` and ``modes`` see the same
 numbers in all three cases.
 
-What compress leaves (DESIGN.md, "Result store"), and what ``fit``/``modes`` need of it:
+What compress leaves (README.md, "The result store"), and what ``fit``/``modes`` need of it:
 
 - ``basis/singular_value`` (rank,), ``basis/coefficient`` (rank, snapshot) and
   ``basis/<field>`` (rank, *grid): the basis vectors in field units (scale, weights and

@@ -1,6 +1,6 @@
 """The zarr v3 result store, written to a staging folder and renamed into place.
 
-Layout (see DESIGN.md, "Result store")::
+Layout (see README.md, "The result store")::
 
     RESULT.zarr/
       spectrum/     eigenvalue, rate, frequency, growth, period, amplitude   (mode,)
@@ -141,7 +141,7 @@ class StoreWriter:
         self.root.attrs.update(_jsonable({**attrs, FORMAT_KEY: STORE_VERSION}))
         self.root.attrs[COMPLETE_KEY] = True
         with warnings.catch_warnings():
-            # consolidated metadata is not yet in the v3 spec; DESIGN.md asks for it (xarray uses it)
+            # consolidated metadata is not yet in the v3 spec; the README promises it (xarray uses it)
             warnings.filterwarnings("ignore", message="Consolidated metadata", category=UserWarning)
             zarr.consolidate_metadata(str(self.staging))
         old = None

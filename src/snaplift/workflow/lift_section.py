@@ -1,6 +1,6 @@
 """``lift:`` of the workflow file: an ordered list of dictionaries of observables.
 
-Two kinds of entries (see ``DESIGN.md``, "Lifting"):
+Two kinds of entries (see README.md, "Lifting"):
 
 - on the raw fields, fused into the tile read and never stored: ``delays`` (Hankel
   stacking: ``count`` copies ``spacing`` snapshots apart) and ``pointwise`` (``x``,
@@ -64,10 +64,11 @@ class _Entry(BaseModel):
 
 
 class DelaysEntry(_Entry):
-    """Hankel stacking of the raw fields: ``count`` copies, ``spacing`` selected snapshots apart."""
+    """Hankel stacking of the raw fields: ``count`` copies in all (the field and ``count - 1`` delayed
+    copies: the window length), ``spacing`` selected snapshots apart."""
 
     kind: Literal["delays"]
-    count: int = Field(ge=2, description="number of delayed copies (2 or more)")
+    count: int = Field(ge=2, description="copies in the window, the undelayed one included (2 or more)")
     spacing: int = Field(1, ge=1, description="selected snapshots between copies")
 
 
