@@ -245,6 +245,7 @@ class RunsReader(Reader):
                 chunks=f.chunks,
                 attrs=attrs,
                 nbytes=int(sum(i.fields[name].nbytes for i in infos)),
+                coordinates=f.coordinates,  # the first run's (the grids are checked to agree)
             )
         variables: dict[str, VariableInfo] = {}
         roles: dict[str, str] = {}
