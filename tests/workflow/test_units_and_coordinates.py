@@ -75,7 +75,7 @@ def _run(folder: Path, archive: dict, **extra) -> Path:
 
 
 def _encodings(tmp_path: Path) -> dict[str, tuple[Path, dict]]:
-    """The same snapshots with their times written six ways."""
+    """The same snapshots with their times written seven ways."""
     out: dict[str, tuple[Path, dict]] = {}
     seconds = STEP_S * np.arange(COUNT)
     (tmp_path / "s").mkdir()
@@ -92,6 +92,13 @@ def _encodings(tmp_path: Path) -> dict[str, tuple[Path, dict]]:
         _dataset(dates, {}).to_netcdf(folder / "a.nc", engine="netcdf4",
                                       encoding={"time": {"units": units, "dtype": dtype}})
         out[label] = (folder, {"path": "a.nc"})
+    # cftime dates of a 365-day calendar, as climate models write them (CF 1.x section 4.4.1)
+    folder = tmp_path / "cftime"
+    folder.mkdir()
+    noleap = xr.date_range("2001-03-01", periods=COUNT, freq="10ms", calendar="noleap", use_cftime=True)
+    _dataset(noleap, {}).to_netcdf(folder / "a.nc", engine="netcdf4",
+                                   encoding={"time": {"units": "milliseconds since 2001-01-01", "dtype": "int64"}})
+    out["cftime noleap"] = (folder, {"path": "a.nc"})
     (tmp_path / "z").mkdir()
     root = zarr.open_group(str(tmp_path / "z" / "a.zarr"), mode="w")
     root.create_array("t", shape=(COUNT,), dtype="datetime64[ms]")[:] = dates.astype("datetime64[ms]")
@@ -213,3 +220,26 @@ def test_spectrum_command_shows_the_peak_column_with_its_unit(tmp_path: Path) ->
     assert "7.5" in result.output
     missing = CliRunner().invoke(app, ["spectrum", str(store), "--field", "q"])
     assert missing.exit_code == 2 and "peak_q" in missing.output
+
+
+def test_staggered_grids_keep_their_own_coordinates(tmp_path: Path) -> None:
+    rng = np.random.default_rng(0)
+    faces = np.linspace(-0.5, 12.5, 14)  # u on the cell faces, p at the centres X
+    time = STEP_S * np.arange(40)
+    ds = xr.Dataset(
+        {"u": (("time", "y", "xf"), rng.standard_normal((40, 9, 14)), {"units": "m s-1"}),
+         "p": (("time", "y", "x"), rng.standard_normal((40, 9, 13)), {"units": "Pa"})},
+        coords={"time": ("time", time, {"units": "s"}), "x": ("x", X, {"units": "m"}),
+                "xf": ("xf", faces, {"units": "m", "long_name": "face position"}), "y": ("y", Y, {"units": "m"})})
+    ds.to_netcdf(tmp_path / "a.nc", engine="netcdf4")
+    path = tmp_path / "w.yaml"
+    path.write_text(yaml.safe_dump({"archive": {"path": "a.nc", "fields": ["u", "p"]},
+                                    "compress": {"rank": 4, "oversample": 4}, "fit": {"rank": 4},
+                                    "output": {"path": "r.zarr"}}))
+    store = run_workflow(path).path
+    modes = xr.open_zarr(store, group="modes")
+    assert modes["u"].dims == ("mode", "u_y", "u_x") and modes["p"].dims == ("mode", "p_y", "p_x")
+    np.testing.assert_array_equal(modes["u"]["u_x"].values, faces)
+    np.testing.assert_array_equal(modes["p"]["p_x"].values, X)
+    np.testing.assert_array_equal(modes["u"]["u_y"].values, Y)
+    assert modes["u_x"].attrs["long_name"] == "face position" and modes["p"].attrs["units"] == "Pa"

@@ -230,6 +230,7 @@ def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]
                                                  for d, c in metadata.coordinates.items()))
     else:
         lines.append("coordinates: none in the archive (index positions; archive.coords names them)")
+    lines.extend(f"warning: {warning}" for warning in scanned.warnings)
     return scanned, lines
 
 
