@@ -111,28 +111,41 @@ def _encodings(tmp_path: Path) -> dict[str, tuple[Path, dict]]:
     return out
 
 
-def test_same_snapshots_give_the_same_hz_whatever_the_time_encoding(tmp_path: Path) -> None:
-    frequencies = {}
-    for label, (folder, archive) in _encodings(tmp_path).items():
-        store = _run(folder, archive)
-        spectrum = read_group(store, "spectrum")
-        frequencies[label] = np.sort(spectrum["frequency"])
-        attrs = xr.open_zarr(store, group="spectrum").attrs
-        assert attrs["frequency_unit"] == "Hz" and attrs["growth_unit"] == "1/s", label
-        # the factor to seconds of the unit found (SI definitions, from memory: 1 day = 86400 s)
-        expected = {"seconds": 1.0, "days since": 86400.0}.get(label, 1e-3)
-        assert attrs["time_unit_seconds"] == pytest.approx(expected, rel=1e-15), label
-        # analytic: a damped cosine of 7.5 Hz and growth -0.4 1/s (the oscillator above)
-        pair = np.abs(spectrum["frequency"]) > 1
-        assert np.allclose(np.abs(spectrum["frequency"][pair]), FREQUENCY, rtol=1e-8), label
-        assert np.allclose(spectrum["growth"][pair], GROWTH, rtol=1e-6), label
-    reference = frequencies["seconds"]
-    for label, values in frequencies.items():
-        np.testing.assert_allclose(values, reference, rtol=1e-10, atol=1e-10, err_msg=label)
+ENCODINGS = ("seconds", "ms attribute", "milliseconds since", "days since", "cftime noleap", "zarr datetime64",
+             "step in ms")
 
 
-def test_diagnostics_time_keeps_the_archive_values_and_units(tmp_path: Path) -> None:
-    folder, archive = _encodings(tmp_path)["ms attribute"]
+@pytest.fixture(scope="module")
+def encodings(tmp_path_factory) -> dict[str, tuple[Path, dict]]:
+    return _encodings(tmp_path_factory.mktemp("encodings"))
+
+
+@pytest.fixture(scope="module")
+def reference_frequencies(encodings) -> np.ndarray:
+    folder, archive = encodings["seconds"]
+    return np.sort(read_group(_run(folder, archive), "spectrum")["frequency"])
+
+
+@pytest.mark.parametrize("label", ENCODINGS)
+def test_same_snapshots_give_the_same_hz_whatever_the_time_encoding(label: str, encodings,
+                                                                     reference_frequencies) -> None:
+    folder, archive = encodings[label]
+    store = _run(folder, archive)
+    spectrum = read_group(store, "spectrum")
+    attrs = xr.open_zarr(store, group="spectrum").attrs
+    assert attrs["frequency_unit"] == "Hz" and attrs["growth_unit"] == "1/s"
+    # the factor to seconds of the unit found (SI definitions, from memory: 1 day = 86400 s)
+    expected = {"seconds": 1.0, "days since": 86400.0}.get(label, 1e-3)
+    assert attrs["time_unit_seconds"] == pytest.approx(expected, rel=1e-15)
+    # analytic: a damped cosine of 7.5 Hz and growth -0.4 1/s (the oscillator above)
+    pair = np.abs(spectrum["frequency"]) > 1
+    assert np.allclose(np.abs(spectrum["frequency"][pair]), FREQUENCY, rtol=1e-8)
+    assert np.allclose(spectrum["growth"][pair], GROWTH, rtol=1e-6)
+    np.testing.assert_allclose(np.sort(spectrum["frequency"]), reference_frequencies, rtol=1e-10, atol=1e-10)
+
+
+def test_diagnostics_time_keeps_the_archive_values_and_units(encodings) -> None:
+    folder, archive = encodings["ms attribute"]
     store = _run(folder, archive)
     diagnostics = xr.open_zarr(store, group="diagnostics")
     np.testing.assert_array_equal(diagnostics["time"].values, 10.0 * np.arange(COUNT))
@@ -159,8 +172,8 @@ def test_time_unit_that_contradicts_the_archive_is_refused(tmp_path: Path) -> No
         _run(tmp_path, {"path": "a.h5", "time": "t", "time_unit": "ms"})
 
 
-def test_peak_amplitudes_in_field_units_and_coordinates(tmp_path: Path) -> None:
-    folder, archive = _encodings(tmp_path)["milliseconds since"]
+def test_peak_amplitudes_in_field_units_and_coordinates(encodings) -> None:
+    folder, archive = encodings["milliseconds since"]
     store = _run(folder, archive)
     spectrum = xr.open_zarr(store, group="spectrum")
     pair = np.abs(spectrum["frequency"].values) > 1
@@ -207,12 +220,12 @@ def test_workflow_coords_name_the_coordinate_datasets(tmp_path: Path) -> None:
         _run(tmp_path, {"path": "a.h5", "time": "t", "coords": {"x": "yc"}}, output={"path": "r2.zarr"})
 
 
-def test_spectrum_command_shows_the_peak_column_with_its_unit(tmp_path: Path) -> None:
+def test_spectrum_command_shows_the_peak_column_with_its_unit(encodings) -> None:
     from typer.testing import CliRunner
 
     from snaplift.cli import app
 
-    folder, archive = _encodings(tmp_path)["seconds"]
+    folder, archive = encodings["seconds"]
     store = _run(folder, archive)
     result = CliRunner().invoke(app, ["spectrum", str(store), "--field", "p"])
     assert result.exit_code == 0, result.output
