@@ -97,7 +97,8 @@ class StoreMetadata:
     # -- units of derived quantities -------------------------------------------------
     @property
     def _per(self) -> str:
-        return self.time_unit if self.time_unit else "(time unit)"
+        # "months since 2000-01-01" counts months: frequencies are per month
+        return self.time_unit.split(" since ")[0].strip() if self.time_unit else "(time unit)"
 
     @property
     def frequency_unit(self) -> str:

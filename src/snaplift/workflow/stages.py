@@ -173,7 +173,8 @@ def archive_time_unit(workflow: Workflow, reader: Reader, info: ArchiveInfo) -> 
 
     From the time dataset's CF ``units`` (``"ms"``, ``"milliseconds since ..."``) or
     ``time_unit`` attribute; ``archive.time_unit`` gives the unit of ``archive.step`` or of
-    a time dataset that declares none (a dataset that declares another unit is an error).
+    a time dataset that declares none or one that does not convert to seconds (a dataset
+    that declares another convertible unit is an error).
     """
     section = workflow.archive
     given = None
@@ -186,6 +187,8 @@ def archive_time_unit(workflow: Workflow, reader: Reader, info: ArchiveInfo) -> 
         name = section.time or info.attrs.get("time_variable")
         variable = info.variables.get(name) if name else None
         found = time_unit_of(variable.attrs) if variable is not None else None
+        if found is not None and found.seconds is None and given is not None:
+            found = None  # a unit that does not convert ("steps"): archive.time_unit says what it is
         if found is not None and given is not None and found.canonical != given.canonical:
             raise ConfigError(
                 f"archive.time_unit is {section.time_unit!r} but the time dataset '{name}' in {reader.path} declares "
@@ -197,7 +200,7 @@ def archive_time_unit(workflow: Workflow, reader: Reader, info: ArchiveInfo) -> 
                       "1/(time unit); set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s"]
     if unit.seconds is None:
         return unit, [f"the time unit {unit.name!r} of {reader.path} does not convert to seconds: frequencies are "
-                      f"in 1/({unit.name}); set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s"]
+                      f"in 1/{unit.name.split(' since ')[0].strip()}; set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s"]
     return unit, []
 
 
