@@ -220,7 +220,8 @@ def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]
     lines = [f"archive {scanned.reader.path} ({info.format}): fields "
              + ", ".join(f"{f} {info.fields[f].shape}" for f in workflow.archive.fields)]
     unit = scanned.time_unit
-    lines.append(f"time: {scanned.snapshot_index.size} snapshots, step {scanned.dt:.6g} "
+    selected = scanned.selected_index if scanned.selected_index is not None else scanned.snapshot_index
+    lines.append(f"time: {selected.size} snapshots selected, step {scanned.dt:.6g} "
                  f"{unit.name if unit is not None else '(no time unit)'}; frequencies in {metadata.frequency_unit}")
     if scanned.run_lengths is not None and scanned.run_lengths.size > 1:
         lines.append(f"runs: {scanned.run_lengths.size} ({', '.join(map(str, scanned.run_lengths.tolist()))} columns)")
