@@ -103,3 +103,32 @@ def test_invalid_workflow_is_one_line(tmp_path: Path) -> None:
     result = runner.invoke(app, ["run", str(workflow)])
     assert result.exit_code == 2
     assert "compress.rank = -3" in result.output and "greater than or equal to 1" in result.output
+
+
+@pytest.mark.parametrize(
+    "arguments, message",
+    [
+        (["run"], "Missing argument 'workflow'"),
+        (["spectrum", "a.zarr", "b.zarr"], "unexpected extra argument"),
+        (["scan", "a.h5", "--colour"], "No such option: --colour"),
+    ],
+)
+def test_usage_errors_are_one_line_exit_2(arguments: list[str], message: str) -> None:
+    result = runner.invoke(app, arguments)
+    assert result.exit_code == 2
+    lines = [line for line in result.output.splitlines() if line.strip()]
+    assert len(lines) == 1 and message in lines[0] and "--help" in lines[0], result.output
+
+
+def test_usage_error_and_version_as_a_real_process() -> None:
+    import subprocess
+    import sys
+
+    from snaplift import __version__
+
+    run = subprocess.run([sys.executable, "-m", "snaplift.cli", "run"], capture_output=True, text=True, timeout=120)
+    assert run.returncode == 2 and run.stderr.strip().startswith("snaplift: error: Missing argument")
+    assert len(run.stderr.strip().splitlines()) == 1 and run.stdout == ""
+    version = subprocess.run([sys.executable, "-m", "snaplift.cli", "--version"], capture_output=True, text=True,
+                             timeout=120)
+    assert version.returncode == 0 and version.stdout.strip() == f"snaplift {__version__}"

@@ -8,14 +8,62 @@ from pathlib import Path
 from typing import Annotated, Any, Callable, Optional
 
 import typer
+from typer.core import TyperGroup
+
+class _OneLineUsageErrors(TyperGroup):
+    """Usage errors (a missing or extra argument, an unknown option) as one line on stderr,
+    like every other user error, with the command's help named; exit status 2."""
+
+    def main(self, *args: Any, **kwargs: Any) -> Any:
+        try:  # recent typer vendors click; its exceptions are typer's own
+            from typer._click import exceptions as click
+        except ImportError:  # pragma: no cover - typer that uses click itself
+            from click import exceptions as click  # type: ignore[no-redef]
+
+        kwargs["standalone_mode"] = False
+        try:
+            code = super().main(*args, **kwargs)
+        except click.NoArgsIsHelpError as error:  # bare 'snaplift': the help
+            error.show()
+            sys.exit(error.exit_code)
+        except click.UsageError as error:
+            command = error.ctx.command_path if error.ctx is not None else "snaplift"
+            message = " ".join(error.format_message().split())
+            typer.echo(f"snaplift: error: {message} (see '{command} --help')", err=True)
+            sys.exit(2)
+        except click.ClickException as error:
+            typer.echo(f"snaplift: error: {' '.join(error.format_message().split())}", err=True)
+            sys.exit(error.exit_code)
+        except typer.Abort:
+            typer.echo("snaplift: interrupted", err=True)
+            sys.exit(130)
+        sys.exit(code if isinstance(code, int) else 0)
+
+
+def _version(value: bool) -> None:
+    if value:
+        from snaplift import __version__
+
+        typer.echo(f"snaplift {__version__}")
+        raise typer.Exit()
+
 
 app = typer.Typer(
+    cls=_OneLineUsageErrors,
     name="snaplift",
     help="Reduce simulation archives to modes, frequencies, growth rates and linear surrogates.",
     no_args_is_help=True,
     add_completion=False,
     pretty_exceptions_enable=False,
 )
+
+
+@app.callback()
+def _options(
+    version: Annotated[bool, typer.Option("--version", callback=_version, is_eager=True,
+                                          help="print the version of snaplift and exit")] = False,
+) -> None:
+    """Reduce simulation archives to modes, frequencies, growth rates and linear surrogates."""
 
 
 def _user_errors(function: Callable[..., Any]) -> Callable[..., Any]:
@@ -40,13 +88,13 @@ def _user_errors(function: Callable[..., Any]) -> Callable[..., Any]:
     return wrapper
 
 
-def _console(quiet: bool = False):
+def _console(quiet: bool = False, columns: int = 112):
     import shutil
 
     from rich.console import Console
 
     # the spectrum table needs ~110 columns; cropping its digits would be worse than wrapping
-    width = max(112, shutil.get_terminal_size((112, 24)).columns)
+    width = max(columns, shutil.get_terminal_size((columns, 24)).columns)
     return Console(stderr=False, quiet=quiet, width=width)
 
 
@@ -56,15 +104,18 @@ def demo(
     size: Annotated[str, typer.Option(help="'small', 'default', or a size such as 500MB, 4GiB")] = "default",
     output: Annotated[Optional[Path], typer.Option(help="folder for the archive and results (default: cache)")] = None,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="print only the result path")] = False,
+    workflow_dir: Annotated[Optional[Path], typer.Option("--workflow-dir", help="also link the archive into this "
+                                                         "folder as fin-duct.h5, where the example workflows "
+                                                         "(workflows/) expect it")] = None,
 ) -> None:
     """Generate the fin-in-a-duct demo archive (once, cached) and reduce it.
 
-    Example: snaplift demo --size small
+    Example: snaplift demo --size small --workflow-dir workflows
     """
     from snaplift.demo.run import run_demo
 
-    console = _console(quiet)
-    summary, table = run_demo(size=size, folder=output, progress=console.print)
+    console = _console(quiet, columns=166)  # the spectrum with peak columns of u, v, T
+    summary, table = run_demo(size=size, folder=output, progress=console.print, workflow_dir=workflow_dir)
     console.print(table)
     console.print(f"results: {summary.path}  ({summary.passes} passes over the archive)")
     if quiet:
@@ -93,8 +144,13 @@ def run(
     from snaplift.workflow.schema import load_workflow, resolve_path
 
     if dry_run:
+        from snaplift.workflow.stages import check_workflow
+
         wf, _, folder = load_workflow(workflow)
         output = resolve_path(folder, wf.output.path)
+        _, lines = check_workflow(wf, Path(folder))
+        for line in lines:
+            typer.echo(line)
         typer.echo(f"workflow {workflow} is valid; it would write {output} (staging in {output}.staging, "
                    f"lease {output}.lease) on a {wf.cluster.kind!r} cluster")
         return
@@ -164,12 +220,17 @@ def scan(
 def spectrum(
     result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
     sort: Annotated[str, typer.Option(help="amplitude | frequency | growth | residual | ranking")] = "amplitude",
-    all_modes: Annotated[bool, typer.Option("--all", help="show every mode")] = False,
+    all_modes: Annotated[bool, typer.Option("--all", help="show every mode (default: the first 20)")] = False,
+    field: Annotated[Optional[list[str]], typer.Option("--field", help="show this field's peak amplitude column "
+                                                      "(field units); repeat or comma-separate (default: every "
+                                                      "field's, up to 3)")] = None,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
 ) -> None:
     """Print the spectrum of a result store (sorted by amplitude).
 
-    Example: snaplift spectrum results/fin-duct.zarr --json
+    Frequencies in Hz and growth rates in 1/s when the archive's time unit converts to seconds.
+
+    Example: snaplift spectrum results/fin-duct.zarr --field T --field u
     """
     from snaplift.errors import ConfigError
     from snaplift.report.table import render_spectrum, spectrum_json
@@ -177,10 +238,12 @@ def spectrum(
     if sort not in ("amplitude", "frequency", "growth", "residual", "ranking"):
         raise ConfigError(f"--sort {sort!r} is not allowed; use amplitude, frequency, growth, residual or ranking "
                           "(trusted modes first, then by amplitude)")
+    fields = [name.strip() for item in field or [] for name in item.split(",") if name.strip()]
     if json_output:
-        typer.echo(spectrum_json(result, sort=sort))
+        typer.echo(spectrum_json(result, sort=sort, fields=fields or None))
     else:
-        _console().print(render_spectrum(result, sort=sort, limit=None if all_modes else 20))
+        table = render_spectrum(result, sort=sort, limit=None if all_modes else 20, fields=fields or None)
+        _console(columns=112 + 18 * max(len(fields), 3)).print(table)
 
 
 @app.command()

@@ -54,3 +54,27 @@ def test_lifted_and_edmd_examples_keep_the_shedding_frequency(folder: Path) -> N
     # (Williams et al. 2015 discuss the truncation error); 5 % here, common practice
     assert np.min(np.abs(frequency - plain)) <= 0.05 * plain
     assert read_group(edmd, "eigenfunctions")["value"].shape[0] == frequency.size
+
+
+def test_demo_links_the_archive_where_the_examples_expect_it(tmp_path: Path) -> None:
+    from snaplift.demo.run import link_archive
+    from snaplift.errors import ConfigError
+
+    archive = tmp_path / "cache" / "fin-duct-small.h5"
+    archive.parent.mkdir()
+    archive.write_bytes(b"stand-in")
+    examples = tmp_path / "workflows"
+    examples.mkdir()
+    for name in ("fin-duct.yaml", "fin-duct-lifted.yaml", "fin-duct-edmd.yaml"):
+        text = (ROOT / "workflows" / name).read_text()
+        assert yaml.safe_load(text)["archive"]["path"] == "fin-duct.h5"
+        assert "--workflow-dir" in text  # the comment says how to get the archive there
+    link = link_archive(archive, examples)
+    assert link == examples / "fin-duct.h5" and link.resolve() == archive.resolve()
+    assert link_archive(archive, examples).read_bytes() == b"stand-in"  # again: replaced
+    other = tmp_path / "other"
+    other.mkdir()
+    (other / "fin-duct.h5").write_bytes(b"user data")
+    with pytest.raises(ConfigError, match="not a link"):
+        link_archive(archive, other)
+    assert (other / "fin-duct.h5").read_bytes() == b"user data"

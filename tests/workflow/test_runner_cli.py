@@ -65,3 +65,44 @@ def test_reporter_logs_deciles_and_stays_silent_when_quiet(tmp_path: Path, capsy
     lines = (tmp_path / "p.log").read_text().splitlines()
     assert sum("compress: " in line and " % (" in line for line in lines) == 10  # 10 %, 20 %, ... 100 %
     assert capsys.readouterr().out == ""
+
+
+def test_dry_run_checks_the_archive_before_the_queue(tmp_path: Path) -> None:
+    path = _workflow(tmp_path)
+    ok = CliRunner().invoke(app, ["run", str(path), "--dry-run"])
+    assert ok.exit_code == 0, ok.output
+    assert "u (24, 5, 6)" in ok.output and "24 snapshots" in ok.output
+    data = yaml.safe_load(path.read_text())
+    for section, value, message in (
+        ("fields", ["u", "w"], "archive field 'w' not found"),
+        ("weights", "area", "'area'"),
+        ("mask", "solid", "'solid'"),
+        ("runs", "run", "archive.runs dataset 'run' not found"),
+        ("coords", {"x": "xc"}, "coordinate dataset 'xc'"),
+        ("time", "when", "'when'"),
+    ):
+        broken = tmp_path / f"broken-{section}.yaml"
+        broken.write_text(yaml.safe_dump({**data, "archive": {**data["archive"], section: value}}))
+        result = CliRunner().invoke(app, ["run", str(broken), "--dry-run"])
+        assert result.exit_code == 2, (section, result.output)
+        assert message in result.output and "Traceback" not in result.output, (section, result.output)
+        assert len(result.output.strip().splitlines()) == 1, result.output
+    # no time dataset and no step: the message names the keys to set
+    with h5py.File(tmp_path / "b.h5", "w") as h5:
+        h5.create_dataset("u", data=np.zeros((24, 5, 6)))
+    timeless = tmp_path / "timeless.yaml"
+    timeless.write_text(yaml.safe_dump({**data, "archive": {"path": "b.h5", "fields": ["u"]}}))
+    result = CliRunner().invoke(app, ["run", str(timeless), "--dry-run"])
+    assert result.exit_code == 2 and "archive.time" in result.output and "archive.step" in result.output
+
+
+def test_a_typo_is_reported_before_an_old_store(tmp_path: Path) -> None:
+    path = _workflow(tmp_path)
+    assert CliRunner().invoke(app, ["run", str(path), "--quiet"]).exit_code == 0
+    data = yaml.safe_load(path.read_text())
+    data["archive"]["fields"] = ["uu"]
+    data["compress"]["rank"] = 2
+    path.write_text(yaml.safe_dump(data))
+    result = CliRunner().invoke(app, ["run", str(path)])
+    assert result.exit_code == 2
+    assert "archive field 'uu' not found" in result.output and "different workflow" not in result.output

@@ -183,3 +183,23 @@ def test_fit_keys() -> None:
     data["fit"] = {"debias": "both"}
     with pytest.raises(ConfigError, match="fit.debias"):
         parse_workflow(data)
+
+
+def test_rbf_function_key_and_the_old_shape_key_refused() -> None:
+    data = _base()
+    data["fit"] = {"method": "edmd"}
+    data["lift"] = [{"kind": "rbf", "function": "thin_plate", "on": "coefficients"}]
+    assert parse_workflow(data).lift[0].function == "thin_plate"
+    data["lift"] = [{"kind": "rbf", "shape": "thin_plate", "on": "coefficients"}]
+    with pytest.raises(ConfigError, match="'shape'.*is now 'function'.*function: thin_plate"):
+        parse_workflow(data)
+
+
+def test_archive_time_unit_and_coords_keys() -> None:
+    data = _base()
+    data["archive"] = {**data["archive"], "time_unit": "ms", "coords": {"x": "xc"}}
+    section = parse_workflow(data).archive
+    assert section.time_unit == "ms" and section.coords == {"x": "xc"}
+    data["archive"]["time_unit"] = "fortnight"
+    with pytest.raises(ConfigError, match="archive.time_unit"):
+        parse_workflow(data)

@@ -38,6 +38,8 @@ class FieldInfo:
     chunks: tuple[int, ...] | None
     attrs: dict[str, Any] = field(default_factory=dict)
     nbytes: int = 0
+    #: per grid axis, the archive variable (1-D) holding its coordinate, or None
+    coordinates: tuple[str | None, ...] = ()
 
     @property
     def n_snapshots(self) -> int:

@@ -27,6 +27,9 @@ __all__ = [
     "decode",
     "decoded_dtype",
     "parse_time_units",
+    "TimeUnit",
+    "time_unit_of",
+    "SECONDS_PER_UNIT",
     "plain_attrs",
     "TIME_NAMES",
     "is_time_like",
@@ -75,6 +78,20 @@ _TIME_UNITS = {
     "d": "days",
     "day": "days",
     "days": "days",
+    "ns": "nanoseconds",
+    "nanosecond": "nanoseconds",
+    "nanoseconds": "nanoseconds",
+    "µs": "microseconds",
+}
+#: seconds in one of each canonical time unit (SI; a day of 86400 s, as CF and UDUNITS count it)
+SECONDS_PER_UNIT = {
+    "seconds": 1.0,
+    "milliseconds": 1e-3,
+    "microseconds": 1e-6,
+    "nanoseconds": 1e-9,
+    "minutes": 60.0,
+    "hours": 3600.0,
+    "days": 86400.0,
 }
 _SINCE = re.compile(r"^\s*([A-Za-z]+)\s+since\s+(.+?)\s*$")
 
@@ -199,6 +216,46 @@ def parse_time_units(units: Any) -> tuple[str, str] | None:
     if unit is None:
         return None
     return unit, match.group(2)
+
+
+@dataclass(frozen=True)
+class TimeUnit:
+    """The time unit of an archive: ``name`` as found (``"milliseconds since 2020-01-01"``,
+    ``"ms"``), ``canonical`` (``"milliseconds"``) and ``seconds`` per unit, both None when
+    the unit does not convert to seconds (``"months since ..."``, ``"steps"``)."""
+
+    name: str
+    canonical: str | None
+    seconds: float | None
+
+
+def canonical_time_unit(text: Any) -> str | None:
+    """``"ms"``, ``"Milliseconds"``, ``"ms since 2000-01-01"`` -> ``"milliseconds"``; None otherwise."""
+    if not isinstance(text, str) or not text.strip():
+        return None
+    since = parse_time_units(text)
+    if since is not None:
+        return since[0]
+    return _TIME_UNITS.get(text.strip().lower())
+
+
+def time_unit_of(attrs: dict[str, Any]) -> TimeUnit | None:
+    """The time unit a time variable declares, or None when it declares none.
+
+    Looks at CF ``units`` (``"<unit> since <origin>"`` or a plain unit such as ``"s"``)
+    and at a ``time_unit`` attribute (what an HDF5 / zarr file without CF conventions may
+    carry; the readers also set it from a ``since`` unit). A declared unit that does not
+    convert to seconds is kept by name with ``seconds=None``.
+    """
+    units = attrs.get("units")
+    for text in (units, attrs.get("time_unit")):
+        canonical = canonical_time_unit(text)
+        if canonical is not None:
+            return TimeUnit(str(text), canonical, SECONDS_PER_UNIT[canonical])
+    for text in (units, attrs.get("time_unit")):
+        if isinstance(text, str) and text.strip() and text.strip() != "1":
+            return TimeUnit(text.strip(), None, None)
+    return None
 
 
 def is_time_like(name: str, attrs: dict[str, Any]) -> int:

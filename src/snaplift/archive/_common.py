@@ -106,6 +106,42 @@ class Candidate:
     chunks: tuple[int, ...] | None = None
     #: storage facts for FieldInfo.attrs (compression, shards, layout)
     storage: dict[str, Any] = dataclass_field(default_factory=dict)
+    #: dimension name of each axis where the format records one (netCDF dimension scales,
+    #: zarr dimension_names / _ARRAY_DIMENSIONS), else None
+    dims: tuple[str | None, ...] | None = None
+
+
+def grid_coordinate_names(field: Candidate, by_name: dict[str, Candidate]) -> tuple[str | None, ...]:
+    """The 1-D array holding the coordinate of each grid axis of ``field`` (None: none).
+
+    A grid axis (every axis after the snapshot axis) takes, in order: the dimension
+    coordinate (a 1-D numeric array named like the axis's dimension, of the axis's
+    length: netCDF / xarray dimension coordinates), else a CF auxiliary coordinate named
+    in the field's ``coordinates`` attribute (CF 1.x section 5) that is 1-D, numeric and
+    either on that dimension or the only axis of its length.
+    """
+    grid = field.shape[1:]
+    dims = tuple(field.dims[1:]) if field.dims is not None and len(field.dims) == len(field.shape) else (None,) * len(grid)
+
+    def usable(name: str | None, length: int) -> bool:
+        c = by_name.get(name) if name else None
+        return c is not None and c.shape == (length,) and _numeric(c.dtype) and c.name != field.name
+
+    names: list[str | None] = [d if usable(d, n) else None for d, n in zip(dims, grid)]
+    listed = field.attrs.get("coordinates")
+    for name in str(listed).split() if isinstance(listed, str) else []:
+        c = by_name.get(name)
+        if c is None or len(c.shape) != 1 or name in names:
+            continue
+        own = c.dims[0] if c.dims else None
+        axes = [i for i, d in enumerate(dims) if own is not None and d == own and grid[i] == c.shape[0]]
+        if not axes:
+            axes = [i for i, n in enumerate(grid) if n == c.shape[0]]
+            axes = axes if len(axes) == 1 else []
+        for i in axes:
+            if names[i] is None and usable(name, grid[i]):
+                names[i] = name
+    return tuple(names)
 
 
 def _numeric(dtype: np.dtype) -> bool:
@@ -146,10 +182,11 @@ def classify(
             f"time variable '{time}' in {path} must be 1-D, has shape {by_name[time].shape}"
         )
     if time_name is None:
+        # native datetime64 values are times whatever their name
         scored = [
-            (is_time_like(c.name, c.attrs), c.name)
+            (3 if c.dtype.kind == "M" else is_time_like(c.name, c.attrs), c.name)
             for c in candidates
-            if len(c.shape) == 1 and _numeric(c.dtype) and c.dtype.kind != "b"
+            if len(c.shape) == 1 and (_numeric(c.dtype) or c.dtype.kind in "Mm") and c.dtype.kind != "b"
         ]
         scored = [s for s in scored if s[0] > 0]
         if scored:

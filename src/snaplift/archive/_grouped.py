@@ -26,6 +26,7 @@ from snaplift.archive._cf import (
 from snaplift.archive._common import (
     Candidate,
     classify,
+    grid_coordinate_names,
     missing_field_error,
     normalise_slice,
     read_block,
@@ -63,6 +64,18 @@ def effective_chunks(shape: tuple[int, ...], chunks: tuple[int, ...] | None) -> 
     return tuple(int(c) for c in chunks)
 
 
+#: numpy datetime64 / timedelta64 units -> canonical time unit names (snaplift.archive._cf)
+_NUMPY_TIME_UNITS = {"D": "days", "h": "hours", "m": "minutes", "s": "seconds", "ms": "milliseconds",
+                     "us": "microseconds", "ns": "nanoseconds"}
+
+
+def numpy_time_unit(dtype: np.dtype) -> str | None:
+    """The unit of a datetime64 / timedelta64 dtype as a canonical name, else None."""
+    if np.dtype(dtype).kind not in "Mm":
+        return None
+    return _NUMPY_TIME_UNITS.get(np.datetime_data(dtype)[0])
+
+
 def variable_values(raw: np.ndarray, entry: Entry) -> np.ndarray:
     """Decode a whole variable; floats come back as float64, complex as complex128.
 
@@ -70,6 +83,11 @@ def variable_values(raw: np.ndarray, entry: Entry) -> np.ndarray:
     fill value applies (then float64, NaN at fills) or they are times (float64 counts of
     the unit before ``since``).
     """
+    if raw.dtype.kind in "Mm":
+        # native datetimes: counts of their unit since the epoch (NaT is missing)
+        counts = raw.view(np.int64).astype(np.float64)
+        counts[np.isnat(raw)] = np.nan
+        return counts
     if not entry.decoding.is_identity or entry.is_time:
         if raw.dtype.kind not in "biufc":
             return raw
@@ -132,6 +150,7 @@ class GroupedReader(Reader):
         )
         fields: dict[str, Entry] = {}
         field_infos: dict[str, FieldInfo] = {}
+        by_name = {c.name: c for c in others}
         for c in chosen:
             attrs = dict(c.attrs)
             attrs.update(c.storage)
@@ -143,6 +162,7 @@ class GroupedReader(Reader):
                 chunks=effective_chunks(c.shape, c.chunks),
                 attrs=attrs,
                 nbytes=int(np.prod(c.shape, dtype=np.int64)) * c.dtype.itemsize,
+                coordinates=grid_coordinate_names(c, by_name),
             )
             fields[c.name] = Entry(c.name, c.shape[1:], decoding_from_attrs(c.attrs, c.dtype))
         variables: dict[str, Entry] = {}
@@ -155,7 +175,12 @@ class GroupedReader(Reader):
                 attrs["time_unit"], attrs["time_origin"] = units
             decoding = decoding_from_attrs(c.attrs, c.dtype)
             out_dtype = c.dtype
-            if c.dtype.kind in "biufc" and (is_time or not decoding.is_identity):
+            native = numpy_time_unit(c.dtype)
+            if native is not None:
+                attrs.setdefault("time_unit", native)
+                attrs.setdefault("time_origin", "1970-01-01" if c.dtype.kind == "M" else "0")
+                out_dtype = np.dtype(np.float64)
+            elif c.dtype.kind in "biufc" and (is_time or not decoding.is_identity):
                 out_dtype = decoded_dtype(c.dtype)
             elif c.dtype.kind in "fc":
                 out_dtype = decoded_dtype(c.dtype)

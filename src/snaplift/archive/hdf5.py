@@ -48,6 +48,20 @@ def _as_bytes(value: Any) -> bytes:
     return b""
 
 
+def _dimension_names(dataset: Any) -> tuple[str | None, ...] | None:
+    """Names of the dimension scales attached to each axis (netCDF-4 dimensions), else None."""
+    if _raw_attr(dataset, "DIMENSION_LIST") is None:
+        return None
+    names: list[str | None] = []
+    try:
+        for axis in dataset.dims:
+            scales = list(axis.values())
+            names.append(scales[0].name.lstrip("/") if scales else None)
+    except Exception:  # unreadable references: no dimension names, nothing else depends on them
+        return None
+    return tuple(names)
+
+
 def hdf5_candidates(root: Any) -> list[Candidate]:
     """Every dataset under ``root`` as a :class:`Candidate` (netCDF helpers left out)."""
     import h5py
@@ -72,6 +86,8 @@ def hdf5_candidates(root: Any) -> list[Candidate]:
                 is_dimension_scale=is_scale,
                 chunks=None if obj.chunks is None else tuple(int(c) for c in obj.chunks),
                 storage=storage,
+                dims=((name,) if is_scale and len(obj.shape) == 1
+                      else _dimension_names(obj)),
             )
         )
 

@@ -12,7 +12,7 @@ Two ways to store runs:
 
 :func:`selected_run_lengths` gives the run lengths of a selection of snapshots
 (``start``/``stop``/``every`` over the archive's snapshot axis). Snapshot pairs and delay
-windows never cross a run boundary (DESIGN.md, "Data model").
+windows never cross a run boundary (README.md, "runs").
 
 Variables of a RunsReader: a variable whose leading length is its member's snapshot
 count in *every* member (times, per-snapshot values) is concatenated; any other variable
@@ -245,6 +245,7 @@ class RunsReader(Reader):
                 chunks=f.chunks,
                 attrs=attrs,
                 nbytes=int(sum(i.fields[name].nbytes for i in infos)),
+                coordinates=f.coordinates,  # the first run's (the grids are checked to agree)
             )
         variables: dict[str, VariableInfo] = {}
         roles: dict[str, str] = {}

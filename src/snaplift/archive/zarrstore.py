@@ -51,6 +51,7 @@ def _candidate(name: str, array: Any) -> Candidate:
         attrs=plain_attrs(array.attrs),
         chunks=tuple(int(c) for c in array.chunks),
         storage=storage,
+        dims=None if dims is None else tuple(dims),
     )
 
 

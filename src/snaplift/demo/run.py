@@ -19,15 +19,37 @@ def demo_workflow_text() -> str:
     return resources.files("snaplift.demo").joinpath("fin-duct.yaml").read_text()
 
 
+def link_archive(archive: Path, workflow_dir: Path) -> Path:
+    """Make ``workflow_dir/fin-duct.h5`` the demo archive (a symbolic link), where the
+    example workflows in ``workflows/`` expect it; an existing file there that is not a link
+    to an archive is left alone (error)."""
+    from snaplift.errors import ConfigError
+
+    workflow_dir = Path(workflow_dir)
+    if not workflow_dir.is_dir():
+        raise ConfigError(f"--workflow-dir {workflow_dir} is not a folder; give the folder of the example workflows")
+    target = workflow_dir / "fin-duct.h5"
+    if target.is_symlink():
+        target.unlink()
+    elif target.exists():
+        if target.resolve() == Path(archive).resolve():
+            return target
+        raise ConfigError(f"{target} exists and is not a link to the demo archive; remove it or choose another "
+                          "--workflow-dir")
+    target.symlink_to(Path(archive).resolve())
+    return target
+
+
 def run_demo(
     *, size: str = "default", folder: Path | None = None, progress: Callable[[str], None] | None = None,
-    overwrite: bool = False,
+    overwrite: bool = False, workflow_dir: Path | None = None,
 ) -> tuple[Any, Any]:
     """Generate or reuse the demo archive, run the workflow next to it, return (summary, table).
 
     The workflow is written to ``folder`` (default: the archive's cache folder) with its
     archive and output paths filled in, so the result store's provenance records the
-    workflow that actually ran.
+    workflow that actually ran. ``workflow_dir``: also link the archive there as
+    ``fin-duct.h5``, where the example workflows of ``workflows/`` expect it.
 
     Example
     -------
@@ -41,6 +63,10 @@ def run_demo(
     say(f"demo: archive of size '{label}' (invented data from snaplift's lattice-Boltzmann model)")
     archive = ensure_fin_duct(size)
     say(f"demo: archive {archive}")
+    if workflow_dir is not None:
+        link = link_archive(archive, workflow_dir)
+        say(f"demo: linked {link} -> {archive}; run the examples there, e.g. "
+            f"snaplift run {Path(workflow_dir) / 'fin-duct-lifted.yaml'}")
     folder = Path(folder) if folder is not None else archive.parent
     folder.mkdir(parents=True, exist_ok=True)
     workflow = yaml.safe_load(demo_workflow_text())

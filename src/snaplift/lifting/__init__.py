@@ -1,6 +1,6 @@
 """Lifting: dictionaries of observables.
 
-Two places, one vocabulary (see ``DESIGN.md``, "Lifting"):
+Two places, one vocabulary (see README.md, "Lifting"):
 
 - on the raw field, as pure per-tile kernels fused into the archive read and never
   stored: :func:`pointwise_terms` and the delay (Hankel) plan :func:`delay_columns`

@@ -1,6 +1,6 @@
 """Forecast from a result store: advance the fitted model from any snapshot, in field units.
 
-The store holds everything the linear model needs (``DESIGN.md``, "Result store"): the
+The store holds everything the linear model needs (README.md, "The result store"): the
 eigenvalues (``spectrum/``), the modes in field units (``modes/``), the mean or the fixed
 point (``prepare/``) and, to start from snapshot ``j``, the amplitudes of the modes at
 ``j``:
@@ -25,6 +25,7 @@ from pathlib import Path
 import numpy as np
 import scipy.linalg
 
+from snaplift import __version__
 from snaplift.errors import ResultStoreError
 from snaplift.results.store import open_result
 
@@ -90,8 +91,8 @@ def _amplitudes(root, column: int, eigenvalue: np.ndarray, store) -> np.ndarray:
     if "eigenfunctions" in root:
         return np.asarray(root["eigenfunctions/value"][:, column], dtype=np.complex128)
     if "operator" not in root or "mode_coefficient" not in root["operator"]:
-        raise ResultStoreError(f"result store {store} has no operator/mode_coefficient (written by snaplift 0.2 "
-                               "and later); run the workflow again to forecast from it")
+        raise ResultStoreError(f"result store {store} has no operator/mode_coefficient (written by an older "
+                               f"snaplift than {__version__}); run the workflow again to forecast from it")
     modes = np.asarray(root["operator/mode_coefficient"][...], dtype=np.complex128)
     state = np.asarray(root["basis/coefficient"][:, column], dtype=np.complex128)
     if "fixed_point_coefficient" in root["operator"]:

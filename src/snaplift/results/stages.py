@@ -6,7 +6,7 @@ store, :mod:`snaplift.results.staging`); later stages read them back from there 
 or hard-linked from the previous complete store. So ``fit`` and ``modes`` see the same
 numbers in all three cases.
 
-What compress leaves (DESIGN.md, "Result store"), and what ``fit``/``modes`` need of it:
+What compress leaves (README.md, "The result store"), and what ``fit``/``modes`` need of it:
 
 - ``basis/singular_value`` (rank,), ``basis/coefficient`` (rank, snapshot) and
   ``basis/<field>`` (rank, *grid): the basis vectors in field units (scale, weights and
@@ -32,7 +32,9 @@ from snaplift.archive._base import Reader
 from snaplift.archive.matrix import FieldRows, SnapshotMatrix
 from snaplift.errors import ResultStoreError
 from snaplift.prepare import Preparation, to_physical
-from snaplift.results.store import StoreWriter, grid_dimensions
+from snaplift.fitting.spectrum import conjugate_pairs
+from snaplift.fitting.spectrum import frequency as mode_frequency
+from snaplift.results.store import StoreWriter
 
 __all__ = [
     "LoadedCompressed",
@@ -69,7 +71,7 @@ def _unscaled(preparation: Preparation) -> Preparation:
 def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scale_setting: Any) -> None:
     """Write everything ``fit`` and ``modes`` need of a compress result (module docstring)."""
     matrix, preparation, lowrank = compressed.matrix, compressed.preparation, compressed.lowrank
-    dims = grid_dimensions({f.name: f.grid for f in matrix.fields})
+    dims = writer.metadata.grid_dims({f.name: f.grid for f in matrix.fields})
     writer.array("basis", "singular_value", np.asarray(lowrank.singular_value), ("rank",))
     writer.array("basis", "coefficient", np.asarray(lowrank.coefficient), ("rank", "snapshot"))
     writer.array("diagnostics", "column_norm", np.asarray(lowrank.column_norm), ("snapshot",),
@@ -80,7 +82,9 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
                  attrs={"kind": getattr(compressed, "projection_kind", "exact"),
                         "norm": "relative, weighted and scaled (physical inner product)"})
     writer.array("prepare", "scale", np.array([preparation.field_scale[f] for f in preparation.fields]),
-                 ("field",), attrs={"fields": list(preparation.fields), "meaning": "each field was divided by this"})
+                 ("field",), attrs={"fields": list(preparation.fields), "meaning": "each field was divided by this",
+                                    "units_per_field": [writer.metadata.units_of(f) for f in preparation.fields]})
+    writer.array("prepare", "field", np.array(list(preparation.fields), dtype=str), ("field",))
     lifted = {rows.name: {"source": rows.archive_field, "term": rows.term, "snapshot_shift": int(rows.snapshot_shift)}
               for rows in matrix.fields if rows.lifted}
     writer.group_attrs("prepare", {"center": preparation.centered,
@@ -223,6 +227,10 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
 def write_fit(writer: StoreWriter, fit: Any, dt: float, *, residuals: Any = None) -> tuple[np.ndarray, list[str]]:
     """Spectrum (sorted by amplitude) and operator; returns the sort order and warnings.
 
+    ``dt`` is the step in the archive's time unit (stored as the ``dt`` attribute); the
+    fit's own ``dt`` is in seconds when that unit converts (``writer.metadata``), so
+    frequencies are in Hz and rates in 1/s.
+
     ``residuals`` (a :class:`~snaplift.fitting.ResidualReport`) fills ``spectrum/residual``
     and ``spectrum/trusted``.
     """
@@ -261,11 +269,17 @@ def write_fit(writer: StoreWriter, fit: Any, dt: float, *, residuals: Any = None
         warnings.extend(residuals.warnings)
     elif flagged.size:
         warnings.append(
-            f"{flagged.size} mode(s) lie within 10 % of the Nyquist frequency 1/(2 dt) = {0.5 / dt:.6g} Hz "
+            f"{flagged.size} mode(s) lie within 10 % of the Nyquist frequency 1/(2 dt) = {0.5 / fit.dt:.6g} "
+            f"{writer.metadata.frequency_unit} "
             f"(sorted positions {', '.join(map(str, flagged[:10]))}); their frequencies may be aliased"
         )
-    writer.group_attrs("spectrum", {"sorted_by": "amplitude", "dt": dt,
-                                    "frequency_units": "Hz (1/time unit of the archive)"})
+    meta = writer.metadata
+    time_attrs = {"time_unit": meta.time_unit, "frequency_unit": meta.frequency_unit,
+                  "growth_unit": meta.growth_unit, "period_unit": meta.period_unit}
+    if meta.seconds_per_unit is not None:
+        time_attrs["time_unit_seconds"] = meta.seconds_per_unit
+    # dt in the archive's own time unit, like diagnostics/time (forecasts step by it)
+    writer.group_attrs("spectrum", {"sorted_by": "amplitude", "dt": dt, "dt_unit": meta.time_unit, **time_attrs})
     writer.array("operator", "matrix", np.asarray(fit.operator), ("mode_in", "mode_out"),
                  attrs={"convention": "column-vector: c_next = matrix @ c (reduced coordinates)"})
     return order, warnings
@@ -286,10 +300,10 @@ def write_fit_details(writer: StoreWriter, outcome: Any, order: np.ndarray, time
     writer.array("runs", "amplitude", np.asarray(outcome.run_amplitude)[:, order], ("run", "mode"),
                  attrs={"meaning": "optimal amplitude of each mode in each run (Jovanovic et al. 2014)"})
     if outcome.eigenfunction is not None:
+        writer.array("eigenfunctions", "time", np.asarray(time), ("snapshot",))
         writer.array("eigenfunctions", "value", np.asarray(outcome.eigenfunction)[order], ("mode", "snapshot"),
                      attrs={"meaning": "Koopman eigenfunctions evaluated on the snapshots, scaled so that "
                                        "x_j = sum_k mode_k value[k, j]"})
-        writer.array("eigenfunctions", "time", np.asarray(time), ("snapshot",))
     attrs = {"method": outcome.method, "space": outcome.space}
     if outcome.details:
         attrs[outcome.details_key] = dict(outcome.details)
@@ -304,8 +318,9 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
     coefficients are zero); modes fitted on the raw state are its values on the grid.
     """
     matrix, preparation, lowrank = compressed.matrix, compressed.preparation, compressed.lowrank
-    dims = grid_dimensions({f.name: f.grid for f in matrix.fields})
+    dims = writer.metadata.grid_dims({f.name: f.grid for f in matrix.fields})
     n_modes = int(order.size)
+    _write_mode_frequency(writer, fit, order)
     if fit.space == "state":
         _write_state_modes(writer, fit, matrix, order, dims)
         return
@@ -323,9 +338,12 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
         basis_rows = np.asarray(basis_rows)
         mode_array = writer.empty("modes", rows.name, (n_modes, *rows.grid), np.complex128,
                                   ("mode", *dims[rows.name]), chunks=(1, *rows.grid))
+        largest = np.zeros(n_modes)
         for k in range(n_modes):
-            values = basis_rows @ modes_rows[:, k]
-            mode_array[k] = rows.expand(to_physical(values, rows, preparation, add_mean=False))
+            values = to_physical(basis_rows @ modes_rows[:, k], rows, preparation, add_mean=False)
+            mode_array[k] = rows.expand(values)
+            largest[k] = _largest(values)
+        _write_peak(writer, rows.name, largest, fit, order, np.dtype(matrix.dtype).kind != "c")
         if preparation.mean is not None:
             mean = to_physical(preparation.mean[rows.offset:rows.stop], rows, _unscaled(preparation), add_mean=False)
             # with the affine term the model is x_j = fixed_point + sum_k mode_k b_k lambda_k^j
@@ -348,6 +366,44 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
                  attrs={"norm": "relative, weighted and scaled (physical inner product)"})
 
 
+def _largest(values: np.ndarray) -> float:
+    """Largest modulus of a mode's values (NaN at masked or zero-weight points ignored)."""
+    magnitude = np.abs(np.asarray(values))
+    finite = magnitude[np.isfinite(magnitude)]
+    return float(finite.max()) if finite.size else 0.0
+
+
+def _write_mode_frequency(writer: StoreWriter, fit: Any, order: np.ndarray) -> None:
+    """``modes/frequency`` (mode,): the non-index coordinate of the mode arrays."""
+    values = mode_frequency(np.asarray(fit.eigenvalue)[order], fit.dt)
+    writer.array("modes", "frequency", np.asarray(values, dtype=np.float64), ("mode",))
+
+
+def peak_amplitude(largest: np.ndarray, amplitude: np.ndarray, eigenvalue: np.ndarray, *,
+                   real: bool = True) -> np.ndarray:
+    """Peak amplitude of each mode's part of the data at the first snapshot, in field units.
+
+    A mode ``phi_k`` (field units, per unit amplitude) with amplitude ``b_k`` contributes
+    ``phi_k b_k lambda_k^j`` to snapshot ``j``; a complex-conjugate pair contributes
+    ``2 Re(phi_k b_k lambda_k^j)``, an oscillation of amplitude ``2 |phi_k b_k|`` at each
+    point. So the peak is ``max |phi_k| |b_k|``, doubled for a mode with a conjugate
+    partner (both modes of a pair show the pair's peak): a standing wave
+    ``40 Pa cos(omega t) sin(k x)`` reads 40 Pa.
+    """
+    partner = conjugate_pairs(np.asarray(eigenvalue, dtype=np.complex128))
+    # complex data have no conjugate symmetry: each mode stands alone
+    factor = np.where(partner >= 0, 2.0, 1.0) if real else np.ones(partner.shape)
+    return np.asarray(largest) * np.abs(np.asarray(amplitude)) * factor
+
+
+def _write_peak(writer: StoreWriter, name: str, largest: np.ndarray, fit: Any, order: np.ndarray, real: bool) -> None:
+    amplitude = np.asarray(fit.amplitude)[order]
+    eigenvalue = np.asarray(fit.eigenvalue)[order]
+    writer.array("spectrum", f"peak_{name}", peak_amplitude(largest, amplitude, eigenvalue, real=real), ("mode",),
+                 attrs={"meaning": "max over the grid of |mode| |amplitude| (x 2 for a conjugate pair): the "
+                                   "mode's peak contribution at the first snapshot of the fit, in field units"})
+
+
 def _write_state_modes(writer: StoreWriter, fit: Any, matrix: SnapshotMatrix, order: np.ndarray,
                        dims: dict[str, tuple[str, ...]]) -> None:
     modes = np.asarray(fit.modes)[:, order]
@@ -355,6 +411,8 @@ def _write_state_modes(writer: StoreWriter, fit: Any, matrix: SnapshotMatrix, or
         values = modes[rows.offset:rows.stop].T  # (mode, kept points), raw units
         writer.array("modes", rows.name, rows.expand(values).astype(np.complex128), ("mode", *dims[rows.name]),
                      chunks=(1, *rows.grid))
+        largest = np.array([_largest(v) for v in values])
+        _write_peak(writer, rows.name, largest, fit, order, np.dtype(matrix.dtype).kind != "c")
     data, model = np.asarray(fit.data), np.asarray(fit.model)
     model = model.real if not np.iscomplexobj(data) else model
     norm = np.linalg.norm(data, axis=0)

@@ -283,7 +283,7 @@ class StagedStore:
         root.attrs.update(_jsonable({**attrs, FORMAT_KEY: STORE_VERSION, IDENTITY_KEY: self.identity}))
         root.attrs[COMPLETE_KEY] = True
         with warnings.catch_warnings():
-            # consolidated metadata is not yet in the v3 spec; DESIGN.md asks for it (xarray uses it)
+            # consolidated metadata is not yet in the v3 spec; the README promises it (xarray uses it)
             warnings.filterwarnings("ignore", message="Consolidated metadata", category=UserWarning)
             zarr.consolidate_metadata(str(self.store_path))
         old = None

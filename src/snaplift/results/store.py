@@ -1,6 +1,6 @@
 """The zarr v3 result store, written to a staging folder and renamed into place.
 
-Layout (see DESIGN.md, "Result store")::
+Layout (see README.md, "The result store")::
 
     RESULT.zarr/
       spectrum/     eigenvalue, rate, frequency, growth, period, amplitude   (mode,)
@@ -30,6 +30,7 @@ import numpy as np
 import zarr
 
 from snaplift.errors import ResultStoreError
+from snaplift.results.metadata import StoreMetadata, grid_dimensions
 
 __all__ = ["StoreWriter", "open_result", "read_group", "grid_dimensions", "COMPLETE_KEY"]
 
@@ -38,22 +39,14 @@ FORMAT_KEY = "snaplift_store_version"
 STORE_VERSION = 1
 
 
-def grid_dimensions(grids: dict[str, tuple[int, ...]]) -> dict[str, tuple[str, ...]]:
-    """Dimension names for each field's grid; fields on one grid share names.
-
-    One common grid gets ``x`` / ``y, x`` / ``z, y, x``; fields on different (staggered)
-    grids get names prefixed by the field, so xarray sees no conflicting sizes.
-    """
-    common = len(set(grids.values())) == 1
-    names: dict[str, tuple[str, ...]] = {}
-    for field, grid in grids.items():
-        base = ("z", "y", "x")[3 - len(grid):] if len(grid) <= 3 else tuple(f"axis{i}" for i in range(len(grid)))
-        names[field] = base if common else tuple(f"{field}_{b}" for b in base)
-    return names
-
-
 class StoreWriter:
-    """Builds a result store in ``<path>.staging-<id>`` and commits it by rename."""
+    """Builds a result store in ``<path>.staging-<id>`` and commits it by rename.
+
+    ``metadata`` (:class:`~snaplift.results.metadata.StoreMetadata`) gives every array its
+    default ``units`` / ``long_name`` and the coordinates its dimensions get in its group.
+    """
+
+    metadata: StoreMetadata = StoreMetadata()
 
     def __init__(self, path: str | Path, *, overwrite: bool = False, workflow_fingerprint: str | None = None) -> None:
         self.path = Path(path)
@@ -90,29 +83,54 @@ class StoreWriter:
         data = np.asarray(data)
         if data.ndim != len(dimensions):
             raise ValueError(f"{group}/{name}: {data.ndim}-D data with dimensions {tuple(dimensions)}")
+        dtype: Any = data.dtype
         if data.dtype == object or data.dtype.kind == "U":
-            data = data.astype(str).astype(object) if data.dtype == object else data
+            # variable-length UTF-8 strings: the zarr v3 string type xarray reads
+            from zarr.dtype import VariableLengthUTF8
+
+            data, dtype = data.astype(str).astype(object), VariableLengthUTF8()
         node = self.root.require_group(group) if group else self.root
         array = node.create_array(
             name,
             shape=data.shape,
-            dtype=data.dtype,
+            dtype=dtype,
             chunks=chunks or tuple(max(1, s) for s in data.shape),
             dimension_names=tuple(dimensions),
             fill_value=None,
-            attributes=dict(attrs or {}),
+            attributes=self._attrs(group, name, dimensions, attrs),
         )
         if data.size:
             array[...] = data
+        self._coordinates(group, name, dimensions)
         return array
+
+    def _attrs(self, group: str, name: str, dimensions: Sequence[str], attrs: dict[str, Any] | None) -> dict[str, Any]:
+        return _jsonable({**self.metadata.attrs(group, name, tuple(dimensions)), **dict(attrs or {})})
+
+    def _coordinates(self, group: str, name: str, dimensions: Sequence[str]) -> None:
+        """Write the coordinate of each dimension of ``group/name`` into ``group`` once."""
+        if not group:
+            return
+        node = self.root[group]
+        for dimension in dimensions:
+            target = "time" if dimension == "snapshot" else dimension
+            if target == name or target in node:
+                continue
+            if dimension == "snapshot" and group not in ("basis", "diagnostics", "eigenfunctions"):
+                continue
+            coordinate = self.metadata.coordinate(dimension)
+            if coordinate is not None:
+                self.array(group, target, coordinate.values, (dimension,), attrs=coordinate.attrs)
 
     def empty(self, group: str, name: str, shape: tuple[int, ...], dtype: Any, dimensions: Sequence[str],
               chunks: tuple[int, ...], attrs: dict[str, Any] | None = None) -> zarr.Array:
         """An array to be filled chunk by chunk (modes, basis fields)."""
         node = self.root.require_group(group)
-        return node.create_array(name, shape=shape, dtype=dtype, chunks=chunks,
-                                 dimension_names=tuple(dimensions), fill_value=None,
-                                 attributes=dict(attrs or {}))
+        array = node.create_array(name, shape=shape, dtype=dtype, chunks=chunks,
+                                  dimension_names=tuple(dimensions), fill_value=None,
+                                  attributes=self._attrs(group, name, dimensions, attrs))
+        self._coordinates(group, name, dimensions)
+        return array
 
     def group_attrs(self, group: str, attrs: dict[str, Any]) -> None:
         node = self.root.require_group(group) if group else self.root
@@ -123,7 +141,7 @@ class StoreWriter:
         self.root.attrs.update(_jsonable({**attrs, FORMAT_KEY: STORE_VERSION}))
         self.root.attrs[COMPLETE_KEY] = True
         with warnings.catch_warnings():
-            # consolidated metadata is not yet in the v3 spec; DESIGN.md asks for it (xarray uses it)
+            # consolidated metadata is not yet in the v3 spec; the README promises it (xarray uses it)
             warnings.filterwarnings("ignore", message="Consolidated metadata", category=UserWarning)
             zarr.consolidate_metadata(str(self.staging))
         old = None

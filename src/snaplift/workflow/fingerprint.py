@@ -27,7 +27,7 @@ change the archive's path).
 Stage fingerprints chain: ``scan`` hashes the archive section and the archive's content
 identity; ``compress`` hashes scan's fingerprint with ``prepare``, ``lift`` and the
 ``compress`` settings that change results (not ``memory`` or ``checkpoint_every``: the
-tiling does not change results, DESIGN.md "Compression"); ``fit`` hashes compress's with
+tiling does not change results, README.md, "compress"); ``fit`` hashes compress's with
 ``fit``; ``modes`` and ``report`` hash their input's. ``cluster`` and ``output`` never
 enter: where a result is computed does not change it.
 """

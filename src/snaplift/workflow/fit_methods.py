@@ -133,7 +133,7 @@ def _dmd(workflow: Any, compressed: Any, scanned: Any, run_lengths: np.ndarray) 
     settings = workflow.fit
     try:
         fit, report = fit_dmd_with_residuals(
-            coefficients, scanned.dt, holdout=settings.holdout, seed=settings.seed,
+            coefficients, scanned.fit_dt, holdout=settings.holdout, seed=settings.seed,
             trust_threshold=settings.trust_threshold, rank=settings.rank_argument(),
             affine=workflow.prepare.center, debias=settings.debias, pair_mask=_pairs_mask(run_lengths),
         )
@@ -179,7 +179,7 @@ def _edmd(workflow: Any, compressed: Any, scanned: Any, run_lengths: np.ndarray,
     if say is not None:
         say(f"lift: {terms} terms on {data.shape[0]} {'state values' if space == 'state' else 'coefficients'} "
             f"x {data.shape[1]} snapshots = {format_bytes(size)}")
-    fit = fit_edmd(data, dictionary, scanned.dt, pair_mask=_pairs_mask(run_lengths), rank=settings.rank_argument(),
+    fit = fit_edmd(data, dictionary, scanned.fit_dt, pair_mask=_pairs_mask(run_lengths), rank=settings.rank_argument(),
                    holdout=settings.holdout, seed=settings.seed, trust_threshold=settings.trust_threshold,
                    memory_budget=memory_budget)
     report = ResidualReport(residual=np.array(fit.residual), trusted=np.array(fit.trusted),
@@ -209,7 +209,7 @@ def _optimized(workflow: Any, compressed: Any, scanned: Any, run_lengths: np.nda
     settings = workflow.fit
     data = _leading(compressed, settings.coefficients)
     rank = int(settings.rank) if isinstance(settings.rank, int) else data.shape[0]
-    times = np.asarray(scanned.time, dtype=np.float64)
+    times = np.asarray(scanned.fit_time, dtype=np.float64)
     fit = fit_optimized_dmd(data, times, min(rank, data.shape[0]))
     eigenvalue = np.exp(fit.rate * fit.dt)
     # residual of each exponential on every fitted pair, the pair advanced by its own step

@@ -1,6 +1,6 @@
 """``lift:`` of the workflow file: an ordered list of dictionaries of observables.
 
-Two kinds of entries (see ``DESIGN.md``, "Lifting"):
+Two kinds of entries (see README.md, "Lifting"):
 
 - on the raw fields, fused into the tile read and never stored: ``delays`` (Hankel
   stacking: ``count`` copies ``spacing`` snapshots apart) and ``pointwise`` (``x``,
@@ -64,10 +64,11 @@ class _Entry(BaseModel):
 
 
 class DelaysEntry(_Entry):
-    """Hankel stacking of the raw fields: ``count`` copies, ``spacing`` selected snapshots apart."""
+    """Hankel stacking of the raw fields: ``count`` copies in all (the field and ``count - 1`` delayed
+    copies: the window length), ``spacing`` selected snapshots apart."""
 
     kind: Literal["delays"]
-    count: int = Field(ge=2, description="number of delayed copies (2 or more)")
+    count: int = Field(ge=2, description="copies in the window, the undelayed one included (2 or more)")
     spacing: int = Field(1, ge=1, description="selected snapshots between copies")
 
 
@@ -118,9 +119,19 @@ class RadialEntry(_StateEntry):
     """Radial basis functions around k-means centres, width from the median distance."""
 
     kind: Literal["rbf"]
-    shape: Literal["gaussian", "thin_plate"] = "gaussian"
+    function: Literal["gaussian", "thin_plate"] = Field(
+        "gaussian", description="the radial function; its width (the 'shape parameter') is the median distance")
     centres: int = Field(10, ge=1)
     seed: int = Field(0, ge=0)
+
+    @model_validator(mode="before")
+    @classmethod
+    def _renamed(cls, data: Any) -> Any:
+        # in RBF practice the "shape parameter" is the width: the choice of function is 'function'
+        if isinstance(data, dict) and "shape" in data:
+            raise ValueError(f"rbf key 'shape' ({data['shape']!r}) is now 'function': write "
+                             f"function: {data['shape']} (gaussian | thin_plate)")
+        return data
 
 
 class ExpressionsEntry(_StateEntry):
@@ -220,7 +231,7 @@ def state_dictionary(entries: list[Any], variables: list[str]) -> Any:
         elif isinstance(entry, FourierEntry):
             parts.append(fourier(entry.harmonics, scale=entry.scale))
         elif isinstance(entry, RadialEntry):
-            parts.append(rbf(entry.shape, centres=entry.centres, seed=entry.seed))
+            parts.append(rbf(entry.function, centres=entry.centres, seed=entry.seed))
         elif isinstance(entry, ExpressionsEntry):
             parts.append(expressions(entry.formulas, variables=variables))
         else:

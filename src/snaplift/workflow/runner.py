@@ -50,6 +50,7 @@ from snaplift.workflow.fingerprint import (
 )
 from snaplift.workflow.lease import Lease
 from snaplift.workflow.progress import ProgressReporter
+from snaplift.workflow.store_metadata import store_metadata
 from snaplift.workflow.schema import Workflow, load_workflow, resolve_path, section_fingerprint
 
 __all__ = ["FAULT_VARIABLE", "STAGES", "RunInterrupted", "RunSummary", "run", "run_workflow"]
@@ -197,6 +198,8 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
     started = _now()
     output = Path(resolve_path(folder, workflow.output.path))
     archive_path = resolve_path(folder, workflow.archive.path)
+    # names, shapes and times are checked first: an existing store never hides a typo
+    stage_functions.check_workflow(workflow, folder)
     lease = Lease(output)
     lease.acquire()
     store: StagedStore | None = None
@@ -262,6 +265,8 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
             classification = replace(classification, state="new",
                                      reason=f"no previous result (resumed; archive {classification.reason})")
         fingerprints = stage_fingerprints(workflow, classification.identity)
+        # every array written from here on carries units, names and coordinates from the archive
+        store.writer.metadata = store_metadata(workflow, scanned.reader, info, scanned.time, scanned.time_unit)
         store.begin("scan")
         stored.write_scan(store.writer, scanned.time, scanned.snapshot_index)
         records["scan"] = store.finish("scan", {

@@ -65,6 +65,10 @@ class ArchiveSection(_Section):
     fields: list[str] = Field(min_length=1)
     time: str | None = Field(None, description="dataset holding the snapshot times")
     step: float | None = Field(None, gt=0, description="fixed time step when there is no time dataset")
+    time_unit: Literal["s", "ms", "us", "min", "h", "day"] | None = Field(
+        None, description="unit of 'step', or of a time dataset that declares none")
+    coords: dict[str, str] | None = Field(
+        None, description="1-D coordinate datasets per grid dimension, e.g. {x: xc, y: yc}")
     weights: str | None = Field(None, description="per-point weights dataset (cell areas/volumes)")
     mask: str | None = Field(None, description="boolean dataset, true = excluded point")
     snapshots: SnapshotRange = SnapshotRange()
@@ -91,6 +95,9 @@ class ArchiveSection(_Section):
             raise ValueError("give either 'time' (a dataset) or 'step' (a number), not both")
         if len(set(self.fields)) != len(self.fields):
             raise ValueError(f"fields must be distinct, got {self.fields}")
+        for dimension in self.coords or {}:
+            if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", dimension):
+                raise ValueError(f"coords key {dimension!r} must be a dimension name such as x, y, z or u_x")
         return self
 
 

@@ -23,6 +23,7 @@ from snaplift.archive import (
     snapshot_times,
 )
 from snaplift.archive._base import ArchiveInfo
+from snaplift.archive._cf import SECONDS_PER_UNIT, TimeUnit, canonical_time_unit, time_unit_of
 from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
 from snaplift.archive.plan import TilePlan
 from snaplift.cluster import Scheduler, resident_memory
@@ -32,8 +33,9 @@ from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation
 from snaplift.workflow.fit_methods import FitOutcome, fit_outcome
 from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path, scale_of
+from snaplift.workflow.store_metadata import store_metadata
 
-__all__ = ["Scanned", "Compressed", "scan_stage", "compress_stage", "fit_stage", "plan_compress",
+__all__ = ["Scanned", "Compressed", "scan_stage", "check_workflow", "compress_stage", "fit_stage", "plan_compress",
            "compress_memory", "TIME_RTOL"]
 
 #: relative tolerance on the spread of time steps before spacing counts as non-uniform
@@ -61,6 +63,22 @@ class Scanned:
     selected_run_lengths: np.ndarray | None = None
     uniform: bool = True
     lifted_rows: int = 0
+    #: the archive's time unit (None: it declares none); frequencies are in Hz when it converts
+    time_unit: TimeUnit | None = None
+
+    @property
+    def seconds_per_unit(self) -> float | None:
+        return None if self.time_unit is None else self.time_unit.seconds
+
+    @property
+    def fit_dt(self) -> float:
+        """The step the fit uses: in seconds when the time unit converts, else in the archive's unit."""
+        return self.dt * (self.seconds_per_unit or 1.0)
+
+    @property
+    def fit_time(self) -> np.ndarray:
+        """Column times in seconds when the time unit converts, else in the archive's unit."""
+        return np.asarray(self.time, dtype=np.float64) * (self.seconds_per_unit or 1.0)
 
     @property
     def columns_run_lengths(self) -> np.ndarray:
@@ -87,12 +105,13 @@ class Compressed:
     info: dict[str, object] = field(default_factory=dict)
 
 
-def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
-               recorded_baseline: int | None = None) -> Scanned:
+def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
+               recorded_baseline: int | None = None, with_plan: bool = True) -> Scanned:
     """Open the archive, select snapshots, check times, plan tiles. Reads metadata only.
 
     ``recorded_baseline``: the baseline a killed run of this job planned with (its scan
-    record's ``memory_baseline``); see :func:`plan_compress`.
+    record's ``memory_baseline``); see :func:`plan_compress`. ``with_plan=False`` (no
+    scheduler needed) skips the tile plan: the checks of :func:`check_workflow`.
     """
     section = workflow.archive
     # the workflow names its fields: a one-value-per-snapshot (1-D) dataset is then a field too
@@ -113,7 +132,13 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
         raise ArchiveError(
             f"{reader.path}: archive.snapshots selects {index.size} snapshot(s) of {total}; at least 3 are needed"
         )
+    if section.time is None and section.step is None and info.attrs.get("time_variable") is None:
+        raise ConfigError(
+            f"no snapshot times found in {reader.path}; set archive.time (a dataset of times; datasets present: "
+            f"{', '.join(sorted(info.variables)) or '(none)'}) or archive.step (a fixed step, with archive.time_unit)"
+        )
     all_times = snapshot_times(reader, time=section.time, step=section.step, n_snapshots=total)
+    unit, unit_warnings = archive_time_unit(workflow, reader, info)
     times = np.asarray(all_times, dtype=np.float64)[index]
     selected_runs = selected_run_lengths(archive_run_lengths(reader, section.runs, total), index)
     dt, uniform = _run_time_step(reader.path, times, index, selected_runs,
@@ -126,6 +151,11 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
             column_runs = delayed_run_lengths(selected_runs, lift.delays, lift.spacing)
         except ConfigError as error:
             raise ConfigError(f"lift delays on {reader.path}: {error}") from None
+    if not with_plan or scheduler is None:
+        return Scanned(reader, index[columns], times[columns], dt, 1, 0, plan=None,
+                       run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
+                       selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
+                       time_unit=unit, warnings=tuple(unit_warnings))
     plan = plan_compress(workflow, info, scheduler, recorded_baseline=recorded_baseline)
     block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
     # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
@@ -135,7 +165,77 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
     return Scanned(reader, index[columns], times[columns], dt, snapshot_block, plan.memory_bytes, plan=plan,
                    run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
                    selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
-                   lifted_rows=int(lifted_rows))
+                   lifted_rows=int(lifted_rows), time_unit=unit, warnings=tuple(unit_warnings))
+
+
+def archive_time_unit(workflow: Workflow, reader: Reader, info: ArchiveInfo) -> tuple[TimeUnit | None, list[str]]:
+    """The time unit of the snapshot times, and the warning to give when there is none.
+
+    From the time dataset's CF ``units`` (``"ms"``, ``"milliseconds since ..."``) or
+    ``time_unit`` attribute; ``archive.time_unit`` gives the unit of ``archive.step`` or of
+    a time dataset that declares none or one that does not convert to seconds (a dataset
+    that declares another convertible unit is an error).
+    """
+    section = workflow.archive
+    given = None
+    if section.time_unit is not None:
+        canonical = canonical_time_unit(section.time_unit)
+        assert canonical is not None  # the schema allows only convertible units
+        given = TimeUnit(section.time_unit, canonical, SECONDS_PER_UNIT[canonical])
+    found = None
+    if section.step is None:
+        name = section.time or info.attrs.get("time_variable")
+        variable = info.variables.get(name) if name else None
+        found = time_unit_of(variable.attrs) if variable is not None else None
+        if found is not None and found.seconds is None and given is not None:
+            found = None  # a unit that does not convert ("steps"): archive.time_unit says what it is
+        if found is not None and given is not None and found.canonical != given.canonical:
+            raise ConfigError(
+                f"archive.time_unit is {section.time_unit!r} but the time dataset '{name}' in {reader.path} declares "
+                f"units {found.name!r}; remove archive.time_unit (the archive's unit is used)"
+            )
+    unit = found or given
+    if unit is None:
+        return None, [f"{reader.path} declares no time unit: frequencies are in 1/(time unit), growth rates in "
+                      "1/(time unit); set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s"]
+    if unit.seconds is None:
+        return unit, [f"the time unit {unit.name!r} of {reader.path} does not convert to seconds: frequencies are "
+                      f"in 1/{unit.name.split(' since ')[0].strip()}; set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s"]
+    return unit, []
+
+
+def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]]:
+    """Everything a run checks before reading a tile: the archive opens, the fields, time,
+    time unit, runs, weights, mask and coordinates exist with the right shapes.
+
+    Reads metadata and the small datasets (times, run labels, weights, mask, coordinates),
+    no field values, and needs no scheduler: ``snaplift run --dry-run`` calls it so that a
+    batch job learns a wrong name before it waits in the queue; ``run`` calls it before it
+    looks at an existing result store. Returns the scan and what a run would print.
+    """
+    scanned = scan_stage(workflow, folder, None, with_plan=False)
+    matrix = snapshot_matrix_of(workflow, scanned)
+    metadata = store_metadata(workflow, scanned.reader, scanned.reader.describe(), scanned.time, scanned.time_unit)
+    info = scanned.reader.describe()
+    lines = [f"archive {scanned.reader.path} ({info.format}): fields "
+             + ", ".join(f"{f} {info.fields[f].shape}" for f in workflow.archive.fields)]
+    unit = scanned.time_unit
+    selected = scanned.selected_index if scanned.selected_index is not None else scanned.snapshot_index
+    lines.append(f"time: {selected.size} snapshots selected, step {scanned.dt:.6g} "
+                 f"{unit.name if unit is not None else '(no time unit)'}; frequencies in {metadata.frequency_unit}")
+    if scanned.run_lengths is not None and scanned.run_lengths.size > 1:
+        lines.append(f"runs: {scanned.run_lengths.size} ({', '.join(map(str, scanned.run_lengths.tolist()))} columns)")
+    kept = sum(rows.n_rows for rows in matrix.fields)
+    lines.append(f"snapshot matrix: {kept} rows x {matrix.shape[1]} columns"
+                 + (f" (weights '{workflow.archive.weights}')" if workflow.archive.weights else "")
+                 + (f" (mask '{workflow.archive.mask}')" if workflow.archive.mask else ""))
+    if metadata.coordinates:
+        lines.append("coordinates: " + ", ".join(f"{d} <- {c.attrs.get('archive_variable')} [{c.attrs.get('units')}]"
+                                                 for d, c in metadata.coordinates.items()))
+    else:
+        lines.append("coordinates: none in the archive (index positions; archive.coords names them)")
+    lines.extend(f"warning: {warning}" for warning in scanned.warnings)
+    return scanned, lines
 
 
 def archive_run_lengths(reader: Reader, runs: str | None, total: int) -> np.ndarray:
@@ -182,6 +282,10 @@ def _run_time_step(path: str, times: np.ndarray, index: np.ndarray, run_lengths:
     deviation = np.abs(table[:, 0] - dt)
     worst = int(np.argmax(deviation))
     uniform = bool(deviation[worst] <= TIME_RTOL * abs(dt) + 4 * np.finfo(np.float64).eps * np.max(np.abs(times)))
+    if uniform:
+        # the mean step (the span of each run over its steps) carries less rounding than
+        # any one step, which matters for times stored as large counts (days since an epoch)
+        dt = float(np.mean(table[:, 0]))
     if not uniform and not allow_uneven:
         raise TimeSpacingError(
             f"{path}: snapshot times are not uniformly spaced (median step {dt:.6g}, tolerance {TIME_RTOL:g} "

@@ -1,0 +1,139 @@
+"""The result store's metadata from the archive: field units and names, grid coordinates,
+snapshot times and their unit (:class:`snaplift.results.metadata.StoreMetadata`).
+
+Coordinates of each grid axis come from ``archive.coords`` (``{x: xc, y: yc}``: a key is
+a store dimension name, ``x`` / ``y`` / ``z`` for every field whose axis it names, or a
+field's own ``u_x``), else from the archive (netCDF / zarr dimension coordinates, CF
+``coordinates``; :attr:`snaplift.archive._base.FieldInfo.coordinates`). Only metadata and
+the small 1-D coordinate and time datasets are read.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from snaplift.archive._base import ArchiveInfo
+from snaplift.errors import ConfigError
+from snaplift.results.metadata import Coordinate, StoreMetadata, grid_dimensions, lifted_units
+
+__all__ = ["store_metadata"]
+
+
+def _lifted(workflow: Any) -> list[tuple[str, str, str]]:
+    """(name, archive field, pointwise term) of every field of the snapshot matrix."""
+    lift = workflow.field_lift
+    fields = list(workflow.archive.fields)
+    if lift is None:
+        return [(f, f, "x") for f in fields]
+    return [(f.name, f.source, f.term) for f in lift.lifted(fields)]
+
+
+def _axis_names(grid: tuple[int, ...]) -> tuple[str, ...]:
+    return ("z", "y", "x")[3 - len(grid):] if len(grid) <= 3 else tuple(f"axis{i}" for i in range(len(grid)))
+
+
+def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarray, time_unit: Any) -> StoreMetadata:
+    """Units, names, coordinates and times for the result store of ``workflow``.
+
+    ``time`` is the snapshot time of each column in the archive's values, ``time_unit`` the
+    :class:`~snaplift.archive._cf.TimeUnit` found (None: none).
+
+    Raises
+    ------
+    ConfigError
+        An ``archive.coords`` entry that names a missing dataset, one that is not 1-D of the
+        axis length, or a key that matches no grid dimension.
+    """
+    section = workflow.archive
+    given = dict(section.coords or {})
+    lifted = _lifted(workflow)
+    grids = {name: info.fields[source].grid for name, source, _ in lifted}
+    sources: dict[str, tuple[str | None, ...]] = {}
+    used: set[str] = set()
+    for name, source, _ in lifted:
+        found = list(info.fields[source].coordinates or (None,) * len(grids[name]))
+        for axis, base in enumerate(_axis_names(grids[name])):
+            for key in (f"{name}_{base}", f"{source}_{base}", base):
+                if key in given:
+                    found[axis] = given[key]
+                    used.add(key)
+                    break
+        sources[name] = tuple(found)
+    unused = sorted(set(given) - used)
+    if unused:
+        shown = sorted({d for name in grids for d in (*_axis_names(grids[name]),
+                                                       *(f"{name}_{b}" for b in _axis_names(grids[name])))})
+        raise ConfigError(f"archive.coords key '{unused[0]}' names no grid dimension of the fields "
+                          f"{list(section.fields)}; use one of: {', '.join(shown)}")
+    dims = grid_dimensions(grids, sources)
+    coordinates: dict[str, Coordinate] = {}
+    for name, variables in sources.items():
+        for axis, variable in enumerate(variables):
+            dimension = dims[name][axis]
+            if variable is None or dimension in coordinates:
+                continue
+            coordinates[dimension] = _coordinate(reader, info, variable, grids[name][axis], dimension, name)
+    units = {name: str(info.fields[source].attrs.get("units", "1")) for name, source, _ in lifted}
+    field_units = {name: lifted_units(units[name], term) for name, _, term in lifted}
+    field_names = {}
+    for name, source, term in lifted:
+        base = str(info.fields[source].attrs.get("long_name") or source)
+        field_names[name] = base if name == source else f"{base} ({name})"
+    extra = {}
+    for key, dataset in _weights(section, [n for n, _, _ in lifted], [s for _, s, _ in lifted]).items():
+        variable = info.variables.get(dataset)
+        if variable is not None and variable.attrs.get("units"):
+            extra[key] = str(variable.attrs["units"])
+    return StoreMetadata(field_units=field_units, field_names=field_names, dims=dims, coordinates=coordinates,
+                         time=np.asarray(time), time_attrs=_time_attrs(section, info, time_unit),
+                         time_unit=None if time_unit is None else time_unit.name,
+                         seconds_per_unit=None if time_unit is None else time_unit.seconds, extra_units=extra)
+
+
+def _weights(section: Any, names: list[str], sources: list[str]) -> dict[str, str]:
+    weights = section.weights
+    if weights is None:
+        return {}
+    if isinstance(weights, str):
+        return {f"weights_{n}": weights for n in names}
+    return {f"weights_{n}": weights[s] for n, s in zip(names, sources) if s in weights}
+
+
+def _coordinate(reader: Any, info: ArchiveInfo, variable: str, length: int, dimension: str, field: str) -> Coordinate:
+    if variable not in info.variables:
+        present = ", ".join(sorted(v for v, i in info.variables.items() if len(i.shape) == 1)) or "(none)"
+        raise ConfigError(f"coordinate dataset '{variable}' for dimension '{dimension}' of field '{field}' not found "
+                          f"in {reader.path}; 1-D datasets present: {present}")
+    values = np.asarray(reader.read_variable(variable))
+    if values.shape != (length,) or values.dtype.kind not in "iuf":
+        raise ConfigError(f"coordinate dataset '{variable}' in {reader.path} has shape {values.shape} and dtype "
+                          f"{values.dtype}; dimension '{dimension}' of field '{field}' needs ({length},) numbers")
+    attrs = info.variables[variable].attrs
+    out: dict[str, Any] = {"units": str(attrs.get("units", "1")),
+                           "long_name": str(attrs.get("long_name") or attrs.get("standard_name") or variable),
+                           "archive_variable": variable}
+    if attrs.get("standard_name"):
+        out["standard_name"] = str(attrs["standard_name"])
+    if attrs.get("axis"):
+        out["axis"] = str(attrs["axis"])
+    return Coordinate(values.astype(np.float64) if values.dtype.kind == "f" else values, out)
+
+
+def _time_attrs(section: Any, info: ArchiveInfo, unit: Any) -> dict[str, Any]:
+    """CF attributes of the stored times: the archive's own ``units`` (and calendar)."""
+    out: dict[str, Any] = {"standard_name": "time"}
+    name = None if section.step is not None else (section.time or info.attrs.get("time_variable"))
+    variable = info.variables.get(name) if name else None
+    attrs = variable.attrs if variable is not None else {}
+    units = attrs.get("units")
+    if not units and attrs.get("time_unit") and attrs.get("time_origin"):
+        units = f"{attrs['time_unit']} since {attrs['time_origin']}"  # native datetime64 values
+    if not units:
+        units = unit.name if unit is not None else "1"
+    out["units"] = str(units)
+    out["long_name"] = str(attrs.get("long_name") or ("time (archive.step)" if section.step is not None else "time"))
+    if attrs.get("calendar"):
+        out["calendar"] = str(attrs["calendar"])
+    return out
