@@ -1,0 +1,331 @@
+"""The figures of a report, drawn with matplotlib (Agg) from a store read through xarray.
+
+Our own look: a blue / amber palette that stays apart for the common colour-vision
+deficiencies (blue against orange is the pair that red-green deficiencies keep; every
+distinction also has a second cue, marker shape or line style), a blue-white-burnt-orange
+diverging map for real parts (zero is white) and a white-to-ink-blue sequential map for
+magnitudes. Trusted eigenvalues are filled blue discs, untrusted ones amber triangles.
+"""
+
+from __future__ import annotations
+
+import matplotlib
+
+matplotlib.use("Agg")
+
+from dataclasses import dataclass  # noqa: E402
+
+import numpy as np  # noqa: E402
+from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
+from matplotlib.figure import Figure  # noqa: E402
+
+from snaplift.results.reading import Axis, StoreView, field_axes, label  # noqa: E402
+
+__all__ = ["PALETTE", "Probe", "energy_figure", "eigenvalue_figure", "spectrum_figure", "mode_figure",
+           "error_figure", "probe_figure", "leading_modes"]
+
+PALETTE = {
+    "trusted": "#1c5d99",    # ink blue
+    "untrusted": "#d9822b",  # amber
+    "archive": "#4d4d4d",    # slate
+    "model": "#1c5d99",
+    "projection": "#d9822b",
+    "grid": "#e3e1da",
+    "lines": ("#1c5d99", "#d9822b", "#a24d8f", "#4d4d4d", "#6fb3e0", "#8c6d1f"),
+}
+DIVERGING = LinearSegmentedColormap.from_list("snaplift_diverging", ["#0b2f57", "#1c5d99", "#9cc3e4", "#f7f6f1",
+                                                                     "#f2c48f", "#d9822b", "#8a3b0c"])
+SEQUENTIAL = LinearSegmentedColormap.from_list("snaplift_sequential", ["#f7f6f1", "#bcd7ec", "#6fa3cf",
+                                                                       "#1c5d99", "#0b2740"])
+for _map in (DIVERGING, SEQUENTIAL):
+    _map.set_bad((1.0, 1.0, 1.0, 0.0))  # masked points blank
+
+
+def _figure(width: float, height: float) -> Figure:
+    figure = Figure(figsize=(width, height), dpi=100, layout="constrained")
+    figure.patch.set_facecolor("white")
+    return figure
+
+
+def _style(ax) -> None:
+    ax.grid(True, color=PALETTE["grid"], linewidth=0.8)
+    ax.set_axisbelow(True)
+    for side in ("top", "right"):
+        ax.spines[side].set_visible(False)
+
+
+def energy_figure(view: StoreView) -> Figure | None:
+    """Cumulative energy of the singular values, compress rank and fit rank marked."""
+    if view.basis is None or "singular_value" not in view.basis:
+        return None
+    s = np.asarray(view.basis["singular_value"].values, dtype=np.float64)
+    energy = s**2
+    total = energy.sum()
+    if "column_norm" in view.diagnostics:  # the energy of the prepared data, basis or not
+        total = max(total, float(np.sum(np.asarray(view.diagnostics["column_norm"].values) ** 2)))
+    cumulative = np.cumsum(energy) / total if total > 0 else np.zeros_like(energy)
+    index = np.arange(1, s.size + 1)
+    figure = _figure(10, 3.6)
+    left, right = figure.subplots(1, 2)
+    left.plot(index, cumulative, color=PALETTE["model"], marker="o", markersize=3.5, linewidth=1.6)
+    left.set_ylim(min(0.0, float(cumulative.min())), 1.02)
+    left.axhline(1.0, color=PALETTE["archive"], linewidth=0.8, linestyle=":")
+    left.set_xlabel("number of basis vectors")
+    left.set_ylabel("fraction of the energy captured")
+    left.set_title("energy captured by the basis", loc="left", fontsize=11)
+    right.semilogy(index, np.where(s > 0, s, np.nan), color=PALETTE["model"], marker="o", markersize=3.5,
+                   linewidth=1.2)
+    right.set_xlabel("index")
+    right.set_ylabel("singular value")
+    right.set_title("singular values", loc="left", fontsize=11)
+    fit_rank = _fit_rank(view, s.size)
+    for ax in (left, right):
+        _style(ax)
+        ax.axvline(s.size, color=PALETTE["archive"], linestyle="--", linewidth=1.0)
+        if fit_rank is not None and fit_rank < s.size:
+            ax.axvline(fit_rank, color=PALETTE["untrusted"], linestyle="-.", linewidth=1.4)
+    left.annotate(f"compress rank {s.size}: {cumulative[-1]:.4f}", xy=(s.size, cumulative[-1]),
+                  xytext=(-8, -16), textcoords="offset points", ha="right", fontsize=9)
+    if fit_rank is not None and fit_rank < s.size:
+        left.annotate(f"fit rank {fit_rank}: {cumulative[fit_rank - 1]:.4f}", xy=(fit_rank, cumulative[fit_rank - 1]),
+                      xytext=(8, -28), textcoords="offset points", fontsize=9, color=PALETTE["untrusted"])
+    return figure
+
+
+def _fit_rank(view: StoreView, compress_rank: int) -> int | None:
+    if view.operator is None or "matrix" not in view.operator:
+        return None
+    if str(view.operator.attrs.get("space", "coefficients")) != "coefficients":
+        return None
+    if str(view.operator.attrs.get("method", "dmd")) == "edmd":
+        return None
+    return int(min(view.operator["matrix"].shape[0], compress_rank))
+
+
+def _scatter_trust(ax, x: np.ndarray, y: np.ndarray, trusted: np.ndarray, sizes: np.ndarray | float,
+                   count: bool = True) -> None:
+    sizes = np.broadcast_to(np.asarray(sizes, dtype=np.float64), x.shape)
+    for flag, name, marker in ((True, "trusted", "o"), (False, "untrusted", "^")):
+        chosen = trusted == flag
+        if not chosen.any():
+            continue
+        ax.scatter(x[chosen], y[chosen], s=sizes[chosen], marker=marker, color=PALETTE[name],
+                   edgecolors="#1a1a1a", linewidths=0.6, alpha=0.85, label=f"{name} ({int(chosen.sum())})" if count else name,
+                   zorder=3)
+
+
+def _marker_sizes(amplitude: np.ndarray) -> np.ndarray:
+    amplitude = np.abs(np.asarray(amplitude, dtype=np.float64))
+    top = amplitude.max() if amplitude.size and amplitude.max() > 0 else 1.0
+    return 18.0 + 260.0 * np.sqrt(amplitude / top)
+
+
+def eigenvalue_figure(view: StoreView) -> Figure:
+    """Eigenvalues in the complex plane with the unit circle; size by amplitude."""
+    eigenvalue = np.asarray(view.spectrum["eigenvalue"].values, dtype=np.complex128)
+    trusted = view.trusted
+    figure = _figure(10, 5.0)
+    plane, zoom = figure.subplots(1, 2)
+    angle = np.linspace(0, 2 * np.pi, 400)
+    for ax in (plane, zoom):
+        ax.plot(np.cos(angle), np.sin(angle), color=PALETTE["archive"], linewidth=1.0, linestyle="--")
+        _scatter_trust(ax, eigenvalue.real, eigenvalue.imag, trusted,
+                       _marker_sizes(view.spectrum["amplitude"].values))
+        ax.set_xlabel("real part")
+        ax.set_ylabel("imaginary part")
+        ax.set_aspect("equal", adjustable="box")
+        _style(ax)
+    plane.set_title("eigenvalues (dashed: unit circle)", loc="left", fontsize=11)
+    reach = max(1.05, float(np.max(np.abs(eigenvalue))) * 1.05) if eigenvalue.size else 1.05
+    plane.set_xlim(-reach, reach)
+    plane.set_ylim(-reach, reach)
+    plane.legend(loc="lower left", fontsize=9, title="residual test", title_fontsize=9, framealpha=0.9)
+    # the unit circle near 1, where slow, lightly damped modes sit
+    near = eigenvalue[np.abs(eigenvalue - 1) < 0.5] if eigenvalue.size else eigenvalue
+    spread = max(0.02, float(np.max(np.abs(near - 1))) * 1.2) if near.size else 0.1
+    zoom.set_xlim(1 - spread, 1 + spread * 0.6)
+    zoom.set_ylim(-spread, spread)
+    zoom.set_title("near 1 (slow modes)", loc="left", fontsize=11)
+    figure.text(0.01, 0.005, "marker area grows with the mode amplitude", fontsize=8, color=PALETTE["archive"])
+    return figure
+
+
+def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
+    """Growth rate against frequency, then peak amplitude (field units) against frequency per field."""
+    frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
+    growth = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
+    trusted = view.trusted
+    shown = frequency >= 0  # conjugate partners mirror these
+    figure = _figure(10, 2.4 * (1 + len(fields)) + 0.4)
+    axes = np.atleast_1d(figure.subplots(1 + len(fields), 1, sharex=True))
+    top = axes[0]
+    _scatter_trust(top, frequency[shown], growth[shown], trusted[shown],
+                   _marker_sizes(np.asarray(view.spectrum["amplitude"].values)[shown]), count=False)
+    top.axhline(0.0, color=PALETTE["archive"], linewidth=0.9)
+    top.set_ylabel(label("growth rate", view.growth_unit))
+    top.set_title("growth rate and peak amplitude against frequency (frequency >= 0; conjugates mirror)",
+                  loc="left", fontsize=11)
+    top.legend(loc="best", fontsize=8, framealpha=0.9)
+    _style(top)
+    for ax, name in zip(axes[1:], fields):
+        peak = view.peak_amplitude(name)
+        top_peak = float(np.max(peak[shown])) if shown.any() and np.max(peak[shown]) > 0 else 1.0
+        floor = top_peak * 1e-4  # four decades: the weak modes stay visible beside a steady one
+        peak = np.maximum(peak, floor)
+        for flag, key, marker in ((True, "trusted", "o"), (False, "untrusted", "^")):
+            chosen = shown & (trusted == flag)
+            if chosen.any():
+                ax.vlines(frequency[chosen], floor, peak[chosen], color=PALETTE[key], linewidth=1.4,
+                          linestyle="-" if flag else ":")
+                ax.scatter(frequency[chosen], peak[chosen], marker=marker, color=PALETTE[key], s=34,
+                           edgecolors="#1a1a1a", linewidths=0.5, zorder=3)
+        ax.set_ylabel(label(f"peak {view.field_name(name)}", view.field_units(name)), fontsize=9)
+        ax.set_yscale("log")
+        ax.set_ylim(floor, top_peak * 2)
+        _style(ax)
+    axes[-1].set_xlabel(label("frequency", view.frequency_unit))
+    return figure
+
+
+def leading_modes(view: StoreView, count: int) -> list[int]:
+    """Positions of the ``count`` leading modes (store ranking: trusted first, then amplitude),
+    one of each conjugate pair (the one with frequency >= 0)."""
+    n = view.spectrum.sizes["mode"]
+    ranking = np.asarray(view.spectrum["ranking"].values) if "ranking" in view.spectrum else np.arange(n)
+    frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
+    order = np.argsort(ranking, kind="stable")
+    chosen = [int(k) for k in order if frequency[k] >= 0]
+    return chosen[:count]
+
+
+def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, diverging: bool, units: str,
+           title: str) -> None:
+    finite = values[np.isfinite(values)]
+    if diverging:
+        reach = float(np.max(np.abs(finite))) if finite.size else 1.0
+        limits = {"vmin": -reach or -1.0, "vmax": reach or 1.0, "cmap": DIVERGING}
+    else:
+        limits = {"vmin": 0.0, "vmax": float(finite.max()) if finite.size and finite.max() > 0 else 1.0,
+                  "cmap": SEQUENTIAL}
+    ax.set_title(title, loc="left", fontsize=9)
+    if len(axes) == 1:
+        ax.plot(axes[0].values, values, color=PALETTE["model"] if diverging else PALETTE["untrusted"],
+                marker="o" if values.size < 40 else None, markersize=3, linewidth=1.4)
+        ax.set_xlabel(axes[0].title, fontsize=8)
+        ax.set_ylabel(label("value", units), fontsize=8)
+        _style(ax)
+        return
+    rows, columns = axes  # values is (rows, columns)
+    mesh = ax.pcolormesh(columns.values, rows.values, np.ma.masked_invalid(values), shading="nearest",
+                         rasterized=True, **limits)
+    same_units = rows.units == columns.units
+    ax.set_aspect("equal" if same_units else "auto")
+    ax.set_xlabel(columns.title, fontsize=8)
+    ax.set_ylabel(rows.title, fontsize=8)
+    ax.tick_params(labelsize=7)
+    bar = figure.colorbar(mesh, ax=ax, shrink=0.9, pad=0.01)
+    bar.ax.tick_params(labelsize=7)
+    bar.set_label(units or "field units", fontsize=8)
+
+
+def _planes(values: np.ndarray, axes: list[Axis]) -> list[tuple[str, np.ndarray, list[Axis]]]:
+    """2-D slices to draw: the grid itself (2-D), or the three mid-planes (3-D)."""
+    if len(axes) <= 2:
+        return [("", values, axes)]
+    a, b, c = axes
+    i, j, k = (s // 2 for s in values.shape)
+    return [(f"{a.dim} = {a.values[i]:.4g}", values[i], [b, c]),
+            (f"{b.dim} = {b.values[j]:.4g}", values[:, j, :], [a, c]),
+            (f"{c.dim} = {c.values[k]:.4g}", values[:, :, k], [a, b])]
+
+
+def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
+    """Real part and magnitude of ``amplitude * mode`` (field units) of the given modes."""
+    axes = field_axes(view.modes, field)
+    if len(axes) > 3:
+        raise NotImplementedError(f"modes of field '{field}' have {len(axes)} grid dimensions; the report draws 1-3")
+    units = view.field_units(field)
+    amplitude = np.asarray(view.spectrum["amplitude"].values, dtype=np.float64)
+    frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
+    growth = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
+    trusted = view.trusted
+    planes = len(_planes(np.zeros((2,) * len(axes)), axes))
+    height = 2.6
+    if len(axes) >= 2:
+        first = axes[-2:] if len(axes) == 2 else axes[1:]
+        ratio = np.ptp(first[0].values) / max(np.ptp(first[1].values), 1e-300)
+        height = float(np.clip(10.0 / (2 * planes) * ratio + 0.9, 1.6, 4.2))
+    figure = _figure(12 if planes == 1 else 15, height * len(modes) + 0.5)
+    grid = np.atleast_2d(figure.subplots(len(modes), 2 * planes, squeeze=False))
+    data = view.modes[field]
+    for row, k in enumerate(modes):
+        values = np.asarray(data.isel(mode=k).values) * amplitude[k]
+        state = "trusted" if trusted[k] else "untrusted"
+        head = (f"mode {k}  |  frequency {frequency[k]:.4g} [{view.frequency_unit}]  |  growth {growth[k]:.3g} "
+                f"[{view.growth_unit}]  |  {state}")
+        for part, (part_name, transform, diverging) in enumerate((("real part", np.real, True),
+                                                                   ("magnitude", np.abs, False))):
+            for p, (where, plane, plane_axes) in enumerate(_planes(transform(values), axes)):
+                ax = grid[row, part * planes + p]
+                title = f"{head}\n{part_name}" + (f", {where}" if where else "") if p == 0 and part == 0 \
+                    else part_name + (f", {where}" if where else "")
+                _panel(ax, figure, plane, plane_axes, diverging=diverging, units=units, title=title)
+    figure.suptitle(f"leading modes of {view.field_name(field)} (amplitude x mode, {units or 'field units'}; "
+                    "blank: masked points)", x=0.01, ha="left", fontsize=11)
+    return figure
+
+
+def error_figure(view: StoreView) -> Figure:
+    """Projection error (what the basis misses) and reconstruction error (the model) over time."""
+    time = view.time
+    figure = _figure(10, 3.4)
+    ax = figure.subplots()
+    for name, colour, style, text in (("projection_error", PALETTE["projection"], "--", "projection on the basis"),
+                                      ("reconstruction_error", PALETTE["model"], "-", "model reconstruction")):
+        if name in view.diagnostics:
+            values = np.asarray(view.diagnostics[name].values, dtype=np.float64)
+            kind = view.diagnostics[name].attrs.get("kind")
+            ax.semilogy(time, np.where(values > 0, values, np.nan), color=colour, linestyle=style, linewidth=1.6,
+                        label=text + (" (estimate)" if kind == "estimate" else ""))
+    ax.set_xlabel(label("time", view.time_unit))
+    ax.set_ylabel("relative error (physical norm)")
+    ax.set_title("error per snapshot", loc="left", fontsize=11)
+    ax.legend(fontsize=9, framealpha=0.9)
+    _style(ax)
+    return figure
+
+
+@dataclass(frozen=True)
+class Probe:
+    """One probe point: the model, the projection on the basis and (if read) the archive there."""
+
+    field: str
+    where: str
+    time: np.ndarray
+    model: np.ndarray
+    projection_time: np.ndarray
+    projection: np.ndarray
+    archive_time: np.ndarray | None
+    archive: np.ndarray | None
+    units: str
+
+
+def probe_figure(probes: list[Probe], time_unit: str, note: str) -> Figure:
+    """Forecast against the archive at the probe points (points of largest variance)."""
+    figure = _figure(10, 2.3 * len(probes) + 0.6)
+    axes = np.atleast_1d(figure.subplots(len(probes), 1, sharex=True, squeeze=False)[:, 0])
+    for ax, probe in zip(axes, probes):
+        if probe.archive is not None and probe.archive_time is not None:
+            ax.plot(probe.archive_time, probe.archive, linestyle="none", marker="o", markersize=3.2,
+                    color=PALETTE["archive"], label="archive")
+        ax.plot(probe.projection_time, probe.projection, color=PALETTE["projection"], linestyle="--",
+                linewidth=1.2, label="projection on the basis")
+        ax.plot(probe.time, probe.model, color=PALETTE["model"], linewidth=1.7, label="forecast from the first snapshot")
+        ax.set_ylabel(label(probe.field, probe.units), fontsize=9)
+        ax.set_title(f"{probe.field} at {probe.where}", loc="left", fontsize=9)
+        _style(ax)
+    axes[0].legend(fontsize=8, loc="upper right", framealpha=0.9, ncols=3)
+    axes[-1].set_xlabel(label("time", time_unit))
+    figure.suptitle("forecast at the points of largest variance" + (f" ({note})" if note else ""), x=0.01,
+                    ha="left", fontsize=11)
+    return figure
