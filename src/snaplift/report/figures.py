@@ -19,7 +19,7 @@ import numpy as np  # noqa: E402
 from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
-from snaplift.results.reading import Axis, StoreView, field_axes, label  # noqa: E402
+from snaplift.results.reading import Axis, StoreView, field_axes, label, leading_modes  # noqa: E402
 
 __all__ = ["PALETTE", "Probe", "energy_figure", "eigenvalue_figure", "spectrum_figure", "mode_figure",
            "error_figure", "probe_figure", "leading_modes"]
@@ -185,17 +185,6 @@ def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
         _style(ax)
     axes[-1].set_xlabel(label("frequency", view.frequency_unit))
     return figure
-
-
-def leading_modes(view: StoreView, count: int) -> list[int]:
-    """Positions of the ``count`` leading modes (store ranking: trusted first, then amplitude),
-    one of each conjugate pair (the one with frequency >= 0)."""
-    n = view.spectrum.sizes["mode"]
-    ranking = np.asarray(view.spectrum["ranking"].values) if "ranking" in view.spectrum else np.arange(n)
-    frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
-    order = np.argsort(ranking, kind="stable")
-    chosen = [int(k) for k in order if frequency[k] >= 0]
-    return chosen[:count]
 
 
 def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, diverging: bool, units: str,

@@ -15,6 +15,7 @@ from __future__ import annotations
 import os
 import shutil
 import uuid
+import warnings
 from pathlib import Path
 
 import numpy as np
@@ -149,7 +150,10 @@ def write_forecast(dataset: xr.Dataset, out: str | Path) -> Path:
     out.parent.mkdir(parents=True, exist_ok=True)
     staging = out.with_name(f"{out.name}.staging-{uuid.uuid4().hex[:8]}")
     try:
-        dataset.to_zarr(str(staging), mode="w", zarr_format=3, consolidated=True)
+        with warnings.catch_warnings():
+            # consolidated metadata is not in the v3 spec yet; xarray reads it (as for the result store)
+            warnings.filterwarnings("ignore", message="Consolidated metadata", category=UserWarning)
+            dataset.to_zarr(str(staging), mode="w", zarr_format=3, consolidated=True)
         if out.exists():
             shutil.rmtree(out)
         os.replace(staging, out)

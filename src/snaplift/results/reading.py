@@ -26,7 +26,7 @@ import zarr
 from snaplift.errors import ResultStoreError
 from snaplift.results.store import open_result
 
-__all__ = ["Axis", "StoreView", "field_axes", "label", "open_group", "open_store", "units_of"]
+__all__ = ["Axis", "StoreView", "field_axes", "label", "leading_modes", "open_group", "open_store", "units_of"]
 
 
 def open_group(path: str | Path, group: str) -> xr.Dataset:
@@ -185,3 +185,14 @@ def open_store(path: str | Path) -> StoreView:
     optional = {g: open_group(path, g) if g in root else None for g in ("basis", "prepare", "operator")}
     return StoreView(Path(path), dict(root.attrs), open_group(path, "spectrum"), open_group(path, "modes"),
                      open_group(path, "diagnostics"), **optional)
+
+
+def leading_modes(view: StoreView, count: int) -> list[int]:
+    """Positions of the ``count`` leading modes (store ranking: trusted first, then amplitude),
+    one of each conjugate pair (the one with frequency >= 0)."""
+    n = view.spectrum.sizes["mode"]
+    ranking = np.asarray(view.spectrum["ranking"].values) if "ranking" in view.spectrum else np.arange(n)
+    frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
+    order = np.argsort(ranking, kind="stable")
+    chosen = [int(k) for k in order if frequency[k] >= 0]
+    return chosen[:count]

@@ -39,6 +39,8 @@ import numpy as np
 
 from snaplift import __version__
 from snaplift.cluster import Scheduler, TaskProgress, open_scheduler
+from snaplift.errors import SnapliftError
+from snaplift.report.page import render_report
 from snaplift.results import stages as stored
 from snaplift.results.staging import StagedStore, check_free_space
 from snaplift.workflow import stages as stage_functions
@@ -81,6 +83,7 @@ class RunSummary:
     warnings: tuple[str, ...]
     stages: dict[str, dict[str, Any]] = field(default_factory=dict)
     archive_state: str = "new"
+    report: Path | None = None
 
 
 def _versions() -> dict[str, str]:
@@ -319,8 +322,24 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
         "caution": CAUTION,
         "report": report.get("summary", {}),
     })
+    page = _write_report(path, say)
     return RunSummary(path, result_passes, bytes_read, n_modes, tuple(warnings),
-                      {name: _strip(record) for name, record in clean.items()}, classification.state)
+                      {name: _strip(record) for name, record in clean.items()}, classification.state, page)
+
+
+def _write_report(path: Path, say: Progress) -> Path | None:
+    """The report stage's page (``RESULT.report/``), drawn from the committed store.
+
+    A report that cannot be drawn does not undo a complete store: the run says why and
+    ``snaplift report RESULT`` can be run again.
+    """
+    try:
+        summary = render_report(path)
+    except (SnapliftError, NotImplementedError, OSError) as error:
+        say(f"warning: the report was not written ({error}); run 'snaplift report {path}'")
+        return None
+    say(f"report: {summary.index} ({summary.seconds:.1f} s)")
+    return summary.index
 
 
 def _kept_or_reused(store: StagedStore, stage: str, fingerprint: str) -> dict[str, Any] | None:
