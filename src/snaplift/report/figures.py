@@ -33,12 +33,13 @@ PALETTE = {
     "grid": "#e3e1da",
     "lines": ("#1c5d99", "#d9822b", "#a24d8f", "#4d4d4d", "#6fb3e0", "#8c6d1f"),
 }
-DIVERGING = LinearSegmentedColormap.from_list("snaplift_diverging", ["#0b2f57", "#1c5d99", "#9cc3e4", "#f7f6f1",
+_DIVERGING = LinearSegmentedColormap.from_list("snaplift_diverging", ["#0b2f57", "#1c5d99", "#9cc3e4", "#f7f6f1",
                                                                      "#f2c48f", "#d9822b", "#8a3b0c"])
-SEQUENTIAL = LinearSegmentedColormap.from_list("snaplift_sequential", ["#f7f6f1", "#bcd7ec", "#6fa3cf",
+_SEQUENTIAL = LinearSegmentedColormap.from_list("snaplift_sequential", ["#f7f6f1", "#bcd7ec", "#6fa3cf",
                                                                        "#1c5d99", "#0b2740"])
-for _map in (DIVERGING, SEQUENTIAL):
-    _map.set_bad((1.0, 1.0, 1.0, 0.0))  # masked points blank
+# masked points blank
+DIVERGING = _DIVERGING.with_extremes(bad=(1.0, 1.0, 1.0, 0.0))
+SEQUENTIAL = _SEQUENTIAL.with_extremes(bad=(1.0, 1.0, 1.0, 0.0))
 
 
 def _figure(width: float, height: float) -> Figure:
