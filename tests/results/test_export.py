@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import subprocess
+import sys
 import xml.etree.ElementTree as ET
 from pathlib import Path
 
@@ -119,3 +121,9 @@ def test_export_command_and_foreign_files(wave_stores: dict[str, Path], tmp_path
     assert not (tmp_path / "b.xdmf").exists()
     bad = runner.invoke(app, ["export", str(wave_stores["rank4"]), "--format", "vtk"])
     assert bad.exit_code == 2 and "use xdmf or netcdf" in bad.output
+    # once as a real process: the console entry point, one line on stderr, exit status 2
+    process = subprocess.run([sys.executable, "-m", "snaplift.cli", "export", str(wave_stores["rank4"]),
+                              "--format", "xdmf", "--out", str(tmp_path / "b.xdmf")],
+                             capture_output=True, text=True, timeout=120, check=False)
+    assert process.returncode == 2 and process.stderr.count("\n") == 1
+    assert "was not written by snaplift export" in process.stderr

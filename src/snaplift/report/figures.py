@@ -203,6 +203,9 @@ def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, divergin
                 marker="o" if values.size < 40 else None, markersize=3, linewidth=1.4)
         ax.set_xlabel(axes[0].title, fontsize=8)
         ax.set_ylabel(label("value", units), fontsize=8)
+        ax.ticklabel_format(axis="y", useOffset=False)
+        if not diverging:  # a magnitude: from zero, so a flat one reads as flat
+            ax.set_ylim(0.0, limits["vmax"] * 1.1)
         _style(ax)
         return
     rows, columns = axes  # values is (rows, columns)
@@ -230,7 +233,11 @@ def _planes(values: np.ndarray, axes: list[Axis]) -> list[tuple[str, np.ndarray,
 
 
 def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
-    """Real part and magnitude of ``amplitude * mode`` (field units) of the given modes."""
+    """Real part and magnitude of ``amplitude * mode`` (field units) of the given modes.
+
+    One band per mode: 1-D and 2-D fields get the real part beside the magnitude; 3-D
+    fields the three mid-planes in a row, real parts above magnitudes.
+    """
     axes = field_axes(view.modes, field)
     if len(axes) > 3:
         raise NotImplementedError(f"modes of field '{field}' have {len(axes)} grid dimensions; the report draws 1-3")
@@ -239,27 +246,29 @@ def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
     frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
     growth = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
     trusted = view.trusted
-    planes = len(_planes(np.zeros((2,) * len(axes)), axes))
+    three = len(axes) == 3
     height = 2.6
-    if len(axes) >= 2:
-        first = axes[-2:] if len(axes) == 2 else axes[1:]
-        ratio = np.ptp(first[0].values) / max(np.ptp(first[1].values), 1e-300)
-        height = float(np.clip(10.0 / (2 * planes) * ratio + 0.9, 1.6, 4.2))
-    figure = _figure(12 if planes == 1 else 15, height * len(modes) + 0.5)
-    grid = np.atleast_2d(figure.subplots(len(modes), 2 * planes, squeeze=False))
+    if len(axes) == 2:
+        ratio = np.ptp(axes[0].values) / max(np.ptp(axes[1].values), 1e-300)
+        height = float(np.clip(5.0 * ratio + 1.0, 1.8, 4.2))
+    elif three:
+        height = 4.2
+    figure = _figure(15 if three else 12, height * len(modes) + 0.5)
+    bands = np.atleast_1d(figure.subfigures(len(modes), 1))
     data = view.modes[field]
-    for row, k in enumerate(modes):
+    for band, k in zip(bands, modes):
         values = np.asarray(data.isel(mode=k).values) * amplitude[k]
         state = "trusted" if trusted[k] else "untrusted"
-        head = (f"mode {k}  |  frequency {frequency[k]:.4g} [{view.frequency_unit}]  |  growth {growth[k]:.3g} "
-                f"[{view.growth_unit}]  |  {state}")
+        band.suptitle(f"mode {k}  |  frequency {frequency[k]:.4g} [{view.frequency_unit}]  |  growth "
+                      f"{growth[k]:.3g} [{view.growth_unit}]  |  {state}", x=0.01, ha="left", fontsize=10,
+                      color=PALETTE[state])
+        grid = band.subplots(2, 3, squeeze=False) if three else band.subplots(1, 2, squeeze=False)
         for part, (part_name, transform, diverging) in enumerate((("real part", np.real, True),
                                                                    ("magnitude", np.abs, False))):
             for p, (where, plane, plane_axes) in enumerate(_planes(transform(values), axes)):
-                ax = grid[row, part * planes + p]
-                title = f"{head}\n{part_name}" + (f", {where}" if where else "") if p == 0 and part == 0 \
-                    else part_name + (f", {where}" if where else "")
-                _panel(ax, figure, plane, plane_axes, diverging=diverging, units=units, title=title)
+                ax = grid[part, p] if three else grid[0, part]
+                _panel(ax, band, plane, plane_axes, diverging=diverging, units=units,
+                       title=part_name + (f", {where}" if where else ""))
     figure.suptitle(f"leading modes of {view.field_name(field)} (amplitude x mode, {units or 'field units'}; "
                     "blank: masked points)", x=0.01, ha="left", fontsize=11)
     return figure

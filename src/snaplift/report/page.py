@@ -183,6 +183,8 @@ th {{ background: #eef3f8; }}
 td.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
 pre {{ background: white; border: 1px solid #e3e1da; padding: 0.7em; overflow-x: auto; font-size: 0.85em; }}
 .warn {{ color: #8a3b0c; }}
+td.trusted {{ color: {PALETTE['trusted']}; font-weight: bold; }}
+td.untrusted {{ color: #9a5410; }}
 footer {{ margin-top: 2em; font-size: 0.85em; color: #4d4d4d; }}
 """
 
@@ -214,7 +216,8 @@ def _spectrum_rows(view: StoreView, limit: int = 16) -> str:
             f"<tr><td class='num'>{k}</td><td class='num'>{abs(eig):.6f}</td>"
             f"<td class='num'>{float(s['frequency'].values[k]):.5g}</td><td class='num'>{float(s['growth'].values[k]):.4g}</td>"
             f"<td class='num'>{float(s['amplitude'].values[k]):.4g}</td><td class='num'>{residual[k]:.2g}</td>"
-            f"<td>{'&#9679; trusted' if trusted else '&#9650; untrusted'}</td></tr>")
+            f"<td class='{'trusted' if trusted else 'untrusted'}'>"
+            f"{'&#9679; trusted' if trusted else '&#9650; untrusted'}</td></tr>")
     head = (f"<tr><th>mode</th><th>|eigenvalue|</th><th>frequency [{html.escape(view.frequency_unit)}]</th>"
             f"<th>growth [{html.escape(view.growth_unit)}]</th><th>amplitude</th><th>residual</th><th>trust</th></tr>")
     return f"<table>{head}{''.join(rows)}</table>"
