@@ -215,9 +215,9 @@ def export_netcdf(store: str | Path, out: str | Path | None = None) -> Path:
     variables: dict[str, xr.DataArray] = {}
     coords: dict[str, xr.Variable] = {}
     for group, dataset in (("modes", view.modes), ("spectrum", view.spectrum), ("diagnostics", view.diagnostics)):
-        for name in dataset.data_vars:
-            target = name if group != "modes" else name
-            for key, value in _split(target, dataset[name]).items():
+        names = view.fields if group == "modes" else list(dataset.data_vars)
+        for name in names:
+            for key, value in _split(name, dataset[name]).items():
                 if key in variables:
                     key = f"{group}_{key}"
                 variables[key] = value
@@ -228,6 +228,8 @@ def export_netcdf(store: str | Path, out: str | Path | None = None) -> Path:
         for name in view.prepare.data_vars:
             if name.startswith(("mean_", "fixed_point_")):
                 variables.update(_split(name, view.prepare[name]))
+    # a per-mode coordinate of modes/ (frequency) is the spectrum's variable of the same name
+    coords = {name: value for name, value in coords.items() if name not in variables}
     coords.setdefault("mode", xr.Variable(("mode",), np.arange(view.spectrum.sizes["mode"]),
                                           {"long_name": "mode (sorted by amplitude, conjugate pairs adjacent)"}))
     dataset = xr.Dataset(variables, coords=coords, attrs={

@@ -77,12 +77,12 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
     amplitude = _amplitudes(root, column, eigenvalue, store)
     powers = np.power.outer(eigenvalue, np.arange(int(n_steps) + 1))  # (mode, step)
     weights = amplitude[:, None] * powers
-    names = sorted(root["modes"].array_keys()) if fields is None else list(fields)
+    names = _mode_fields(root) if fields is None else list(fields)
     out: dict[str, np.ndarray] = {"time": time[column] + dt * np.arange(int(n_steps) + 1)}
     for name in names:
         if name not in root["modes"]:
             raise ResultStoreError(f"result store {store} has no modes of field '{name}'; "
-                                   f"fields: {', '.join(sorted(root['modes'].array_keys()))}")
+                                   f"fields: {', '.join(_mode_fields(root))}")
         modes = np.asarray(root[f"modes/{name}"][...])  # (mode, *grid)
         offset = _offset(root, name)
         if points is not None and name in points:
@@ -93,6 +93,12 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
         state_space = "operator" in root and root["operator"].attrs.get("space") == "state"
         out[name] = values if state_space else values + offset
     return out
+
+
+def _mode_fields(root) -> list[str]:
+    """The ``(mode, *grid)`` arrays of ``modes/`` (not the grid coordinates or per-mode values beside them)."""
+    return sorted(name for name, array in root["modes"].arrays()
+                  if array.ndim >= 2 and tuple(array.metadata.dimension_names or ("mode",))[0] == "mode")
 
 
 def _amplitudes(root, column: int, eigenvalue: np.ndarray, store) -> np.ndarray:

@@ -78,7 +78,7 @@ def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare:
     ('step', 'y', 'x')
     """
     view = open_store(store)
-    values = forecast_fields(store, snapshot, n_steps)
+    values = forecast_fields(store, snapshot, n_steps, fields=view.fields)
     time = values.pop("time")
     column = int(snapshot) % view.time.size
     variables: dict[str, xr.DataArray] = {}

@@ -123,7 +123,9 @@ class StoreView:
 
     @property
     def fields(self) -> list[str]:
-        return [name for name in self.modes.data_vars if self.modes[name].dims[:1] == ("mode",)]
+        # (mode, *grid) arrays; a per-mode array such as a frequency stored beside them is not a field
+        return [name for name in self.modes.data_vars
+                if self.modes[name].dims[:1] == ("mode",) and self.modes[name].ndim >= 2]
 
     @property
     def dt(self) -> float:
