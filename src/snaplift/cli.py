@@ -259,7 +259,7 @@ def report(
         raise ConfigError(f"--modes must be >= 1; got {modes}")
     summary = render_report(result, out, leading=modes)
     typer.echo(f"report: {summary.index}  ({len(summary.figures)} figures, {summary.seconds:.1f} s, "
-               f"{summary.archive_bytes_read / 1e6:.1f} MB read from the archive)")
+               f"{summary.archive_values_read} values read from the archive at the probe points)")
 
 
 @app.command()

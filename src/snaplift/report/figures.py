@@ -209,8 +209,16 @@ def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, divergin
         _style(ax)
         return
     rows, columns = axes  # values is (rows, columns)
-    mesh = ax.pcolormesh(columns.values, rows.values, np.ma.masked_invalid(values), shading="nearest",
-                         rasterized=True, **limits)
+    if _uniform(rows.values) and _uniform(columns.values):  # an image: much faster to draw
+        half_x = 0.5 * (columns.values[1] - columns.values[0]) if columns.values.size > 1 else 0.5
+        half_y = 0.5 * (rows.values[1] - rows.values[0]) if rows.values.size > 1 else 0.5
+        extent = (columns.values[0] - half_x, columns.values[-1] + half_x,
+                  rows.values[0] - half_y, rows.values[-1] + half_y)
+        mesh = ax.imshow(np.ma.masked_invalid(values), origin="lower", extent=extent, interpolation="nearest",
+                         aspect="auto", **limits)
+    else:
+        mesh = ax.pcolormesh(columns.values, rows.values, np.ma.masked_invalid(values), shading="nearest",
+                             rasterized=True, **limits)
     same_units = rows.units == columns.units
     ax.set_aspect("equal" if same_units else "auto")
     ax.set_xlabel(columns.title, fontsize=8)
@@ -219,6 +227,13 @@ def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, divergin
     bar = figure.colorbar(mesh, ax=ax, shrink=0.9, pad=0.01)
     bar.ax.tick_params(labelsize=7)
     bar.set_label(units or "field units", fontsize=8)
+
+
+def _uniform(values: np.ndarray) -> bool:
+    if values.size < 3:
+        return True
+    steps = np.diff(values)
+    return bool(np.all(np.abs(steps - steps[0]) <= 1e-9 * max(abs(steps[0]), 1e-300)))
 
 
 def _planes(values: np.ndarray, axes: list[Axis]) -> list[tuple[str, np.ndarray, list[Axis]]]:

@@ -56,7 +56,7 @@ class ReportSummary:
     index: Path
     figures: tuple[str, ...]
     seconds: float
-    archive_bytes_read: int
+    archive_values_read: int
 
 
 def report_folder(store: str | Path) -> Path:
@@ -122,8 +122,7 @@ def _probes(view: StoreView, fields: list[str]) -> tuple[list[Probe], str, int]:
             for position, value in archive_snapshots(source, field, snapshots[steps], np.array([points[field]])):
                 values[position] = float(np.real(value[0]))
             archive_values[field] = (time[steps], values)
-            n_points = int(np.prod(view.modes[field].shape[1:]))
-            read += steps.size * n_points * 8
+            read += steps.size
     except ArchiveError as error:
         note = f"{error}; compared with the projection on the basis only"
     probes = []
@@ -249,7 +248,7 @@ def _page(view: StoreView, figures: list[tuple[str, str, bytes]], seconds: float
                  if warnings else "<p>none</p>")
     parts.append(f"<h2>Workflow</h2><pre>{html.escape(str(view.attrs.get('workflow', '')))}</pre>")
     parts.append(f"<footer>Written by snaplift {html.escape(str((view.attrs.get('versions') or {}).get('snaplift', '')))}"
-                 f" in {seconds:.1f} s ({read / 1e6:.1f} MB read from the archive for the probe points). "
+                 f" in {seconds:.1f} s ({read} values read from the archive at the probe points). "
                  f"<span id='image-check'>images not checked (scripts off)</span></footer>")
     parts.append(CHECK_SCRIPT + "</body></html>")
     return "\n".join(parts)

@@ -78,8 +78,11 @@ def archive_snapshots(source: SourceArchive, field: str, snapshots: np.ndarray,
         while stop + 1 < snapshots.size and snapshots[stop + 1] - snapshots[start] < block:
             stop += 1
         first, last = int(snapshots[start]), int(snapshots[stop])
-        values = source.reader.read_tile(field, slice(None), slice(first, last + 1))  # (points, snapshots)
+        if points is None:
+            values = source.reader.read_tile(field, slice(None), slice(first, last + 1))  # (points, snapshots)
+        else:  # only the span of the requested points (a probe reads little more than its chunk)
+            low, high = int(np.min(points)), int(np.max(points)) + 1
+            values = source.reader.read_tile(field, slice(low, high), slice(first, last + 1))[np.asarray(points) - low]
         for position in range(start, stop + 1):
-            column = values[:, int(snapshots[position]) - first]
-            yield position, column if points is None else column[points]
+            yield position, values[:, int(snapshots[position]) - first]
         start = stop + 1
