@@ -1,4 +1,4 @@
-"""An analytic archive of growing and decaying travelling waves, and stores fitted to it.
+"""Shared fixtures: the run's report switched off for speed, and an analytic archive of growing and decaying travelling waves, and stores fitted to it.
 
 ``u(t, y, x) = sum_k A_k exp(g_k t) cos(kappa_k x - omega_k t + phase_k)`` on a periodic
 grid (constant in y), with the same waves on a 1-D field ``p(t, x)`` (other grid: a
@@ -63,6 +63,17 @@ def run_wave_workflow(folder: Path, name: str, fit_rank: int) -> Path:
                 "output": {"path": f"{name}.zarr"}, "cluster": "threads"}
     (folder / f"{name}.yaml").write_text(yaml.safe_dump(workflow))
     return run_workflow(folder / f"{name}.yaml").path
+
+
+@pytest.fixture(autouse=True)
+def _no_run_report(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPatch) -> None:
+    """Workflow runs in tests skip drawing RESULT.report/ (a few seconds of matplotlib each);
+    the report stage is tested where it is the subject: tests/report and the wave stores
+    (session-scoped, built before this fixture patches anything). Runs in subprocesses draw it."""
+    if request.node.get_closest_marker("run_report") is None and "tests/report" not in str(request.node.path):
+        from snaplift.workflow import runner
+
+        monkeypatch.setattr(runner, "_write_report", lambda path, say: None)
 
 
 @pytest.fixture(scope="session")

@@ -10,12 +10,14 @@ from pathlib import Path
 import matplotlib.image
 import numpy as np
 import pytest
+import yaml
 import zarr
 from typer.testing import CliRunner
 
 from snaplift.cli import app
 from snaplift.errors import ResultStoreError
 from snaplift.report.page import MARKER, render_report, report_folder
+from snaplift.workflow.runner import run_workflow
 
 runner = CliRunner()
 FIGURES = {"energy", "eigenvalues", "spectrum", "modes_u", "modes_p", "modes_w", "errors", "forecast"}
@@ -26,6 +28,22 @@ def test_run_leaves_a_report_next_to_the_store(wave_stores: dict[str, Path]) -> 
     folder = report_folder(wave_stores["rank6"])
     assert folder == wave_stores["rank6"].with_name("rank6.zarr.report")
     assert (folder / "index.html").is_file() and (folder / MARKER).is_file()
+
+
+def test_run_report_switch(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    # output.report: false leaves the store alone; the default draws RESULT.report/ after the commit
+    shutil.copy(wave_stores["archive"], tmp_path / "waves.h5")
+    for name, switch in (("off", False), ("on", True)):
+        workflow = {"archive": {"path": "waves.h5", "fields": ["p"], "time": "t", "snapshots": {"stop": 30}},
+                    "compress": {"method": "tsqr", "rank": 4}, "output": {"path": f"{name}.zarr", "report": switch},
+                    "cluster": "threads"}
+        (tmp_path / f"{name}.yaml").write_text(yaml.safe_dump(workflow))
+        summary = run_workflow(tmp_path / f"{name}.yaml")
+        assert summary.path.is_dir()
+        assert (summary.report is not None) == switch
+        assert (tmp_path / f"{name}.zarr.report" / "index.html").is_file() == switch
+    out = runner.invoke(app, ["run", str(tmp_path / "on.yaml"), "--overwrite"])
+    assert out.exit_code == 0 and "report:" in out.output and "index.html" in out.output
 
 
 def test_page_is_self_contained_with_every_figure(wave_stores: dict[str, Path], tmp_path: Path) -> None:

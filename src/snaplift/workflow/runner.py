@@ -322,7 +322,7 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
         "caution": CAUTION,
         "report": report.get("summary", {}),
     })
-    page = _write_report(path, say)
+    page = _write_report(path, say) if workflow.output.report else None
     return RunSummary(path, result_passes, bytes_read, n_modes, tuple(warnings),
                       {name: _strip(record) for name, record in clean.items()}, classification.state, page)
 
@@ -337,6 +337,10 @@ def _write_report(path: Path, say: Progress) -> Path | None:
         summary = render_report(path)
     except (SnapliftError, NotImplementedError, OSError) as error:
         say(f"warning: the report was not written ({error}); run 'snaplift report {path}'")
+        return None
+    except Exception as error:  # a drawing failure must not turn a complete run into a traceback
+        say(f"warning: the report was not written ({type(error).__name__}: {error}); "
+            f"run 'snaplift report {path}'")
         return None
     say(f"report: {summary.index} ({summary.seconds:.1f} s)")
     return summary.index
