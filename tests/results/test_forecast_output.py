@@ -80,6 +80,9 @@ def test_forecast_command(wave_stores: dict[str, Path], tmp_path: Path) -> None:
     assert float(back["error_u"].max()) < 1e-8
     bad = runner.invoke(app, ["forecast", str(wave_stores["rank6"]), "--from", "60", "--steps", "3"])
     assert bad.exit_code == 2 and "snapshot must be a column index in -60..59" in bad.output
+    # a forecast that cannot fit in memory is refused before any of it is computed
+    huge = runner.invoke(app, ["forecast", str(wave_stores["rank6"]), "--steps", str(10**12)])
+    assert huge.exit_code == 2 and "forecast fewer steps at a time" in huge.output
 
 
 def test_compare_needs_the_archive(wave_stores: dict[str, Path], tmp_path: Path) -> None:

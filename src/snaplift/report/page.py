@@ -145,6 +145,12 @@ def _group_names(view: StoreView) -> list[str]:
     return list(open_result(view.path).group_keys())
 
 
+def _result_bytes(stages: dict[str, Any]) -> int:
+    record = stages.get("compress") or {}
+    key = "bytes_read" if record.get("status") in ("computed", "appended") else "bytes_read_before"
+    return int(record.get(key, 0) or 0)
+
+
 def _provenance(view: StoreView) -> list[tuple[str, str]]:
     a = view.attrs
     stages = a.get("stages") or {}
@@ -155,7 +161,8 @@ def _provenance(view: StoreView) -> list[tuple[str, str]]:
         ("fit", f"{a.get('fit_method', '?')}; {view.spectrum.sizes['mode']} modes, "
                 f"{int(view.trusted.sum())} trusted"),
         ("time step", f"dt = {view.dt:.6g}" + (f" {view.time_unit}" if view.time_unit else "")),
-        ("bytes read", f"{int(a.get('bytes_read', 0)) / 1e6:.1f} MB in the last run"),
+        ("bytes read", f"{int(a.get('bytes_read', 0)) / 1e6:.1f} MB in the last run; the compress result read "
+                       f"{_result_bytes(stages) / 1e6:.1f} MB when it was computed"),
         ("stages", ", ".join(f"{name} {record.get('status', '?')}" for name, record in stages.items()) or "-"),
         ("started / finished", f"{a.get('started', '?')} / {a.get('finished', '?')}"),
         ("host", str(a.get("host", "-"))),

@@ -19,6 +19,7 @@ import warnings
 from pathlib import Path
 
 import numpy as np
+import psutil
 import xarray as xr
 
 from snaplift.errors import ArchiveError, ResultStoreError
@@ -78,6 +79,15 @@ def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare:
     ('step', 'y', 'x')
     """
     view = open_store(store)
+    if isinstance(n_steps, (int, np.integer)) and not isinstance(n_steps, bool) and n_steps >= 0:
+        points = sum(int(np.prod(view.modes[f].shape[1:])) for f in view.fields)
+        needed = 3 * 8 * (int(n_steps) + 1) * points  # the fields, and the temporaries that form them
+        available = int(psutil.virtual_memory().available)
+        if needed > available // 2:
+            raise ResultStoreError(
+                f"a forecast of {n_steps} steps of {points} grid values needs about {needed / 2**30:.1f} GiB, more "
+                f"than half of the {available / 2**30:.1f} GiB available; forecast fewer steps at a time "
+                "(--from and --steps)")
     values = forecast_fields(store, snapshot, n_steps, fields=view.fields)
     time = values.pop("time")
     column = int(snapshot) % view.time.size
