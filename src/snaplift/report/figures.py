@@ -19,10 +19,10 @@ import numpy as np  # noqa: E402
 from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 
-from snaplift.results.reading import Axis, StoreView, field_axes, label, leading_modes  # noqa: E402
+from snaplift.results.reading import Axis, StoreView, field_axes, label  # noqa: E402
 
 __all__ = ["PALETTE", "Probe", "energy_figure", "eigenvalue_figure", "spectrum_figure", "mode_figure",
-           "error_figure", "probe_figure", "leading_modes"]
+           "error_figure", "probe_figure"]
 
 PALETTE = {
     "trusted": "#1c5d99",    # ink blue

@@ -31,14 +31,13 @@ from snaplift.report.figures import (
     eigenvalue_figure,
     energy_figure,
     error_figure,
-    leading_modes,
     mode_figure,
     probe_figure,
     spectrum_figure,
 )
 from snaplift.results.forecast import forecast_fields
 from snaplift.results.forecast_output import FORECAST_CAUTION, overlap_snapshots
-from snaplift.results.reading import StoreView, field_axes, open_group, open_store
+from snaplift.results.reading import StoreView, field_axes, leading_modes, open_group, open_store
 from snaplift.results.source import archive_snapshots, open_source
 from snaplift.results.store import open_result
 
