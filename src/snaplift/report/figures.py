@@ -1,4 +1,4 @@
-"""The figures of a report, drawn with matplotlib (Agg) from a store read through xarray.
+"""The figures of a report, drawn with matplotlib's Agg canvas from a store read through xarray.
 
 Our own look: a blue / amber palette that stays apart for the common colour-vision
 deficiencies (blue against orange is the pair that red-green deficiencies keep; every
@@ -9,17 +9,14 @@ magnitudes. Trusted eigenvalues are filled blue discs, untrusted ones amber tria
 
 from __future__ import annotations
 
-import matplotlib
+from dataclasses import dataclass
 
-matplotlib.use("Agg")
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import LinearSegmentedColormap
+from matplotlib.figure import Figure
 
-from dataclasses import dataclass  # noqa: E402
-
-import numpy as np  # noqa: E402
-from matplotlib.colors import LinearSegmentedColormap  # noqa: E402
-from matplotlib.figure import Figure  # noqa: E402
-
-from snaplift.results.reading import Axis, StoreView, field_axes, label  # noqa: E402
+from snaplift.results.reading import Axis, StoreView, field_axes, label
 
 __all__ = ["PALETTE", "Probe", "energy_figure", "eigenvalue_figure", "spectrum_figure", "mode_figure",
            "error_figure", "probe_figure"]
@@ -43,7 +40,9 @@ SEQUENTIAL = _SEQUENTIAL.with_extremes(bad=(1.0, 1.0, 1.0, 0.0))
 
 
 def _figure(width: float, height: float) -> Figure:
+    # the Agg canvas of each figure itself: no pyplot, no global backend switched under the caller
     figure = Figure(figsize=(width, height), dpi=100, layout="constrained")
+    FigureCanvasAgg(figure)
     figure.patch.set_facecolor("white")
     return figure
 

@@ -40,7 +40,6 @@ import numpy as np
 from snaplift import __version__
 from snaplift.cluster import Scheduler, TaskProgress, open_scheduler
 from snaplift.errors import SnapliftError
-from snaplift.report.page import render_report
 from snaplift.results import stages as stored
 from snaplift.results.staging import StagedStore, check_free_space
 from snaplift.workflow import stages as stage_functions
@@ -333,6 +332,9 @@ def _write_report(path: Path, say: Progress) -> Path | None:
     A report that cannot be drawn does not undo a complete store: the run says why and
     ``snaplift report RESULT`` can be run again.
     """
+    # matplotlib and xarray are loaded only when a report is drawn (not for every run's start-up)
+    from snaplift.report.page import render_report
+
     try:
         summary = render_report(path)
     except (SnapliftError, NotImplementedError, OSError) as error:
