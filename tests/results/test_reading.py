@@ -105,3 +105,13 @@ def test_groups_read_by_hand_equal_xarray(wave_stores: dict[str, Path]) -> None:
             np.testing.assert_array_equal(by_hand[name].values, by_xarray[name].values)
             assert by_hand[name].dims == by_xarray[name].dims
     assert np.iscomplexobj(open_group(wave_stores["rank6"], "modes")["u"].values)
+
+
+def test_complex_amplitudes_rebuild_the_first_snapshot(wave_stores: dict[str, Path]) -> None:
+    # x_0 = sum_k b_k mode_k with b_k = amplitude_k exp(i phase_k) (Jovanovic, Schmid & Nichols 2014);
+    # the fit is exact on the waves, so this is the archive's first snapshot (tests/conftest.py)
+    view = open_store(wave_stores["rank6"])
+    first = np.tensordot(view.complex_amplitude, view.modes["p"].values, axes=(0, 0))
+    with h5py.File(wave_stores["archive"], "r") as h5:
+        np.testing.assert_allclose(first.real, h5["p"][0], atol=1e-10)
+    np.testing.assert_allclose(first.imag, 0.0, atol=1e-10)

@@ -19,7 +19,7 @@ from matplotlib.figure import Figure
 from snaplift.results.reading import Axis, StoreView, field_axes, label
 
 __all__ = ["PALETTE", "Probe", "energy_figure", "eigenvalue_figure", "spectrum_figure", "mode_figure",
-           "error_figure", "probe_figure"]
+           "error_figure", "probe_figure", "point_figure"]
 
 PALETTE = {
     "trusted": "#1c5d99",    # ink blue
@@ -247,7 +247,8 @@ def _planes(values: np.ndarray, axes: list[Axis]) -> list[tuple[str, np.ndarray,
 
 
 def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
-    """Real part and magnitude of ``amplitude * mode`` (field units) of the given modes.
+    """Real part and magnitude of ``b_k mode_k`` (complex amplitude x mode, field units) of the given
+    modes: the real part is the mode's share of the first fitted snapshot (twice it for a pair).
 
     One band per mode: 1-D and 2-D fields get the real part beside the magnitude; 3-D
     fields the three mid-planes in a row, real parts above magnitudes.
@@ -256,7 +257,7 @@ def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
     if len(axes) > 3:
         raise NotImplementedError(f"modes of field '{field}' have {len(axes)} grid dimensions; the report draws 1-3")
     units = view.field_units(field)
-    amplitude = np.asarray(view.spectrum["amplitude"].values, dtype=np.float64)
+    amplitude = view.complex_amplitude
     frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
     growth = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
     trusted = view.trusted
@@ -285,6 +286,34 @@ def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
                        title=part_name + (f", {where}" if where else ""))
     figure.suptitle(f"leading modes of {view.field_name(field)} (amplitude x mode, {units or 'field units'}; "
                     "blank: masked points)", x=0.01, ha="left", fontsize=11)
+    return figure
+
+
+def point_figure(view: StoreView, fields: list[str], modes: list[int]) -> Figure:
+    """Fields of one grid point (a small state): amplitude x mode of the leading modes as bars."""
+    amplitude = view.complex_amplitude
+    frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
+    figure = _figure(10, 3.8)
+    real_ax, magnitude_ax = figure.subplots(1, 2)
+    width = 0.8 / max(1, len(fields))
+    positions = np.arange(len(modes))
+    for i, field in enumerate(fields):
+        values = np.array([amplitude[k] * complex(np.asarray(view.modes[field].isel(mode=k).values).ravel()[0])
+                           for k in modes])
+        colour = PALETTE["lines"][i % len(PALETTE["lines"])]
+        hatch = ("", "//", "..", "xx", "\\\\", "--")[i % 6]  # a second cue beside the colour
+        for ax, part in ((real_ax, values.real), (magnitude_ax, np.abs(values))):
+            ax.bar(positions + (i - (len(fields) - 1) / 2) * width, part, width, color=colour, hatch=hatch,
+                   edgecolor="#1a1a1a", linewidth=0.5, label=label(field, view.field_units(field)))
+    ticks = [f"mode {k}\n{frequency[k]:.3g} {view.frequency_unit}" for k in modes]
+    for ax, title in ((real_ax, "real part"), (magnitude_ax, "magnitude")):
+        ax.set_xticks(positions, ticks, fontsize=8)
+        ax.axhline(0.0, color=PALETTE["archive"], linewidth=0.8)
+        ax.set_title(title, loc="left", fontsize=10)
+        _style(ax)
+    real_ax.legend(fontsize=8, framealpha=0.9)
+    figure.suptitle("leading modes of the one-point fields (amplitude x mode, field units)", x=0.01, ha="left",
+                    fontsize=11)
     return figure
 
 

@@ -32,6 +32,7 @@ from snaplift.report.figures import (
     energy_figure,
     error_figure,
     mode_figure,
+    point_figure,
     probe_figure,
     spectrum_figure,
 )
@@ -288,9 +289,14 @@ def render_report(store: str | Path, out: str | Path | None = None, *, leading: 
     add("spectrum", "Growth rate and peak amplitude per field (field units) against frequency.",
         spectrum_figure(view, fields[:6]))
     chosen = leading_modes(view, leading)
+    points = [f for f in fields if int(np.prod(view.modes[f].shape[1:])) == 1]
     for field in fields:
-        add(f"modes_{field}", f"Leading modes of {field}: real part (left) and magnitude (right) of amplitude x "
-                              "mode in field units.", mode_figure(view, field, chosen))
+        if field not in points:
+            add(f"modes_{field}", f"Leading modes of {field}: real part and magnitude of amplitude x mode in field "
+                                  "units.", mode_figure(view, field, chosen))
+    if points:
+        add("modes_points", "Leading modes of the one-point fields: real part and magnitude of amplitude x mode.",
+            point_figure(view, points, chosen))
     add("errors", "Relative error per snapshot: projection on the basis and reconstruction by the model.",
         error_figure(view))
     probes, note, read = _probes(view, fields[:6])

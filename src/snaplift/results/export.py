@@ -4,7 +4,9 @@
   visualisation programs): per field one structured grid (``2DRectMesh`` /
   ``3DRectMesh`` with its coordinate vectors, or the index positions where the store has
   no coordinates; a 1-D field is a one-row 2-D mesh) carrying, per mode, the real part,
-  imaginary part, magnitude and phase of ``amplitude x mode`` in field units; and a
+  imaginary part, magnitude and phase of ``b_k x mode_k`` in field units (``b_k`` the
+  complex amplitude, ``amplitude exp(i phase)``, so the real part is the mode's share of
+  the first fitted snapshot); and a
   temporal collection: one period of the leading oscillating mode, drawn by the leading
   ``K`` modes (one of each conjugate pair) as ``sum_k c_k Re(b_k mode_k exp(2 pi i f_k t))``
   with ``c_k = 2`` for a conjugate pair and 1 otherwise, without growth or decay (a
@@ -75,7 +77,7 @@ def _animation(view: StoreView, field: str, chosen: list[int]) -> tuple[np.ndarr
     period = 1.0 / frequency[oscillating[0]]
     times = period * np.arange(FRAMES) / FRAMES
     partner = np.asarray(view.spectrum["partner"].values) if "partner" in view.spectrum else np.full(frequency.size, -1)
-    amplitude = np.asarray(view.spectrum["amplitude"].values, dtype=np.float64)
+    amplitude = view.complex_amplitude
     modes = np.asarray(view.modes[field].values)
     frames = np.zeros((FRAMES, *modes.shape[1:]))
     for k in chosen:
@@ -116,7 +118,7 @@ def export_xdmf(store: str | Path, out: str | Path | None = None, *, leading: in
     heavy = xdmf.with_suffix(".h5")
     _refuse_foreign(xdmf)
     _refuse_foreign(heavy)
-    amplitude = np.asarray(view.spectrum["amplitude"].values, dtype=np.float64)
+    amplitude = view.complex_amplitude
     frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
     chosen = leading_modes(view, leading)
     root = ET.Element("Xdmf", Version="3.0")
@@ -132,7 +134,8 @@ def export_xdmf(store: str | Path, out: str | Path | None = None, *, leading: in
                                    "see the report of the result store.")
             h5["spectrum/frequency"] = frequency
             h5["spectrum/growth"] = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
-            h5["spectrum/amplitude"] = amplitude
+            h5["spectrum/amplitude"] = np.abs(amplitude)
+            h5["spectrum/phase"] = np.angle(amplitude)
             h5["spectrum/trusted"] = view.trusted.astype(np.int8)
             for field in view.fields:
                 topology_type, vectors, shape = _mesh(view, field)

@@ -153,6 +153,14 @@ class StoreView:
         return np.ones(n, dtype=bool)
 
     @property
+    def complex_amplitude(self) -> np.ndarray:
+        """``b_k = amplitude_k exp(i phase_k)``: the snapshot the amplitudes are fitted to is
+        ``offset + sum_k b_k mode_k`` (Jovanovic, Schmid & Nichols 2014)."""
+        amplitude = np.asarray(self.spectrum["amplitude"].values, dtype=np.float64)
+        phase = np.asarray(self.spectrum["phase"].values, dtype=np.float64) if "phase" in self.spectrum else 0.0
+        return amplitude * np.exp(1j * phase)
+
+    @property
     def time(self) -> np.ndarray:
         return np.asarray(self.diagnostics["time"].values, dtype=np.float64)
 
