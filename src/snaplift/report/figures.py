@@ -305,15 +305,16 @@ def point_figure(view: StoreView, fields: list[str], modes: list[int]) -> Figure
         for ax, part in ((real_ax, values.real), (magnitude_ax, np.abs(values))):
             ax.bar(positions + (i - (len(fields) - 1) / 2) * width, part, width, color=colour, hatch=hatch,
                    edgecolor="#1a1a1a", linewidth=0.5, label=label(field, view.field_units(field)))
-    ticks = [f"mode {k}\n{frequency[k]:.3g} {view.frequency_unit}" for k in modes]
+    growth = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
+    ticks = [f"mode {k}\nf {frequency[k]:.3g}, growth {growth[k]:.3g}" for k in modes]
     for ax, title in ((real_ax, "real part"), (magnitude_ax, "magnitude")):
         ax.set_xticks(positions, ticks, fontsize=8)
         ax.axhline(0.0, color=PALETTE["archive"], linewidth=0.8)
         ax.set_title(title, loc="left", fontsize=10)
         _style(ax)
     real_ax.legend(fontsize=8, framealpha=0.9)
-    figure.suptitle("leading modes of the one-point fields (amplitude x mode, field units)", x=0.01, ha="left",
-                    fontsize=11)
+    figure.suptitle(f"leading modes of the one-point fields (amplitude x mode, field units; f in "
+                    f"{view.frequency_unit}, growth in {view.growth_unit})", x=0.01, ha="left", fontsize=11)
     return figure
 
 
