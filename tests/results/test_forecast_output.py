@@ -10,12 +10,14 @@ from pathlib import Path
 import numpy as np
 import pytest
 import xarray as xr
+import yaml
 import zarr
 from typer.testing import CliRunner
 
 from snaplift.cli import app
 from snaplift.errors import ArchiveError, ResultStoreError
 from snaplift.results.forecast_output import forecast_dataset, write_forecast
+from snaplift.workflow.runner import run_workflow
 
 runner = CliRunner()
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
@@ -95,3 +97,19 @@ def test_compare_needs_the_archive(wave_stores: dict[str, Path], tmp_path: Path)
         zarr.consolidate_metadata(str(store))
     with pytest.raises(ArchiveError, match="gone.h5.*is not there any more"):
         forecast_dataset(store, 0, 3, compare=True)
+
+
+def test_compare_on_an_archive_of_two_runs(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    # two runs (one file each, relative paths in the workflow): the forecast from the first
+    # run's start overlaps only that run's snapshots, never the next run's
+    for name in ("one.h5", "two.h5"):
+        shutil.copy(wave_stores["archive"], tmp_path / name)
+    workflow = {"archive": {"path": ["one.h5", "two.h5"], "fields": ["p"], "time": "t"},
+                "compress": {"method": "tsqr", "rank": 6}, "output": {"path": "runs.zarr"}, "cluster": "threads"}
+    (tmp_path / "runs.yaml").write_text(yaml.safe_dump(workflow))
+    store = run_workflow(tmp_path / "runs.yaml").path
+    ds = forecast_dataset(store, 0, N_SNAPSHOTS + 5, compare=True)
+    snapshots = ds["archive_snapshot"].values
+    np.testing.assert_array_equal(snapshots[:N_SNAPSHOTS], np.arange(N_SNAPSHOTS))
+    assert np.all(snapshots[N_SNAPSHOTS:] == -1)
+    assert np.nanmax(ds["error_p"].values) < 1e-8  # the waves again (tests/conftest.py)

@@ -51,7 +51,7 @@ def open_source(attrs: dict[str, Any], mode_fields: list[str], lifted: dict[str,
     recorded = attrs.get("archive")
     path: Any = recorded
     if isinstance(section.get("path"), list):
-        path = [p for p in section["path"]]
+        path = _run_files(str(recorded), [str(p) for p in section["path"]])
     if not path or (isinstance(path, str) and not Path(path).exists() and "*" not in path):
         raise ArchiveError(f"the archive of this result store ({recorded}) is not there any more")
     archive_fields = [f for f in section.get("fields") or [] if isinstance(f, str)]
@@ -64,6 +64,16 @@ def open_source(attrs: dict[str, Any], mode_fields: list[str], lifted: dict[str,
     fields = tuple(f for f in mode_fields if f not in lifted and f in info.fields)
     total = info.fields[fields[0]].n_snapshots if fields else 0
     return SourceArchive(reader, fields, int(total))
+
+
+def _run_files(recorded: str, listed: list[str]) -> list[str]:
+    """The files of a several-run archive: the workflow's list, relative entries resolved
+    against the folder the run resolved them from (``recorded`` begins with the first file)."""
+    first = recorded.split(" + ", 1)[0]
+    base = ""
+    if not Path(listed[0]).is_absolute() and first.endswith(listed[0]):
+        base = first[: len(first) - len(listed[0])]
+    return [p if Path(p).is_absolute() else base + p for p in listed]
 
 
 def archive_snapshots(source: SourceArchive, field: str, snapshots: np.ndarray,
