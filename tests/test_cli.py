@@ -30,7 +30,7 @@ def archive(tmp_path: Path) -> Path:
 
 
 def test_help_has_examples() -> None:
-    for command in ("demo", "run", "scan", "spectrum"):
+    for command in ("demo", "run", "scan", "spectrum", "report", "forecast", "export", "compare"):
         result = runner.invoke(app, [command, "--help"])
         assert result.exit_code == 0
         assert "Example" in result.output

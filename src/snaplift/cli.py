@@ -118,6 +118,8 @@ def demo(
     summary, table = run_demo(size=size, folder=output, progress=console.print, workflow_dir=workflow_dir)
     console.print(table)
     console.print(f"results: {summary.path}  ({summary.passes} passes over the archive)")
+    if summary.report is not None:
+        console.print(f"report: {summary.report}  (open it in a browser)")
     if quiet:
         typer.echo(str(summary.path))
 
@@ -171,6 +173,8 @@ def run(
     else:
         _console().print(f"results: {summary.path}  ({statuses}; {summary.passes} passes for the result, "
                          f"{summary.bytes_read / 1e6:.1f} MB read in this run)")
+        if summary.report is not None:
+            _console().print(f"report: {summary.report}")
 
 
 @app.command()
@@ -297,6 +301,123 @@ def bench(
         typer.echo(json.dumps(figures, default=lambda v: v.tolist() if hasattr(v, "tolist") else str(v), indent=2))
     else:
         typer.echo(render_benchmark(figures))
+
+
+@app.command()
+@_user_errors
+def report(
+    result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
+    out: Annotated[Optional[Path], typer.Option(help="folder for the page and PNGs (default: RESULT.report)")] = None,
+    modes: Annotated[int, typer.Option(help="leading modes drawn per field")] = 4,
+) -> None:
+    """Write the report of a result store: one self-contained HTML page plus each figure as PNG.
+
+    Writes RESULT.report/index.html (figures embedded, opens from file://, no network).
+    Example: snaplift report results/fin-duct.zarr
+    """
+    from snaplift.errors import ConfigError
+    from snaplift.report.page import render_report
+
+    if modes < 1:
+        raise ConfigError(f"--modes must be >= 1; got {modes}")
+    summary = render_report(result, out, leading=modes)
+    typer.echo(f"report: {summary.index}  ({len(summary.figures)} figures, {summary.seconds:.1f} s, "
+               f"{summary.archive_values_read} values read from the archive at the probe points)")
+
+
+@app.command()
+@_user_errors
+def forecast(
+    result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
+    start: Annotated[int, typer.Option("--from", help="snapshot (column of the fit) to start from; -1: the last")] = -1,
+    steps: Annotated[int, typer.Option(help="steps of the archive's time step to advance")] = 10,
+    out: Annotated[Optional[Path], typer.Option(help="write the forecast to this zarr store (xarray-readable)")] = None,
+    compare: Annotated[bool, typer.Option("--compare", help="error against the archive where the forecast overlaps it")] = False,
+) -> None:
+    """Forecast the fields from a snapshot with the fitted linear model, in field units.
+
+    Example: snaplift forecast results/fin-duct.zarr --from 0 --steps 200 --compare --out forecast.zarr
+    """
+    import numpy as np
+
+    from snaplift.results.forecast_output import FORECAST_CAUTION, forecast_dataset, write_forecast
+
+    dataset = forecast_dataset(result, start, steps, compare=compare)
+    fields = [name for name in dataset.data_vars if "step" in dataset[name].dims and dataset[name].ndim > 1]
+    time = dataset["time"].values
+    typer.echo(f"forecast of {', '.join(fields)} from snapshot {dataset.attrs['start_column']} "
+               f"(time {time[0]:.6g}) for {steps} steps to time {time[-1]:.6g}")
+    if compare:
+        errors = [name for name in dataset.data_vars if name.startswith("error_")]
+        overlap = np.flatnonzero(dataset["archive_snapshot"].values >= 0)
+        if overlap.size == 0:
+            typer.echo("the forecast does not overlap the archive: nothing to compare")
+        else:
+            table = _console()
+            from rich.table import Table
+
+            shown = Table(title="relative error against the archive (weighted norm over the grid)",
+                          title_justify="left")
+            for header in ("step", "time", "archive snapshot", *(e[len("error_"):] for e in errors)):
+                shown.add_column(header, justify="right")
+            picks = overlap if overlap.size <= 12 else overlap[np.unique(np.linspace(0, overlap.size - 1, 12).astype(int))]
+            for s in picks:
+                shown.add_row(str(int(s)), f"{time[s]:.6g}", str(int(dataset['archive_snapshot'].values[s])),
+                              *(f"{float(dataset[e].values[s]):.3e}" for e in errors))
+            table.print(shown)
+            if overlap.size < steps + 1:
+                typer.echo(f"steps {overlap[-1] + 1}..{steps} lie beyond the archive: no comparison there")
+    if out is not None:
+        write_forecast(dataset, out)
+        typer.echo(f"forecast written to {out}" + (" (with error_<field> per step)" if compare else ""))
+    typer.echo(f"caution: {FORECAST_CAUTION}")
+
+
+@app.command()
+@_user_errors
+def export(
+    result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
+    format: Annotated[str, typer.Option("--format", help="xdmf (XDMF + HDF5) | netcdf (CF netCDF-4)")] = "xdmf",
+    out: Annotated[Optional[Path], typer.Option(help="output file (default: RESULT stem + .modes.xdmf / .modes.nc)")] = None,
+    modes: Annotated[int, typer.Option(help="XDMF: leading modes in the one-period animation")] = 4,
+) -> None:
+    """Export the modes: XDMF + HDF5 for visualisation programs, or CF netCDF-4.
+
+    Example: snaplift export results/fin-duct.zarr --format netcdf
+    """
+    from snaplift.errors import ConfigError
+    from snaplift.results.export import export_netcdf, export_xdmf
+
+    if format == "xdmf":
+        if modes < 1:
+            raise ConfigError(f"--modes must be >= 1; got {modes}")
+        xdmf, heavy = export_xdmf(result, out, leading=modes)
+        typer.echo(f"exported {xdmf} (with {heavy})")
+    elif format == "netcdf":
+        typer.echo(f"exported {export_netcdf(result, out)}")
+    else:
+        raise ConfigError(f"--format {format!r} is not allowed; use xdmf or netcdf")
+
+
+@app.command()
+@_user_errors
+def compare(
+    first: Annotated[Path, typer.Argument(help="result store A")],
+    second: Annotated[Path, typer.Argument(help="result store B")],
+    tolerance: Annotated[float, typer.Option(help="relative distance of continuous-time rates still matched")] = 0.05,
+    json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of tables")] = False,
+) -> None:
+    """Match the modes of two result stores: frequency and growth differences, MAC per field.
+
+    Example: snaplift compare results/rank20.zarr results/rank40.zarr --json
+    """
+    from snaplift.results.compare import compare_json, compare_stores, render_comparison
+
+    outcome = compare_stores(first, second, tolerance=tolerance)
+    if json_output:
+        typer.echo(compare_json(outcome))
+    else:
+        _console().print(render_comparison(outcome))
 
 
 def main() -> None:  # pragma: no cover - console entry point

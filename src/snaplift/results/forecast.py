@@ -33,7 +33,8 @@ __all__ = ["forecast_fields"]
 
 
 def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
-                    fields: list[str] | None = None) -> dict[str, np.ndarray]:
+                    fields: list[str] | None = None,
+                    points: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
     """Model fields at steps ``0 .. n_steps`` after snapshot ``snapshot`` (a column index).
 
     Parameters
@@ -46,6 +47,9 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
         Steps of ``spectrum.attrs['dt']`` to advance (0 returns the model at the start).
     fields : list of str, optional
         Which ``modes/`` fields (default all).
+    points : dict of str to ndarray, optional
+        Per field, flat indices into its grid (C order): forecast only those points
+        (``field -> (n_steps + 1, n_points)``), e.g. probes of a long forecast.
 
     Returns
     -------
@@ -74,17 +78,28 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
     amplitude = _amplitudes(root, column, eigenvalue, store)
     powers = np.power.outer(eigenvalue, np.arange(int(n_steps) + 1))  # (mode, step)
     weights = amplitude[:, None] * powers
-    names = sorted(root["modes"].array_keys()) if fields is None else list(fields)
+    names = _mode_fields(root) if fields is None else list(fields)
     out: dict[str, np.ndarray] = {"time": time[column] + dt * np.arange(int(n_steps) + 1)}
     for name in names:
         if name not in root["modes"]:
             raise ResultStoreError(f"result store {store} has no modes of field '{name}'; "
-                                   f"fields: {', '.join(sorted(root['modes'].array_keys()))}")
+                                   f"fields: {', '.join(_mode_fields(root))}")
         modes = np.asarray(root[f"modes/{name}"][...])  # (mode, *grid)
+        offset = _offset(root, name)
+        if points is not None and name in points:
+            chosen = np.asarray(points[name], dtype=np.int64)
+            modes = modes.reshape(modes.shape[0], -1)[:, chosen]
+            offset = np.asarray(offset).ravel()[chosen] if np.ndim(offset) else offset
         values = np.tensordot(weights, modes, axes=([0], [0])).real  # (step, *grid)
         state_space = "operator" in root and root["operator"].attrs.get("space") == "state"
-        out[name] = values if state_space else values + _offset(root, name)
+        out[name] = values if state_space else values + offset
     return out
+
+
+def _mode_fields(root) -> list[str]:
+    """The ``(mode, *grid)`` arrays of ``modes/`` (not the grid coordinates or per-mode values beside them)."""
+    return sorted(name for name, array in root["modes"].arrays()
+                  if array.ndim >= 2 and tuple(array.metadata.dimension_names or ("mode",))[0] == "mode")
 
 
 def _amplitudes(root, column: int, eigenvalue: np.ndarray, store) -> np.ndarray:

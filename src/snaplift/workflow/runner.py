@@ -39,6 +39,7 @@ import numpy as np
 
 from snaplift import __version__
 from snaplift.cluster import Scheduler, TaskProgress, open_scheduler
+from snaplift.errors import SnapliftError
 from snaplift.results import stages as stored
 from snaplift.results.staging import StagedStore, check_free_space
 from snaplift.workflow import stages as stage_functions
@@ -82,6 +83,7 @@ class RunSummary:
     warnings: tuple[str, ...]
     stages: dict[str, dict[str, Any]] = field(default_factory=dict)
     archive_state: str = "new"
+    report: Path | None = None
 
 
 def _versions() -> dict[str, str]:
@@ -324,8 +326,31 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
         "caution": CAUTION,
         "report": report.get("summary", {}),
     })
+    page = _write_report(path, say) if workflow.output.report else None
     return RunSummary(path, result_passes, bytes_read, n_modes, tuple(warnings),
-                      {name: _strip(record) for name, record in clean.items()}, classification.state)
+                      {name: _strip(record) for name, record in clean.items()}, classification.state, page)
+
+
+def _write_report(path: Path, say: Progress) -> Path | None:
+    """The report stage's page (``RESULT.report/``), drawn from the committed store.
+
+    A report that cannot be drawn does not undo a complete store: the run says why and
+    ``snaplift report RESULT`` can be run again.
+    """
+    # matplotlib and xarray are loaded only when a report is drawn (not for every run's start-up)
+    from snaplift.report.page import render_report
+
+    try:
+        summary = render_report(path)
+    except (SnapliftError, NotImplementedError, OSError) as error:
+        say(f"warning: the report was not written ({error}); run 'snaplift report {path}'")
+        return None
+    except Exception as error:  # a drawing failure must not turn a complete run into a traceback
+        say(f"warning: the report was not written ({type(error).__name__}: {error}); "
+            f"run 'snaplift report {path}'")
+        return None
+    say(f"report: {summary.index} ({summary.seconds:.1f} s)")
+    return summary.index
 
 
 def _kept_or_reused(store: StagedStore, stage: str, fingerprint: str) -> dict[str, Any] | None:

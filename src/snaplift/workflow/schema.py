@@ -223,6 +223,8 @@ class FitSection(_Section):
 
 class OutputSection(_Section):
     path: str = "results/snaplift.zarr"
+    #: draw RESULT.report/ after the store is committed (`snaplift report RESULT` draws it any time)
+    report: bool = True
 
 
 _BATCH_KINDS = ("slurm", "pbs")

@@ -1,0 +1,320 @@
+"""``snaplift report``: one self-contained HTML page (figures embedded) plus each figure as PNG.
+
+The page is written next to the store as ``RESULT.report/`` (``index.html`` and the
+PNGs), into a staging folder first and renamed into place, so a half-written report never
+replaces a whole one. It needs no network and opens from ``file://``. The forecast panel
+reads the archive at a few probe points (the points of largest variance of the data as
+projected on the basis) for at most :data:`PROBE_SNAPSHOTS` snapshots; when the archive
+is not there any more it compares with the projection alone and says so.
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import io
+import json
+import os
+import shutil
+import time as _time
+import uuid
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from snaplift.errors import ArchiveError, ResultStoreError
+from snaplift.report.figures import (
+    PALETTE,
+    Probe,
+    eigenvalue_figure,
+    energy_figure,
+    error_figure,
+    mode_figure,
+    point_figure,
+    probe_figure,
+    spectrum_figure,
+)
+from snaplift.results.forecast import forecast_fields
+from snaplift.results.forecast_output import FORECAST_CAUTION, overlap_snapshots
+from snaplift.results.reading import StoreView, field_axes, leading_modes, open_group, open_store
+from snaplift.results.source import archive_snapshots, open_source
+from snaplift.results.store import open_result
+
+__all__ = ["REPORT_CAUTION", "ReportSummary", "render_report", "report_folder"]
+
+REPORT_CAUTION = FORECAST_CAUTION.replace("This forecast comes from", "These results come from")
+PROBE_SNAPSHOTS = 240
+LEADING_MODES = 4
+MARKER = "snaplift-report.json"
+
+
+@dataclass(frozen=True)
+class ReportSummary:
+    folder: Path
+    index: Path
+    figures: tuple[str, ...]
+    seconds: float
+    archive_values_read: int
+
+
+def report_folder(store: str | Path) -> Path:
+    """``RESULT.report`` next to the store."""
+    store = Path(store)
+    return store.with_name(store.name + ".report")
+
+
+def _png(figure: Any) -> bytes:
+    buffer = io.BytesIO()
+    figure.savefig(buffer, format="png", dpi=100)
+    return buffer.getvalue()
+
+
+def _probe_points(view: StoreView, field: str, columns: slice) -> int | None:
+    """Flat grid index of the point of largest variance of the projected data (basis x coefficients)."""
+    if view.basis is not None and field in view.basis and "coefficient" in view.basis:
+        basis = np.asarray(view.basis[field].values)
+        flat = basis.reshape(basis.shape[0], -1)  # (rank, points)
+        c = np.asarray(view.basis["coefficient"].values)[:, columns]
+        c = c - c.mean(axis=1, keepdims=True)
+        covariance = (c @ c.conj().T) / max(1, c.shape[1])
+        finite = np.all(np.isfinite(flat), axis=0)
+        safe = np.where(finite, flat, 0.0)
+        variance = np.real(np.einsum("rp,rs,sp->p", safe, covariance, safe.conj()))
+    else:
+        values = np.abs(np.asarray(view.modes[field].values))
+        flat = values.reshape(values.shape[0], -1)
+        finite = np.all(np.isfinite(flat), axis=0)
+        variance = np.where(finite, flat[0], 0.0)
+    variance = np.where(finite, variance, -np.inf)
+    return int(np.argmax(variance)) if np.isfinite(variance).any() else None
+
+
+def _where(view: StoreView, field: str, point: int) -> str:
+    axes = field_axes(view.modes, field)
+    index = np.unravel_index(point, tuple(a.values.size for a in axes))
+    return ", ".join(f"{a.dim} = {a.values[i]:.4g}" + (f" {a.units}" if a.units else "") for a, i in zip(axes, index))
+
+
+def _probes(view: StoreView, fields: list[str]) -> tuple[list[Probe], str, int]:
+    """Forecast from the first snapshot over the first run at one probe point per field."""
+    length = view.time.size
+    if "runs" in _group_names(view):
+        runs = open_group(view.path, "runs")
+        length = int(np.asarray(runs["run_length"].values)[0])
+    columns = slice(0, length)
+    points = {f: p for f in fields if (p := _probe_points(view, f, columns)) is not None}
+    if not points:
+        return [], "", 0
+    forecast = forecast_fields(view.path, 0, length - 1, fields=list(points),
+                               points={f: np.array([p]) for f, p in points.items()})
+    time = forecast["time"]
+    lifted = dict(view.prepare.attrs.get("lifted", {})) if view.prepare is not None else {}
+    note, read, archive_values = "", 0, {}
+    try:
+        source = open_source(view.attrs, list(points), lifted)
+        snapshots = overlap_snapshots(view, 0, length - 1, None)
+        steps = np.flatnonzero(snapshots >= 0)
+        steps = steps[np.unique(np.linspace(0, steps.size - 1, min(steps.size, PROBE_SNAPSHOTS)).astype(int))]
+        for field in source.fields:
+            values = np.full(steps.size, np.nan)
+            for position, value in archive_snapshots(source, field, snapshots[steps], np.array([points[field]])):
+                values[position] = float(np.real(value[0]))
+            archive_values[field] = (time[steps], values)
+            read += steps.size
+    except ArchiveError as error:
+        note = f"{error}; compared with the projection on the basis only"
+    probes = []
+    coefficient = np.asarray(view.basis["coefficient"].values)[:, columns] if view.basis is not None else None
+    for field, point in points.items():
+        projection = np.full(length, np.nan)
+        if coefficient is not None and field in view.basis:
+            row = np.asarray(view.basis[field].values).reshape(view.basis[field].shape[0], -1)[:, point]
+            projection = np.real(row @ coefficient)
+            mean_key = f"mean_{field}"
+            if view.prepare is not None and mean_key in view.prepare:
+                projection = projection + float(np.asarray(view.prepare[mean_key].values).ravel()[point])
+        archive_time, archive = archive_values.get(field, (None, None))
+        probes.append(Probe(field, _where(view, field, point), time, forecast[field][:, 0],
+                            view.time[columns], projection, archive_time, archive, view.field_units(field)))
+    return probes, note, read
+
+
+def _group_names(view: StoreView) -> list[str]:
+    return list(open_result(view.path).group_keys())
+
+
+def _result_bytes(stages: dict[str, Any]) -> int:
+    record = stages.get("compress") or {}
+    key = "bytes_read" if record.get("status") in ("computed", "appended") else "bytes_read_before"
+    return int(record.get(key, 0) or 0)
+
+
+def _provenance(view: StoreView) -> list[tuple[str, str]]:
+    a = view.attrs
+    stages = a.get("stages") or {}
+    rows = [
+        ("result store", str(view.path.resolve())),
+        ("archive", f"{a.get('archive', '-')} ({a.get('archive_format', '?')}; {a.get('archive_state', '?')})"),
+        ("compress", f"{a.get('compress_method', '?')}, {a.get('passes', '?')} pass(es) over the archive"),
+        ("fit", f"{a.get('fit_method', '?')}; {view.spectrum.sizes['mode']} modes, "
+                f"{int(view.trusted.sum())} trusted"),
+        ("time step", f"dt = {view.dt:.6g}" + (f" {view.time_unit}" if view.time_unit else "")),
+        ("bytes read", f"{int(a.get('bytes_read', 0)) / 1e6:.1f} MB in the last run; the compress result read "
+                       f"{_result_bytes(stages) / 1e6:.1f} MB when it was computed"),
+        ("stages", ", ".join(f"{name} {record.get('status', '?')}" for name, record in stages.items()) or "-"),
+        ("started / finished", f"{a.get('started', '?')} / {a.get('finished', '?')}"),
+        ("host", str(a.get("host", "-"))),
+        ("versions", ", ".join(f"{k} {v}" for k, v in (a.get("versions") or {}).items()) or "-"),
+        ("workflow fingerprint", str(a.get("workflow_fingerprint", "-"))),
+    ]
+    return rows
+
+
+STYLE = f"""
+body {{ font-family: 'DejaVu Sans', 'Segoe UI', Helvetica, Arial, sans-serif; color: #1a1a1a;
+       max-width: 1180px; margin: 0 auto; padding: 0 1.2em 3em; background: #fbfaf7; line-height: 1.45; }}
+header {{ border-bottom: 4px solid {PALETTE['trusted']}; padding: 1.1em 0 0.6em; margin-bottom: 1em; }}
+header h1 {{ margin: 0; font-size: 1.55em; }}
+header p {{ margin: 0.25em 0 0; color: #4d4d4d; }}
+h2 {{ font-size: 1.2em; margin-top: 1.8em; border-left: 6px solid {PALETTE['untrusted']}; padding-left: 0.5em; }}
+.caution {{ background: #fff4e5; border: 2px solid {PALETTE['untrusted']}; padding: 0.8em 1em; border-radius: 4px; }}
+figure {{ margin: 0.6em 0 1.4em; background: white; border: 1px solid #e3e1da; padding: 0.5em; }}
+figure img {{ max-width: 100%; height: auto; display: block; }}
+figcaption {{ font-size: 0.9em; color: #4d4d4d; margin-top: 0.3em; }}
+table {{ border-collapse: collapse; font-size: 0.9em; background: white; }}
+td, th {{ border: 1px solid #e3e1da; padding: 0.3em 0.6em; text-align: left; vertical-align: top; }}
+th {{ background: #eef3f8; }}
+td.num {{ text-align: right; font-variant-numeric: tabular-nums; }}
+pre {{ background: white; border: 1px solid #e3e1da; padding: 0.7em; overflow-x: auto; font-size: 0.85em; }}
+.warn {{ color: #8a3b0c; }}
+td.trusted {{ color: {PALETTE['trusted']}; font-weight: bold; }}
+td.untrusted {{ color: #9a5410; }}
+footer {{ margin-top: 2em; font-size: 0.85em; color: #4d4d4d; }}
+"""
+
+# counts decoded images (naturalWidth > 0) into the page, so a headless browser can tell
+CHECK_SCRIPT = """
+<script>
+function snapliftCountImages() {
+  var images = document.getElementsByTagName('img');
+  var decoded = 0;
+  for (var i = 0; i < images.length; i++) { if (images[i].complete && images[i].naturalWidth > 0) decoded++; }
+  document.getElementById('image-check').textContent = 'images decoded: ' + decoded + ' of ' + images.length;
+}
+window.addEventListener('load', snapliftCountImages);
+</script>
+"""
+
+
+def _spectrum_rows(view: StoreView, limit: int = 16) -> str:
+    s = view.spectrum
+    n = s.sizes["mode"]
+    ranking = np.asarray(s["ranking"].values) if "ranking" in s else np.arange(n)
+    order = np.argsort(ranking, kind="stable")[:limit]
+    residual = np.asarray(s["residual"].values) if "residual" in s else np.full(n, np.nan)
+    rows = []
+    for k in order:
+        eig = complex(s["eigenvalue"].values[k])
+        trusted = bool(view.trusted[k])
+        rows.append(
+            f"<tr><td class='num'>{k}</td><td class='num'>{abs(eig):.6f}</td>"
+            f"<td class='num'>{float(s['frequency'].values[k]):.5g}</td><td class='num'>{float(s['growth'].values[k]):.4g}</td>"
+            f"<td class='num'>{float(s['amplitude'].values[k]):.4g}</td><td class='num'>{residual[k]:.2g}</td>"
+            f"<td class='{'trusted' if trusted else 'untrusted'}'>"
+            f"{'&#9679; trusted' if trusted else '&#9650; untrusted'}</td></tr>")
+    head = (f"<tr><th>mode</th><th>|eigenvalue|</th><th>frequency [{html.escape(view.frequency_unit)}]</th>"
+            f"<th>growth [{html.escape(view.growth_unit)}]</th><th>amplitude</th><th>residual</th><th>trust</th></tr>")
+    return f"<table>{head}{''.join(rows)}</table>"
+
+
+def _page(view: StoreView, figures: list[tuple[str, str, bytes]], seconds: float, read: int) -> str:
+    parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>snaplift report: "
+             f"{html.escape(view.path.name)}</title><style>{STYLE}</style></head><body>",
+             f"<header><h1>Modes and spectrum of {html.escape(view.path.name)}</h1>"
+             f"<p>{html.escape(str(view.attrs.get('archive', '')))} &middot; {view.spectrum.sizes['mode']} modes &middot; "
+             f"fields {', '.join(html.escape(f) for f in view.fields)}</p></header>",
+             f"<p class='caution'><strong>Caution.</strong> {html.escape(REPORT_CAUTION)}</p>",
+             "<h2>Leading modes (trusted first, then by amplitude)</h2>", _spectrum_rows(view)]
+    for name, caption, data in figures:
+        if name.startswith("modes_") and not any(n.startswith("modes_") for n, _, _ in figures[:figures.index(
+                (name, caption, data))]):
+            parts.append("<h2>Mode shapes</h2>")
+        encoded = base64.b64encode(data).decode("ascii")
+        parts.append(f"<figure id='{html.escape(name)}'><img alt='{html.escape(caption)}' "
+                     f"src='data:image/png;base64,{encoded}'><figcaption>{html.escape(caption)} "
+                     f"(<a href='{html.escape(name)}.png'>{html.escape(name)}.png</a>)</figcaption></figure>")
+    parts.append("<h2>Provenance</h2><table>")
+    for key, value in _provenance(view):
+        parts.append(f"<tr><th>{html.escape(key)}</th><td>{html.escape(value)}</td></tr>")
+    parts.append("</table>")
+    warnings = [str(w) for w in view.attrs.get("warnings") or []]
+    parts.append(f"<h2>Warnings ({len(warnings)})</h2>")
+    parts.append("<ul>" + "".join(f"<li class='warn'>{html.escape(w)}</li>" for w in warnings) + "</ul>"
+                 if warnings else "<p>none</p>")
+    parts.append(f"<h2>Workflow</h2><pre>{html.escape(str(view.attrs.get('workflow', '')))}</pre>")
+    parts.append(f"<footer>Written by snaplift {html.escape(str((view.attrs.get('versions') or {}).get('snaplift', '')))}"
+                 f" in {seconds:.1f} s ({read} values read from the archive at the probe points). "
+                 f"<span id='image-check'>images not checked (scripts off)</span></footer>")
+    parts.append(CHECK_SCRIPT + "</body></html>")
+    return "\n".join(parts)
+
+
+def render_report(store: str | Path, out: str | Path | None = None, *, leading: int = LEADING_MODES) -> ReportSummary:
+    """Render the report of a complete result store to ``out`` (default ``RESULT.report/``).
+
+    Example
+    -------
+    >>> summary = render_report("results/fin-duct.zarr")  # doctest: +SKIP
+    >>> summary.index                                      # doctest: +SKIP
+    PosixPath('results/fin-duct.zarr.report/index.html')
+    """
+    started = _time.perf_counter()
+    view = open_store(store)
+    folder = Path(out) if out is not None else report_folder(store)
+    if folder.exists() and not (folder / MARKER).exists():
+        raise ResultStoreError(f"{folder} exists and is not a snaplift report; remove it or choose another folder")
+    fields = view.fields
+    figures: list[tuple[str, str, bytes]] = []
+
+    def add(name: str, caption: str, figure: Any) -> None:
+        if figure is not None:
+            figures.append((name, caption, _png(figure)))
+
+    add("energy", "Energy captured by the basis: dashed line the compress rank, dash-dot the fit rank.",
+        energy_figure(view))
+    add("eigenvalues", "Eigenvalues with the unit circle; discs trusted, triangles untrusted (held-out residual "
+                       "above the threshold); area by amplitude.", eigenvalue_figure(view))
+    add("spectrum", "Growth rate and peak amplitude per field (field units) against frequency.",
+        spectrum_figure(view, fields[:6]))
+    chosen = leading_modes(view, leading)
+    points = [f for f in fields if int(np.prod(view.modes[f].shape[1:])) == 1]
+    for field in fields:
+        if field not in points:
+            add(f"modes_{field}", f"Leading modes of {field}: real part and magnitude of amplitude x mode in field "
+                                  "units.", mode_figure(view, field, chosen))
+    if points:
+        add("modes_points", "Leading modes of the one-point fields: real part and magnitude of amplitude x mode.",
+            point_figure(view, points, chosen))
+    add("errors", "Relative error per snapshot: projection on the basis and reconstruction by the model.",
+        error_figure(view))
+    probes, note, read = _probes(view, fields[:6])
+    if probes:
+        add("forecast", "Forecast from the first snapshot against the archive and the projection on the basis at "
+                        "the point of largest variance of each field.", probe_figure(probes, view.time_unit, note))
+    seconds = _time.perf_counter() - started
+    staging = folder.with_name(f"{folder.name}.staging-{uuid.uuid4().hex[:8]}")
+    staging.mkdir(parents=True)
+    try:
+        for name, _, data in figures:
+            (staging / f"{name}.png").write_bytes(data)
+        (staging / "index.html").write_text(_page(view, figures, seconds, read), encoding="utf-8")
+        (staging / MARKER).write_text(json.dumps({"store": str(Path(store).resolve()),
+                                                  "figures": [n for n, _, _ in figures]}))
+        if folder.exists():
+            shutil.rmtree(folder)
+        os.replace(staging, folder)
+    finally:
+        shutil.rmtree(staging, ignore_errors=True)
+    return ReportSummary(folder, folder / "index.html", tuple(n for n, _, _ in figures), seconds, read)

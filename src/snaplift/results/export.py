@@ -1,0 +1,253 @@
+"""``snaplift export``: the modes in formats other tools read.
+
+- XDMF 3 + HDF5 (the XDMF data model, an open standard read by common open-source
+  visualisation programs): per field one structured grid (``2DRectMesh`` /
+  ``3DRectMesh`` with its coordinate vectors, or the index positions where the store has
+  no coordinates; a 1-D field is a one-row 2-D mesh) carrying, per mode, the real part,
+  imaginary part, magnitude and phase of ``b_k x mode_k`` in field units (``b_k`` the
+  complex amplitude, ``amplitude exp(i phase)``, so the real part is the mode's share of
+  the first fitted snapshot); and a
+  temporal collection: one period of the leading oscillating mode, drawn by the leading
+  ``K`` modes (one of each conjugate pair) as ``sum_k c_k Re(b_k mode_k exp(2 pi i f_k t))``
+  with ``c_k = 2`` for a conjugate pair and 1 otherwise, without growth or decay (a
+  neutral picture of the shapes in motion; the forecast has the growth).
+- netCDF-4 following the CF conventions: complex values split into ``<name>_real`` and
+  ``<name>_imag`` variables, coordinates, ``units`` and ``long_name`` kept, flags as
+  integers with ``flag_values`` / ``flag_meanings``, written with the netCDF4 library.
+
+Files are written under a temporary name and renamed into place; an existing file is
+replaced only if snaplift wrote it.
+"""
+
+from __future__ import annotations
+
+import os
+import uuid
+import xml.etree.ElementTree as ET
+from pathlib import Path
+
+import h5py
+import numpy as np
+import xarray as xr
+
+from snaplift.errors import ResultStoreError
+from snaplift.results.reading import StoreView, field_axes, leading_modes, open_store
+
+__all__ = ["EXPORT_KEY", "export_netcdf", "export_xdmf", "default_export_path"]
+
+EXPORT_KEY = "snaplift_export"
+FRAMES = 24
+
+
+def default_export_path(store: str | Path, format: str) -> Path:
+    store = Path(store)
+    stem = store.name[:-5] if store.name.endswith(".zarr") else store.name
+    return store.with_name(f"{stem}.modes.{'xdmf' if format == 'xdmf' else 'nc'}")
+
+
+def _refuse_foreign(path: Path) -> None:
+    if not path.exists():
+        return
+    ours = False
+    try:
+        if path.suffix == ".h5":
+            with h5py.File(path, "r") as h5:
+                ours = bool(h5.attrs.get(EXPORT_KEY, False))
+        elif path.suffix == ".xdmf":
+            ours = EXPORT_KEY in path.read_text(errors="replace")[:4096]
+        else:
+            with xr.open_dataset(path) as existing:
+                ours = bool(existing.attrs.get(EXPORT_KEY, 0))
+    except Exception:
+        ours = False
+    if not ours:
+        raise ResultStoreError(f"{path} exists and was not written by snaplift export; choose another --out")
+
+
+def _temporary(path: Path) -> Path:
+    return path.with_name(f".{path.name}.{uuid.uuid4().hex[:8]}.tmp")
+
+
+def _animation(view: StoreView, field: str, chosen: list[int]) -> tuple[np.ndarray, np.ndarray] | None:
+    """Frames (frame, *grid) and their times over one period of the leading oscillating mode."""
+    frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
+    oscillating = [k for k in chosen if frequency[k] > 0]
+    if not oscillating:
+        return None
+    period = 1.0 / frequency[oscillating[0]]
+    times = period * np.arange(FRAMES) / FRAMES
+    partner = np.asarray(view.spectrum["partner"].values) if "partner" in view.spectrum else np.full(frequency.size, -1)
+    amplitude = view.complex_amplitude
+    modes = np.asarray(view.modes[field].values)
+    frames = np.zeros((FRAMES, *modes.shape[1:]))
+    for k in chosen:
+        weight = 2.0 if partner[k] >= 0 else 1.0
+        shape = amplitude[k] * modes[k]
+        for i, t in enumerate(times):
+            frames[i] += weight * np.real(shape * np.exp(2j * np.pi * frequency[k] * t))
+    return frames, times
+
+
+def _mesh(view: StoreView, field: str) -> tuple[str, list[tuple[str, np.ndarray]], tuple[int, ...]]:
+    axes = field_axes(view.modes, field)
+    grid = tuple(a.values.size for a in axes)
+    if len(axes) == 1:
+        return "2DRectMesh", [("VX", axes[0].values), ("VY", np.zeros(1))], (1, grid[0])
+    if len(axes) == 2:
+        return "2DRectMesh", [("VX", axes[1].values), ("VY", axes[0].values)], grid
+    if len(axes) == 3:
+        return "3DRectMesh", [("VX", axes[2].values), ("VY", axes[1].values), ("VZ", axes[0].values)], grid
+    raise NotImplementedError(f"field '{field}' has {len(axes)} grid dimensions; XDMF export handles 1-3")
+
+
+def _item(parent: ET.Element, h5name: str, path: str, shape: tuple[int, ...]) -> None:
+    item = ET.SubElement(parent, "DataItem", Dimensions=" ".join(map(str, shape)), NumberType="Float",
+                         Precision="8", Format="HDF")
+    item.text = f"{h5name}:{path}"
+
+
+def export_xdmf(store: str | Path, out: str | Path | None = None, *, leading: int = 4) -> tuple[Path, Path]:
+    """Write ``out`` (.xdmf) and its HDF5 heavy data next to it (same stem, .h5).
+
+    Example
+    -------
+    >>> xdmf, h5 = export_xdmf("results/fin-duct.zarr")  # doctest: +SKIP
+    """
+    view = open_store(store)
+    xdmf = Path(out) if out is not None else default_export_path(store, "xdmf")
+    heavy = xdmf.with_suffix(".h5")
+    _refuse_foreign(xdmf)
+    _refuse_foreign(heavy)
+    amplitude = view.complex_amplitude
+    frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
+    chosen = leading_modes(view, leading)
+    root = ET.Element("Xdmf", Version="3.0")
+    domain = ET.SubElement(root, "Domain")
+    ET.SubElement(domain, "Information", Name=EXPORT_KEY, Value=str(Path(store).resolve()))
+    xdmf.parent.mkdir(parents=True, exist_ok=True)
+    heavy_tmp, xdmf_tmp = _temporary(heavy), _temporary(xdmf)
+    try:
+        with h5py.File(heavy_tmp, "w") as h5:
+            h5.attrs[EXPORT_KEY] = True
+            h5.attrs["source"] = str(Path(store).resolve())
+            h5.attrs["caution"] = ("A data-driven surrogate is valid only near the data it was fitted on; "
+                                   "see the report of the result store.")
+            h5["spectrum/frequency"] = frequency
+            h5["spectrum/growth"] = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
+            h5["spectrum/amplitude"] = np.abs(amplitude)
+            h5["spectrum/phase"] = np.angle(amplitude)
+            h5["spectrum/trusted"] = view.trusted.astype(np.int8)
+            for field in view.fields:
+                topology_type, vectors, shape = _mesh(view, field)
+                for name, values in vectors:
+                    h5[f"{field}/coordinates/{name}"] = np.asarray(values, dtype=np.float64)
+                grid = ET.SubElement(domain, "Grid", Name=field, GridType="Uniform")
+                ET.SubElement(grid, "Topology", TopologyType=topology_type, Dimensions=" ".join(map(str, shape)))
+                geometry = ET.SubElement(grid, "Geometry", GeometryType="VXVY" if len(vectors) == 2 else "VXVYVZ")
+                for name, values in vectors:
+                    _item(geometry, heavy.name, f"/{field}/coordinates/{name}", (values.size,))
+                units = view.field_units(field)
+                modes = np.asarray(view.modes[field].values)
+                for k in range(modes.shape[0]):
+                    shape_k = amplitude[k] * modes[k]
+                    for part, values in (("real", shape_k.real), ("imag", shape_k.imag),
+                                         ("magnitude", np.abs(shape_k)), ("phase", np.angle(shape_k))):
+                        path = f"/{field}/mode_{k}/{part}"
+                        h5.create_dataset(path, data=np.asarray(values, dtype=np.float64).reshape(shape))
+                        h5[path].attrs["units"] = "rad" if part == "phase" else units
+                        attribute = ET.SubElement(grid, "Attribute", Name=f"mode{k}_{part}", AttributeType="Scalar",
+                                                  Center="Node")
+                        _item(attribute, heavy.name, path, shape)
+                animation = _animation(view, field, chosen)
+                if animation is None:
+                    continue
+                frames, times = animation
+                series = ET.SubElement(domain, "Grid", Name=f"{field}_animation", GridType="Collection",
+                                       CollectionType="Temporal")
+                for i, t in enumerate(times):
+                    path = f"/{field}/animation/frame_{i}"
+                    h5.create_dataset(path, data=frames[i].reshape(shape))
+                    h5[path].attrs["time"] = t
+                    step = ET.SubElement(series, "Grid", Name=f"{field}_{i}", GridType="Uniform")
+                    ET.SubElement(step, "Time", Value=f"{t:.17g}")
+                    ET.SubElement(step, "Topology", TopologyType=topology_type, Dimensions=" ".join(map(str, shape)))
+                    geometry = ET.SubElement(step, "Geometry", GeometryType="VXVY" if len(vectors) == 2 else "VXVYVZ")
+                    for name, values in vectors:
+                        _item(geometry, heavy.name, f"/{field}/coordinates/{name}", (values.size,))
+                    attribute = ET.SubElement(step, "Attribute", Name=field, AttributeType="Scalar", Center="Node")
+                    _item(attribute, heavy.name, path, shape)
+                h5[f"{field}/animation"].attrs["modes"] = np.asarray(chosen, dtype=np.int64)
+        ET.indent(root)
+        xdmf_tmp.write_text('<?xml version="1.0" ?>\n<!DOCTYPE Xdmf SYSTEM "Xdmf.dtd" []>\n'
+                            + ET.tostring(root, encoding="unicode") + "\n")
+        os.replace(heavy_tmp, heavy)
+        os.replace(xdmf_tmp, xdmf)
+    finally:
+        for path in (heavy_tmp, xdmf_tmp):
+            path.unlink(missing_ok=True)
+    return xdmf, heavy
+
+
+def _split(name: str, variable: xr.DataArray) -> dict[str, xr.DataArray]:
+    attrs = {k: v for k, v in variable.attrs.items() if k in ("units", "long_name", "standard_name")}
+    if np.iscomplexobj(variable.values):
+        long_name = str(attrs.pop("long_name", name))
+        return {f"{name}_real": xr.DataArray(variable.values.real, dims=variable.dims,
+                                             attrs={**attrs, "long_name": f"real part of {long_name}"}),
+                f"{name}_imag": xr.DataArray(variable.values.imag, dims=variable.dims,
+                                             attrs={**attrs, "long_name": f"imaginary part of {long_name}"})}
+    if variable.dtype == bool:
+        return {name: xr.DataArray(variable.values.astype(np.int8), dims=variable.dims,
+                                   attrs={**attrs, "flag_values": np.array([0, 1], dtype=np.int8),
+                                          "flag_meanings": f"not_{name} {name}"})}
+    return {name: xr.DataArray(variable.values, dims=variable.dims, attrs=attrs)}
+
+
+def export_netcdf(store: str | Path, out: str | Path | None = None) -> Path:
+    """Write modes, spectrum and diagnostics to one CF netCDF-4 file.
+
+    Example
+    -------
+    >>> path = export_netcdf("results/fin-duct.zarr")          # doctest: +SKIP
+    >>> xr.open_dataset(path)["T_real"].dims                  # doctest: +SKIP
+    ('mode', 'y', 'x')
+    """
+    view = open_store(store)
+    path = Path(out) if out is not None else default_export_path(store, "netcdf")
+    _refuse_foreign(path)
+    variables: dict[str, xr.DataArray] = {}
+    coords: dict[str, xr.Variable] = {}
+    for group, dataset in (("modes", view.modes), ("spectrum", view.spectrum), ("diagnostics", view.diagnostics)):
+        names = view.fields if group == "modes" else list(dataset.data_vars)
+        for name in names:
+            for key, value in _split(name, dataset[name]).items():
+                if key in variables:
+                    key = f"{group}_{key}"
+                variables[key] = value
+        for name, coordinate in dataset.coords.items():
+            if name not in coords and not np.iscomplexobj(coordinate.values):
+                coords[name] = coordinate.variable.to_base_variable()
+    if view.prepare is not None:
+        for name in view.prepare.data_vars:
+            if name.startswith(("mean_", "fixed_point_")):
+                variables.update(_split(name, view.prepare[name]))
+    # a per-mode coordinate of modes/ (frequency) is the spectrum's variable of the same name
+    coords = {name: value for name, value in coords.items() if name not in variables}
+    coords.setdefault("mode", xr.Variable(("mode",), np.arange(view.spectrum.sizes["mode"]),
+                                          {"long_name": "mode (sorted by amplitude, conjugate pairs adjacent)"}))
+    dataset = xr.Dataset(variables, coords=coords, attrs={
+        "Conventions": "CF-1.10", "title": f"modes and spectrum of {Path(store).name}",
+        "source": f"snaplift result store {Path(store).resolve()}", "institution": "",
+        "history": f"snaplift export --format netcdf ({view.attrs.get('finished', '')})",
+        "comment": "complex values are split into <name>_real and <name>_imag; modes are in field units "
+                   "(x_j = offset + sum_k mode_k amplitude_k eigenvalue_k^j)",
+        "caution": "A data-driven surrogate is valid only near the data it was fitted on.",
+        EXPORT_KEY: 1})
+    path.parent.mkdir(parents=True, exist_ok=True)
+    temporary = _temporary(path)
+    try:
+        dataset.to_netcdf(temporary, engine="netcdf4", format="NETCDF4")
+        os.replace(temporary, path)
+    finally:
+        temporary.unlink(missing_ok=True)
+    return path

@@ -1,0 +1,208 @@
+"""Read a result store through xarray, with its coordinates and units where it has them.
+
+Report, forecast, export and compare read the store only through :func:`open_group`, so
+that they use what the store says about itself: coordinate arrays named like the grid
+dimensions (``x``, ``y`` or ``<field>_x`` on staggered grids), ``modes/frequency``,
+``time`` in ``diagnostics/`` and ``basis/``, and ``units`` / ``long_name`` attributes.
+Stores written before those were added have none of them; every helper here then falls
+back to index positions and unlabelled units, so old and new stores read the same way.
+
+Complex arrays (eigenvalues, modes) are read without CF masking or scaling: a complex
+``_FillValue`` would otherwise be decoded through a float path. Should xarray still fail
+on a group, the group is rebuilt from the zarr arrays and their ``dimension_names``.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import xarray as xr
+import zarr
+
+from snaplift.errors import ResultStoreError
+from snaplift.results.store import open_result
+
+__all__ = ["Axis", "StoreView", "field_axes", "label", "leading_modes", "open_group", "open_store", "units_of"]
+
+
+def open_group(path: str | Path, group: str) -> xr.Dataset:
+    """One group of a complete store as an ``xarray.Dataset`` with values in memory.
+
+    Example
+    -------
+    >>> spectrum = open_group("results/fin-duct.zarr", "spectrum")  # doctest: +SKIP
+    >>> spectrum["frequency"].attrs.get("units")                    # doctest: +SKIP
+    'Hz'
+    """
+    root = open_result(path)
+    if group not in root:
+        raise ResultStoreError(f"result store {path} has no group '{group}'; groups: "
+                               f"{', '.join(sorted(root.group_keys()))}")
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            dataset = xr.open_zarr(str(path), group=group, mask_and_scale=False, decode_times=False,
+                                   decode_timedelta=False, chunks=None)
+        return dataset.load()
+    except Exception:  # a complex or otherwise undecodable array: build the group by hand
+        return _from_zarr(root[group])
+
+
+def _from_zarr(node: zarr.Group) -> xr.Dataset:
+    variables: dict[str, xr.Variable] = {}
+    for name, array in node.arrays():
+        dims = tuple(array.metadata.dimension_names or (f"{name}_{i}" for i in range(array.ndim)))
+        attrs = {k: v for k, v in dict(array.attrs).items() if k != "_FillValue"}
+        variables[name] = xr.Variable(dims, np.asarray(array[...]), attrs)
+    coordinates = {name: v for name, v in variables.items() if v.dims == (name,)}
+    data = {name: v for name, v in variables.items() if name not in coordinates}
+    return xr.Dataset(data, coords=coordinates, attrs=dict(node.attrs))
+
+
+def units_of(variable: xr.DataArray | None, fallback: str = "") -> str:
+    """The CF ``units`` of a variable, or ``fallback`` when it has none."""
+    if variable is None:
+        return fallback
+    value = variable.attrs.get("units")
+    return str(value) if value not in (None, "") else fallback
+
+
+def label(name: str, units: str) -> str:
+    """An axis label ``name [units]``, or ``name`` alone when the units are unknown."""
+    return f"{name} [{units}]" if units else name
+
+
+@dataclass(frozen=True)
+class Axis:
+    """One grid dimension of a field: its values (coordinates or index positions)."""
+
+    dim: str
+    values: np.ndarray
+    units: str
+    long_name: str
+    is_index: bool
+
+    @property
+    def title(self) -> str:
+        return label(self.long_name, self.units) if not self.is_index else f"{self.dim} (index)"
+
+
+def field_axes(dataset: xr.Dataset, name: str, *, skip: tuple[str, ...] = ("mode", "rank", "snapshot")) -> list[Axis]:
+    """The grid axes of ``dataset[name]``: coordinates when the store has them, else indices."""
+    axes = []
+    variable = dataset[name]
+    for dim in variable.dims:
+        if dim in skip:
+            continue
+        size = int(variable.sizes[dim])
+        if dim in dataset.coords and dataset.coords[dim].ndim == 1 and dataset.coords[dim].size == size:
+            coordinate = dataset.coords[dim]
+            axes.append(Axis(dim, np.asarray(coordinate.values, dtype=np.float64), units_of(coordinate),
+                             str(coordinate.attrs.get("long_name") or dim), False))
+        else:
+            axes.append(Axis(dim, np.arange(size, dtype=np.float64), "", dim, True))
+    return axes
+
+
+@dataclass(frozen=True)
+class StoreView:
+    """The groups of a result store that report, export and compare read, plus its attributes."""
+
+    path: Path
+    attrs: dict[str, Any]
+    spectrum: xr.Dataset
+    modes: xr.Dataset
+    diagnostics: xr.Dataset
+    basis: xr.Dataset | None
+    prepare: xr.Dataset | None
+    operator: xr.Dataset | None
+
+    @property
+    def fields(self) -> list[str]:
+        # (mode, *grid) arrays; a per-mode array such as a frequency stored beside them is not a field
+        return [name for name in self.modes.data_vars
+                if self.modes[name].dims[:1] == ("mode",) and self.modes[name].ndim >= 2]
+
+    @property
+    def dt(self) -> float:
+        return float(self.spectrum.attrs.get("dt", 1.0))
+
+    @property
+    def time_unit(self) -> str:
+        return str(self.spectrum.attrs.get("time_unit") or units_of(self.diagnostics.get("time")) or "")
+
+    @property
+    def frequency_unit(self) -> str:
+        unit = self.spectrum.attrs.get("frequency_unit") or units_of(self.spectrum.get("frequency"))
+        return str(unit) if unit else (f"1/{self.time_unit}" if self.time_unit else "1/time unit")
+
+    @property
+    def growth_unit(self) -> str:
+        unit = self.spectrum.attrs.get("growth_unit") or units_of(self.spectrum.get("growth"))
+        return str(unit) if unit else (f"1/{self.time_unit}" if self.time_unit else "1/time unit")
+
+    @property
+    def trusted(self) -> np.ndarray:
+        n = self.spectrum.sizes["mode"]
+        if "trusted" in self.spectrum:
+            return np.asarray(self.spectrum["trusted"].values, dtype=bool)
+        return np.ones(n, dtype=bool)
+
+    @property
+    def complex_amplitude(self) -> np.ndarray:
+        """``b_k = amplitude_k exp(i phase_k)``: the snapshot the amplitudes are fitted to is
+        ``offset + sum_k b_k mode_k`` (Jovanovic, Schmid & Nichols 2014)."""
+        amplitude = np.asarray(self.spectrum["amplitude"].values, dtype=np.float64)
+        phase = np.asarray(self.spectrum["phase"].values, dtype=np.float64) if "phase" in self.spectrum else 0.0
+        return amplitude * np.exp(1j * phase)
+
+    @property
+    def time(self) -> np.ndarray:
+        return np.asarray(self.diagnostics["time"].values, dtype=np.float64)
+
+    def field_units(self, name: str) -> str:
+        return units_of(self.modes[name])
+
+    def field_name(self, name: str) -> str:
+        return str(self.modes[name].attrs.get("long_name") or name)
+
+    def peak_amplitude(self, name: str) -> np.ndarray:
+        """Peak amplitude of each mode in field units: ``spectrum/peak_<field>`` or
+        ``|amplitude| * max |mode|`` over the grid (what the forecast multiplies)."""
+        key = f"peak_{name}"
+        if key in self.spectrum:
+            return np.asarray(self.spectrum[key].values, dtype=np.float64)
+        modes = np.abs(np.asarray(self.modes[name].values))
+        flat = modes.reshape(modes.shape[0], -1)
+        peak = np.zeros(flat.shape[0])
+        finite = np.isfinite(flat)
+        if finite.any():
+            peak = np.max(np.where(finite, flat, 0.0), axis=1)
+        return peak * np.abs(np.asarray(self.spectrum["amplitude"].values, dtype=np.float64))
+
+
+def open_store(path: str | Path) -> StoreView:
+    """Every group report, export and compare need, read through :func:`open_group`."""
+    root = open_result(path)
+    for group in ("spectrum", "modes", "diagnostics"):
+        if group not in root:
+            raise ResultStoreError(f"result store {path} has no group '{group}'; it holds no fit "
+                                   "(run the workflow to the end)")
+    optional = {g: open_group(path, g) if g in root else None for g in ("basis", "prepare", "operator")}
+    return StoreView(Path(path), dict(root.attrs), open_group(path, "spectrum"), open_group(path, "modes"),
+                     open_group(path, "diagnostics"), **optional)
+
+
+def leading_modes(view: StoreView, count: int) -> list[int]:
+    """Positions of the ``count`` leading modes (store ranking: trusted first, then amplitude),
+    one of each conjugate pair (the one with frequency >= 0)."""
+    n = view.spectrum.sizes["mode"]
+    ranking = np.asarray(view.spectrum["ranking"].values) if "ranking" in view.spectrum else np.arange(n)
+    frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
+    order = np.argsort(ranking, kind="stable")
+    chosen = [int(k) for k in order if frequency[k] >= 0]
+    return chosen[:count]

@@ -1,0 +1,95 @@
+"""snaplift report: the page, its figures and its cautions, drawn from a store fitted to analytic waves."""
+
+from __future__ import annotations
+
+import re
+import shutil
+import warnings
+from pathlib import Path
+
+import matplotlib.image
+import numpy as np
+import pytest
+import yaml
+import zarr
+from typer.testing import CliRunner
+
+from snaplift.cli import app
+from snaplift.errors import ResultStoreError
+from snaplift.report.page import MARKER, render_report, report_folder
+from snaplift.workflow.runner import run_workflow
+
+runner = CliRunner()
+FIGURES = {"energy", "eigenvalues", "spectrum", "modes_u", "modes_p", "modes_w", "errors", "forecast"}
+
+
+def test_run_leaves_a_report_next_to_the_store(wave_stores: dict[str, Path]) -> None:
+    # the report stage of `snaplift run` writes RESULT.report/ (fixture stores come from run_workflow)
+    folder = report_folder(wave_stores["rank6"])
+    assert folder == wave_stores["rank6"].with_name("rank6.zarr.report")
+    assert (folder / "index.html").is_file() and (folder / MARKER).is_file()
+
+
+def test_run_report_switch(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    # output.report: false leaves the store alone; the default draws RESULT.report/ after the commit
+    shutil.copy(wave_stores["archive"], tmp_path / "waves.h5")
+    for name, switch in (("off", False), ("on", True)):
+        workflow = {"archive": {"path": "waves.h5", "fields": ["p"], "time": "t", "snapshots": {"stop": 30}},
+                    "compress": {"method": "tsqr", "rank": 4}, "output": {"path": f"{name}.zarr", "report": switch},
+                    "cluster": "threads"}
+        (tmp_path / f"{name}.yaml").write_text(yaml.safe_dump(workflow))
+        summary = run_workflow(tmp_path / f"{name}.yaml")
+        assert summary.path.is_dir()
+        assert (summary.report is not None) == switch
+        assert (tmp_path / f"{name}.zarr.report" / "index.html").is_file() == switch
+    out = runner.invoke(app, ["run", str(tmp_path / "on.yaml"), "--overwrite"])
+    assert out.exit_code == 0 and "report:" in out.output and "index.html" in out.output
+
+
+def test_page_is_self_contained_with_every_figure(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    summary = render_report(wave_stores["rank6"], tmp_path / "page")
+    assert set(summary.figures) == FIGURES  # 1-D (p), 2-D (u) and 3-D (w, mid-planes) fields
+    text = summary.index.read_text()
+    # every figure embedded (no file or network needed to see it) and also written as a PNG
+    embedded = re.findall(r"src='data:image/png;base64,", text)
+    assert len(embedded) == len(FIGURES)
+    assert not re.search(r"(src|href)=['\"](https?:)?//", text)
+    for name in FIGURES:
+        image = matplotlib.image.imread(tmp_path / "page" / f"{name}.png")
+        assert image.shape[0] > 200 and image.shape[1] > 400
+        assert np.std(image[..., :3]) > 0.05, name  # not a blank canvas
+    # the cautions, in plain words
+    assert "valid only near the data it was fitted on" in text
+    assert "licensed engineering judgement" in text and "applicable codes" in text
+    # provenance: archive, workflow text, versions, passes
+    assert "waves.h5" in text and "method: tsqr" in text  # the workflow text
+    assert "versions" in text and "numpy" in text and "pass(es) over the archive" in text
+    # the probe forecast read the archive
+    assert summary.archive_values_read > 0
+
+
+def test_report_without_the_archive(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    store = tmp_path / "moved.zarr"
+    shutil.copytree(wave_stores["rank4"], store, ignore=shutil.ignore_patterns("*.report"))
+    root = zarr.open_group(str(store), mode="r+")
+    root.attrs["archive"] = str(tmp_path / "gone.h5")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        zarr.consolidate_metadata(str(store))
+    summary = render_report(store)
+    assert summary.archive_values_read == 0 and "forecast" in summary.figures
+    assert (tmp_path / "moved.zarr.report" / "index.html").is_file()
+
+
+def test_report_command_and_foreign_folder(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    out = runner.invoke(app, ["report", str(wave_stores["rank4"]), "--out", str(tmp_path / "r"), "--modes", "2"])
+    assert out.exit_code == 0, out.output
+    assert "index.html" in out.output and "figures" in out.output
+    foreign = tmp_path / "mine"
+    foreign.mkdir()
+    (foreign / "notes.txt").write_text("keep")
+    with pytest.raises(ResultStoreError, match="is not a snaplift report"):
+        render_report(wave_stores["rank4"], foreign)
+    assert (foreign / "notes.txt").read_text() == "keep"
+    bad = runner.invoke(app, ["report", str(tmp_path / "none.zarr")])
+    assert bad.exit_code == 2 and "does not exist" in bad.output and "Traceback" not in bad.output

@@ -1,0 +1,115 @@
+"""snaplift forecast: fields on their grids, in xarray, against an analytic archive."""
+
+from __future__ import annotations
+
+import shutil
+import sys
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+import xarray as xr
+import yaml
+import zarr
+from typer.testing import CliRunner
+
+from snaplift.cli import app
+from snaplift.errors import ArchiveError, ResultStoreError
+from snaplift.results.forecast_output import forecast_dataset, write_forecast
+from snaplift.workflow.runner import run_workflow
+
+runner = CliRunner()
+sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
+from conftest import DT, FITTED, NX, N_SNAPSHOTS, wave_values  # noqa: E402
+
+
+def _exact(first: int, steps: int) -> np.ndarray:
+    # the closed-form travelling waves (tests/conftest.py) at snapshots first .. first + steps
+    return wave_values(DT * np.arange(first, first + steps + 1), np.arange(NX, dtype=np.float64))
+
+
+def test_forecast_beyond_the_fit_matches_the_waves(wave_stores: dict[str, Path]) -> None:
+    # fitted on snapshots 0..59; from snapshot 59 the forecast runs into the 40 archive snapshots the
+    # fit never saw, and beyond the archive; the growing and decaying waves are a linear system, so
+    # DMD continues them exactly (Schmid 2010): analytic solution to 1e-8 of its largest value
+    steps = 50
+    ds = forecast_dataset(wave_stores["rank6"], -1, steps, compare=True)
+    exact = _exact(FITTED - 1, steps)
+    scale = np.abs(exact).max()
+    np.testing.assert_allclose(ds["p"].values, 0.5 * exact, rtol=0, atol=1e-8 * scale)
+    np.testing.assert_allclose(ds["u"].values, np.repeat(exact[:, None, :], 6, axis=1), rtol=0, atol=1e-8 * scale)
+    np.testing.assert_allclose(ds["w"].values, np.broadcast_to(2 * exact[:, None, None, :], ds["w"].shape),
+                               rtol=0, atol=2e-8 * scale)
+    np.testing.assert_allclose(ds["time"].values, DT * np.arange(FITTED - 1, FITTED + steps), rtol=1e-12)
+    assert ds["u"].dims == ("step", "u_y", "u_x") and ds["w"].dims[0] == "step"
+    # the archive holds snapshots up to 99: steps 0..40 overlap it, 41..50 do not
+    overlap = np.arange(FITTED - 1, N_SNAPSHOTS)
+    np.testing.assert_array_equal(ds["archive_snapshot"].values[: overlap.size], overlap)
+    assert np.all(ds["archive_snapshot"].values[overlap.size:] == -1)
+    for name in ("p", "u", "w"):
+        error = ds[f"error_{name}"].values
+        assert np.all(error[: overlap.size] < 1e-8), name  # relative error against the archive
+        assert np.all(np.isnan(error[overlap.size:]))
+    assert "valid only near the data" in ds.attrs["caution"]
+
+
+def test_forecast_written_and_read_back_by_xarray(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    ds = forecast_dataset(wave_stores["rank6"], 10, 5)
+    path = write_forecast(ds, tmp_path / "f.zarr")
+    back = xr.open_zarr(path).load()
+    np.testing.assert_array_equal(back["p"].values, ds["p"].values)
+    np.testing.assert_array_equal(back["time"].values, ds["time"].values)
+    np.testing.assert_allclose(back["p"].values, 0.5 * _exact(10, 5), atol=1e-8)
+    assert "engineering judgement" in back.attrs["caution"]
+    write_forecast(ds, path)  # our own forecast is replaced
+    foreign = tmp_path / "other.zarr"
+    foreign.mkdir()
+    (foreign / "data.txt").write_text("keep me")
+    with pytest.raises(ResultStoreError, match="not a forecast written by snaplift"):
+        write_forecast(ds, foreign)
+    assert (foreign / "data.txt").read_text() == "keep me"
+
+
+def test_forecast_command(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    out = runner.invoke(app, ["forecast", str(wave_stores["rank6"]), "--from", "59", "--steps", "45", "--compare",
+                              "--out", str(tmp_path / "f.zarr")])
+    assert out.exit_code == 0, out.output
+    assert "relative error against the archive" in out.output
+    assert "steps 41..45 lie beyond the archive" in out.output
+    assert "caution:" in out.output and "valid only near the data" in out.output
+    back = xr.open_zarr(tmp_path / "f.zarr")
+    assert float(back["error_u"].max()) < 1e-8
+    bad = runner.invoke(app, ["forecast", str(wave_stores["rank6"]), "--from", "60", "--steps", "3"])
+    assert bad.exit_code == 2 and "snapshot must be a column index in -60..59" in bad.output
+    # a forecast that cannot fit in memory is refused before any of it is computed
+    huge = runner.invoke(app, ["forecast", str(wave_stores["rank6"]), "--steps", str(10**12)])
+    assert huge.exit_code == 2 and "forecast fewer steps at a time" in huge.output
+
+
+def test_compare_needs_the_archive(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    store = tmp_path / "copy.zarr"
+    shutil.copytree(wave_stores["rank4"], store)
+    root = zarr.open_group(str(store), mode="r+")
+    root.attrs["archive"] = str(tmp_path / "gone.h5")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        zarr.consolidate_metadata(str(store))
+    with pytest.raises(ArchiveError, match="gone.h5.*is not there any more"):
+        forecast_dataset(store, 0, 3, compare=True)
+
+
+def test_compare_on_an_archive_of_two_runs(wave_stores: dict[str, Path], tmp_path: Path) -> None:
+    # two runs (one file each, relative paths in the workflow): the forecast from the first
+    # run's start overlaps only that run's snapshots, never the next run's
+    for name in ("one.h5", "two.h5"):
+        shutil.copy(wave_stores["archive"], tmp_path / name)
+    workflow = {"archive": {"path": ["one.h5", "two.h5"], "fields": ["p"], "time": "t"},
+                "compress": {"method": "tsqr", "rank": 6}, "output": {"path": "runs.zarr"}, "cluster": "threads"}
+    (tmp_path / "runs.yaml").write_text(yaml.safe_dump(workflow))
+    store = run_workflow(tmp_path / "runs.yaml").path
+    ds = forecast_dataset(store, 0, N_SNAPSHOTS + 5, compare=True)
+    snapshots = ds["archive_snapshot"].values
+    np.testing.assert_array_equal(snapshots[:N_SNAPSHOTS], np.arange(N_SNAPSHOTS))
+    assert np.all(snapshots[N_SNAPSHOTS:] == -1)
+    assert np.nanmax(ds["error_p"].values) < 1e-8  # the waves again (tests/conftest.py)
