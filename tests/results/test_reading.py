@@ -3,6 +3,8 @@ read the same way; where the store carries coordinates and units, every output u
 
 from __future__ import annotations
 
+import dataclasses
+
 import shutil
 import warnings
 import xml.etree.ElementTree as ET
@@ -28,11 +30,12 @@ def _annotate(store: Path) -> None:
     root = zarr.open_group(str(store), mode="r+")
     modes = root["modes"]
     for name in ("u_x", "p_x", "w_x"):
-        array = modes.create_array(name, shape=(32,), dtype="float64", dimension_names=(name,), fill_value=None,
+        array = modes.create_array(name, shape=(32,), dtype="float64", dimension_names=(name,), fill_value=None, overwrite=True,
                                    attributes={"units": "m", "long_name": "streamwise position"})
         array[...] = X_COORDINATE
     frequency = modes.create_array("frequency", shape=root["spectrum/frequency"].shape, dtype="float64",
-                                   dimension_names=("mode",), fill_value=None, attributes={"units": "Hz"})
+                                   dimension_names=("mode",), fill_value=None, attributes={"units": "Hz"},
+                                   overwrite=True)
     frequency[...] = root["spectrum/frequency"][...]
     for name in ("u", "p", "w"):
         modes[name].attrs.update({"units": "m/s", "long_name": f"velocity {name}", "coordinates": "frequency"})
@@ -40,7 +43,8 @@ def _annotate(store: Path) -> None:
                                    "time_unit_seconds": 1.0})
     root["diagnostics/time"].attrs.update({"units": "s", "long_name": "time"})
     peak = root["spectrum"].create_array("peak_u", shape=root["spectrum/frequency"].shape, dtype="float64",
-                                         dimension_names=("mode",), fill_value=None, attributes={"units": "m/s"})
+                                         dimension_names=("mode",), fill_value=None, attributes={"units": "m/s"},
+                                         overwrite=True)
     peak[...] = 1.0
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
@@ -61,8 +65,11 @@ def test_plain_store_falls_back_to_index_positions(wave_stores: dict[str, Path])
     axes = field_axes(view.modes, "u")
     assert [a.dim for a in axes] == ["u_y", "u_x"] and all(a.is_index for a in axes)
     np.testing.assert_array_equal(axes[1].values, np.arange(32))
-    assert view.field_units("u") == "" and view.frequency_unit == "1/time unit"
-    # without spectrum/peak_<field>: |amplitude| x max |mode| (what the forecast multiplies)
+    # the archive gives no units: the field is marked "1" and the spectrum is per time unit
+    assert view.field_units("u") == "1" and view.frequency_unit == "1/(time unit)"
+    # a store written before spectrum/peak_<field> existed: |amplitude| x max |mode|
+    # (what the forecast multiplies)
+    view = dataclasses.replace(view, spectrum=view.spectrum.drop_vars(["peak_p", "peak_u", "peak_w"]))
     peak = view.peak_amplitude("p")
     expected = np.abs(view.spectrum["amplitude"].values) * np.abs(view.modes["p"].values).max(axis=1)
     np.testing.assert_allclose(peak, expected, rtol=1e-14)

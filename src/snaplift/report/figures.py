@@ -179,7 +179,10 @@ def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
                           linestyle="-" if flag else ":")
                 ax.scatter(frequency[chosen], peak[chosen], marker=marker, color=PALETTE[key], s=34,
                            edgecolors="#1a1a1a", linewidths=0.5, zorder=3)
-        ax.set_ylabel(label(f"peak {view.field_name(name)}", view.field_units(name)), fontsize=9)
+        # the short name on the axis (a long one runs into the next panel), the long one inside
+        ax.set_ylabel(label(f"peak {name}", view.field_units(name)), fontsize=9)
+        ax.text(0.005, 0.97, view.field_name(name), transform=ax.transAxes, fontsize=8, va="top",
+                color="#444444")
         ax.set_yscale("log")
         ax.set_ylim(floor, top_peak * 2)
         _style(ax)
@@ -367,7 +370,7 @@ def probe_figure(probes: list[Probe], time_unit: str, note: str) -> Figure:
         ax.set_ylabel(label(probe.field, probe.units), fontsize=9)
         ax.set_title(f"{probe.field} at {probe.where}", loc="left", fontsize=9)
         _style(ax)
-    axes[0].legend(fontsize=8, loc="upper right", framealpha=0.9, ncols=3)
+    axes[0].legend(fontsize=8, loc="lower right", bbox_to_anchor=(1.0, 1.0), frameon=False, ncols=3)  # above the data
     axes[-1].set_xlabel(label("time", time_unit))
     figure.suptitle("forecast at the points of largest variance" + (f" ({note})" if note else ""), x=0.01,
                     ha="left", fontsize=11)

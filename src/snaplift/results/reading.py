@@ -58,7 +58,10 @@ def _from_zarr(node: zarr.Group) -> xr.Dataset:
         dims = tuple(array.metadata.dimension_names or (f"{name}_{i}" for i in range(array.ndim)))
         attrs = {k: v for k, v in dict(array.attrs).items() if k != "_FillValue"}
         variables[name] = xr.Variable(dims, np.asarray(array[...]), attrs)
-    coordinates = {name: v for name, v in variables.items() if v.dims == (name,)}
+    # CF: dimension coordinates, and the names a variable lists in its ``coordinates``
+    # attribute (xarray decodes the same way and keeps the attribute out of ``attrs``)
+    listed = {name for v in variables.values() for name in str(v.attrs.pop("coordinates", "")).split()}
+    coordinates = {name: v for name, v in variables.items() if v.dims == (name,) or name in listed}
     data = {name: v for name, v in variables.items() if name not in coordinates}
     return xr.Dataset(data, coords=coordinates, attrs=dict(node.attrs))
 
