@@ -46,6 +46,7 @@ from snaplift.workflow.fingerprint import (
     archive_fingerprint,
     classify_archive,
     stage_fingerprints,
+    verification_note,
     workflow_identity,
 )
 from snaplift.workflow.lease import Lease
@@ -205,6 +206,8 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
             store = StagedStore(output, identity=workflow_identity(workflow, archive_path), overwrite=overwrite)
             if store.discarded:
                 say(store.discarded)
+            if overwrite:
+                say("--overwrite: every stage is recomputed from the archive")
             summary = _run_stages(workflow, text, folder, store, lease, reporter, say, started)
     except KeyboardInterrupt as error:
         command = f"snaplift run {workflow_path}" if workflow_path else "the same run"
@@ -269,9 +272,12 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
             "bytes_read": classification.bytes_read, "bytes_sampled": fingerprint_now["bytes_sampled"],
             "archive": fingerprint_now, "samples": classification.samples, "identity": classification.identity,
             "classification": classification.state, "classification_reason": classification.reason,
+            "verified_blocks": [list(block) for block in classification.verified],
             "memory_baseline": int(scanned.plan.baseline_bytes) if scanned.plan is not None else 0,
             "started": stage_started.isoformat(), "finished": _now().isoformat()})
         reporter.end("scan", f"archive {classification.state} ({classification.reason})")
+        if classification.state == "grown":
+            warnings.append(verification_note(classification))
         warnings.extend(scanned.warnings)
         faults.finished("scan")
 
