@@ -23,15 +23,20 @@ def _user_errors(function: Callable[..., Any]) -> Callable[..., Any]:
 
     @functools.wraps(function)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
-        from snaplift.errors import SnapliftError
+        from snaplift.errors import SnapliftError, one_line
 
         try:
             return function(*args, **kwargs)
         except SnapliftError as error:
-            typer.echo(f"snaplift: error: {error}", err=True)
+            typer.echo(f"snaplift: error: {one_line(error)}", err=True)
             raise typer.Exit(2) from None
         except NotImplementedError as error:  # a valid request this version does not support
-            typer.echo(f"snaplift: not supported yet: {error}", err=True)
+            typer.echo(f"snaplift: not supported yet: {one_line(error)}", err=True)
+            raise typer.Exit(2) from None
+        except OSError as error:  # the file system refused (disk full, read-only, permissions ...)
+            where = f" {error.filename}" if error.filename else ""
+            typer.echo(f"snaplift: error: file system error{where}: {one_line(error.strerror or error)}; "
+                       "nothing was committed to the result store; fix the cause and run again", err=True)
             raise typer.Exit(2) from None
         except KeyboardInterrupt:
             typer.echo("snaplift: interrupted; nothing was committed to the result store", err=True)

@@ -87,6 +87,21 @@ class Compressed:
     info: dict[str, object] = field(default_factory=dict)
 
 
+def _check_rank_fits(workflow: Workflow, info: Any, m: int) -> None:
+    """compress.rank above the matrix size is refused before any plan (whose numbers would mislead)."""
+    if workflow.state_source == "state":
+        return  # a small raw state: compress keeps min(n, m) for the diagnostics only
+    lifted = lifted_info(info, workflow)
+    n = sum(f.n_points for name, f in lifted.fields.items()
+            if lifted is not info or name in workflow.archive.fields)
+    rank = workflow.compress.rank
+    if rank > min(n, m):
+        raise ArchiveError(
+            f"compress.rank = {rank} exceeds what the data allow: the snapshot matrix has at most {n} points and "
+            f"{m} snapshots; use compress.rank <= {min(n, m)}"
+        )
+
+
 def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
                recorded_baseline: int | None = None) -> Scanned:
     """Open the archive, select snapshots, check times, plan tiles. Reads metadata only.
@@ -126,6 +141,7 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
             column_runs = delayed_run_lengths(selected_runs, lift.delays, lift.spacing)
         except ConfigError as error:
             raise ConfigError(f"lift delays on {reader.path}: {error}") from None
+    _check_rank_fits(workflow, info, int(columns.size))
     plan = plan_compress(workflow, info, scheduler, recorded_baseline=recorded_baseline)
     block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
     # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
