@@ -70,6 +70,9 @@ class ArchiveSection(_Section):
     snapshots: SnapshotRange = SnapshotRange()
     format: Literal["hdf5", "zarr", "series", "npy"] | None = None
     runs: str | None = Field(None, description="dataset with one run label per snapshot")
+    missing_chunks: Literal["error", "fill"] = Field(
+        "error", description="zarr: a chunk absent from the store is an error (default) or read as the "
+                             "array's declared fill value ('fill')")
 
     @field_validator("path")
     @classmethod

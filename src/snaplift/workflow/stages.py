@@ -112,7 +112,8 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
     section = workflow.archive
     # the workflow names its fields: a one-value-per-snapshot (1-D) dataset is then a field too
     reader = open_archive(resolve_path(folder, section.path), format=section.format, fields=list(section.fields),
-                          time=section.time)
+                          time=section.time,
+                          missing_chunks=section.missing_chunks if section.missing_chunks != "error" else None)
     info = reader.describe()
     _check_state_size(workflow, info)
     for name in section.fields:
