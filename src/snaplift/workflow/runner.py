@@ -458,6 +458,9 @@ def _compress(workflow: Workflow, scanned: Any, scheduler: Scheduler, store: Sta
         n_points = scanned.lifted_rows or sum(info.fields[f].n_points for f in workflow.archive.fields)
         width = workflow.compress.rank + workflow.compress.oversample
         check_free_space(store.area, 16 * n_points * (2 * width + workflow.compress.rank), "compress checkpoints and basis")
+        if scanned.plan is not None:
+            # every pass's tiles, so the bar reaches 100 % when compress does, not after the first pass
+            reporter.expect(int(scanned.plan.passes) * int(scanned.plan.n_tiles))
         result = _compress_with_retries(workflow, scanned, scheduler, keywords, warnings)
         stored.write_compressed(store.writer, result, scheduler.compute, scale_setting=workflow.prepare.scale)
         full = store.finish("compress", {

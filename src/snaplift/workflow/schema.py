@@ -389,6 +389,7 @@ class Workflow(_Section):
                 f"fit.rank ({self.fit.rank}) cannot exceed compress.rank ({self.compress.rank})"
             )
         check_lift(list(self.lift), list(self.archive.fields), self.fit.method)
+        _check_formula_names(self)
         if isinstance(self.prepare.scale, dict):
             expected = set(self.archive.fields) | set(scaled_lifted_names(self))
             missing = sorted(expected - set(self.prepare.scale))
@@ -453,6 +454,19 @@ def parse_bytes(value: str | int) -> int:
             f"{value!r} is not a size; expected a number with a unit such as 512MB, 2GiB, 1.5TB"
         )
     return int(amount * _UNITS[unit])
+
+
+def _check_formula_names(workflow: Any) -> None:
+    """Formulas on the coefficients may use only ``c0 .. c{k-1}``: checked now, not after compress."""
+    from snaplift.lifting.expressions import check_variables, parse_formulas
+
+    count = workflow.fit.coefficients or workflow.compress.rank
+    for index, entry in enumerate(workflow.lift):
+        if entry.kind == "expressions" and entry.on == "coefficients":
+            try:
+                check_variables(parse_formulas(entry.formulas), [f"c{i}" for i in range(count)])
+            except ConfigError as error:
+                raise ValueError(f"lift[{index}]: {error}") from None
 
 
 def _format_validation_error(error: ValidationError, source: str) -> str:

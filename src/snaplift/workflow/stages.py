@@ -87,6 +87,47 @@ class Compressed:
     info: dict[str, object] = field(default_factory=dict)
 
 
+def input_notes(reader: Reader, info: ArchiveInfo, workflow: Workflow) -> list[str]:
+    """What is accepted but changes what the user gets: zero weights, integer or complex fields.
+
+    Weights of zero at every kept point are an error (nothing would count); weights of
+    zero at some points are said with their count (those points are excluded).
+    """
+    section = workflow.archive
+    notes: list[str] = []
+    for name in section.fields:
+        f = info.fields[name]
+        kind = np.dtype(f.stored_dtype).kind
+        if kind in "iub":
+            notes.append(f"field '{name}' holds {np.dtype(f.stored_dtype).name} values; they are converted to "
+                         "float64 (accumulation is always in float64)")
+        elif kind == "c":
+            notes.append(f"field '{name}' is complex ({np.dtype(f.stored_dtype).name}): compress and fit.method "
+                         "dmd and optimized handle it (complex128); edmd and lift entries on the state need real "
+                         "data")
+        weight_name = section.weights.get(name) if isinstance(section.weights, dict) else section.weights
+        if weight_name is None:
+            continue
+        mask_name = section.mask.get(name) if isinstance(section.mask, dict) else section.mask
+        try:
+            weights = np.asarray(reader.read_variable(weight_name), dtype=np.float64).ravel()
+            kept = (np.ones(weights.size, dtype=bool) if mask_name is None
+                    else ~np.asarray(reader.read_variable(mask_name)).astype(bool).ravel())
+        except (KeyError, ValueError, OSError):
+            continue  # a missing or misshapen dataset is reported, with its name, by the matrix
+        if kept.size != weights.size:
+            continue
+        zero = int(np.count_nonzero(weights[kept] == 0))
+        if zero and zero == int(np.count_nonzero(kept)):
+            raise ArchiveError(
+                f"{reader.path}: weights '{weight_name}' are zero at every kept point of field '{name}' "
+                f"({zero} points): nothing would count; give positive weights (cell areas or volumes)")
+        if zero:
+            notes.append(f"weights '{weight_name}' are zero at {zero} of {int(np.count_nonzero(kept))} kept points "
+                         f"of field '{name}'; those points are excluded from the fit and the modes")
+    return notes
+
+
 def _check_rank_fits(workflow: Workflow, info: Any, m: int) -> None:
     """compress.rank above the matrix size is refused before any plan (whose numbers would mislead)."""
     if workflow.state_source == "state":
@@ -149,7 +190,9 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
     snapshot_block = max(1, block // section.snapshots.every)
     lifted = lifted_info(info, workflow)
     lifted_rows = sum(f.n_points for f in lifted.fields.values()) if lifted is not info else 0
+    notes = input_notes(reader, info, workflow)
     return Scanned(reader, index[columns], times[columns], dt, snapshot_block, plan.memory_bytes, plan=plan,
+                   warnings=tuple(notes),
                    run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
                    selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
                    lifted_rows=int(lifted_rows))
