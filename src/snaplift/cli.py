@@ -80,7 +80,8 @@ def demo(
 @_user_errors
 def run(
     workflow: Annotated[Path, typer.Argument(help="workflow YAML file")],
-    overwrite: Annotated[bool, typer.Option(help="replace a result store written by a different workflow")] = False,
+    overwrite: Annotated[bool, typer.Option(help="recompute every stage from the archive (reuse nothing); also "
+                                                 "replace a result store written by a different workflow")] = False,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="validate and say what would be written")] = False,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="no progress display; print only the result path")] = False,
     log: Annotated[Optional[Path], typer.Option("--log", help="append time-stamped progress lines to this file (batch jobs)")] = None,
