@@ -296,6 +296,33 @@ def write_fit_details(writer: StoreWriter, outcome: Any, order: np.ndarray, time
     writer.group_attrs("operator", attrs)
 
 
+def _basis_field_rows(basis: Any, rows: Any, compute: Any) -> np.ndarray:
+    """One field's rows of the (lazy) basis, one basis vector at a time into one array.
+
+    Computing the whole slice at once held every chunk's decoding temporaries and then
+    the concatenated copy: several times the n x rank the result needs (issue 11).
+    """
+    part = basis[rows.offset:rows.stop]
+    if isinstance(part, np.ndarray):
+        return part
+    out = np.empty(part.shape, dtype=part.dtype, order="F")
+    for column in range(part.shape[1]):
+        (out[:, column],) = compute(part[:, column])
+    return out
+
+
+def _basis_times(basis: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
+    """``basis @ coefficients`` without a complex copy of a real basis (numpy's mixed-type
+    matmul converts the whole n x rank basis to complex first: issue 11, the modes stage
+    went over compress.memory by that copy)."""
+    if np.iscomplexobj(basis) or not np.iscomplexobj(coefficients):
+        return basis @ coefficients
+    out = np.empty(basis.shape[0], dtype=np.result_type(basis, coefficients))
+    out.real = basis @ np.ascontiguousarray(coefficients.real)
+    out.imag = basis @ np.ascontiguousarray(coefficients.imag)
+    return out
+
+
 def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarray, compute: Any) -> None:
     """Physical modes chunk by chunk, fixed points (affine fits), reconstruction error.
 
@@ -319,12 +346,11 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
         fixed_point[: fit.fixed_point.size] = fit.fixed_point
         writer.array("operator", "fixed_point_coefficient", fixed_point, ("rank",))
     for rows in _mode_fields(matrix):
-        (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
-        basis_rows = np.asarray(basis_rows)
+        basis_rows = _basis_field_rows(lowrank.basis, rows, compute)
         mode_array = writer.empty("modes", rows.name, (n_modes, *rows.grid), np.complex128,
                                   ("mode", *dims[rows.name]), chunks=(1, *rows.grid))
         for k in range(n_modes):
-            values = basis_rows @ modes_rows[:, k]
+            values = _basis_times(basis_rows, modes_rows[:, k])
             mode_array[k] = rows.expand(to_physical(values, rows, preparation, add_mean=False))
         if preparation.mean is not None:
             mean = to_physical(preparation.mean[rows.offset:rows.stop], rows, _unscaled(preparation), add_mean=False)
