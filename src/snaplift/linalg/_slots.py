@@ -61,14 +61,20 @@ class _Slot:
         return block
 
     def value(self) -> np.ndarray:
-        """The whole ``shape`` accumulator (the row blocks put in place; one block is returned as is)."""
+        """The whole ``shape`` accumulator (the row blocks put in place; one block is returned as is).
+
+        Empties the slot: each row block is released as soon as it is copied, so the
+        slot's memory moves into the result rather than being held twice (issue 11: with
+        many row blocks the copies of every slot at once went over compress.memory).
+        """
         if len(self.blocks) == 1:
             (r0, r1), block = next(iter(self.blocks.items()))
             if (r0, r1) == (0, self.shape[0]):
+                self.blocks.clear()
                 return block
         out = np.zeros(self.shape, dtype=self.dtype, order="F")
-        for (r0, r1), block in sorted(self.blocks.items()):
-            out[r0:r1] += block
+        for r0, r1 in sorted(self.blocks):
+            out[r0:r1] += self.blocks.pop((r0, r1))
         return out
 
 

@@ -87,10 +87,14 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
                                    "scale": scale_setting if isinstance(scale_setting, str) else dict(scale_setting),
                                    "lifted": lifted})
     for rows in matrix.fields:
-        (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
-        physical = to_physical(np.asarray(basis_rows).T, rows, preparation, add_mean=False)
-        writer.array("basis", rows.name, rows.expand(physical), ("rank", *dims[rows.name]),
-                     chunks=(1, *rows.grid))
+        # one basis vector at a time: the field's temporaries are one vector, not n x rank (issue 11)
+        basis_rows = _basis_field_rows(lowrank.basis, rows, compute)
+        dtype = np.result_type(basis_rows, float)
+        basis_array = writer.empty("basis", rows.name, (basis_rows.shape[1], *rows.grid), dtype,
+                                   ("rank", *dims[rows.name]), chunks=(1, *rows.grid))
+        for vector in range(basis_rows.shape[1]):
+            basis_array[vector] = rows.expand(to_physical(basis_rows[:, vector], rows, preparation, add_mean=False))
+        del basis_rows
         if rows.keep is not None:
             mask = np.ones(int(np.prod(rows.grid)), dtype=bool)
             mask[rows.keep] = False
