@@ -42,6 +42,7 @@ from typing import Any
 import numpy as np
 
 from snaplift import __version__
+from snaplift._process_memory import trim_heap
 from snaplift.cluster import Scheduler, TaskProgress, open_scheduler
 from snaplift.errors import ConfigError, ResultStoreError
 from snaplift.results import stages as stored
@@ -360,6 +361,7 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
         lease.check()
         compressed, records["compress"] = _compress(workflow, scanned, scheduler, store, fingerprints, classification,
                                                     reporter, faults, warnings)
+        trim_heap()  # what compress freed goes back to the system before fit and modes allocate
         n_modes, fit_records = _fit_and_modes(workflow, scanned, scheduler, store, fingerprints, compressed,
                                               reporter, faults, warnings)
         records.update(fit_records)
@@ -582,6 +584,7 @@ def _fit_and_modes(workflow: Workflow, scanned: Any, scheduler: Scheduler, store
     reporter.begin("modes", f"{n_modes} modes on the grid")
     started = _now()
     check_free_space(store.area, stored.modes_bytes(compressed.matrix, n_modes), "the modes")
+    trim_heap()
     store.begin("modes")
     stored.write_modes(store.writer, fit, compressed, order, scheduler.compute)
     records["modes"] = (store.finish("modes", {
