@@ -129,3 +129,35 @@ def test_lease_takeover_warning_is_one_line_without_source(faults) -> None:
     text = outcome.stdout + outcome.stderr
     assert "took over the lease" in text
     assert "lease.acquire()" not in text and "RuntimeWarning" not in text
+
+
+def test_compress_progress_reaches_100_percent_only_at_the_end(faults) -> None:
+    faults.hdf5()
+    log = faults.folder / "run.log"
+    outcome = faults.cli("run", faults.workflow(), "-q", "--log", log)
+    assert outcome.code == 0, outcome.stderr
+    import re
+
+    lines = [line for line in log.read_text().splitlines() if re.search(r"compress: \d+ % \(", line)]
+    totals = {int(re.search(r"of (\d+) units", line).group(1)) for line in lines}
+    # randomized, q = 1: 4 passes (Halko et al. 2011: 2 + 2q), every pass's tiles announced up front
+    assert len(totals) == 1, lines
+    assert sum("compress: 100 %" in line for line in lines) == 1 and "100 %" in lines[-1]
+    assert totals.pop() % 4 == 0
+
+
+def test_unknown_name_in_a_formula_on_the_state_is_caught_before_compress(faults) -> None:
+    with h5py.File(faults.folder / "probe.h5", "w") as h5:
+        u = faults.data()
+        h5["p"] = u[:, 0, :2]  # two probes: variables p_0, p_1
+        h5["t"] = 0.1 * np.arange(24)
+    workflow = faults.workflow(archive="probe.h5", fit={"method": "edmd", "rank": 3},
+                               lift=[{"kind": "expressions", "on": "state", "formulas": {"q": "p_0 * p_7"}}])
+    import yaml
+
+    data = yaml.safe_load(workflow.read_text())
+    data["archive"]["fields"] = ["p"]
+    workflow.write_text(yaml.safe_dump(data))
+    outcome = faults.cli("run", workflow)
+    faults.one_line_error(outcome, "lift[0]", "unknown name 'p_7'", "p_0, p_1")
+    faults.no_complete_store(faults.folder / "r.zarr")

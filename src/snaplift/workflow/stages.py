@@ -30,7 +30,7 @@ from snaplift.errors import ArchiveError, ConfigError, FieldNotFoundError, TimeS
 from snaplift.lifting import delayed_run_lengths
 from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation
-from snaplift.workflow.fit_methods import FitOutcome, fit_outcome
+from snaplift.workflow.fit_methods import FitOutcome, fit_outcome, state_variables
 from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path, scale_of
 
 __all__ = ["Scanned", "Compressed", "scan_stage", "compress_stage", "fit_stage", "plan_compress",
@@ -128,6 +128,24 @@ def input_notes(reader: Reader, info: ArchiveInfo, workflow: Workflow) -> list[s
     return notes
 
 
+def _check_state_formulas(workflow: Workflow, reader: Reader, index: np.ndarray) -> None:
+    """Formulas on the raw state may use only its variables: checked at scan, not after compress."""
+    from snaplift.lifting.expressions import check_variables, parse_formulas
+
+    entries = [(i, e) for i, e in enumerate(workflow.lift) if e.kind == "expressions"]
+    if not entries:
+        return
+    section = workflow.archive
+    matrix = build_snapshot_matrix(reader, list(section.fields), snapshots=index, snapshot_block=1,
+                                   weights=section.weights, mask=section.mask)
+    variables = state_variables(matrix)
+    for position, entry in entries:
+        try:
+            check_variables(parse_formulas(entry.formulas), variables)
+        except ConfigError as error:
+            raise ConfigError(f"lift[{position}]: {error}") from None
+
+
 def _check_rank_fits(workflow: Workflow, info: Any, m: int) -> None:
     """compress.rank above the matrix size is refused before any plan (whose numbers would mislead)."""
     if workflow.state_source == "state":
@@ -184,6 +202,8 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler, *,
         except ConfigError as error:
             raise ConfigError(f"lift delays on {reader.path}: {error}") from None
     _check_rank_fits(workflow, info, int(columns.size))
+    if workflow.state_source == "state":
+        _check_state_formulas(workflow, reader, index)
     plan = plan_compress(workflow, info, scheduler, recorded_baseline=recorded_baseline)
     block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
     # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
