@@ -99,8 +99,13 @@ def run(
     from snaplift.workflow.schema import load_workflow, resolve_path
 
     if dry_run:
+        import os
+
+        from snaplift.workflow.guards import check_output_path
+
         wf, _, folder = load_workflow(workflow)
-        output = resolve_path(folder, wf.output.path)
+        output = os.path.abspath(resolve_path(folder, wf.output.path))
+        check_output_path(Path(output), resolve_path(folder, wf.archive.path))
         typer.echo(f"workflow {workflow} is valid; it would write {output} (staging in {output}.staging, "
                    f"lease {output}.lease) on a {wf.cluster.kind!r} cluster")
         return

@@ -10,10 +10,7 @@ import errno
 import resource
 import subprocess
 import sys
-import time
-from pathlib import Path
 
-import numpy as np
 import pytest
 import zarr
 

@@ -7,7 +7,6 @@ including writing the basis and the modes, stays under ``compress.memory``.
 
 from __future__ import annotations
 
-import json
 import re
 import subprocess
 import sys

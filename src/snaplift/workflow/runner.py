@@ -23,9 +23,6 @@ from __future__ import annotations
 
 import contextlib
 import datetime as _dt
-import errno
-import fnmatch
-import hashlib
 import inspect
 import os
 import platform
@@ -44,7 +41,6 @@ import numpy as np
 from snaplift import __version__
 from snaplift._process_memory import trim_heap
 from snaplift.cluster import Scheduler, TaskProgress, open_scheduler
-from snaplift.errors import ConfigError, ResultStoreError
 from snaplift.results import stages as stored
 from snaplift.results.staging import StagedStore, check_free_space
 from snaplift.workflow import stages as stage_functions
@@ -55,6 +51,7 @@ from snaplift.workflow.fingerprint import (
     verification_note,
     workflow_identity,
 )
+from snaplift.workflow.guards import WRITE_ERRNOS, capped_workflow_text, check_output_path, write_error
 from snaplift.workflow.lease import Lease, LeaseLostError
 from snaplift.workflow.progress import ProgressReporter
 from snaplift.workflow.schema import Workflow, load_workflow, resolve_path, section_fingerprint
@@ -240,8 +237,8 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
                 "is the one that counts") from None
         if store is not None and not store.has_progress:
             store.abort()
-        if isinstance(error, OSError) and error.errno in _WRITE_ERRNOS:
-            raise _write_error(error, output) from None
+        if isinstance(error, OSError) and error.errno in WRITE_ERRNOS:
+            raise write_error(error, output) from None
         raise
     finally:
         lease.release()
@@ -255,57 +252,12 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
     return summary
 
 
-#: errors of the file system the result is written to, each with its fix
-_WRITE_ERRNOS = {
-    errno.ENOSPC: "free some space or choose another output.path",
-    errno.EDQUOT: "free some space within your quota or choose another output.path",
-    errno.EFBIG: "raise the file-size limit (ulimit -f) or choose another output.path",
-    errno.EROFS: "the file system is read-only: choose another output.path",
-    errno.EACCES: "you may not write there: choose another output.path or fix its permissions",
-    errno.EPERM: "you may not write there: choose another output.path or fix its permissions",
-}
-
-
-def _write_error(error: OSError, output: Path) -> ResultStoreError:
-    where = error.filename or output
-    return ResultStoreError(
-        f"cannot write {where}: {error.strerror or error}; {_WRITE_ERRNOS[error.errno]}; the previous result "
-        f"store {output} (if any) is unchanged and finished stages are kept for the next run")
-
-
 def _lease_lost(lease: Lease) -> bool:
     try:
         lease.check()
     except LeaseLostError:
         return True
     return False
-
-
-def check_output_path(output: Path, archive: str | list[str]) -> None:
-    """Refuse an output (or its staging area, old store or lease) inside an archive, or an archive inside it."""
-    output = Path(os.path.abspath(output))
-    if output == Path(output.anchor) or output.name in ("", ".", ".."):
-        raise ConfigError(f"output.path {str(output)!r} is not a store path; give a folder name such as "
-                          "results/run.zarr")
-    own = [output, output.with_name(output.name + ".staging"), output.with_name(output.name + ".old"),
-           output.with_name(output.name + ".lease")]
-    for item in archive if isinstance(archive, list) else [archive]:
-        text = str(item)
-        if any(ch in text for ch in "*?["):
-            # a glob of per-snapshot files must never match snaplift's own files
-            pattern = os.path.abspath(text)
-            if any(fnmatch.fnmatch(str(p), pattern) or fnmatch.fnmatch(str(p / "zarr.json"), pattern)
-                   or fnmatch.fnmatch(str(p / "c" / "0"), pattern) for p in own):
-                raise ConfigError(f"the archive glob {text} would match snaplift's own output {output}; choose "
-                                  "an output.path the glob does not match")
-            continue
-        root = Path(os.path.abspath(text))
-        if root.is_dir() and any(p == root or root in p.parents for p in own):
-            raise ConfigError(
-                f"output.path {output} is inside the archive {text}: results would be written into the input "
-                "(and read back as data); choose an output.path outside it")
-        if root == output or output in root.parents:
-            raise ConfigError(f"output.path {output} contains the archive {text}; choose another output.path")
 
 
 def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore, lease: Lease,
@@ -380,7 +332,7 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
     bytes_read = sum(int(r.get("bytes_read", 0)) for r in records.values())
     result_passes = int(records["compress"].get("passes", 0))
     path = store.commit({
-        "workflow": _capped_workflow_text(text),
+        "workflow": capped_workflow_text(text),
         "workflow_fingerprint": section_fingerprint(workflow),
         "archive": str(scanned.reader.path),
         "archive_format": scanned.reader.format_name,
@@ -593,18 +545,6 @@ def _fit_and_modes(workflow: Workflow, scanned: Any, scheduler: Scheduler, store
     reporter.end("modes", "computed")
     faults.finished("modes")
     return n_modes, records
-
-
-#: longest workflow text kept in the store's attributes (the file itself is at most 1 MiB)
-WORKFLOW_TEXT_LIMIT = 64 * 1024
-
-
-def _capped_workflow_text(text: str) -> str:
-    if len(text) <= WORKFLOW_TEXT_LIMIT:
-        return text
-    digest = hashlib.sha256(text.encode()).hexdigest()
-    return (text[:WORKFLOW_TEXT_LIMIT] + f"\n# ... cut: {len(text) - WORKFLOW_TEXT_LIMIT} more characters; "
-            f"sha256 of the whole text {digest}\n")
 
 
 def _strip(record: dict[str, Any]) -> dict[str, Any]:

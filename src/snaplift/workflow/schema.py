@@ -18,6 +18,7 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from snaplift.errors import ConfigError
+from snaplift.workflow._text import MAX_MESSAGE, MAX_WORKFLOW_BYTES, safe_load, shown, shorten
 from snaplift.workflow.lift_section import LiftEntry, check_lift, field_lift, state_source
 
 __all__ = [
@@ -488,23 +489,9 @@ def _format_validation_error(error: ValidationError, source: str) -> str:
         if not key:  # a rule across sections: its message names the keys
             parts.append(message)
             continue
-        shown = _shown(given)
-        parts.append(f"{shorten(key)} = {shown}: {shorten(message, MAX_MESSAGE // 2)}")
+        value = shown(given)
+        parts.append(f"{shorten(key)} = {value}: {shorten(message, MAX_MESSAGE // 2)}")
     return shorten(f"invalid workflow {source}: " + "; ".join(parts), MAX_MESSAGE)
-
-
-def _shown(given: Any) -> str:
-    """A short rendering of a value given by the user (never the whole of a large value)."""
-    if isinstance(given, dict):
-        return "{...}"
-    if isinstance(given, (list, tuple)) and len(given) > 20:
-        return f"[a list of {len(given)} values]"
-    if isinstance(given, str) and len(given) > MAX_SHOWN:
-        return json.dumps(given[:MAX_SHOWN]) + f"... ({len(given) - MAX_SHOWN} more characters)"
-    try:
-        return shorten(json.dumps(given, default=str))
-    except (TypeError, ValueError, RecursionError):
-        return shorten(repr(given))
 
 
 def _allowed_keys(loc: tuple[Any, ...]) -> list[str]:
@@ -560,73 +547,13 @@ def load_workflow(path: str | Path) -> tuple[Workflow, str, Path]:
         raise ConfigError(f"workflow file {path} is not UTF-8 text (byte {error.start}); is this the right file?") \
             from None
     try:
-        data = _safe_load(text, path)
+        data = safe_load(text, path)
     except yaml.YAMLError as error:
         mark = getattr(error, "problem_mark", None)
         where = f" line {mark.line + 1}, column {mark.column + 1}" if mark else ""
         raise ConfigError(f"workflow {path}{where} is not valid YAML: {getattr(error, 'problem', error)}") from None
     folder = path.resolve().parent
     return parse_workflow(data, source=str(path), folder=folder), text, folder
-
-
-#: largest workflow file read (a workflow is a few hundred bytes; this refuses data files given by mistake)
-MAX_WORKFLOW_BYTES = 2**20
-#: largest number of YAML nodes a workflow may expand to through aliases (``&a`` / ``*a``)
-MAX_WORKFLOW_NODES = 10_000
-#: longest value quoted in an error message, and longest message (characters)
-MAX_SHOWN = 200
-MAX_MESSAGE = 1500
-
-
-def _expanded_nodes(node: yaml.Node, memo: dict[int, int], active: set[int]) -> int:
-    """Nodes of the document with every alias expanded (shared nodes counted each time used)."""
-    key = id(node)
-    if key in memo:
-        return memo[key]
-    if key in active:  # a recursive alias: infinite expansion
-        return MAX_WORKFLOW_NODES + 1
-    active.add(key)
-    total = 1
-    if isinstance(node, yaml.SequenceNode):
-        for child in node.value:
-            total += _expanded_nodes(child, memo, active)
-            if total > MAX_WORKFLOW_NODES:
-                break
-    elif isinstance(node, yaml.MappingNode):
-        for name, value in node.value:
-            total += _expanded_nodes(name, memo, active) + _expanded_nodes(value, memo, active)
-            if total > MAX_WORKFLOW_NODES:
-                break
-    active.discard(key)
-    memo[key] = total
-    return total
-
-
-def _safe_load(text: str, path: Path) -> Any:
-    """``yaml.safe_load`` that refuses documents whose aliases expand beyond :data:`MAX_WORKFLOW_NODES` nodes."""
-    loader = yaml.SafeLoader(text)
-    try:
-        node = loader.get_single_node()
-        if node is None:
-            return None
-        if _expanded_nodes(node, {}, set()) > MAX_WORKFLOW_NODES:
-            raise ConfigError(f"workflow {path} expands to more than {MAX_WORKFLOW_NODES} values through YAML "
-                              "aliases (*name); write the values out or use fewer aliases")
-        return loader.construct_document(node)
-    finally:
-        loader.dispose()
-
-
-def shorten(text: str, limit: int = MAX_SHOWN) -> str:
-    """``text`` on one line, cut to ``limit`` characters with a note of how much was left out.
-
-    Example
-    -------
-    >>> shorten("a" * 300, 10)
-    'aaaaaaaaaa... (290 more characters)'
-    """
-    text = " ".join(str(text).split())
-    return text if len(text) <= limit else f"{text[:limit]}... ({len(text) - limit} more characters)"
 
 
 def resolve_path(folder: Path, value: Any) -> Any:
