@@ -71,15 +71,20 @@ def _user_errors(function: Callable[..., Any]) -> Callable[..., Any]:
 
     @functools.wraps(function)
     def wrapper(*args: Any, **kwargs: Any) -> Any:
-        from snaplift.errors import SnapliftError
+        from snaplift.errors import SnapliftError, one_line
 
         try:
             return function(*args, **kwargs)
         except SnapliftError as error:
-            typer.echo(f"snaplift: error: {error}", err=True)
+            typer.echo(f"snaplift: error: {one_line(error)}", err=True)
             raise typer.Exit(2) from None
         except NotImplementedError as error:  # a valid request this version does not support
-            typer.echo(f"snaplift: not supported yet: {error}", err=True)
+            typer.echo(f"snaplift: not supported yet: {one_line(error)}", err=True)
+            raise typer.Exit(2) from None
+        except OSError as error:  # the file system refused (disk full, read-only, permissions ...)
+            where = f" {error.filename}" if error.filename else ""
+            typer.echo(f"snaplift: error: file system error{where}: {one_line(error.strerror or error)}; "
+                       "nothing was committed to the result store; fix the cause and run again", err=True)
             raise typer.Exit(2) from None
         except KeyboardInterrupt:
             typer.echo("snaplift: interrupted; nothing was committed to the result store", err=True)
@@ -128,7 +133,8 @@ def demo(
 @_user_errors
 def run(
     workflow: Annotated[Path, typer.Argument(help="workflow YAML file")],
-    overwrite: Annotated[bool, typer.Option(help="replace a result store written by a different workflow")] = False,
+    overwrite: Annotated[bool, typer.Option(help="recompute every stage from the archive (reuse nothing); also "
+                                                 "replace a result store written by a different workflow")] = False,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="validate and say what would be written")] = False,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="no progress display; print only the result path")] = False,
     log: Annotated[Optional[Path], typer.Option("--log", help="append time-stamped progress lines to this file (batch jobs)")] = None,
@@ -146,10 +152,14 @@ def run(
     from snaplift.workflow.schema import load_workflow, resolve_path
 
     if dry_run:
+        import os
+
+        from snaplift.workflow.guards import check_output_path
         from snaplift.workflow.stages import check_workflow
 
         wf, _, folder = load_workflow(workflow)
-        output = resolve_path(folder, wf.output.path)
+        output = os.path.abspath(resolve_path(folder, wf.output.path))
+        check_output_path(Path(output), resolve_path(folder, wf.archive.path))
         _, lines = check_workflow(wf, Path(folder))
         for line in lines:
             typer.echo(line)

@@ -17,7 +17,23 @@ __all__ = [
     "ConfigError",
     "ResultStoreError",
     "FitError",
+    "one_line",
 ]
+
+#: longest error message printed (characters); longer ones are cut with a note
+MESSAGE_LIMIT = 2000
+
+
+def one_line(message: object, limit: int = MESSAGE_LIMIT) -> str:
+    """``message`` as one line of at most ``limit`` characters (what the command line prints).
+
+    Example
+    -------
+    >>> one_line("two\nlines")
+    'two lines'
+    """
+    text = " ".join(str(message).split())
+    return text if len(text) <= limit else f"{text[:limit]}... ({len(text) - limit} more characters)"
 
 
 class SnapliftError(ValueError):

@@ -16,6 +16,7 @@ import pytest
 from snaplift.archive import _handles, open_archive
 from snaplift.archive.hdf5 import _storage
 from snaplift.archive.matrix import build_snapshot_matrix, read_snapshot_block
+from snaplift.errors import ArchiveError
 from snaplift.linalg import _slots, _testmatrix
 from snaplift.linalg._floor import FLOOR_SCHEDULES, floor_pass
 from snaplift.linalg._kernels import TEST_BLOCK_ROWS, gaussian_block
@@ -222,7 +223,12 @@ def test_zarr_unwritten_chunks_read_as_the_fill_value(tmp_path):
     u = group.create_array("u", shape=(6, 4, 4), chunks=(1, 4, 4), dtype="f8", fill_value=2.5, compressors=None)
     u[1] = 1.0
     assert _chunk_files(zarr.open_group(path, mode="r")["u"]) is None
-    reader = open_archive(path)
+    # issue 11: by default an unwritten chunk is an error naming it, not silently the fill value
+    strict = open_archive(path)
+    strict_matrix = build_snapshot_matrix(strict, ["u"], snapshots=np.arange(6), snapshot_block=6)
+    with pytest.raises(ArchiveError, match=r"array 'u' chunk \[0, 0, 0\].*missing"):
+        read_snapshot_block(strict, strict_matrix.fields[0], np.arange(6))
+    reader = open_archive(path, missing_chunks="fill")
     matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(6), snapshot_block=6)
     expected = np.full((6, 16), 2.5)
     expected[1] = 1.0

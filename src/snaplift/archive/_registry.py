@@ -141,6 +141,7 @@ def open_archive(
     format: str | None = None,
     fields: Sequence[str] | None = None,
     time: str | None = None,
+    missing_chunks: str | None = None,
 ) -> Reader:
     """Return a reader for ``path`` (a file, a zarr directory, a glob pattern or a list).
 
@@ -159,6 +160,9 @@ def open_archive(
         single ``.npy`` or a ``.npy`` series: the one field's name).
     time
         The variable holding snapshot times, where the reader cannot tell.
+    missing_chunks
+        zarr only: ``"fill"`` reads chunks absent from the store as the array's fill
+        value (default: an error naming the chunk).
 
     Returns
     -------
@@ -178,6 +182,8 @@ def open_archive(
         if len(members) > 1:
             from snaplift.archive.runs import RunsReader  # runs.py opens its members here
 
+            if missing_chunks is not None:
+                raise ArchiveError("archive.missing_chunks applies to a single zarr store, not to a list of runs")
             return RunsReader(members, format=format, fields=fields, time=time)
         path = members[0]
     if not isinstance(path, str | os.PathLike):
@@ -217,6 +223,8 @@ def open_archive(
         options["fields"] = tuple(fields)
     if time is not None:
         options["time"] = time
+    if missing_chunks is not None:
+        options["missing_chunks"] = missing_chunks
     accepted = inspect.signature(cls).parameters
     for key in options:
         if key not in accepted:

@@ -5,6 +5,12 @@ and the same CF decoding when the attrs carry it (xarray writes ``scale_factor``
 ``add_offset`` and ``_FillValue`` as attrs). The array's own zarr ``fill_value`` only
 names the value of unwritten chunks and is not treated as missing data.
 
+A chunk that is not in a local store is an error naming the array and the chunk index
+(zarr would silently return the fill value: a snapshot of zeros), unless the reader is
+opened with ``missing_chunks="fill"`` (``archive.missing_chunks: fill``) *and* the
+array declares a fill value. A chunk file shorter than the array says, or one zarr
+cannot decode, is an error naming the file.
+
 Chunks are the array's (inner) chunk shape; for a sharded v3 array the shard shape is
 reported in ``FieldInfo.attrs["shards"]``.
 """
@@ -22,6 +28,7 @@ from snaplift.archive._cf import plain_attrs
 from snaplift.archive._common import Candidate
 from snaplift.archive._grouped import GroupedReader
 from snaplift.archive._registry import register_reader, sniff_format
+from snaplift.errors import ArchiveError, SnapliftError
 
 __all__ = ["ZarrReader"]
 
@@ -110,10 +117,15 @@ def _chunk_files(array: Any) -> _ChunkFiles | None:
     for index in range(-(-shape[0] // per_chunk)):
         key = metadata.encode_chunk_key((index,) + (0,) * (len(shape) - 1))
         path = os.path.join(base, *key.split("/"))
+        expected = per_chunk * snapshot_bytes
         try:
-            if os.path.getsize(path) != per_chunk * snapshot_bytes:
-                return None
+            size = os.path.getsize(path)
         except OSError:
+            return None
+        if size < expected:
+            raise ArchiveError(f"zarr chunk file {path} is truncated: {size} of {expected} bytes (chunk {index} of "
+                               f"array {store_path.path or '/'}); restore it from a copy of the archive")
+        if size != expected:
             return None
         paths.append(path)
     return _ChunkFiles(per_chunk, tuple(paths), snapshot_bytes)
@@ -127,6 +139,43 @@ def _read_files(files: _ChunkFiles, snapshots: tuple[int, int], out: np.ndarray)
     _handles.read_snapshot_chunks(out, snapshots[0], snapshots[1], files.per_chunk, read)
 
 
+#: files of a zarr array folder that are not chunks
+_METADATA_FILES = frozenset({"zarr.json", ".zarray", ".zattrs", ".zgroup", ".zmetadata"})
+
+
+def _missing_chunks(array: Any) -> frozenset[tuple[int, ...]]:
+    """Grid indices of the chunks (shards) of ``array`` that are not in its local store.
+
+    The folder is listed once; keys are only generated when fewer files than chunks exist.
+    Other stores (remote, in memory) are not checked: an empty set.
+    """
+    from zarr.storage import LocalStore
+
+    store_path = getattr(array, "store_path", None)
+    if store_path is None or not isinstance(store_path.store, LocalStore):
+        return frozenset()
+    shape = tuple(int(n) for n in array.shape)
+    if not shape:
+        return frozenset()
+    blocks = tuple(int(c) for c in (getattr(array, "shards", None) or array.chunks))
+    grid = [-(-n // c) for n, c in zip(shape, blocks)]
+    expected = int(np.prod(grid, dtype=np.int64))
+    base = os.path.join(str(store_path.store.root), store_path.path)
+    found: set[str] = set()
+    for folder, _, names in os.walk(base):
+        for name in names:
+            if name not in _METADATA_FILES:
+                found.add(os.path.relpath(os.path.join(folder, name), base).replace(os.sep, "/"))
+    if len(found) >= expected:
+        return frozenset()
+    metadata = array.metadata
+    missing = set()
+    for index in np.ndindex(*grid):
+        if metadata.encode_chunk_key(tuple(int(i) for i in index)) not in found:
+            missing.add(tuple(int(i) for i in index))
+    return frozenset(missing)
+
+
 class _Array:
     """A zarr array whose box reads go straight into a reused tile buffer.
 
@@ -137,11 +186,48 @@ class _Array:
     everything else is the array's own.
     """
 
-    __slots__ = ("array", "path")
+    __slots__ = ("array", "path", "missing")
 
-    def __init__(self, array: Any, path: str) -> None:
+    def __init__(self, array: Any, path: str, missing: str = "error") -> None:
         self.array = array
         self.path = path
+        self.missing = missing
+
+    def _check_missing(self, selection: Any) -> None:
+        key = ("zarr-missing-chunks", self.path, str(getattr(self.array, "path", "")), _handles.signature(self.path))
+        missing = _handles.memo(key, lambda: _missing_chunks(self.array))
+        if not missing:
+            return
+        shape = tuple(int(n) for n in self.array.shape)
+        blocks = tuple(int(c) for c in (getattr(self.array, "shards", None) or self.array.chunks))
+        selection = selection if isinstance(selection, tuple) else (selection,)
+        ranges = []
+        for axis, n in enumerate(shape):
+            item = selection[axis] if axis < len(selection) else slice(None)
+            if isinstance(item, slice):
+                start, stop, _ = item.indices(n)
+            elif isinstance(item, int | np.integer):
+                start, stop = int(item) % max(n, 1), int(item) % max(n, 1) + 1
+            else:
+                start, stop = 0, n
+            ranges.append((start // blocks[axis], max(start, stop - 1) // blocks[axis]))
+        hit = sorted(index for index in missing
+                     if all(lo <= i <= hi for i, (lo, hi) in zip(index, ranges)))
+        if not hit:
+            return
+        fill = getattr(self.array.metadata, "fill_value", None)
+        if self.missing == "fill" and fill is not None:
+            return
+        name = str(getattr(self.array, "path", "")) or os.path.basename(self.path)
+        first = hit[0]
+        snapshots = f"snapshots {first[0] * blocks[0]}..{min(shape[0], (first[0] + 1) * blocks[0]) - 1}"
+        shown = fill.item() if isinstance(fill, np.generic) else fill
+        remedy = ("set archive.missing_chunks: fill to read them as the array's fill value "
+                  f"({shown!r})" if fill is not None else "the array declares no fill value")
+        raise ArchiveError(
+            f"{self.path}: array '{name}' chunk {list(first)} ({snapshots}) is missing"
+            f"{f' (and {len(hit) - 1} more chunks of this read)' if len(hit) > 1 else ''}; "
+            f"restore it, or {remedy}")
 
     def _files(self) -> _ChunkFiles | None:
         key = ("zarr-chunk-files", self.path, str(getattr(self.array, "path", "")), _handles.signature(self.path))
@@ -155,6 +241,7 @@ class _Array:
         shape = _basic_shape(selection, tuple(array.shape)) if dtype.kind in "fiu" else None
         if shape is None:
             return array[selection]
+        self._check_missing(selection)
         out = _handles.tile_buffer(shape, dtype)
         snapshots = _whole_snapshots(selection, tuple(array.shape))
         files = self._files() if snapshots is not None else None
@@ -162,15 +249,33 @@ class _Array:
             try:
                 _read_files(files, snapshots, out)
                 return out
-            except FileNotFoundError:  # a chunk removed since: zarr knows its fill value
-                pass
+            except FileNotFoundError as error:  # a chunk removed since the layout was read
+                if self.missing != "fill":
+                    raise ArchiveError(f"{self.path}: zarr chunk file {error.filename} is missing; restore it, or "
+                                       "set archive.missing_chunks: fill to read it as the array's fill value") \
+                        from None
         from zarr.core.buffer.cpu import NDBuffer
 
-        array.get_basic_selection(selection, out=NDBuffer.from_numpy_array(out))
+        try:
+            array.get_basic_selection(selection, out=NDBuffer.from_numpy_array(out))
+        except SnapliftError:
+            raise
+        except Exception as error:  # a damaged chunk: zarr's codecs fail in many ways
+            name = str(getattr(array, "path", "")) or os.path.basename(self.path)
+            raise ArchiveError(
+                f"{self.path}: array '{name}' cannot be read at {_describe(selection)}: a chunk file is damaged or "
+                f"truncated ({type(error).__name__}: {' '.join(str(error).split())[:200]}); restore it from a copy "
+                "of the archive") from None
         return out
 
     def __getattr__(self, name: str) -> Any:
         return getattr(self.array, name)
+
+
+def _describe(selection: Any) -> str:
+    items = selection if isinstance(selection, tuple) else (selection,)
+    parts = [f"{i.start}:{i.stop}" if isinstance(i, slice) else str(i) for i in items]
+    return "[" + ", ".join(parts) + "]"
 
 
 class ZarrReader(GroupedReader):
@@ -184,6 +289,9 @@ class ZarrReader(GroupedReader):
         Array paths to treat as fields (default: the classification rule).
     time
         Array path of the snapshot times (default: detected).
+    missing_chunks
+        ``"error"`` (default): a chunk not in the store is an error naming it;
+        ``"fill"``: read it as the array's declared fill value.
 
     Examples
     --------
@@ -201,6 +309,13 @@ class ZarrReader(GroupedReader):
             return found == "zarr"
         return os.path.isdir(path) and str(path).rstrip("/").lower().endswith(cls.suffixes)
 
+    def __init__(self, path: str, *, fields: Any = None, time: str | None = None,
+                 missing_chunks: str = "error") -> None:
+        super().__init__(path, fields=fields, time=time)
+        if missing_chunks not in ("error", "fill"):
+            raise ArchiveError(f"missing_chunks = {missing_chunks!r}: expected 'error' or 'fill'")
+        self.missing_chunks = missing_chunks
+
     def _root(self) -> Any:
         return _handles.zarr_node(self.path)
 
@@ -210,7 +325,7 @@ class ZarrReader(GroupedReader):
         return isinstance(root, zarr.Array)
 
     def _array(self, root: Any, key: str) -> Any:
-        return _Array(root if self._is_array(root) else root[key], self.path)
+        return _Array(root if self._is_array(root) else root[key], self.path, self.missing_chunks)
 
     def _candidates(self, root: Any) -> list[Candidate]:
         import zarr

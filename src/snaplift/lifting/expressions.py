@@ -87,7 +87,7 @@ class _Variable:
 
 @dataclass(frozen=True)
 class _Apply:
-    function: str  # key of _BINARY / _UNARY symbol or of FUNCTIONS
+    function: str  # key of _BINARY / _UNARY symbol, "sum" (a chain of + and -), or of FUNCTIONS
     arguments: tuple[_Node, ...]
 
 
@@ -233,8 +233,12 @@ class _Context:
         if isinstance(node, ast.Constant):
             value = node.value
             if isinstance(value, bool) or not isinstance(value, (int, float)):
-                raise self.fail(node, f"constant {value!r} is not allowed (only real numbers)")
-            return _Number(float(value))
+                raise self.fail(node, f"constant {_short(value)} is not allowed (only real numbers)")
+            try:
+                return _Number(float(value))
+            except OverflowError:
+                raise self.fail(node, f"the number {_short(value)} is too large for a float (at most about "
+                                      "1.8e308)") from None
         if isinstance(node, ast.Name):
             if node.id in FUNCTIONS:
                 raise self.fail(node, f"function {node.id!r} used without a call")
@@ -243,6 +247,19 @@ class _Context:
             if node.id not in self.variables:
                 self.variables.append(node.id)
             return _Variable(node.id)
+        if isinstance(node, ast.BinOp) and isinstance(node.op, (ast.Add, ast.Sub)):
+            # a chain a + b - c + ... is one level, however long (summed left to right,
+            # a - c as a + (-c): the same numbers as the nested form)
+            terms: list[tuple[bool, ast.AST]] = []
+            head: ast.AST = node
+            while isinstance(head, ast.BinOp) and isinstance(head.op, (ast.Add, ast.Sub)):
+                terms.append((isinstance(head.op, ast.Sub), head.right))
+                head = head.left
+            converted = [self.convert(head, depth + 1)]
+            for negative, term in reversed(terms):
+                value = self.convert(term, depth + 1)
+                converted.append(_Apply("neg", (value,)) if negative else value)
+            return _Apply("sum", tuple(converted))
         if isinstance(node, ast.BinOp):
             kind = type(node.op)
             if kind not in _BINARY:
@@ -270,12 +287,26 @@ class _Context:
             if node.keywords:
                 raise self.fail(node.keywords[0].value, "keyword arguments are not allowed")
             count = FUNCTIONS[function][1]
-            if len(node.args) != count or any(isinstance(a, ast.Starred) for a in node.args):
+            starred = [a for a in node.args if isinstance(a, ast.Starred)]
+            if starred:
+                raise self.fail(starred[0], f"argument unpacking (*) is not allowed; write {function}(x)"
+                                if count == 1 else f"argument unpacking (*) is not allowed; write "
+                                f"{function}(x, y)")
+            if len(node.args) != count:
                 raise self.fail(
                     node, f"{function}() takes {count} argument(s); got {len(node.args)}"
                 )
             return _Apply(function, tuple(self.convert(a, depth + 1) for a in node.args))
         raise self.fail(node, f"{_describe(node)} is not allowed")
+
+
+def _short(value: object, limit: int = 40) -> str:
+    """A literal as written, cut to ``limit`` characters (a 300-digit number is not echoed whole)."""
+    try:
+        text = repr(value)
+    except ValueError:  # an int too long to print
+        return "(a number too long to print)"
+    return text if len(text) <= limit else f"{text[:limit]}... ({len(text)} characters)"
 
 
 def _describe(node: ast.AST) -> str:
@@ -308,6 +339,11 @@ def _evaluate(node: _Node, values: Mapping[str, np.ndarray]) -> np.ndarray | flo
         return np.negative(arguments[0])
     if node.function == "pos":
         return np.positive(arguments[0])
+    if node.function == "sum":
+        total = arguments[0]
+        for term in arguments[1:]:
+            total = np.add(total, term)
+        return total
     if node.function in _BY_SYMBOL:
         return _BY_SYMBOL[node.function](*arguments)
     return FUNCTIONS[node.function][0](*arguments)

@@ -21,6 +21,7 @@ from typing import Any
 
 import numpy as np
 
+from snaplift._process_memory import trim_heap
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.linalg._tasks import Preparing, TileRef, TileSource, product_task, sketch_task
 from snaplift.linalg.streaming import Checkpointer, Job, StreamState, TileRunner, run_tiles
@@ -168,6 +169,9 @@ class Pass:
     def end_pass(self, state: StreamState) -> None:
         """Close a pass once its derived arrays are in ``state`` (and checkpoint that)."""
         state.finish_pass()
+        # the tile threads' allocator arenas keep what the pass freed; given back now, it is
+        # not held beside the next pass's arrays (issue 11: peaks over compress.memory)
+        trim_heap()
         if self.checkpoint is not None:
             self.checkpoint.save(state)
 

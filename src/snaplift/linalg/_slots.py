@@ -3,15 +3,24 @@
 A range product ``Y = X M`` (n x k) gets one term per time block; returning every term
 to the driver would move ``n k`` values per tile and fold them serially there, which
 costs more than the product itself for time-major tiles. Instead tiles add their terms
-into one of ``S`` slots with one BLAS ``gemm`` (``beta = 1``, no temporary; one
+into one of ``S`` slots with one BLAS ``gemm`` (no temporary beyond a row chunk; one
 column-major accumulator per row block, the faster layout for this product), and the
 driver collects the slots at the end of a pass (and before a checkpoint, with no task
-running) and sums them in slot order. Tile ``i`` of a pass goes to slot ``i mod S`` and
-waits for its predecessor in that slot, so every sum is formed in the same order on
-every run (bitwise reproducible for a plan and a worker count, also across a resume
-whose checkpoints fall on the same tiles). A slot records the tiles it holds, so the
-driver can check that every tile was counted exactly once (a worker that died loses
-its slots; their tiles are read again).
+running) and sums them in slot order. Tile ``i`` of a pass goes to slot ``i mod S``;
+its term is added right after its predecessor's in that slot, so every sum is formed in
+the same order on every run (bitwise reproducible for a plan and a worker count, also
+across a resume whose checkpoints fall on the same tiles). A slot records the tiles it
+holds, so the driver can check that every tile was counted exactly once (a worker that
+died loses its slots; their tiles are read again).
+
+**No task ever waits for another.** A tile whose predecessor has not been added yet
+(a worker may start tasks in any order: ``distributed`` orders the tasks of one
+submission generation by their random keys) parks its product (rows x k, a result in
+flight that the memory plan already counts) in the slot and returns; the predecessor,
+when it arrives, adds it in order. An earlier version made the tile wait on a
+condition: with one thread per worker process the predecessor, queued behind it on the
+same worker, could never run (the ``cluster: local`` hang). :func:`collect` adds any
+product still parked (its predecessor was lost) after the ordered ones.
 
 Slots live in the process (threads share the driver's; each worker process has its
 own) and are never pickled. :func:`collect` empties them.
@@ -41,7 +50,9 @@ class _Slot:
     tiles: set[int] = field(default_factory=set)
     last: int = -1
     aborted: bool = False
-    ready: threading.Condition = field(default_factory=threading.Condition)
+    #: products of tiles whose predecessor had not been added yet: ``{predecessor: (tile, rows, product)}``
+    parked: dict[int, tuple[int, tuple[int, int], np.ndarray]] = field(default_factory=dict)
+    lock: threading.Lock = field(default_factory=threading.Lock)
 
     def rows(self, r0: int, r1: int) -> np.ndarray:
         block = self.blocks.get((r0, r1))
@@ -50,14 +61,20 @@ class _Slot:
         return block
 
     def value(self) -> np.ndarray:
-        """The whole ``shape`` accumulator (the row blocks put in place; one block is returned as is)."""
+        """The whole ``shape`` accumulator (the row blocks put in place; one block is returned as is).
+
+        Empties the slot: each row block is released as soon as it is copied, so the
+        slot's memory moves into the result rather than being held twice (issue 11: with
+        many row blocks the copies of every slot at once went over compress.memory).
+        """
         if len(self.blocks) == 1:
             (r0, r1), block = next(iter(self.blocks.items()))
             if (r0, r1) == (0, self.shape[0]):
+                self.blocks.clear()
                 return block
         out = np.zeros(self.shape, dtype=self.dtype, order="F")
-        for (r0, r1), block in sorted(self.blocks.items()):
-            out[r0:r1] += block
+        for r0, r1 in sorted(self.blocks):
+            out[r0:r1] += self.blocks.pop((r0, r1))
         return out
 
 
@@ -98,16 +115,20 @@ def _gemm_into(out_rows: np.ndarray, raw: np.ndarray, right: np.ndarray) -> None
         out_rows[r0:r1] += np.matmul(left, raw[:, r0:r1]).T
 
 
-#: a tile waits at most this long for its predecessor in a slot before giving up
-WAIT_SECONDS = 3600.0
+def _product(raw: np.ndarray, right: np.ndarray, dtype: np.dtype) -> np.ndarray:
+    """``raw^T @ right`` as a new column-major array (a parked term)."""
+    out = np.zeros((raw.shape[1], right.shape[1]), dtype=dtype, order="F")
+    _gemm_into(out, raw, right)
+    return out
 
 
 def add_range_product(key: str, name: str, shape: tuple[int, int], tile_id: int, rows: tuple[int, int],
                       raw: np.ndarray, right: np.ndarray, slot_index: int = 0, after: int | None = None) -> None:
     """Add ``raw^T @ right`` (raw = the tile, snapshot-major) to rows ``rows`` of slot ``slot_index``.
 
-    With ``after`` (the previous tile of this slot, -1 for the first) the addition waits
-    until that tile has been added, which fixes the order of the sum.
+    With ``after`` (the previous tile of this slot, -1 for the first) the term is added
+    right after that tile's; if that one has not been added yet, the term is parked and
+    added when it is (module docstring). Never blocks on another task.
     """
     dtype = np.result_type(raw, right)
     with _lock:
@@ -118,19 +139,40 @@ def add_range_product(key: str, name: str, shape: tuple[int, int], tile_id: int,
         slot = group.get(slot_index)
         if slot is None:
             slot = group[slot_index] = _Slot((int(shape[0]), int(shape[1])), np.dtype(dtype))
-    with slot.ready:
-        if after is not None:
-            arrived = slot.ready.wait_for(lambda: slot.last == after or slot.aborted, timeout=WAIT_SECONDS)
-            if slot.aborted:
-                raise RuntimeError(f"compress job {key} was stopped")
-            if not arrived:
-                raise RuntimeError(f"tile {tile_id} waited {WAIT_SECONDS:g} s for tile {after} in slot {slot_index}")
-        if tile_id in slot.tiles:
+    r0, r1 = int(rows[0]), int(rows[1])
+    with slot.lock:
+        if slot.aborted:
+            raise RuntimeError(f"compress job {key} was stopped")
+        if tile_id in slot.tiles or any(tile_id == parked[0] for parked in slot.parked.values()):
             raise RuntimeError(f"tile {tile_id} added twice to one accumulation slot")
-        _gemm_into(slot.rows(int(rows[0]), int(rows[1])), raw, right)
+        in_order = after is None or slot.last == after
+    if not in_order:
+        # the product is formed outside the lock; parking it holds the lock only briefly
+        product = _product(raw, right, np.dtype(dtype))
+        with slot.lock:
+            if slot.last != after:
+                slot.parked[int(after)] = (int(tile_id), (r0, r1), product)  # type: ignore[arg-type]
+                return
+            # the predecessor arrived meanwhile: add the term now (same bits as _gemm_into)
+            slot.rows(r0, r1)[...] += product
+            slot.tiles.add(tile_id)
+            slot.last = tile_id
+            _drain(slot)
+            return
+    with slot.lock:
+        _gemm_into(slot.rows(r0, r1), raw, right)
         slot.tiles.add(tile_id)
         slot.last = tile_id
-        slot.ready.notify_all()
+        _drain(slot)
+
+
+def _drain(slot: _Slot) -> None:
+    """Add parked products whose predecessor is now in, in order (caller holds ``slot.lock``)."""
+    while slot.last in slot.parked:
+        tile_id, (r0, r1), product = slot.parked.pop(slot.last)
+        slot.rows(r0, r1)[...] += product
+        slot.tiles.add(tile_id)
+        slot.last = tile_id
 
 
 def collect(key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
@@ -140,7 +182,13 @@ def collect(key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
         group = _slots.pop((key, name), {})
     out = {}
     for index, slot in group.items():
-        with slot.ready:
+        with slot.lock:
+            # a parked product whose predecessor never came (its worker was lost): counted
+            # after the ordered ones; the predecessor is read again by the driver
+            for _, (tile_id, (r0, r1), product) in sorted(slot.parked.items()):
+                slot.rows(r0, r1)[...] += product
+                slot.tiles.add(tile_id)
+            slot.parked.clear()
             out[int(index)] = (slot.value(), sorted(slot.tiles))
     return out
 
@@ -154,9 +202,9 @@ def discard(key: str, *, abort: bool = False) -> None:
         dropped = [_slots.pop(name) for name in [k for k in _slots if k[0] == key]]
     for group in dropped:
         for slot in group.values():
-            with slot.ready:
+            with slot.lock:
                 slot.aborted = abort or slot.aborted
-                slot.ready.notify_all()
+                slot.parked.clear()
 
 
 def collect_remote(key: str, name: str) -> dict[int, tuple[Any, list[int]]]:

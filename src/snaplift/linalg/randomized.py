@@ -205,6 +205,7 @@ def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, r
                          norms=False)
             state.arrays["z"] = np.linalg.qr(state.arrays.pop("adjoint"))[0]
             state.arrays.pop("adjoint_norm_squares", None)  # from a checkpoint of an older run
+            state.arrays.pop("q")  # the range pass makes the next one: n x k fewer during it
             run.end_pass(state)
         if state.pass_number == first + 1:
             product_read(run, matrix, jobs, state, preparing, state.arrays["z"], "range", name="range")

@@ -91,10 +91,14 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
                                    "scale": scale_setting if isinstance(scale_setting, str) else dict(scale_setting),
                                    "lifted": lifted})
     for rows in matrix.fields:
-        (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
-        physical = to_physical(np.asarray(basis_rows).T, rows, preparation, add_mean=False)
-        writer.array("basis", rows.name, rows.expand(physical), ("rank", *dims[rows.name]),
-                     chunks=(1, *rows.grid))
+        # one basis vector at a time: the field's temporaries are one vector, not n x rank (issue 11)
+        basis_rows = _basis_field_rows(lowrank.basis, rows, compute)
+        dtype = np.result_type(basis_rows, float)
+        basis_array = writer.empty("basis", rows.name, (basis_rows.shape[1], *rows.grid), dtype,
+                                   ("rank", *dims[rows.name]), chunks=(1, *rows.grid))
+        for vector in range(basis_rows.shape[1]):
+            basis_array[vector] = rows.expand(to_physical(basis_rows[:, vector], rows, preparation, add_mean=False))
+        del basis_rows
         if rows.keep is not None:
             mask = np.ones(int(np.prod(rows.grid)), dtype=bool)
             mask[rows.keep] = False
@@ -310,6 +314,33 @@ def write_fit_details(writer: StoreWriter, outcome: Any, order: np.ndarray, time
     writer.group_attrs("operator", attrs)
 
 
+def _basis_field_rows(basis: Any, rows: Any, compute: Any) -> np.ndarray:
+    """One field's rows of the (lazy) basis, one basis vector at a time into one array.
+
+    Computing the whole slice at once held every chunk's decoding temporaries and then
+    the concatenated copy: several times the n x rank the result needs (issue 11).
+    """
+    part = basis[rows.offset:rows.stop]
+    if isinstance(part, np.ndarray):
+        return part
+    out = np.empty(part.shape, dtype=part.dtype, order="F")
+    for column in range(part.shape[1]):
+        (out[:, column],) = compute(part[:, column])
+    return out
+
+
+def _basis_times(basis: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
+    """``basis @ coefficients`` without a complex copy of a real basis (numpy's mixed-type
+    matmul converts the whole n x rank basis to complex first: issue 11, the modes stage
+    went over compress.memory by that copy)."""
+    if np.iscomplexobj(basis) or not np.iscomplexobj(coefficients):
+        return basis @ coefficients
+    out = np.empty(basis.shape[0], dtype=np.result_type(basis, coefficients))
+    out.real = basis @ np.ascontiguousarray(coefficients.real)
+    out.imag = basis @ np.ascontiguousarray(coefficients.imag)
+    return out
+
+
 def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarray, compute: Any) -> None:
     """Physical modes chunk by chunk, fixed points (affine fits), reconstruction error.
 
@@ -334,13 +365,12 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
         fixed_point[: fit.fixed_point.size] = fit.fixed_point
         writer.array("operator", "fixed_point_coefficient", fixed_point, ("rank",))
     for rows in _mode_fields(matrix):
-        (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
-        basis_rows = np.asarray(basis_rows)
+        basis_rows = _basis_field_rows(lowrank.basis, rows, compute)
         mode_array = writer.empty("modes", rows.name, (n_modes, *rows.grid), np.complex128,
                                   ("mode", *dims[rows.name]), chunks=(1, *rows.grid))
         largest = np.zeros(n_modes)
         for k in range(n_modes):
-            values = to_physical(basis_rows @ modes_rows[:, k], rows, preparation, add_mean=False)
+            values = to_physical(_basis_times(basis_rows, modes_rows[:, k]), rows, preparation, add_mean=False)
             mode_array[k] = rows.expand(values)
             largest[k] = _largest(values)
         _write_peak(writer, rows.name, largest, fit, order, np.dtype(matrix.dtype).kind != "c")

@@ -40,6 +40,16 @@ __all__ = ["IDENTITY_KEY", "STAGES_KEY", "StagedStore", "check_free_space"]
 
 STAGES_KEY = "stages"
 IDENTITY_KEY = "workflow_identity"
+#: the file that marks a staging area as snaplift's (only such folders are ever removed)
+MARKER = "identity.json"
+
+
+def _is_result_store(path: Path) -> bool:
+    """True if ``path`` is a folder holding a snaplift result store (its root says so)."""
+    if path.is_symlink() or not path.is_dir():
+        return False
+    meta = _read_json(path / "zarr.json")
+    return isinstance(meta, dict) and bool((meta.get("attributes") or {}).get(FORMAT_KEY))
 
 
 def check_free_space(directory: str | Path, needed: int, what: str) -> None:
@@ -130,13 +140,17 @@ class StagedStore:
         What makes a store "of this workflow" (archive path and fields): a store at
         ``path`` with another identity is refused unless ``overwrite``.
     overwrite
-        Replace a store written by a different workflow.
+        Replace a store written by a different workflow, and reuse nothing: neither the
+        previous store's stages nor a killed run's staging area (every stage is computed
+        from the archive again).
     """
 
     def __init__(self, path: str | Path, *, identity: str, overwrite: bool = False) -> None:
         self.path = Path(path)
         self.identity = identity
         self.area = self.path.with_name(self.path.name + ".staging")
+        self.old = self.path.with_name(self.path.name + ".old")
+        self.overwrite = overwrite
         self.store_path = self.area / "store.zarr"
         self.records = self.area / "stages"
         self.checkpoints = self.area / "checkpoint"
@@ -167,21 +181,39 @@ class StagedStore:
                 f"{self.path} holds results of a different workflow (archive {attrs.get('archive')!r}, "
                 f"identity {attrs.get(IDENTITY_KEY)}); pass --overwrite to replace it or change output.path"
             )
-        if attrs.get(COMPLETE_KEY) and attrs.get(IDENTITY_KEY) == self.identity:
+        if attrs.get(COMPLETE_KEY) and attrs.get(IDENTITY_KEY) == self.identity and not overwrite:
             self.previous = zarr.open_group(str(self.path), mode="r")
             self.previous_stages = dict(attrs.get(STAGES_KEY) or {})  # type: ignore[arg-type]
 
     def _open_area(self) -> None:
-        marker = self.area / "identity.json"
-        if self.area.exists():
-            known = _read_json(marker) or {}
+        marker = self.area / MARKER
+        if self.old.exists() and not _is_result_store(self.old):
+            raise ResultStoreError(
+                f"{self.old} exists and was not made by snaplift (the previous store is moved there at commit); "
+                "move or rename it, or choose another output.path"
+            )
+        if self.area.exists() or self.area.is_symlink():
+            known = _read_json(marker) if self.area.is_dir() and not self.area.is_symlink() else None
+            # (a staging area of an earlier version has the identity and a stages folder, no made_by)
+            ours = isinstance(known, dict) and (known.get("made_by") == "snaplift" or (
+                "identity" in known and (self.area / "stages").is_dir()))
+            if not ours:
+                raise ResultStoreError(
+                    f"{self.area} exists and was not made by snaplift (no {MARKER} marker); snaplift keeps its "
+                    "unfinished work there: move or rename it, or choose another output.path"
+                )
             if known.get("identity") != self.identity or not self.store_path.exists():
                 self.discarded = f"discarded an unfinished staging area of another workflow ({self.area})"
                 shutil.rmtree(self.area)
+            elif self.overwrite:
+                self.discarded = f"--overwrite: discarded the unfinished staging area {self.area}"
+                shutil.rmtree(self.area)
+        self.area.mkdir(parents=True, exist_ok=True)
+        if not marker.exists():
+            # written first: every folder below is snaplift's because this one is
+            _write_json(marker, {"made_by": "snaplift", "identity": self.identity, "pid": os.getpid()})
         self.records.mkdir(parents=True, exist_ok=True)
         self.checkpoints.mkdir(parents=True, exist_ok=True)
-        if not marker.exists():
-            _write_json(marker, {"identity": self.identity})
 
     @property
     def has_progress(self) -> bool:
@@ -288,8 +320,11 @@ class StagedStore:
             zarr.consolidate_metadata(str(self.store_path))
         old = None
         if self.path.exists():
-            old = self.path.with_name(f"{self.path.name}.old")
+            old = self.old
             if old.exists():
+                if not _is_result_store(old):
+                    raise ResultStoreError(f"{old} exists and was not made by snaplift; move or rename it, "
+                                           "then run again to commit (the finished stages are kept)")
                 shutil.rmtree(old)
             os.replace(self.path, old)
         os.replace(self.store_path, self.path)

@@ -5,24 +5,35 @@ and modification times, and a SHA-256 of a sample of their bytes (64 KiB at the 
 middle and end of up to 16 files spread over the file list, always the first and the
 last). Equal fingerprints mean *unchanged* with no data read.
 
-When the fingerprint differs, content hashes decide (:func:`classify_archive`). A run
-records SHA-256 hashes of the decoded values of a sample of *snapshot blocks* (whole
-stored chunks along the snapshot axis, all points of every requested field): up to
-:data:`SAMPLE_BLOCKS` blocks spread evenly over the archive, always the first and the
-last, fewer if they would exceed :data:`SAMPLE_FRACTION` of the archive's bytes or
-:data:`SAMPLE_FLOOR_BYTES`, whichever is larger (never fewer than two). The next run hashes the same blocks again:
+When the fingerprint differs, the files decide first (:func:`file_changes`), then content
+hashes (:func:`classify_archive`). Every run records each file's size and modification
+time (up to :data:`FILE_RECORD_LIMIT` files by name; beyond that a set of digests of
+name, size and time):
 
-- same snapshot count, every sampled block equal: *unchanged* (the files were touched,
-  e.g. opened for writing to add an attribute; sizes may differ);
-- more snapshots, every sampled old block equal: *grown*;
-- anything else: *changed* (everything is recomputed).
+- a file that is gone, shrank, or kept its size while its modification time changed
+  (a rewrite in place, e.g. ``f['u'][7] = ...``) makes the archive *changed*: everything
+  is recomputed. Sampling cannot prove that a rewritten file is unchanged, so no sample
+  is consulted. (zarr metadata files, ``zarr.json``/``.zarray``/``.zattrs``, are
+  rewritten when an array grows and are exempt; what they describe is checked through
+  the shape and the sampled values.)
+- files that only grew, or new files, with more snapshots than before: the *append
+  path*. The run records SHA-256 hashes of the decoded values of a sample of *snapshot
+  blocks* (whole stored chunks along the snapshot axis, all points of every requested
+  field): up to :data:`SAMPLE_BLOCKS` blocks spread evenly over the archive, always the
+  first and the last, fewer if they would exceed :data:`SAMPLE_FRACTION` of the
+  archive's bytes or :data:`SAMPLE_FLOOR_BYTES`, whichever is larger (never fewer than
+  two). The next run hashes the same blocks again: all equal means *grown* (the sketch
+  is extended, or compress recomputed), any difference *changed*. The run's output and
+  the store (scan record ``verified_blocks``, a warning) say which old blocks were
+  verified and that ``--overwrite`` recomputes from every snapshot.
+- files that grew without new snapshots (HDF5 grows when attributes are added): *changed*.
 
 Cost, explicitly: at most ``SAMPLE_BLOCKS`` snapshot blocks per run (a time-major archive
 with one snapshot per chunk: 8 snapshots), bounded by 1 % of the archive or 64 MiB; they
-are read only when the cheap fingerprint differs (and on a first run, to record them). The price of
-not reading every old chunk is that an edit of an old snapshot *outside* the sample goes
-unnoticed; a user who rewrites old snapshots in place should pass ``--overwrite`` (or
-change the archive's path).
+are read only when the archive grew (and on a first run, to record them). The price of
+not reading every old chunk on the append path is that an edit of an old snapshot
+*outside* the sample, in a file that also grew, goes unnoticed; the warning says so.
+``snaplift run --overwrite`` always recomputes every stage from the archive.
 
 Stage fingerprints chain: ``scan`` hashes the archive section and the archive's content
 identity; ``compress`` hashes scan's fingerprint with ``prepare``, ``lift`` and the
@@ -55,8 +66,10 @@ __all__ = [
     "archive_fingerprint",
     "block_hashes",
     "classify_archive",
+    "file_changes",
     "sample_blocks",
     "stage_fingerprints",
+    "verification_note",
     "workflow_identity",
 ]
 
@@ -64,6 +77,10 @@ SAMPLE_BLOCKS = 8
 SAMPLE_FRACTION = 0.01
 #: ... but up to this many bytes may always be sampled (small archives get all 8 blocks)
 SAMPLE_FLOOR_BYTES = 64 * 2**20
+#: archives of up to this many files record each file by name; larger ones a set of digests
+FILE_RECORD_LIMIT = 1000
+#: zarr metadata files, rewritten in place when an array grows (module docstring)
+METADATA_NAMES = frozenset({"zarr.json", ".zarray", ".zattrs", ".zgroup", ".zmetadata"})
 _BYTE_SAMPLE = 64 * 1024
 _BYTE_SAMPLE_FILES = 16
 #: compress settings that do not change the result (tiling and checkpointing only)
@@ -127,9 +144,53 @@ def archive_fingerprint(reader: Reader) -> dict[str, Any]:
     info = reader.describe()
     counts = {name: f.n_snapshots for name, f in info.fields.items()}
     summary = section_fingerprint(listing.hexdigest(), sample.hexdigest())
+    if len(stats) <= FILE_RECORD_LIMIT:
+        record: dict[str, Any] = {"names": [s[0] for s in stats], "sizes": [int(s[1]) for s in stats],
+                                  "mtimes": [int(s[2]) for s in stats]}
+    else:
+        record = {"digests": sorted(_stat_digest(*s) for s in stats)}
     return {"path": str(reader.path), "files": len(files), "bytes": int(total), "listing": listing.hexdigest()[:16],
             "byte_sample": sample.hexdigest()[:16], "bytes_sampled": int(sampled), "n_snapshots": counts,
-            "fingerprint": summary}
+            "fingerprint": summary, "file_record": record}
+
+
+def _stat_digest(name: str, size: int, mtime: int) -> str:
+    return hashlib.sha256(json.dumps([name, int(size), int(mtime)]).encode()).hexdigest()[:16]
+
+
+def file_changes(old: dict[str, Any], now: dict[str, Any]) -> str | None:
+    """Why the archive's files were changed (not only grown) since ``old``; None if they only grew.
+
+    ``old`` and ``now`` are :func:`archive_fingerprint` results. A file gone, shrunk, or of
+    the same size with another modification time is a change (module docstring).
+
+    Example
+    -------
+    >>> file_changes({"file_record": {"names": ["a.h5"], "sizes": [10], "mtimes": [1]}},
+    ...              {"file_record": {"names": ["a.h5"], "sizes": [10], "mtimes": [2]}})
+    'a.h5 was rewritten in place (same size, modification time changed)'
+    """
+    before, after = old.get("file_record"), now.get("file_record") or {}
+    if not before:
+        return "the previous result recorded no file sizes and times"
+    if "digests" in before:
+        present = set(after["digests"]) if "digests" in after else {
+            _stat_digest(*entry) for entry in zip(after["names"], after["sizes"], after["mtimes"])}
+        lost = len(set(before["digests"]) - present)
+        if lost:
+            return f"{lost} of the archive's {len(before['digests'])} files were changed, removed or grew"
+        return None
+    current = {name: (size, mtime) for name, size, mtime in zip(after.get("names", []), after.get("sizes", []),
+                                                              after.get("mtimes", []))}
+    for name, size, mtime in zip(before["names"], before["sizes"], before["mtimes"]):
+        if name not in current:
+            return f"{name} was removed"
+        new_size, new_mtime = current[name]
+        if new_size < size:
+            return f"{name} shrank from {size} to {new_size} bytes"
+        if new_size == size and new_mtime != mtime and Path(name).name not in METADATA_NAMES:
+            return f"{name} was rewritten in place (same size, modification time changed)"
+    return None
 
 
 def sample_blocks(n_snapshots: int, chunk: int, block_bytes: int, archive_bytes: int) -> list[tuple[int, int]]:
@@ -170,6 +231,8 @@ class Classification:
     samples: dict[str, Any] = field(default_factory=dict)  # block sample to record for next time
     bytes_read: int = 0
     old_snapshots: int | None = None
+    #: old snapshot blocks ``(start, stop)`` whose content was verified (grown archives)
+    verified: tuple[tuple[int, int], ...] = ()
 
 
 def _sample_for(reader: Reader, fields: list[str], chunk: int) -> tuple[dict[str, Any], int]:
@@ -200,10 +263,17 @@ def classify_archive(reader: Reader, fields: list[str], chunk: int, current: dic
     n_old = int(old_samples.get("n_snapshots", -1))
     n_now = reader.describe().fields[fields[0]].n_snapshots
     blocks = [(int(a), int(b)) for a, b, _ in old_samples.get("blocks", [])]
-    if not blocks or n_now < n_old:
+    changed = file_changes(old, current)
+    if changed is None and n_now == n_old:
+        changed = "the files changed but hold no new snapshots"
+    elif changed is None and n_now < n_old:
+        changed = "fewer snapshots than before"
+    elif changed is None and not blocks:
+        changed = "no content sample from the previous run"
+    if changed is not None:
         samples, read = _sample_for(reader, fields, chunk)
-        reason = "fewer snapshots than before" if n_now < n_old else "no content sample from the previous run"
-        return Classification("changed", reason, current["fingerprint"], samples, read, n_old)
+        return Classification("changed", f"{changed}; every stage is recomputed", current["fingerprint"],
+                              samples, read, n_old)
     hashes, read = block_hashes(reader, fields, blocks)
     differing = [blocks[i] for i, (h, (_, _, old_h)) in enumerate(zip(hashes, old_samples["blocks"])) if h != old_h]
     if differing:
@@ -212,13 +282,18 @@ def classify_archive(reader: Reader, fields: list[str], chunk: int, current: dic
         return Classification("changed", f"snapshots {a}..{b - 1} differ from the previous run's "
                               f"({len(differing)} of {len(blocks)} sampled blocks)", current["fingerprint"],
                               samples, read + more, n_old)
-    if n_now == n_old:
-        # sizes may differ: HDF5 grows when attributes are added or space is reallocated
-        return Classification("unchanged", f"files touched, all {len(blocks)} sampled blocks identical",
-                              previous["identity"], old_samples, read, n_old)
     samples, more = _sample_for(reader, fields, chunk)
     return Classification("grown", f"{n_now - n_old} snapshot(s) added after {n_old}; all {len(blocks)} "
-                          "sampled old blocks identical", current["fingerprint"], samples, read + more, n_old)
+                          "sampled old blocks identical", current["fingerprint"], samples, read + more, n_old,
+                          verified=tuple(blocks))
+
+
+def verification_note(classification: Classification) -> str:
+    """What a grown archive's run verified of the old snapshots, and how to force a full recompute."""
+    spans = ", ".join(f"{a}..{b - 1}" for a, b in classification.verified)
+    return (f"archive grew: of the {classification.old_snapshots} old snapshots only the sampled blocks "
+            f"{spans} were verified unchanged; a rewrite of other old snapshots is not detected; "
+            "run with --overwrite to recompute everything from the archive")
 
 
 def workflow_identity(workflow: Workflow, archive_path: str) -> str:

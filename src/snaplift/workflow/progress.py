@@ -53,6 +53,8 @@ class ProgressReporter:
         self._task: Any = None
         self._stage: str | None = None
         self._total = 0
+        self._expected = 0
+        self._announced = 0
         self._done = 0
         self._logged_decile = 0
 
@@ -80,6 +82,7 @@ class ProgressReporter:
         """A stage starts; its work is announced later with :meth:`add_work`."""
         with self._lock:
             self._stage, self._total, self._done, self._logged_decile = stage, 0, 0, 0
+            self._expected, self._announced = 0, 0
             self._write_log(f"{stage}: started - {description}")
             if self.quiet:
                 return
@@ -97,9 +100,20 @@ class ProgressReporter:
                 self._progress.start()
             self._task = self._progress.add_task(f"{stage}: {description}", total=None)
 
+    def expect(self, units: int) -> None:
+        """The stage's whole work, known up front (every pass of compress): work announced
+        later with :meth:`add_work` counts against it, so the bar does not reach 100 %
+        after the first pass."""
+        with self._lock:
+            self._expected = int(units)
+            self._total = max(self._expected, self._announced)
+            if self._progress is not None and self._task is not None:
+                self._progress.update(self._task, total=self._total)
+
     def add_work(self, units: int) -> None:
         with self._lock:
-            self._total += int(units)
+            self._announced += int(units)
+            self._total = max(self._expected, self._announced)
             if self._progress is not None and self._task is not None:
                 self._progress.update(self._task, total=self._total)
 

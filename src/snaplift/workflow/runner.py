@@ -29,6 +29,7 @@ import platform
 import signal
 import socket
 import threading
+import warnings
 from collections.abc import Callable, Iterator
 from contextlib import contextmanager
 from dataclasses import dataclass, field, replace
@@ -38,6 +39,7 @@ from typing import Any
 import numpy as np
 
 from snaplift import __version__
+from snaplift._process_memory import trim_heap
 from snaplift.cluster import Scheduler, TaskProgress, open_scheduler
 from snaplift.errors import SnapliftError
 from snaplift.results import stages as stored
@@ -47,9 +49,11 @@ from snaplift.workflow.fingerprint import (
     archive_fingerprint,
     classify_archive,
     stage_fingerprints,
+    verification_note,
     workflow_identity,
 )
-from snaplift.workflow.lease import Lease
+from snaplift.workflow.guards import WRITE_ERRNOS, capped_workflow_text, check_output_path, write_error
+from snaplift.workflow.lease import Lease, LeaseLostError
 from snaplift.workflow.progress import ProgressReporter
 from snaplift.workflow.store_metadata import store_metadata
 from snaplift.workflow.schema import Workflow, load_workflow, resolve_path, section_fingerprint
@@ -198,18 +202,28 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
         reporter = ProgressReporter(quiet=True)
     say = progress or reporter.message
     started = _now()
-    output = Path(resolve_path(folder, workflow.output.path))
+    # normalised: 'sub/..' is the folder itself (and no empty 'sub' is made for it)
+    output = Path(os.path.abspath(resolve_path(folder, workflow.output.path)))
     archive_path = resolve_path(folder, workflow.archive.path)
+    check_output_path(output, archive_path)
     # names, shapes and times are checked first: an existing store never hides a typo
     stage_functions.check_workflow(workflow, folder)
     lease = Lease(output)
-    lease.acquire()
+    with warnings.catch_warnings():
+        # said below as one line through the reporter, not as a Python warning with a source line
+        warnings.simplefilter("ignore", RuntimeWarning)
+        lease.acquire()
+    if lease.taken_over:
+        say(f"warning: took over the lease of {output} from a run that is gone "
+            f"({Lease.describe(lease.taken_over)}: {lease.taken_over.get('reason')})")
     store: StagedStore | None = None
     try:
         with _termination_as_interrupt():
             store = StagedStore(output, identity=workflow_identity(workflow, archive_path), overwrite=overwrite)
             if store.discarded:
                 say(store.discarded)
+            if overwrite:
+                say("--overwrite: every stage is recomputed from the archive")
             summary = _run_stages(workflow, text, folder, store, lease, reporter, say, started)
     except KeyboardInterrupt as error:
         command = f"snaplift run {workflow_path}" if workflow_path else "the same run"
@@ -218,9 +232,18 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
             store.abort()
         where = f"finished stages and checkpoints are kept in {store.area}; " if kept and store else ""
         raise RunInterrupted(f"interrupted ({error or 'Ctrl-C'}); {where}run {command} again to resume") from None
-    except BaseException:
+    except BaseException as error:
+        if _lease_lost(lease):
+            # another run holds the store now: its staging area is not ours to clean, and
+            # whatever failed here failed because that run changed it
+            raise LeaseLostError(
+                f"the lease of {output} was taken over by another run while this run was suspended or cut off "
+                f"({type(error).__name__} afterwards); this run stops without writing; the other run's result "
+                "is the one that counts") from None
         if store is not None and not store.has_progress:
             store.abort()
+        if isinstance(error, OSError) and error.errno in WRITE_ERRNOS:
+            raise write_error(error, output) from None
         raise
     finally:
         lease.release()
@@ -232,6 +255,14 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
         if own_reporter:
             reporter.close()
     return summary
+
+
+def _lease_lost(lease: Lease) -> bool:
+    try:
+        lease.check()
+    except LeaseLostError:
+        return True
+    return False
 
 
 def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore, lease: Lease,
@@ -276,9 +307,12 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
             "bytes_read": classification.bytes_read, "bytes_sampled": fingerprint_now["bytes_sampled"],
             "archive": fingerprint_now, "samples": classification.samples, "identity": classification.identity,
             "classification": classification.state, "classification_reason": classification.reason,
+            "verified_blocks": [list(block) for block in classification.verified],
             "memory_baseline": int(scanned.plan.baseline_bytes) if scanned.plan is not None else 0,
             "started": stage_started.isoformat(), "finished": _now().isoformat()})
         reporter.end("scan", f"archive {classification.state} ({classification.reason})")
+        if classification.state == "grown":
+            warnings.append(verification_note(classification))
         warnings.extend(scanned.warnings)
         faults.finished("scan")
 
@@ -286,6 +320,7 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
         lease.check()
         compressed, records["compress"] = _compress(workflow, scanned, scheduler, store, fingerprints, classification,
                                                     reporter, faults, warnings)
+        trim_heap()  # what compress freed goes back to the system before fit and modes allocate
         n_modes, fit_records = _fit_and_modes(workflow, scanned, scheduler, store, fingerprints, compressed,
                                               reporter, faults, warnings)
         records.update(fit_records)
@@ -304,7 +339,7 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
     bytes_read = sum(int(r.get("bytes_read", 0)) for r in records.values())
     result_passes = int(records["compress"].get("passes", 0))
     path = store.commit({
-        "workflow": text,
+        "workflow": capped_workflow_text(text),
         "workflow_fingerprint": section_fingerprint(workflow),
         "archive": str(scanned.reader.path),
         "archive_format": scanned.reader.format_name,
@@ -407,6 +442,9 @@ def _compress(workflow: Workflow, scanned: Any, scheduler: Scheduler, store: Sta
         n_points = scanned.lifted_rows or sum(info.fields[f].n_points for f in workflow.archive.fields)
         width = workflow.compress.rank + workflow.compress.oversample
         check_free_space(store.area, 16 * n_points * (2 * width + workflow.compress.rank), "compress checkpoints and basis")
+        if scanned.plan is not None:
+            # every pass's tiles, so the bar reaches 100 % when compress does, not after the first pass
+            reporter.expect(int(scanned.plan.passes) * int(scanned.plan.n_tiles))
         result = _compress_with_retries(workflow, scanned, scheduler, keywords, warnings)
         stored.write_compressed(store.writer, result, scheduler.compute, scale_setting=workflow.prepare.scale)
         full = store.finish("compress", {
@@ -528,6 +566,7 @@ def _fit_and_modes(workflow: Workflow, scanned: Any, scheduler: Scheduler, store
     reporter.begin("modes", f"{n_modes} modes on the grid")
     started = _now()
     check_free_space(store.area, stored.modes_bytes(compressed.matrix, n_modes), "the modes")
+    trim_heap()
     store.begin("modes")
     stored.write_modes(store.writer, fit, compressed, order, scheduler.compute)
     records["modes"] = (store.finish("modes", {

@@ -18,6 +18,7 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from snaplift.errors import ConfigError
+from snaplift.workflow._text import MAX_MESSAGE, MAX_WORKFLOW_BYTES, safe_load, shown, shorten
 from snaplift.workflow.lift_section import LiftEntry, check_lift, field_lift, state_source
 
 __all__ = [
@@ -74,6 +75,9 @@ class ArchiveSection(_Section):
     snapshots: SnapshotRange = SnapshotRange()
     format: Literal["hdf5", "zarr", "series", "npy"] | None = None
     runs: str | None = Field(None, description="dataset with one run label per snapshot")
+    missing_chunks: Literal["error", "fill"] = Field(
+        "error", description="zarr: a chunk absent from the store is an error (default) or read as the "
+                             "array's declared fill value ('fill')")
 
     @field_validator("path")
     @classmethod
@@ -395,6 +399,7 @@ class Workflow(_Section):
                 f"fit.rank ({self.fit.rank}) cannot exceed compress.rank ({self.compress.rank})"
             )
         check_lift(list(self.lift), list(self.archive.fields), self.fit.method)
+        _check_formula_names(self)
         if isinstance(self.prepare.scale, dict):
             expected = set(self.archive.fields) | set(scaled_lifted_names(self))
             missing = sorted(expected - set(self.prepare.scale))
@@ -461,6 +466,19 @@ def parse_bytes(value: str | int) -> int:
     return int(amount * _UNITS[unit])
 
 
+def _check_formula_names(workflow: Any) -> None:
+    """Formulas on the coefficients may use only ``c0 .. c{k-1}``: checked now, not after compress."""
+    from snaplift.lifting.expressions import check_variables, parse_formulas
+
+    count = workflow.fit.coefficients or workflow.compress.rank
+    for index, entry in enumerate(workflow.lift):
+        if entry.kind == "expressions" and entry.on == "coefficients":
+            try:
+                check_variables(parse_formulas(entry.formulas), [f"c{i}" for i in range(count)])
+            except ConfigError as error:
+                raise ValueError(f"lift[{index}]: {error}") from None
+
+
 def _format_validation_error(error: ValidationError, source: str) -> str:
     parts = []
     for item in error.errors():
@@ -480,9 +498,9 @@ def _format_validation_error(error: ValidationError, source: str) -> str:
         if not key:  # a rule across sections: its message names the keys
             parts.append(message)
             continue
-        shown = json.dumps(given, default=str) if not isinstance(given, dict) else "{...}"
-        parts.append(f"{key} = {shown}: {message}")
-    return f"invalid workflow {source}: " + "; ".join(parts)
+        value = shown(given)
+        parts.append(f"{shorten(key)} = {value}: {shorten(message, MAX_MESSAGE // 2)}")
+    return shorten(f"invalid workflow {source}: " + "; ".join(parts), MAX_MESSAGE)
 
 
 def _allowed_keys(loc: tuple[Any, ...]) -> list[str]:
@@ -527,11 +545,18 @@ def load_workflow(path: str | Path) -> tuple[Workflow, str, Path]:
     """
     path = Path(path)
     try:
+        size = path.stat().st_size
+        if path.is_file() and size > MAX_WORKFLOW_BYTES:
+            raise ConfigError(f"workflow file {path} is {size} bytes; a workflow file may have at most "
+                              f"{MAX_WORKFLOW_BYTES} bytes (1 MiB): is this the right file?")
         text = path.read_text()
     except OSError as error:
         raise ConfigError(f"cannot read workflow file {path}: {error.strerror}") from None
+    except UnicodeDecodeError as error:
+        raise ConfigError(f"workflow file {path} is not UTF-8 text (byte {error.start}); is this the right file?") \
+            from None
     try:
-        data = yaml.safe_load(text)
+        data = safe_load(text, path)
     except yaml.YAMLError as error:
         mark = getattr(error, "problem_mark", None)
         where = f" line {mark.line + 1}, column {mark.column + 1}" if mark else ""

@@ -31,7 +31,7 @@ from snaplift.errors import ArchiveError, ConfigError, FieldNotFoundError, TimeS
 from snaplift.lifting import delayed_run_lengths
 from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation
-from snaplift.workflow.fit_methods import FitOutcome, fit_outcome
+from snaplift.workflow.fit_methods import FitOutcome, fit_outcome, state_variables
 from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path, scale_of
 from snaplift.workflow.store_metadata import store_metadata
 
@@ -105,6 +105,80 @@ class Compressed:
     info: dict[str, object] = field(default_factory=dict)
 
 
+def input_notes(reader: Reader, info: ArchiveInfo, workflow: Workflow) -> list[str]:
+    """What is accepted but changes what the user gets: zero weights, integer or complex fields.
+
+    Weights of zero at every kept point are an error (nothing would count); weights of
+    zero at some points are said with their count (those points are excluded).
+    """
+    section = workflow.archive
+    notes: list[str] = []
+    for name in section.fields:
+        f = info.fields[name]
+        kind = np.dtype(f.stored_dtype).kind
+        if kind in "iub":
+            notes.append(f"field '{name}' holds {np.dtype(f.stored_dtype).name} values; they are converted to "
+                         "float64 (accumulation is always in float64)")
+        elif kind == "c":
+            notes.append(f"field '{name}' is complex ({np.dtype(f.stored_dtype).name}): compress and fit.method "
+                         "dmd and optimized handle it (complex128); edmd and lift entries on the state need real "
+                         "data")
+        weight_name = section.weights.get(name) if isinstance(section.weights, dict) else section.weights
+        if weight_name is None:
+            continue
+        mask_name = section.mask.get(name) if isinstance(section.mask, dict) else section.mask
+        try:
+            weights = np.asarray(reader.read_variable(weight_name), dtype=np.float64).ravel()
+            kept = (np.ones(weights.size, dtype=bool) if mask_name is None
+                    else ~np.asarray(reader.read_variable(mask_name)).astype(bool).ravel())
+        except (KeyError, ValueError, OSError):
+            continue  # a missing or misshapen dataset is reported, with its name, by the matrix
+        if kept.size != weights.size:
+            continue
+        zero = int(np.count_nonzero(weights[kept] == 0))
+        if zero and zero == int(np.count_nonzero(kept)):
+            raise ArchiveError(
+                f"{reader.path}: weights '{weight_name}' are zero at every kept point of field '{name}' "
+                f"({zero} points): nothing would count; give positive weights (cell areas or volumes)")
+        if zero:
+            notes.append(f"weights '{weight_name}' are zero at {zero} of {int(np.count_nonzero(kept))} kept points "
+                         f"of field '{name}'; those points are excluded from the fit and the modes")
+    return notes
+
+
+def _check_state_formulas(workflow: Workflow, reader: Reader, index: np.ndarray) -> None:
+    """Formulas on the raw state may use only its variables: checked at scan, not after compress."""
+    from snaplift.lifting.expressions import check_variables, parse_formulas
+
+    entries = [(i, e) for i, e in enumerate(workflow.lift) if e.kind == "expressions"]
+    if not entries:
+        return
+    section = workflow.archive
+    matrix = build_snapshot_matrix(reader, list(section.fields), snapshots=index, snapshot_block=1,
+                                   weights=section.weights, mask=section.mask)
+    variables = state_variables(matrix)
+    for position, entry in entries:
+        try:
+            check_variables(parse_formulas(entry.formulas), variables)
+        except ConfigError as error:
+            raise ConfigError(f"lift[{position}]: {error}") from None
+
+
+def _check_rank_fits(workflow: Workflow, info: Any, m: int) -> None:
+    """compress.rank above the matrix size is refused before any plan (whose numbers would mislead)."""
+    if workflow.state_source == "state":
+        return  # a small raw state: compress keeps min(n, m) for the diagnostics only
+    lifted = lifted_info(info, workflow)
+    n = sum(f.n_points for name, f in lifted.fields.items()
+            if lifted is not info or name in workflow.archive.fields)
+    rank = workflow.compress.rank
+    if rank > min(n, m):
+        raise ArchiveError(
+            f"compress.rank = {rank} exceeds what the data allow: the snapshot matrix has at most {n} points and "
+            f"{m} snapshots; use compress.rank <= {min(n, m)}"
+        )
+
+
 def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
                recorded_baseline: int | None = None, with_plan: bool = True) -> Scanned:
     """Open the archive, select snapshots, check times, plan tiles. Reads metadata only.
@@ -116,7 +190,8 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
     section = workflow.archive
     # the workflow names its fields: a one-value-per-snapshot (1-D) dataset is then a field too
     reader = open_archive(resolve_path(folder, section.path), format=section.format, fields=list(section.fields),
-                          time=section.time)
+                          time=section.time,
+                          missing_chunks=section.missing_chunks if section.missing_chunks != "error" else None)
     info = reader.describe()
     _check_state_size(workflow, info)
     for name in section.fields:
@@ -151,11 +226,15 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
             column_runs = delayed_run_lengths(selected_runs, lift.delays, lift.spacing)
         except ConfigError as error:
             raise ConfigError(f"lift delays on {reader.path}: {error}") from None
+    _check_rank_fits(workflow, info, int(columns.size))
+    if workflow.state_source == "state":
+        _check_state_formulas(workflow, reader, index)
+    notes = input_notes(reader, info, workflow)
     if not with_plan or scheduler is None:
         return Scanned(reader, index[columns], times[columns], dt, 1, 0, plan=None,
                        run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
                        selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
-                       time_unit=unit, warnings=tuple(unit_warnings))
+                       time_unit=unit, warnings=(*unit_warnings, *notes))
     plan = plan_compress(workflow, info, scheduler, recorded_baseline=recorded_baseline)
     block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
     # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
@@ -165,7 +244,7 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
     return Scanned(reader, index[columns], times[columns], dt, snapshot_block, plan.memory_bytes, plan=plan,
                    run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
                    selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
-                   lifted_rows=int(lifted_rows), time_unit=unit, warnings=tuple(unit_warnings))
+                   lifted_rows=int(lifted_rows), time_unit=unit, warnings=(*unit_warnings, *notes))
 
 
 def archive_time_unit(workflow: Workflow, reader: Reader, info: ArchiveInfo) -> tuple[TimeUnit | None, list[str]]:
