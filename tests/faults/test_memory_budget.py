@@ -44,7 +44,7 @@ def _run(folder: Path, method: str, memory: str) -> tuple[int, str, int | None]:
     workflow.write_text(yaml.safe_dump({
         "archive": {"path": "wide.h5", "fields": ["u"], "time": "t"},
         "compress": {"method": method, "rank": 40, "oversample": 4, "power_iterations": 1, "memory": memory},
-        "fit": {"rank": 10}, "output": {"path": f"{method}.zarr"}, "cluster": "threads"}))
+        "fit": {"rank": 10}, "output": {"path": f"{method}.zarr", "report": False}, "cluster": "threads"}))
     done = subprocess.run([sys.executable, "-c", _RUN, "run", str(workflow), "-q", "--overwrite"],
                           capture_output=True, text=True, cwd=folder, timeout=600)
     peak = re.search(r"PEAK (\d+)", done.stdout)
@@ -67,5 +67,6 @@ def test_whole_run_peak_stays_within_a_budget_near_the_smallest(tmp_path: Path, 
     budget = int(smallest * 1.04)
     code, stderr, peak = _run(tmp_path, method, str(budget // 2**10) + "KiB")
     assert code == 0 and peak is not None and not stderr.strip(), stderr
-    # the budget is the whole run's: compress.memory bounds the process tree (DEVELOPERS.md)
+    # the budget is the whole run's: compress.memory bounds the process tree (DEVELOPERS.md);
+    # the report, drawn after the commit, is outside the plan (README) and switched off here
     assert peak <= budget, f"peak {peak / 2**20:.1f} MiB over the budget {budget / 2**20:.1f} MiB"
