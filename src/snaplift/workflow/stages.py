@@ -227,8 +227,7 @@ def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]
         lines.append(f"runs: {scanned.run_lengths.size} ({', '.join(map(str, scanned.run_lengths.tolist()))} columns)")
     kept = sum(rows.n_rows for rows in matrix.fields)
     lines.append(f"snapshot matrix: {kept} rows x {matrix.shape[1]} columns"
-                 + (f" (weights '{workflow.archive.weights}')" if workflow.archive.weights else "")
-                 + (f" (mask '{workflow.archive.mask}')" if workflow.archive.mask else ""))
+                 + _named(" (weights {})", workflow.archive.weights) + _named(" (mask {})", workflow.archive.mask))
     if metadata.coordinates:
         lines.append("coordinates: " + ", ".join(f"{d} <- {c.attrs.get('archive_variable')} [{c.attrs.get('units')}]"
                                                  for d, c in metadata.coordinates.items()))
@@ -236,6 +235,15 @@ def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]
         lines.append("coordinates: none in the archive (index positions; archive.coords names them)")
     lines.extend(f"warning: {warning}" for warning in scanned.warnings)
     return scanned, lines
+
+
+def _named(template: str, datasets: str | dict[str, str] | None) -> str:
+    """``" (mask 'solid')"``, ``" (mask T: 'solid', w: 'solid3d')"``; empty when not given."""
+    if not datasets:
+        return ""
+    if isinstance(datasets, str):
+        return template.format(repr(datasets))
+    return template.format(", ".join(f"{field}: {name!r}" for field, name in datasets.items()))
 
 
 def archive_run_lengths(reader: Reader, runs: str | None, total: int) -> np.ndarray:

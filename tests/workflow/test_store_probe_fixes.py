@@ -1,0 +1,96 @@
+"""Archives a user makes that the first tests of the self-explaining store did not cover.
+
+The archive is analytic, every 10 ms (handbook: a damped linear oscillator and the
+standing / travelling waves built from it), with f = 7.5 Hz and g = -0.4 1/s:
+
+    T = 300 K + 5 K exp(g t) cos(pi x) cos(2 pi f t)        on (y, x)   standing wave
+    p =        40 Pa exp(g t) cos(pi x - 2 pi f t)           on (y, x)   travelling wave
+    w =       2.5 m/s exp(g t) cos(pi x) cos(pi z) sin(2 pi f t)  on (z, y, x)
+
+with x = 0 on the grid, so each field's peak at t = 0 is its amplitude: the conjugate
+pair reads 5 K, 40 Pa and 2.5 m/s.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import h5py
+import numpy as np
+import pytest
+import xarray as xr
+import yaml
+
+from snaplift.errors import ConfigError
+from snaplift.workflow.runner import run_workflow
+
+FREQUENCY, GROWTH, STEP_S, COUNT = 7.5, -0.4, 0.01, 80
+X = np.linspace(0.0, 2.0, 12)
+Y = np.linspace(0.0, 1.0, 5)
+Z = np.linspace(0.0, 1.0, 3)
+AMPLITUDES = {"T": 5.0, "p": 40.0, "w": 2.5}
+
+
+def _fields(count: int = COUNT) -> dict[str, np.ndarray]:
+    t = STEP_S * np.arange(count)[:, None, None]
+    envelope, omega = np.exp(GROWTH * t), 2 * np.pi * FREQUENCY
+    ones = np.ones((1, Y.size, 1))
+    temperature = 300.0 + 5.0 * envelope * np.cos(np.pi * X) * np.cos(omega * t) * ones
+    pressure = 40.0 * envelope * np.cos(np.pi * X - omega * t) * ones
+    w = (2.5 * envelope[..., None] * np.cos(np.pi * X) * np.cos(np.pi * Z)[:, None, None]
+         * np.sin(omega * t[..., None]) * np.ones((1, 1, Y.size, 1)))
+    return {"T": temperature, "p": pressure, "w": w}
+
+
+def _write_h5(path: Path) -> None:
+    with h5py.File(path, "w") as h5:
+        h5["t"] = STEP_S * np.arange(COUNT)
+        h5["t"].attrs["units"] = "s"
+        for name, values in _fields().items():
+            h5.create_dataset(name, data=values, chunks=(1, *values.shape[1:]))
+            h5[name].attrs["units"] = {"T": "K", "p": "Pa", "w": "m s-1"}[name]
+        h5["cell_area"] = np.full((Y.size, X.size), 0.02)
+        solid = np.zeros((Y.size, X.size), bool)
+        solid[2, 5:7] = True
+        h5["solid"] = solid
+
+
+def _run(folder: Path, archive: dict, name: str = "w.yaml", **extra) -> Path:
+    data = {"archive": {"path": "a.h5", "time": "t", **archive},
+            "compress": {"method": "randomized", "rank": 4, "oversample": 4},
+            "fit": {"rank": 3}, "output": {"path": "r.zarr"}, "cluster": "threads", **extra}
+    path = folder / name
+    path.write_text(yaml.safe_dump(data))
+    return run_workflow(path).path
+
+
+def _pair(spectrum: xr.Dataset) -> np.ndarray:
+    pair = np.abs(np.abs(spectrum["frequency"].values) - FREQUENCY) < 0.5
+    assert np.count_nonzero(pair) == 2
+    return pair
+
+
+def test_weights_and_mask_per_field_let_2d_and_3d_fields_share_a_run(tmp_path: Path) -> None:
+    _write_h5(tmp_path / "a.h5")
+    store = _run(tmp_path, {"fields": ["T", "p", "w"], "weights": {"T": "cell_area", "p": "cell_area"},
+                            "mask": {"T": "solid", "p": "solid"}})
+    spectrum = xr.open_zarr(store, group="spectrum")
+    pair = _pair(spectrum)
+    for name, amplitude in AMPLITUDES.items():
+        # analytic amplitude at t = 0 (module docstring)
+        np.testing.assert_allclose(spectrum[f"peak_{name}"].values[pair], amplitude, rtol=1e-6)
+    # the damped oscillator's frequency and growth (module docstring)
+    np.testing.assert_allclose(np.abs(spectrum["frequency"].values[pair]), FREQUENCY, rtol=1e-8)
+    np.testing.assert_allclose(spectrum["growth"].values[pair], GROWTH, rtol=1e-6)
+    prepare = xr.open_zarr(store, group="prepare")
+    assert {"weights_T", "weights_p", "mask_T", "mask_p"} <= set(prepare.data_vars)
+    assert "weights_w" not in prepare and "mask_w" not in prepare
+    modes = xr.open_zarr(store, group="modes")
+    assert np.isnan(modes["T"].isel(mode=0).values[2, 5:7]).all()
+    assert not np.isnan(modes["w"].values).any()
+
+
+def test_weights_mapping_names_fields_of_the_workflow(tmp_path: Path) -> None:
+    _write_h5(tmp_path / "a.h5")
+    with pytest.raises(ConfigError, match="weights key 'q' is not one of the fields"):
+        _run(tmp_path, {"fields": ["T", "p"], "weights": {"q": "cell_area"}})
