@@ -94,3 +94,22 @@ def test_weights_mapping_names_fields_of_the_workflow(tmp_path: Path) -> None:
     _write_h5(tmp_path / "a.h5")
     with pytest.raises(ConfigError, match="weights key 'q' is not one of the fields"):
         _run(tmp_path, {"fields": ["T", "p"], "weights": {"q": "cell_area"}})
+
+
+def test_series_time_in_a_root_attribute_takes_its_unit_from_a_root_attribute(tmp_path: Path) -> None:
+    fields = _fields()
+    (tmp_path / "snaps").mkdir()
+    for j in range(COUNT):
+        with h5py.File(tmp_path / "snaps" / f"snap_{j}.h5", "w") as h5:
+            for name in ("T", "p"):
+                h5[name] = fields[name][j]
+            h5.attrs["time"] = 10.0 * j
+            h5.attrs["time_units"] = "ms"
+    store = _run(tmp_path, {"path": "snaps/snap_*.h5", "fields": ["T", "p"], "time": None})
+    spectrum = xr.open_zarr(store, group="spectrum")
+    assert spectrum.attrs["frequency_unit"] == "Hz" and spectrum.attrs["time_unit_seconds"] == 1e-3
+    # 10 ms steps of the damped oscillator of the module docstring: 7.5 Hz, -0.4 1/s
+    pair = _pair(spectrum)
+    np.testing.assert_allclose(np.abs(spectrum["frequency"].values[pair]), FREQUENCY, rtol=1e-8)
+    np.testing.assert_allclose(spectrum["growth"].values[pair], GROWTH, rtol=1e-6)
+    assert xr.open_zarr(store, group="diagnostics")["time"].attrs["units"] == "ms"
