@@ -113,3 +113,25 @@ def test_series_time_in_a_root_attribute_takes_its_unit_from_a_root_attribute(tm
     np.testing.assert_allclose(np.abs(spectrum["frequency"].values[pair]), FREQUENCY, rtol=1e-8)
     np.testing.assert_allclose(spectrum["growth"].values[pair], GROWTH, rtol=1e-6)
     assert xr.open_zarr(store, group="diagnostics")["time"].attrs["units"] == "ms"
+
+
+def test_a_store_of_another_layout_is_recomputed_not_reused(tmp_path: Path, monkeypatch) -> None:
+    from snaplift.results import store as result_store
+
+    _write_h5(tmp_path / "a.h5")
+    archive = {"fields": ["T", "p"]}
+    # an older snaplift: same workflow, the previous layout version
+    monkeypatch.setattr(result_store, "STORE_VERSION", result_store.STORE_VERSION - 1)
+    monkeypatch.setattr("snaplift.results.staging.STORE_VERSION", result_store.STORE_VERSION)
+    _run(tmp_path, archive)
+    monkeypatch.undo()
+    path = tmp_path / "w.yaml"
+    summary = run_workflow(path)
+    assert {name: record["status"] for name, record in summary.stages.items()} == {
+        "scan": "computed", "compress": "computed", "fit": "computed", "modes": "computed", "report": "computed"}
+    assert any(f"layout {result_store.STORE_VERSION - 1}" in w and "recomputed" in w for w in summary.warnings)
+    assert xr.open_zarr(summary.path).attrs["snaplift_store_version"] == result_store.STORE_VERSION
+    # the same layout again: everything but scan is reused, and no layout warning
+    again = run_workflow(path)
+    assert again.stages["compress"]["status"] == "reused" and again.stages["fit"]["status"] == "reused"
+    assert not any("layout" in w for w in again.warnings)
