@@ -21,7 +21,7 @@ import pytest
 import xarray as xr
 import yaml
 
-from snaplift.errors import ConfigError
+from snaplift.errors import ConfigError, FieldNotFoundError
 from snaplift.workflow.runner import run_workflow
 
 FREQUENCY, GROWTH, STEP_S, COUNT = 7.5, -0.4, 0.01, 80
@@ -135,3 +135,10 @@ def test_a_store_of_another_layout_is_recomputed_not_reused(tmp_path: Path, monk
     again = run_workflow(path)
     assert again.stages["compress"]["status"] == "reused" and again.stages["fit"]["status"] == "reused"
     assert not any("layout" in w for w in again.warnings)
+
+
+def test_field_not_found_lists_candidate_fields_not_weights_or_masks(tmp_path: Path) -> None:
+    _write_h5(tmp_path / "a.h5")
+    # the archive holds T, p, w (snapshot, ...) and cell_area, solid (y, x): only the first are fields
+    with pytest.raises(FieldNotFoundError, match=r"archive field 'q' not found in .*a\.h5; fields present: T, p, w$"):
+        _run(tmp_path, {"fields": ["T", "q"], "weights": "cell_area", "mask": "solid"})
