@@ -142,3 +142,26 @@ def test_field_not_found_lists_candidate_fields_not_weights_or_masks(tmp_path: P
     # the archive holds T, p, w (snapshot, ...) and cell_area, solid (y, x): only the first are fields
     with pytest.raises(FieldNotFoundError, match=r"archive field 'q' not found in .*a\.h5; fields present: T, p, w$"):
         _run(tmp_path, {"fields": ["T", "q"], "weights": "cell_area", "mask": "solid"})
+
+
+def test_a_field_without_units_is_not_called_dimensionless(tmp_path: Path) -> None:
+    np.save(tmp_path / "p.npy", _fields()["p"])
+    archive = {"path": "p.npy", "fields": ["p"], "step": 10.0, "time_unit": "ms", "time": None}
+    summary_store = _run(tmp_path, archive, fit={"rank": 2})
+    spectrum = xr.open_zarr(summary_store, group="spectrum")
+    # no unit anywhere: unknown, so no CF units attribute (CF 1.x section 3.1), never "1"
+    assert "units" not in spectrum["peak_p"].attrs
+    assert "units" not in xr.open_zarr(summary_store, group="modes")["p"].attrs
+    # archive.units gives it; the travelling wave of 40 Pa reads 40 Pa (module docstring)
+    store = _run(tmp_path, {**archive, "units": {"p": "Pa"}}, name="w2.yaml", fit={"rank": 2},
+                 output={"path": "r2.zarr"})
+    spectrum = xr.open_zarr(store, group="spectrum")
+    assert spectrum["peak_p"].attrs["units"] == "Pa"
+    assert xr.open_zarr(store, group="modes")["p"].attrs["units"] == "Pa"
+    np.testing.assert_allclose(spectrum["peak_p"].values[_pair(spectrum)], 40.0, rtol=1e-6)
+
+
+def test_archive_units_that_contradict_the_archive_are_refused(tmp_path: Path) -> None:
+    _write_h5(tmp_path / "a.h5")
+    with pytest.raises(ConfigError, match="archive.units gives field 'p' the unit 'bar' but .* declares 'Pa'"):
+        _run(tmp_path, {"fields": ["T", "p"], "units": {"p": "bar"}})

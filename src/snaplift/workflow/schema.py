@@ -67,6 +67,8 @@ class ArchiveSection(_Section):
     step: float | None = Field(None, gt=0, description="fixed time step when there is no time dataset")
     time_unit: Literal["s", "ms", "us", "min", "h", "day"] | None = Field(
         None, description="unit of 'step', or of a time dataset that declares none")
+    units: dict[str, str] | None = Field(
+        None, description="units of fields whose archive declares none, e.g. {p: Pa} (CF / UDUNITS strings)")
     coords: dict[str, str] | None = Field(
         None, description="1-D coordinate datasets per grid dimension, e.g. {x: xc, y: yc}")
     weights: str | dict[str, str] | None = Field(
@@ -97,7 +99,7 @@ class ArchiveSection(_Section):
             raise ValueError("give either 'time' (a dataset) or 'step' (a number), not both")
         if len(set(self.fields)) != len(self.fields):
             raise ValueError(f"fields must be distinct, got {self.fields}")
-        for key in ("weights", "mask"):
+        for key in ("weights", "mask", "units"):
             given = getattr(self, key)
             unknown = sorted(set(given) - set(self.fields)) if isinstance(given, dict) else []
             if unknown:

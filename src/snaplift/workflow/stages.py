@@ -139,6 +139,11 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
         )
     all_times = snapshot_times(reader, time=section.time, step=section.step, n_snapshots=total)
     unit, unit_warnings = archive_time_unit(workflow, reader, info)
+    unitless = [f for f in section.fields if not str(info.fields[f].attrs.get("units") or "").strip()
+                and f not in (section.units or {})]
+    if unitless:
+        unit_warnings = [*unit_warnings, f"{reader.path} declares no units for {', '.join(unitless)}: their modes and "
+                         "peak amplitudes carry none; set archive.units (e.g. {" + f"{unitless[0]}: Pa" + "})"]
     times = np.asarray(all_times, dtype=np.float64)[index]
     selected_runs = selected_run_lengths(archive_run_lengths(reader, section.runs, total), index)
     dt, uniform = _run_time_step(reader.path, times, index, selected_runs,
