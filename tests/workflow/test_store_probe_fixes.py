@@ -165,3 +165,12 @@ def test_archive_units_that_contradict_the_archive_are_refused(tmp_path: Path) -
     _write_h5(tmp_path / "a.h5")
     with pytest.raises(ConfigError, match="archive.units gives field 'p' the unit 'bar' but .* declares 'Pa'"):
         _run(tmp_path, {"fields": ["T", "p"], "units": {"p": "bar"}})
+
+
+@pytest.mark.parametrize(("units", "seconds"), [("msec", 1e-3), ("msec since 2000-01-01", 1e-3), ("usec", 1e-6),
+                                                ("\u03bcs", 1e-6), ("nsec", 1e-9)])
+def test_time_unit_spellings_with_sec_and_greek_mu_convert(units: str, seconds: float) -> None:
+    from snaplift.archive._cf import time_unit_of
+
+    # SI prefixes (from memory: milli 1e-3, micro 1e-6, nano 1e-9); UDUNITS accepts them on "sec"
+    assert time_unit_of({"units": units}).seconds == seconds
