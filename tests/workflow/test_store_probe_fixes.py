@@ -174,3 +174,17 @@ def test_time_unit_spellings_with_sec_and_greek_mu_convert(units: str, seconds: 
 
     # SI prefixes (from memory: milli 1e-3, micro 1e-6, nano 1e-9); UDUNITS accepts them on "sec"
     assert time_unit_of({"units": units}).seconds == seconds
+
+
+def test_scan_of_several_runs_sums_their_time_spans(tmp_path: Path) -> None:
+    from snaplift.archive import open_archive
+    from snaplift.archive.scan import scan_archive
+
+    for name, count in (("a.h5", 30), ("b.h5", 20)):
+        with h5py.File(tmp_path / name, "w") as h5:
+            h5["t"] = 10.0 * np.arange(count)  # each run restarts at 0 ms
+            h5["t"].attrs["units"] = "ms"
+            h5.create_dataset("p", data=np.zeros((count, 3)))
+    report = scan_archive(open_archive([str(tmp_path / "a.h5"), str(tmp_path / "b.h5")]), fields=["p"])
+    # 29 and 19 steps of 10 ms (arithmetic), not the last time minus the first (190 ms)
+    assert report.run_lengths == (30, 20) and report.time_span == pytest.approx(290.0 + 190.0)
