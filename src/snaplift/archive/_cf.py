@@ -81,7 +81,17 @@ _TIME_UNITS = {
     "ns": "nanoseconds",
     "nanosecond": "nanoseconds",
     "nanoseconds": "nanoseconds",
-    "µs": "microseconds",
+    "µs": "microseconds",  # micro sign U+00B5
+    "μs": "microseconds",  # Greek small mu U+03BC, which keyboards and editors give as often
+    # UDUNITS prefixes on "sec" (from memory: udunits2 accepts msec, usec, nsec)
+    "msec": "milliseconds",
+    "msecs": "milliseconds",
+    "millisec": "milliseconds",
+    "usec": "microseconds",
+    "usecs": "microseconds",
+    "microsec": "microseconds",
+    "nsec": "nanoseconds",
+    "nsecs": "nanoseconds",
 }
 #: seconds in one of each canonical time unit (SI; a day of 86400 s, as CF and UDUNITS count it)
 SECONDS_PER_UNIT = {

@@ -148,6 +148,25 @@ def _numeric(dtype: np.dtype) -> bool:
     return np.dtype(dtype).kind in "biufc"
 
 
+def _field_candidates(candidates: Sequence[Candidate], fields: Sequence[str], time: str | None) -> list[str]:
+    """Names that could be fields, for the message of a field not found: numeric arrays of
+    2 or more dimensions whose leading length is the snapshot count (that of the named
+    fields that exist, else of the time, else the most common), not weights or masks."""
+    by_name = {c.name: c for c in candidates}
+    multi = [c for c in candidates if len(c.shape) >= 2 and _numeric(c.dtype) and c.dtype.kind != "b"
+             and not c.is_dimension_scale]
+    found = [by_name[n] for n in fields if n in by_name and by_name[n].shape]
+    if found:
+        count: int | None = found[0].shape[0]
+    elif time in by_name and len(by_name[time].shape) == 1:
+        count = by_name[time].shape[0]
+    else:
+        lengths = Counter(c.shape[0] for c in multi)
+        count = max(lengths, key=lambda n: (lengths[n], n)) if lengths else None
+    shown = sorted(c.name for c in multi if c.shape[0] == count)
+    return shown or sorted(c.name for c in candidates if len(c.shape) >= 2 and _numeric(c.dtype)) or sorted(by_name)
+
+
 def classify(
     candidates: Sequence[Candidate],
     *,
@@ -172,8 +191,7 @@ def classify(
     by_name = {c.name: c for c in candidates}
     for name in list(fields or []):
         if name not in by_name:
-            shown = sorted(c.name for c in candidates if len(c.shape) >= 2 and _numeric(c.dtype)) or sorted(by_name)
-            raise missing_field_error(name, path, shown)
+            raise missing_field_error(name, path, _field_candidates(candidates, fields, time))
     if time and time not in by_name:
         raise missing_field_error(time, path, sorted(by_name), kind="dataset")
     time_name: str | None = time

@@ -259,6 +259,14 @@ class ScanReport:
         return _plain(dataclasses.asdict(self))  # type: ignore[no-any-return]
 
 
+def _time_span(times: np.ndarray, run_lengths: tuple[int, ...] | None) -> float:
+    """Last minus first time, summed over the runs (times may restart in each run)."""
+    if run_lengths is None:
+        return float(times[-1] - times[0])
+    ends = np.cumsum(run_lengths)
+    return float(sum(times[end - 1] - times[end - length] for end, length in zip(ends, run_lengths)))
+
+
 def _plain(value: Any) -> Any:
     if isinstance(value, dict):
         return {str(k): _plain(v) for k, v in value.items()}
@@ -506,7 +514,7 @@ def scan_archive(
         time_unit=None if unit is None else str(unit),
         time_first=None if times is None or not times.size else float(times[0]),
         time_last=None if times is None or not times.size else float(times[-1]),
-        time_span=None if times is None or not times.size else float(times[-1] - times[0]),
+        time_span=None if times is None or not times.size else _time_span(times, run_lengths),
         spacing=spacing,
         values=tuple(values),
         full=bool(full),

@@ -3,7 +3,8 @@
 Each HDF5 file holds the fields *without* a snapshot axis (a dataset's shape is the
 grid); each ``.npy`` file holds one field's grid. Files are ordered by their time value
 when every file has one (a scalar dataset, or a root attribute, named ``t``/``time``,
-or named by ``time=``), otherwise by natural number order (``frame_2`` before
+or named by ``time=``; a root attribute's unit is the root attribute ``time_units`` /
+``time_unit`` or ``<name>_units``), otherwise by natural number order (``frame_2`` before
 ``frame_10``), never by plain string order; ties in time keep natural order.
 
 Which HDF5 datasets are fields: the numeric, non-scalar datasets of the first file that
@@ -39,6 +40,7 @@ from snaplift.archive._cf import (
     decoded_dtype,
     decoding_from_attrs,
     parse_time_units,
+    plain_attrs,
 )
 from snaplift.archive._common import (
     missing_field_error,
@@ -112,6 +114,18 @@ def _file_time(root: Any, name: str, decoding: Decoding | None = None) -> float 
         if value.size == 1 and value.dtype.kind in "iuf":
             return float(value.reshape(()))
     return None
+
+
+def _root_time_unit(root: Any, name: str) -> dict[str, Any]:
+    """``{"units": ...}`` of a time held in a root attribute ``name``: the unit is a root
+    attribute ``<name>_units`` / ``<name>_unit`` / ``time_units`` / ``time_unit`` (an
+    attribute cannot carry attributes of its own); empty when there is none."""
+    for key in dict.fromkeys((f"{name}_units", f"{name}_unit", "time_units", "time_unit")):
+        if key in root.attrs:
+            value = plain_attrs({key: root.attrs[key]}).get(key)
+            if isinstance(value, str) and value.strip():
+                return {"units": value.strip(), "units_attribute": key}
+    return {}
 
 
 class SeriesReader(Reader):
@@ -385,9 +399,11 @@ class SeriesReader(Reader):
             attrs = {"source": "one value per file"}
             if time_candidate is not None:
                 attrs.update(time_candidate.attrs)
-                units = parse_time_units(time_candidate.attrs.get("units"))
-                if units is not None:
-                    attrs["time_unit"], attrs["time_origin"] = units
+            else:
+                attrs.update(_root_time_unit(first_root, time_name))
+            units = parse_time_units(attrs.get("units"))
+            if units is not None:
+                attrs["time_unit"], attrs["time_origin"] = units
             variable_infos[time_name] = VariableInfo(
                 time_name, (len(files),), np.dtype(np.float64), attrs
             )

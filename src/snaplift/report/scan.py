@@ -43,8 +43,10 @@ def render_scan(report: ScanReport) -> Any:
     spacing = data.get("spacing") or {}
     if data.get("time_source"):
         unit = f" {data['time_unit']}" if data.get("time_unit") else ""
+        # several runs: first of the first run .. last of the last, and the runs' spans summed
+        across = f", summed over {len(runs)} runs" if len(runs) > 1 else ""
         head.add_row("time", f"{data['time_source']}: {data['time_first']:.6g} .. {data['time_last']:.6g}{unit} "
-                              f"(span {data['time_span']:.6g})")
+                              f"(span {data['time_span']:.6g}{across})")
     if spacing:
         kind = "uniform" if spacing.get("uniform") else "NOT uniform"
         head.add_row("spacing", f"dt = {spacing['dt']:.6g}, {kind}; worst gap {spacing['worst_gap_value']:.6g} "

@@ -34,7 +34,8 @@ def spectrum_units(path: str | Path) -> dict[str, str]:
              "period": str(attrs.get("period_unit", "(time unit)"))}
     for name, array in root["spectrum"].arrays():
         if name.startswith("peak_"):
-            units[name] = str(array.attrs.get("units", "1"))
+            # a field the archive gave no unit: its peak has none either (not "1")
+            units[name] = str(array.attrs.get("units", "unit unknown"))
     return units
 
 

@@ -46,15 +46,17 @@ def grid_dimensions(grids: dict[str, tuple[int, ...]],
     return names
 
 
-def power_units(units: str, power: int) -> str:
-    """``"K"``, 2 -> ``"K2"``; ``"m s-1"``, 2 -> ``"(m s-1)2"`` (UDUNITS powers)."""
+def power_units(units: str | None, power: int) -> str | None:
+    """``"K"``, 2 -> ``"K2"``; ``"m s-1"``, 2 -> ``"(m s-1)2"`` (UDUNITS powers); None stays unknown."""
+    if units is None:
+        return None
     if units in ("", "1"):
         return "1"
     simple = units.replace("_", "").isalpha()
     return f"{units}{power}" if simple else f"({units}){power}"
 
 
-def lifted_units(units: str, term: str) -> str:
+def lifted_units(units: str | None, term: str) -> str | None:
     """Units of a pointwise term of a field in ``units`` (``lift: pointwise``)."""
     if term in ("x", "abs"):
         return units
@@ -84,7 +86,7 @@ class StoreMetadata:
     (None: unknown or not convertible; frequencies are then per time unit).
     """
 
-    field_units: dict[str, str] = field(default_factory=dict)
+    field_units: dict[str, str | None] = field(default_factory=dict)
     field_names: dict[str, str] = field(default_factory=dict)
     dims: dict[str, tuple[str, ...]] = field(default_factory=dict)
     coordinates: dict[str, Coordinate] = field(default_factory=dict)
@@ -112,8 +114,11 @@ class StoreMetadata:
     def period_unit(self) -> str:
         return "s" if self.seconds_per_unit is not None else self._per
 
-    def units_of(self, name: str) -> str:
-        return self.field_units.get(name) or "1"
+    def units_of(self, name: str) -> str | None:
+        """A field's units; None when the archive and the workflow give none (unknown)."""
+        if name in self.field_units:
+            return self.field_units[name]
+        return "1"
 
     def long_name_of(self, name: str) -> str:
         return self.field_names.get(name) or name
@@ -128,7 +133,8 @@ class StoreMetadata:
     def attrs(self, group: str, name: str, dimensions: tuple[str, ...]) -> dict[str, Any]:
         """Default CF attributes of ``group/name`` (``units``, ``long_name``, ``coordinates``)."""
         units, long_name = self._describe(group, name)
-        out: dict[str, Any] = {"units": units, "long_name": long_name}
+        # an unknown unit is left out (CF): "1" would claim the field is dimensionless
+        out: dict[str, Any] = {"long_name": long_name} if units is None else {"units": units, "long_name": long_name}
         if group in SNAPSHOT_GROUPS and "snapshot" in dimensions and name != "time" and self.time is not None:
             out["coordinates"] = "time"
         if group == "modes" and "mode" in dimensions and name != "frequency":
@@ -138,7 +144,7 @@ class StoreMetadata:
             out.update(coordinate.attrs if coordinate is not None else {})
         return out
 
-    def _describe(self, group: str, name: str) -> tuple[str, str]:
+    def _describe(self, group: str, name: str) -> tuple[str | None, str]:
         per_mode = {
             "eigenvalue": ("1", "discrete-time eigenvalue (advance over one time step)"),
             "rate": (self.growth_unit, "continuous-time rate log(eigenvalue) / dt"),
@@ -181,7 +187,7 @@ class StoreMetadata:
             if name.startswith("mask_"):
                 return "1", f"excluded points of {name[len('mask_'):]} (true = excluded)"
             if name == "scale":
-                units = {self.units_of(f) for f in self.field_units} or {"1"}
+                units = {self.units_of(f) for f in self.field_units} or {"1"}  # one unknown: None
                 return (units.pop() if len(units) == 1 else "1"), "factor each field was divided by (its own units)"
             if name == "field":
                 return "1", "field name"

@@ -32,11 +32,15 @@ import zarr
 from snaplift.errors import ResultStoreError
 from snaplift.results.metadata import StoreMetadata, grid_dimensions
 
-__all__ = ["StoreWriter", "open_result", "read_group", "grid_dimensions", "COMPLETE_KEY"]
+__all__ = ["StoreWriter", "open_result", "read_group", "grid_dimensions", "COMPLETE_KEY", "FORMAT_KEY",
+           "STORE_VERSION"]
 
 COMPLETE_KEY = "snaplift_complete"
 FORMAT_KEY = "snaplift_store_version"
-STORE_VERSION = 1
+#: layout of the result store; change it with the layout (2: CF units and long names,
+#: coordinates, spectrum/peak_<field>). Stage fingerprints include it, so a store written
+#: in another layout is recomputed, never reused (snaplift.workflow.fingerprint).
+STORE_VERSION = 2
 
 
 class StoreWriter:

@@ -40,7 +40,10 @@ identity; ``compress`` hashes scan's fingerprint with ``prepare``, ``lift`` and 
 ``compress`` settings that change results (not ``memory`` or ``checkpoint_every``: the
 tiling does not change results, README.md, "compress"); ``fit`` hashes compress's with
 ``fit``; ``modes`` and ``report`` hash their input's. ``cluster`` and ``output`` never
-enter: where a result is computed does not change it.
+enter: where a result is computed does not change it. The result store's layout version
+(:data:`snaplift.results.store.STORE_VERSION`) enters ``scan`` and the compress settings,
+so a store written in an older layout (no units, coordinates or peak amplitudes) is
+recomputed, not reused.
 """
 
 from __future__ import annotations
@@ -55,6 +58,7 @@ from typing import Any
 import numpy as np
 
 from snaplift.archive._base import Reader
+from snaplift.results import store as result_store
 from snaplift.workflow.lift_section import RAW_KINDS
 from snaplift.workflow.schema import Workflow, section_fingerprint
 
@@ -308,13 +312,15 @@ def stage_fingerprints(workflow: Workflow, archive_identity: str) -> dict[str, s
     # raw-field lifting changes the matrix compress reads; a state dictionary only the fit
     raw = [e.model_dump(mode="json") for e in workflow.lift if e.kind in RAW_KINDS]
     states = [e.model_dump(mode="json") for e in workflow.lift if e.kind not in RAW_KINDS]
-    scan = section_fingerprint("scan", workflow.archive, archive_identity)
+    # the store's layout: a store written in another layout is recomputed, not reused
+    layout = {"store_version": result_store.STORE_VERSION}
+    scan = section_fingerprint("scan", workflow.archive, archive_identity, layout)
     compressed = section_fingerprint("compress", scan, workflow.prepare, raw, compress)
     fit = section_fingerprint("fit", compressed, workflow.fit, states)
     modes = section_fingerprint("modes", fit)
     report = section_fingerprint("report", modes)
     # the compress settings without the archive's content: equal for a grown archive whose
     # stored sketch may be extended (snaplift.workflow.append)
-    settings = section_fingerprint("compress-settings", workflow.archive, workflow.prepare, raw, compress)
+    settings = section_fingerprint("compress-settings", workflow.archive, workflow.prepare, raw, compress, layout)
     return {"scan": scan, "compress": compressed, "fit": fit, "modes": modes, "report": report,
             "compress_settings": settings}

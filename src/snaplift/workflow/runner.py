@@ -43,6 +43,7 @@ from snaplift._process_memory import trim_heap
 from snaplift.cluster import Scheduler, TaskProgress, open_scheduler
 from snaplift.errors import SnapliftError
 from snaplift.results import stages as stored
+from snaplift.results import store as result_store
 from snaplift.results.staging import StagedStore, check_free_space
 from snaplift.workflow import stages as stage_functions
 from snaplift.workflow.fingerprint import (
@@ -286,6 +287,10 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
                                              recorded_baseline=killed_scan.get("memory_baseline"))
         fingerprint_now = archive_fingerprint(scanned.reader)
         previous_scan = store.previous_record("scan")
+        layout = store.previous.attrs.get(result_store.FORMAT_KEY) if store.previous is not None else None
+        if layout is not None and layout != result_store.STORE_VERSION:
+            warnings.append(f"{store.path} holds result store layout {layout}; this snaplift writes layout "
+                            f"{result_store.STORE_VERSION} (units, coordinates, peak amplitudes): every stage is recomputed")
         info = scanned.reader.describe()
         chunk = max(1, max(info.fields[f].snapshot_chunk for f in workflow.archive.fields))
         chunk = min(chunk, info.fields[workflow.archive.fields[0]].n_snapshots)

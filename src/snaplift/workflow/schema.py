@@ -68,10 +68,14 @@ class ArchiveSection(_Section):
     step: float | None = Field(None, gt=0, description="fixed time step when there is no time dataset")
     time_unit: Literal["s", "ms", "us", "min", "h", "day"] | None = Field(
         None, description="unit of 'step', or of a time dataset that declares none")
+    units: dict[str, str] | None = Field(
+        None, description="units of fields whose archive declares none, e.g. {p: Pa} (CF / UDUNITS strings)")
     coords: dict[str, str] | None = Field(
         None, description="1-D coordinate datasets per grid dimension, e.g. {x: xc, y: yc}")
-    weights: str | None = Field(None, description="per-point weights dataset (cell areas/volumes)")
-    mask: str | None = Field(None, description="boolean dataset, true = excluded point")
+    weights: str | dict[str, str] | None = Field(
+        None, description="per-point weights dataset (cell areas/volumes), or {field: dataset} per grid")
+    mask: str | dict[str, str] | None = Field(
+        None, description="boolean dataset, true = excluded point, or {field: dataset} per grid")
     snapshots: SnapshotRange = SnapshotRange()
     format: Literal["hdf5", "zarr", "series", "npy"] | None = None
     runs: str | None = Field(None, description="dataset with one run label per snapshot")
@@ -99,6 +103,12 @@ class ArchiveSection(_Section):
             raise ValueError("give either 'time' (a dataset) or 'step' (a number), not both")
         if len(set(self.fields)) != len(self.fields):
             raise ValueError(f"fields must be distinct, got {self.fields}")
+        for key in ("weights", "mask", "units"):
+            given = getattr(self, key)
+            unknown = sorted(set(given) - set(self.fields)) if isinstance(given, dict) else []
+            if unknown:
+                raise ValueError(f"{key} key {unknown[0]!r} is not one of the fields {self.fields}; "
+                                 "a mapping gives {field: dataset}")
         for dimension in self.coords or {}:
             if not re.fullmatch(r"[A-Za-z_][A-Za-z0-9_]*", dimension):
                 raise ValueError(f"coords key {dimension!r} must be a dimension name such as x, y, z or u_x")

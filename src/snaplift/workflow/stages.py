@@ -214,6 +214,11 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
         )
     all_times = snapshot_times(reader, time=section.time, step=section.step, n_snapshots=total)
     unit, unit_warnings = archive_time_unit(workflow, reader, info)
+    unitless = [f for f in section.fields if not str(info.fields[f].attrs.get("units") or "").strip()
+                and f not in (section.units or {})]
+    if unitless:
+        unit_warnings = [*unit_warnings, f"{reader.path} declares no units for {', '.join(unitless)}: their modes and "
+                         "peak amplitudes carry none; set archive.units (e.g. {" + f"{unitless[0]}: Pa" + "})"]
     times = np.asarray(all_times, dtype=np.float64)[index]
     selected_runs = selected_run_lengths(archive_run_lengths(reader, section.runs, total), index)
     dt, uniform = _run_time_step(reader.path, times, index, selected_runs,
@@ -306,8 +311,7 @@ def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]
         lines.append(f"runs: {scanned.run_lengths.size} ({', '.join(map(str, scanned.run_lengths.tolist()))} columns)")
     kept = sum(rows.n_rows for rows in matrix.fields)
     lines.append(f"snapshot matrix: {kept} rows x {matrix.shape[1]} columns"
-                 + (f" (weights '{workflow.archive.weights}')" if workflow.archive.weights else "")
-                 + (f" (mask '{workflow.archive.mask}')" if workflow.archive.mask else ""))
+                 + _named(" (weights {})", workflow.archive.weights) + _named(" (mask {})", workflow.archive.mask))
     if metadata.coordinates:
         lines.append("coordinates: " + ", ".join(f"{d} <- {c.attrs.get('archive_variable')} [{c.attrs.get('units')}]"
                                                  for d, c in metadata.coordinates.items()))
@@ -315,6 +319,15 @@ def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]
         lines.append("coordinates: none in the archive (index positions; archive.coords names them)")
     lines.extend(f"warning: {warning}" for warning in scanned.warnings)
     return scanned, lines
+
+
+def _named(template: str, datasets: str | dict[str, str] | None) -> str:
+    """``" (mask 'solid')"``, ``" (mask T: 'solid', w: 'solid3d')"``; empty when not given."""
+    if not datasets:
+        return ""
+    if isinstance(datasets, str):
+        return template.format(repr(datasets))
+    return template.format(", ".join(f"{field}: {name!r}" for field, name in datasets.items()))
 
 
 def archive_run_lengths(reader: Reader, runs: str | None, total: int) -> np.ndarray:

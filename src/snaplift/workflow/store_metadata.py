@@ -75,7 +75,7 @@ def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarr
             if variable is None or dimension in coordinates:
                 continue
             coordinates[dimension] = _coordinate(reader, info, variable, grids[name][axis], dimension, name)
-    units = {name: str(info.fields[source].attrs.get("units", "1")) for name, source, _ in lifted}
+    units = {name: _field_units(section, info, source, reader.path) for name, source, _ in lifted}
     field_units = {name: lifted_units(units[name], term) for name, _, term in lifted}
     field_names = {}
     for name, source, term in lifted:
@@ -90,6 +90,19 @@ def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarr
                          time=np.asarray(time), time_attrs=_time_attrs(section, info, time_unit),
                          time_unit=None if time_unit is None else time_unit.name,
                          seconds_per_unit=None if time_unit is None else time_unit.seconds, extra_units=extra)
+
+
+def _field_units(section: Any, info: ArchiveInfo, source: str, path: Any) -> str | None:
+    """The archive's ``units`` of a field, else ``archive.units``; None when neither gives one
+    (unknown, which is not dimensionless: the store then writes no ``units``)."""
+    found = info.fields[source].attrs.get("units")
+    given = (section.units or {}).get(source)
+    if found is not None and str(found).strip():
+        if given is not None and given.strip() != str(found).strip():
+            raise ConfigError(f"archive.units gives field '{source}' the unit {given!r} but {path} declares "
+                              f"{str(found)!r}; remove the entry (the archive's unit is used)")
+        return str(found).strip()
+    return given
 
 
 def _weights(section: Any, names: list[str], sources: list[str]) -> dict[str, str]:
