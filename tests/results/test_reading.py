@@ -65,8 +65,9 @@ def test_plain_store_falls_back_to_index_positions(wave_stores: dict[str, Path])
     axes = field_axes(view.modes, "u")
     assert [a.dim for a in axes] == ["u_y", "u_x"] and all(a.is_index for a in axes)
     np.testing.assert_array_equal(axes[1].values, np.arange(32))
-    # the archive gives no units: the field is marked "1" and the spectrum is per time unit
-    assert view.field_units("u") == "1" and view.frequency_unit == "1/(time unit)"
+    # the archive gives no units: the field has none (not "1", which would say dimensionless)
+    # and the spectrum is per time unit
+    assert view.field_units("u") == "" and view.frequency_unit == "1/(time unit)"
     # a store written before spectrum/peak_<field> existed: |amplitude| x max |mode|
     # (what the forecast multiplies)
     view = dataclasses.replace(view, spectrum=view.spectrum.drop_vars(["peak_p", "peak_u", "peak_w"]))
