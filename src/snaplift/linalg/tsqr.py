@@ -248,35 +248,50 @@ def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any,
     for job in jobs:
         if job.tile.columns != (0, m):
             raise ValueError("tsqr_compress needs tiles holding every selected snapshot")
+    # one leaf per field and row block: a tile of several fields (lifted ones) holds one each
+    leaves = [(f, job.tile.rows[0] if job.tile.span == 1 else 0) for job in jobs
+              for f in range(job.tile.field, job.tile.field + job.tile.span)]
     if state.pass_number == 0:
         row_sum = _zeros(state, "row_sum", (n,), matrix.dtype)
         squares = _zeros(state, "squares", (len(fields), m), np.float64)
 
         def fold(tile: Any, result: dict[str, Any]) -> None:
-            g0 = fields[tile.field].offset + tile.rows[0]
-            row_sum[g0:g0 + tile.rows[1] - tile.rows[0]] += result["row_sum"]
-            squares[tile.field] += result["squares"]
-            state.arrays[f"r_{tile.field}_{tile.rows[0]}"] = result["r"]
+            g0, g1 = tile.global_rows(run.source)
+            row_sum[g0:g1] += result["row_sum"]
+            squares[tile.field:tile.field + tile.span] += np.reshape(result["squares"], (tile.span, -1))
+            if tile.span > 1:
+                for f, r in enumerate(result["r"], start=tile.field):
+                    state.arrays[f"r_{f}_0"] = r
+            else:
+                state.arrays[f"r_{tile.field}_{tile.rows[0]}"] = result["r"]
 
         run.run(tsqr_task, (bool(center),), jobs, fold, state)
         run.end_pass(state)
     preparation = finish_preparation(matrix, state.arrays["row_sum"], list(state.arrays["squares"]),
                                      center=center, scale=scale)
-    raw_r = [state.arrays[f"r_{job.tile.field}_{job.tile.rows[0]}"] for job in jobs]
-    scaled = [r / preparation.field_scale[fields[job.tile.field].name] for r, job in zip(raw_r, jobs)]
+    raw_r = [state.arrays[f"r_{f}_{r0}"] for f, r0 in leaves]
+    scaled = [r / preparation.field_scale[fields[f].name] for r, (f, _) in zip(raw_r, leaves)]
     root, tree = reduce_r_factors(scaled)
     u_r, s, vh = np.linalg.svd(root, full_matrices=False)
     rank = min(rank, s.size)
     u_r, vh = normalize_signs(u_r[:, :rank], vh[:rank])
-    factors = leaf_factors(len(jobs), tree, u_r)
+    factors = leaf_factors(len(leaves), tree, u_r)
     if state.pass_number == 1:
         basis = _zeros(state, "basis", (n, rank), np.result_type(matrix.dtype, u_r.dtype))
-        items = [type(job)(job.id, (job.tile, r, factor), job.nbytes) for job, r, factor in zip(jobs, raw_r, factors)]
+        items = []
+        position = 0
+        for job in jobs:
+            count = job.tile.span
+            if count > 1:
+                item = (job.tile, raw_r[position:position + count], factors[position:position + count])
+            else:
+                item = (job.tile, raw_r[position], factors[position])
+            items.append(type(job)(job.id, item, job.nbytes))
+            position += count
 
         def fold_basis(item: Any, result: dict[str, Any]) -> None:
-            tile = item[0]
-            g0 = fields[tile.field].offset + tile.rows[0]
-            basis[g0:g0 + tile.rows[1] - tile.rows[0]] = result["basis"]
+            g0, g1 = item[0].global_rows(run.source)
+            basis[g0:g1] = result["basis"]
 
         run.run(tsqr_leaf_task, (bool(center),), items, fold_basis, state)
         run.end_pass(state)
