@@ -81,6 +81,8 @@ TILES_PER_WORKER = 4
 #: the in-memory path holds the whole matrix this many times (the read buffer, the kept
 #: copy, a pass's working copy) besides the method's accumulators
 IN_MEMORY_FACTOR = 3
+#: arrays of the size of the TSQR tree's last merge held at once (see ``driver_of``)
+TSQR_MERGE_COPIES = 3
 #: the largest decoded snapshot matrix the workflow plans in memory (bytes): chosen by
 #: ``tests/benchmarks/test_small_problems.py`` (README "Small problems")
 IN_MEMORY_LIMIT = 256 * 2**20
@@ -174,7 +176,16 @@ class TilePlan:
 
     @property
     def n_tiles(self) -> int:
-        return len(self.snapshot_blocks) * sum(len(blocks) for blocks in self.point_blocks)
+        """Tile tasks of one pass: a group of lifted fields read whole is one tile; the
+        in-memory path is one tile."""
+        if self.in_memory:
+            return 1
+        groups = self.row_groups or tuple((i,) for i in range(len(self.point_blocks)))
+        per_block = 0
+        for group in groups:
+            whole = len(group) > 1 and all(len(self.point_blocks[i]) == 1 for i in group)
+            per_block += 1 if whole else sum(len(self.point_blocks[i]) for i in group)
+        return len(self.snapshot_blocks) * per_block
 
     @property
     def tile_shape(self) -> tuple[int, int]:
@@ -527,11 +538,15 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
         cache = 0
 
     def driver_of(rows: list[int]) -> int:
-        """The driver's accumulators; tsqr's R factors by their actual size (a leaf of
-        ``r`` rows keeps ``min(r, m) x m``)."""
+        """The driver's accumulators. tsqr's R factors by their actual size (a leaf of ``r``
+        rows keeps ``min(r, m) x m``, together ``L``): kept as read and scaled by the field
+        scales (``2 L``), and while the tree is reduced its last merge, whose stacked input,
+        LAPACK copy and result are ``min(n, m) x m`` each (at most ``L``): measured,
+        ``tests/archive/test_plan_lifted.py``."""
         if method != "tsqr":
             return fixed
-        return fixed + s * sum(math.ceil(p / r) * min(r, m) * m for p, r in zip(points, rows))
+        leaves = sum(math.ceil(p / r) * min(r, m) * m for p, r in zip(points, rows))
+        return fixed + s * (2 * leaves + TSQR_MERGE_COPIES * min(leaves, min(n, m) * m))
 
     def rows_of(cap: int) -> list[int]:
         out = []
@@ -606,7 +621,11 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
         block = m
         cap = full
         if cost(cap, block)[0] > available:
-            cap = _largest(lambda rows: cost(rows, block)[0] <= available, full)
+            # taller leaves mean larger tiles but fewer R factors: the memory is not monotone
+            # in the height, so try heights on a geometric grid and keep the tallest that fits
+            heights = sorted({max(1, int(full / 1.25**i)) for i in range(200)} | {1})
+            fitting = [h for h in heights if cost(h, block)[0] <= available]
+            cap = fitting[-1] if fitting else min(heights, key=lambda h: cost(h, block)[0])
     else:
         cap = full
         first = min(unit, m) if m else 1

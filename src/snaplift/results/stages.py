@@ -25,7 +25,6 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 from typing import Any
 
-import dask.array as da
 import numpy as np
 
 from snaplift.archive._base import Reader
@@ -109,7 +108,7 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
 class _StoredLowRank:
     """The compress result as read back: same attributes fit/modes use of ``LowRank``."""
 
-    basis: da.Array
+    basis: Any  # dask array, or numpy for a small basis
     singular_value: np.ndarray
     coefficient: np.ndarray
     column_norm: np.ndarray
@@ -149,6 +148,18 @@ def _group(root: Any, name: str, where: str) -> Any:
     return root[name]
 
 
+def _lazy(array: Any) -> Any:
+    """``dask.array`` (``array`` None) or a lazy view of a stored array: only for a large
+    basis, since importing dask.array (and the xarray/pandas it pulls in) takes ~0.5 s."""
+    import dask.array as da
+
+    return da if array is None else da.from_zarr(array)
+
+
+#: a stored basis up to this size is loaded into memory rather than as a lazy array
+EAGER_BASIS_BYTES = 64 * 2**20
+
+
 def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int = 0,
                     snapshot_block: int = 1, where: str = "result store") -> LoadedCompressed:
     """Read a compress result back from ``root`` (a staging or complete store) without the archive.
@@ -170,11 +181,16 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     offset = 0
     centered = bool(prepare.attrs.get("center", False))
     lifted = dict(prepare.attrs.get("lifted", {}))
-    for name, field_scale in zip(fields, scale):
+    for name in fields:
         if name not in basis:
             raise ResultStoreError(f"{where}: basis/{name} is missing; the compress stage did not finish there")
+    # a small basis (many lifted fields of few points, e.g. delay-embedded probes) is read
+    # at once; a lazy graph over one array per lifted field costs more than the reading
+    eager = sum(int(np.prod(basis[name].shape)) * basis[name].dtype.itemsize for name in fields) <= EAGER_BASIS_BYTES
+    xp = np if eager else _lazy(None)
+    for name, field_scale in zip(fields, scale):
         # lazy: the modes stage computes one field's rows at a time
-        physical = da.from_zarr(basis[name])
+        physical = np.asarray(basis[name][...]) if eager else _lazy(basis[name])
         grid = tuple(int(s) for s in physical.shape[1:])
         flat = physical.reshape(physical.shape[0], -1)
         keep = None
@@ -187,7 +203,7 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
             sqrt_weight = np.sqrt(w if keep is None else w[keep])
         factor = (sqrt_weight if sqrt_weight is not None else 1.0) / field_scale
         # physical = prepared * scale / sqrt(w); at w == 0 the prepared rows are zero
-        prepared = da.where(da.isfinite(kept), kept * factor, 0.0)
+        prepared = xp.where(xp.isfinite(kept), kept * factor, 0.0)
         basis_blocks.append(prepared.T)
         n_rows = int(prepared.shape[1])
         if centered:
@@ -210,7 +226,7 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
                      else np.float64)
     matrix = SnapshotMatrix(reader, tuple(rows), snapshot_index, blocks, dtype)
     lowrank = _StoredLowRank(
-        basis=da.concatenate(basis_blocks, axis=0),
+        basis=xp.concatenate(basis_blocks, axis=0),
         singular_value=np.asarray(basis["singular_value"][...], dtype=np.float64),
         coefficient=coefficient,
         column_norm=np.asarray(diagnostics["column_norm"][...], dtype=np.float64),

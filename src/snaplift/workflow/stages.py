@@ -279,7 +279,8 @@ def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler, recorded_
         sketch_widths=settings.sketch_widths, shared_memory=scheduler.kind == "threads",
         corange_map=settings.corange_map or "sparse",
         baseline_bytes=resident.reserve(recorded_baseline), baseline_label=resident.label,
-        row_groups=_row_groups(workflow), in_memory_limit=IN_MEMORY_LIMIT,
+        row_groups=_row_groups(workflow),
+        in_memory_limit=0 if settings.in_memory == "never" else IN_MEMORY_LIMIT,
     )
 
 
