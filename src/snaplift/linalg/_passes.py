@@ -220,8 +220,12 @@ def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: S
     """The first read: ``range`` = X_w Omega, ``corange_<f>`` = (Psi_f X_f)^T, statistics."""
     n, m = matrix.shape
     dtype = matrix.dtype
-    corange = [_zeros(state, f"corange_{f}", (m, corange_width), dtype) for f in range(len(matrix.fields))] \
-        if corange_width else []
+    whole = len(jobs) == 1 and jobs[0].tile.columns == (0, m) and jobs[0].tile.span == len(matrix.fields)
+    if corange_width and whole and not state.done:  # the in-memory path: its one tile's blocks are the sums
+        corange: list[Any] = [None] * len(matrix.fields)
+    else:
+        corange = [_zeros(state, f"corange_{f}", (m, corange_width), dtype) for f in range(len(matrix.fields))] \
+            if corange_width else []
     row_sum = _zeros(state, "row_sum", (n,), dtype)
     squares = _zeros(state, "squares", (len(matrix.fields), m), np.float64)
 
@@ -231,11 +235,14 @@ def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: S
         _add_rows(state, "range", run.source, tile, result)
         row_sum[g0:g1] += result["row_sum"]
         squares[tile.field:tile.field + tile.span, c0:c1] += np.reshape(result["squares"], (tile.span, -1))
-        if corange and tile.span > 1:
-            for f, part in enumerate(result["corange"], start=tile.field):
+        if not corange:
+            return
+        parts = result["corange"] if tile.span > 1 else [result["corange"]]
+        for f, part in enumerate(parts, start=tile.field):
+            if corange[f] is None:  # the only tile: its blocks are the sums
+                corange[f] = state.arrays[f"corange_{f}"] = part
+            else:
                 corange[f][c0:c1] += part
-        elif corange:
-            corange[tile.field][c0:c1] += result["corange"]
 
     run.run(sketch_task, ((int(range_width), int(corange_width)),), jobs, fold, state, slot="range")
     if "range" not in state.arrays:

@@ -178,7 +178,9 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
     range_width, corange_width = options.widths(n, m)
     key = _job_key(matrix, plan, options, jobs)
     source = _source(matrix, options, corange_width, row_blocks, resident=key if in_memory else "")
-    checkpoint = Checkpointer(checkpoint_dir, checkpoint_every) if checkpoint_dir is not None else None
+    # the in-memory path reads a small matrix once: a killed run loses less than a checkpoint costs
+    checkpoint = Checkpointer(checkpoint_dir, checkpoint_every) if checkpoint_dir is not None and not in_memory \
+        else None
     state = (checkpoint.load(key) if checkpoint is not None else None) or StreamState(key)
     resumed = state.pass_number > 0 or bool(state.done)
     bytes_before = int(state.bytes_read)
