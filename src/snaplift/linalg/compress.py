@@ -20,6 +20,7 @@ same arguments resumes from it, skipping finished passes and tiles.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
@@ -33,6 +34,7 @@ from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.archive.plan import TilePlan
 from snaplift.errors import ArchiveError
 from snaplift.linalg._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
+from snaplift.linalg._blas import blas_threads
 from snaplift.linalg._kernels import normalize_signs
 from snaplift.linalg._tasks import TileSource, release_resident
 from snaplift.linalg._testmatrix import ROW_MAPS, row_map_bytes
@@ -84,6 +86,10 @@ class Compression:
     method: str
     sketch_state: dict[str, np.ndarray] = field(default_factory=dict)
     info: dict[str, Any] = field(default_factory=dict)
+
+
+#: an in-memory matrix up to this size is compressed with one BLAS thread
+SINGLE_THREAD_BYTES = 32 * 2**20
 
 
 def default_in_flight(workers: int) -> int:
@@ -186,9 +192,13 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
     bytes_before = int(state.bytes_read)
     run = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers), checkpoint=checkpoint,
                progress=progress)
+    # a small matrix in memory: one BLAS thread (its calls take milliseconds; a thread pool
+    # waiting on a shared machine made them 5-50x slower, measured in the small-problems benchmark)
+    small = in_memory and n * m * np.dtype(matrix.dtype).itemsize <= SINGLE_THREAD_BYTES
     try:
-        return _compress(matrix, options, run, jobs, state, source, checkpoint, rank, range_width, corange_width,
-                         row_blocks, resumed, bytes_before)
+        with blas_threads(1) if small else contextlib.nullcontext():
+            return _compress(matrix, options, run, jobs, state, source, checkpoint, rank, range_width,
+                             corange_width, row_blocks, resumed, bytes_before)
     finally:
         release_resident(key)
         _release_caches(runner)

@@ -243,6 +243,23 @@ def _tsqr_dask(a: Any) -> tuple[Any, np.ndarray]:
     return da.concatenate(pieces, axis=0), r
 
 
+#: stacked leaf R factors up to this size are reduced by one QR (a flat tree)
+FLAT_TREE_BYTES = 32 * 2**20
+
+
+def _flat_tree(leaves: list[np.ndarray]) -> tuple[np.ndarray, Any]:
+    """A one-level reduction tree: ``[R_1; ...; R_L] = Q R``; leaf ``i``'s factor is its
+    rows of ``Q`` times the top (Demmel et al. 2012 allow any tree shape)."""
+    q, root = qr_factor(np.concatenate(leaves, axis=0))
+    bounds = np.cumsum([0] + [leaf.shape[0] for leaf in leaves])
+
+    def factors(top: np.ndarray) -> list[np.ndarray]:
+        product = q @ top
+        return [product[bounds[i]:bounds[i + 1]] for i in range(len(leaves))]
+
+    return root, factors
+
+
 def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any, *, rank: int, center: bool,
                   scale: str | dict[str, float]) -> tuple[Any, Any]:
     """Exact truncated SVD of the prepared snapshot matrix by TSQR over the archive (2 passes).
@@ -285,11 +302,17 @@ def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any,
                                      center=center, scale=scale)
     raw_r = [state.arrays[f"r_{f}_{r0}"] for f, r0 in leaves]
     scaled = [r / preparation.field_scale[fields[f].name] for r, (f, _) in zip(raw_r, leaves)]
-    root, tree = reduce_r_factors(scaled)
+    if sum(r.shape[0] for r in scaled) * m * np.dtype(matrix.dtype).itemsize <= FLAT_TREE_BYTES:
+        # a flat tree: the stacked leaves are small (e.g. many lifted fields of few points),
+        # one QR of them instead of a binary tree of as many QRs as leaves
+        root, factors_of = _flat_tree(scaled)
+    else:
+        root, tree = reduce_r_factors(scaled)
+        factors_of = lambda top: leaf_factors(len(leaves), tree, top)  # noqa: E731
     u_r, s, vh = np.linalg.svd(root, full_matrices=False)
     rank = min(rank, s.size)
     u_r, vh = normalize_signs(u_r[:, :rank], vh[:rank])
-    factors = leaf_factors(len(leaves), tree, u_r)
+    factors = factors_of(u_r)
     if state.pass_number == 1:
         basis = _zeros(state, "basis", (n, rank), np.result_type(matrix.dtype, u_r.dtype))
         items = []
