@@ -65,6 +65,21 @@ def _unscaled(preparation: Preparation) -> Preparation:
     return replace(preparation, field_scale={f: 1.0 for f in preparation.fields})
 
 
+#: an array of vectors (rank or mode x grid) up to this size is one chunk; larger ones
+#: get one chunk per vector (a chunk file per value of a small field, e.g. lifted
+#: probes, would cost a file write each)
+ONE_CHUNK_BYTES = 4 * 2**20
+
+
+def _vector_chunks(values: np.ndarray | None, shape: tuple[int, ...] | None = None, itemsize: int = 8
+                   ) -> tuple[int, ...]:
+    shape = tuple(values.shape) if values is not None else tuple(shape or ())
+    itemsize = values.dtype.itemsize if values is not None else itemsize
+    if int(np.prod(shape)) * itemsize <= ONE_CHUNK_BYTES:
+        return tuple(max(1, int(n)) for n in shape)
+    return (1, *shape[1:])
+
+
 def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scale_setting: Any) -> None:
     """Write everything ``fit`` and ``modes`` need of a compress result (module docstring)."""
     matrix, preparation, lowrank = compressed.matrix, compressed.preparation, compressed.lowrank
@@ -88,8 +103,8 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
     for rows in matrix.fields:
         (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
         physical = to_physical(np.asarray(basis_rows).T, rows, preparation, add_mean=False)
-        writer.array("basis", rows.name, rows.expand(physical), ("rank", *dims[rows.name]),
-                     chunks=(1, *rows.grid))
+        values = rows.expand(physical)
+        writer.array("basis", rows.name, values, ("rank", *dims[rows.name]), chunks=_vector_chunks(values))
         if rows.keep is not None:
             mask = np.ones(int(np.prod(rows.grid)), dtype=bool)
             mask[rows.keep] = False
@@ -338,8 +353,11 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
         (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
         basis_rows = np.asarray(basis_rows)
         mode_array = writer.empty("modes", rows.name, (n_modes, *rows.grid), np.complex128,
-                                  ("mode", *dims[rows.name]), chunks=(1, *rows.grid))
-        for k in range(n_modes):
+                                  ("mode", *dims[rows.name]), chunks=_vector_chunks(None, (n_modes, *rows.grid), 16))
+        if mode_array.chunks[0] == n_modes:  # one chunk: written at once
+            values = (basis_rows @ modes_rows).T
+            mode_array[...] = rows.expand(to_physical(values, rows, preparation, add_mean=False))
+        for k in range(n_modes if mode_array.chunks[0] != n_modes else 0):
             values = basis_rows @ modes_rows[:, k]
             mode_array[k] = rows.expand(to_physical(values, rows, preparation, add_mean=False))
         if preparation.mean is not None:
