@@ -220,9 +220,9 @@ def fit_optimized_dmd(
         block = -(projected[:, None, :] * coefficient.T[None, :, :]).reshape(-1, k)
         return np.block([[block.real, -block.imag], [block.imag, block.real]])
 
-    import scipy.optimize  # here: importing it costs ~0.2 s of every run's startup
+    from scipy import optimize  # here: importing it costs ~0.2 s of every run's startup
 
-    solution = scipy.optimize.least_squares(
+    solution = optimize.least_squares(
         residual,
         np.concatenate([start.real, start.imag]),
         jac=jacobian,
@@ -312,9 +312,9 @@ def _initial_rate(reduced: np.ndarray, clock: np.ndarray, dt: float, k: int) -> 
         grid_data = reduced
     else:
         grid = clock[0] + dt * np.arange(int(np.floor((clock[-1] - clock[0]) / dt)) + 1)
-        import scipy.interpolate  # here: it imports scipy.optimize, ~0.2 s of every run's startup
+        from scipy import interpolate  # here: it imports scipy.optimize, ~0.2 s of every run's startup
 
-        grid_data = scipy.interpolate.CubicSpline(clock, reduced, axis=1)(grid)
+        grid_data = interpolate.CubicSpline(clock, reduced, axis=1)(grid)
     fit = fit_dmd(grid_data, dt, rank=min(k, grid_data.shape[0], grid_data.shape[1] - 1))
     rate = spectrum.continuous_rate(fit.eigenvalue, dt)
     if rate.size < k:
