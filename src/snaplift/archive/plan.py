@@ -85,7 +85,7 @@ IN_MEMORY_FACTOR = 3
 TSQR_MERGE_COPIES = 3
 #: the largest decoded snapshot matrix the workflow plans in memory (bytes): chosen by
 #: ``tests/benchmarks/test_small_problems.py`` (README "Small problems")
-IN_MEMORY_LIMIT = 32 * 2**20
+IN_MEMORY_LIMIT = 16 * 2**20
 
 
 def _mib(nbytes: float) -> str:
