@@ -260,6 +260,13 @@ def _flat_tree(leaves: list[np.ndarray]) -> tuple[np.ndarray, Any]:
     return root, factors
 
 
+def _binary_tree_factors(count: int, tree: list[Any]) -> Any:
+    def factors(top: np.ndarray) -> list[np.ndarray]:
+        return leaf_factors(count, tree, top)
+
+    return factors
+
+
 def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any, *, rank: int, center: bool,
                   scale: str | dict[str, float]) -> tuple[Any, Any]:
     """Exact truncated SVD of the prepared snapshot matrix by TSQR over the archive (2 passes).
@@ -308,7 +315,7 @@ def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any,
         root, factors_of = _flat_tree(scaled)
     else:
         root, tree = reduce_r_factors(scaled)
-        factors_of = lambda top: leaf_factors(len(leaves), tree, top)  # noqa: E731
+        factors_of = _binary_tree_factors(len(leaves), tree)
     u_r, s, vh = np.linalg.svd(root, full_matrices=False)
     rank = min(rank, s.size)
     u_r, vh = normalize_signs(u_r[:, :rank], vh[:rank])

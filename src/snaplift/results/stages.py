@@ -69,6 +69,8 @@ def _unscaled(preparation: Preparation) -> Preparation:
 #: get one chunk per vector (a chunk file per value of a small field, e.g. lifted
 #: probes, would cost a file write each)
 ONE_CHUNK_BYTES = 4 * 2**20
+#: per-field arrays up to this size are written together (:meth:`StoreWriter.arrays`)
+SMALL_ARRAY_BYTES = 64 * 2**10
 
 
 def _vector_chunks(values: np.ndarray | None, shape: tuple[int, ...] | None = None, itemsize: int = 8
@@ -100,11 +102,15 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
     writer.group_attrs("prepare", {"center": preparation.centered,
                                    "scale": scale_setting if isinstance(scale_setting, str) else dict(scale_setting),
                                    "lifted": lifted})
+    small: list[tuple[str, np.ndarray, tuple[str, ...]]] = []  # written together: one round trip
     for rows in matrix.fields:
         (basis_rows,) = compute(lowrank.basis[rows.offset:rows.stop])
         physical = to_physical(np.asarray(basis_rows).T, rows, preparation, add_mean=False)
         values = rows.expand(physical)
-        writer.array("basis", rows.name, values, ("rank", *dims[rows.name]), chunks=_vector_chunks(values))
+        if values.nbytes <= SMALL_ARRAY_BYTES and len(matrix.fields) > 1:
+            small.append((rows.name, values, ("rank", *dims[rows.name])))
+        else:
+            writer.array("basis", rows.name, values, ("rank", *dims[rows.name]), chunks=_vector_chunks(values))
         if rows.keep is not None:
             mask = np.ones(int(np.prod(rows.grid)), dtype=bool)
             mask[rows.keep] = False
@@ -114,6 +120,7 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
         if preparation.mean is not None:
             mean = to_physical(preparation.mean[rows.offset:rows.stop], rows, _unscaled(preparation), add_mean=False)
             writer.array("prepare", f"mean_{rows.name}", rows.expand(mean), dims[rows.name])
+    writer.arrays("basis", small)
     for name, value in (getattr(compressed, "sketch_state", None) or {}).items():
         value = np.asarray(value)
         writer.array("sketch", name, value, tuple(f"{name}_{i}" for i in range(value.ndim)))
