@@ -597,7 +597,12 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
         return workers * 2 * tile + caches + in_flight * result + driver, tile, result
 
     matrix_bytes = s * n * m
-    if in_memory_limit and matrix_bytes <= in_memory_limit:
+    # sketch keeps one co-range sketch per field (F m l): with many small (lifted) fields they
+    # outweigh the matrix, and holding the tile's copy of them beside the accumulators
+    # (in memory) costs more than it saves (measured: 1.9 GB against 1.1 GB streamed for 120
+    # lifted probe rows)
+    corange_heavy = method == "sketch" and len(chosen) * m * l > 4 * n * m
+    if in_memory_limit and matrix_bytes <= in_memory_limit and not corange_heavy:
         # one tile of everything, kept: the read buffer, the kept copy and a working copy,
         # the method's accumulators and the tile's result
         whole = [int(p) for p in points]
