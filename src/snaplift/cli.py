@@ -208,8 +208,14 @@ def scan(
     from snaplift.report.scan import render_scan, scan_json
     from snaplift.workflow.schema import parse_bytes
 
-    reader = open_archive(archive[0] if len(archive) == 1 else archive)
+    target = archive[0] if len(archive) == 1 else archive
     chosen = [f.strip() for f in fields.split(",")] if fields else None
+    reader = open_archive(target, fields=chosen, time=time)
+    if chosen is None and not reader.describe().fields:  # an archive of probes: 1-D datasets
+        from snaplift.archive.probes import probe_names
+
+        chosen = probe_names(reader.describe(), time) or None
+        reader = open_archive(target, fields=chosen, time=time) if chosen else reader
     from snaplift.errors import ConfigError
 
     if method not in ("sketch", "randomized", "tsqr"):

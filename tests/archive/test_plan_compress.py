@@ -77,10 +77,14 @@ def test_rows_are_split_when_one_chunk_does_not_fit():
 
 def test_tsqr_tiles_hold_every_snapshot():
     info = _info(_field("v", (200, 300, 40), (1, 300, 40)))
-    plan = plan_tiles(info, ["v"], memory_bytes=16 * MIB, workers=2, method="tsqr", rank=20)
+    # 12000 x 200 values (18.3 MiB): the R factors of leaves of r rows hold min(r, 200) x 200
+    # each, as much as the data unless leaves are much taller than 200 rows
+    plan = plan_tiles(info, ["v"], memory_bytes=32 * MIB, workers=2, method="tsqr", rank=20)
     assert plan.snapshot_blocks == ((0, 200),)
     assert len(plan.point_blocks[0]) > 1 and all((b - a) % 40 == 0 for a, b in plan.point_blocks[0][:-1])
-    assert plan.peak_bytes_estimate <= 16 * MIB and plan.passes == 2
+    assert plan.peak_bytes_estimate <= 32 * MIB and plan.passes == 2
+    with pytest.raises(ArchiveError, match="needs at least"):  # the refused budget says what would do
+        plan_tiles(info, ["v"], memory_bytes=16 * MIB, workers=2, method="tsqr", rank=20)
 
 
 def test_blocks_align_to_the_least_common_multiple_of_stored_chunks():

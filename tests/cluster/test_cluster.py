@@ -162,8 +162,9 @@ def test_worker_killed_mid_run_is_survived(tmp_path: Path) -> None:
         h5.create_dataset("u", data=x, chunks=(1, 8, 10))
     # compress.memory bounds the whole process tree (interpreters included); the 40 snapshots
     # still make 8 tiles a pass for 2 workers (snaplift.archive.plan.TILES_PER_WORKER)
+    # (in_memory: never: the small matrix would otherwise be compressed in the driver, on no worker)
     base = {"archive": {"path": "a.h5", "fields": ["u"], "time": "t"}, "compress": {"rank": 4, "oversample": 4,
-            "memory": "2GiB"}}
+            "memory": "2GiB", "in_memory": "never"}}
     (tmp_path / "threads.yaml").write_text(yaml.safe_dump({**base, "cluster": "threads", "output": {"path": "t.zarr"}}))
     (tmp_path / "local.yaml").write_text(yaml.safe_dump({**base, "cluster": {"kind": "local", "workers": 2},
                                                          "output": {"path": "l.zarr"}}))

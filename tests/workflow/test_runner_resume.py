@@ -131,7 +131,7 @@ def test_killed_mid_compress_rereads_at_most_one_interval(tmp_path: Path, killed
     # 8 snapshots per tile, 8 tiles per pass: 2 worker threads get TILES_PER_WORKER = 4 blocks
     # each under a budget that holds the process (compress.memory bounds the whole process
     # tree); a checkpoint every 2 tiles
-    settings = {"checkpoint_every": 2, "memory": "2GiB"}
+    settings = {"checkpoint_every": 2, "memory": "2GiB", "in_memory": "never"}  # streamed tiles
     threads = {"kind": "threads", "workers": 2}
     reference_folder = tmp_path / "ref"
     reference_folder.mkdir()

@@ -19,10 +19,10 @@ import numpy as np
 from snaplift.archive._base import Reader
 from snaplift.archive._shared_reads import shared_block
 from snaplift.errors import ArchiveError, FieldNotFoundError, NonFiniteError
-from snaplift.lifting.fields import FieldLift, LiftedField
+from snaplift.lifting.fields import POINTWISE, FieldLift, LiftedField
 
 __all__ = ["FieldRows", "SnapshotMatrix", "build_snapshot_matrix",
-           "read_snapshot_block", "check_finite", "column_blocks"]
+           "read_snapshot_block", "read_fields_block", "check_finite", "column_blocks"]
 
 
 @dataclass(frozen=True)
@@ -145,14 +145,54 @@ def read_snapshot_block(
         if local.size != p1 - p0:
             raw = raw[:, local]
     if field.term != "x":
-        from snaplift.lifting.fields import POINTWISE
-
         raw = POINTWISE[field.term](raw)  # a new array: never writes through to a file
     if not raw.flags.writeable:  # e.g. a memory map: never write through to a file
         raw = np.array(raw)
     if field.sqrt_weight is not None:
         raw *= field.sqrt_weight[r0:r1][np.newaxis, :]
     return raw
+
+
+def read_fields_block(reader: Reader, fields: tuple[FieldRows, ...] | list[FieldRows],
+                      snapshots: np.ndarray) -> np.ndarray:
+    """``X[rows, snapshots]^T`` of consecutive whole fields as one ``(len(snapshots), rows)`` buffer.
+
+    The fields must be adjacent in ``X`` (``fields[i + 1].offset == fields[i].stop``). Each
+    archive field is read once for all its lifted fields (delay copies and pointwise
+    terms): the raw block spans the snapshots plus the delay window, and each lifted
+    field's rows are taken from it (shifted, its function applied, weighted) straight
+    into its columns of the buffer. This is the lifted tile as one matrix: one read, one
+    buffer, one set of products. Finiteness is not checked here (:func:`check_finite`).
+    """
+    snapshots = np.asarray(snapshots, dtype=np.int64)
+    first = fields[0].offset
+    groups: list[list[FieldRows]] = []
+    for field in fields:
+        if groups and field.archive_field == groups[-1][0].archive_field:
+            groups[-1].append(field)
+        else:
+            groups.append([field])
+    reads = []
+    for members in groups:
+        shifts = [int(f.snapshot_shift) for f in members]
+        base, end = int(snapshots[0]) + min(shifts), int(snapshots[-1]) + max(shifts) + 1
+        lead = members[0]
+        p0, p1 = (0, lead.n_rows) if lead.keep is None else (int(lead.keep[0]), int(lead.keep[-1]) + 1)
+        reads.append((members, _raw_points(reader, lead.archive_field, p0, p1, base, end), base, p0))
+    complex_valued = any(np.iscomplexobj(raw) for _, raw, _, _ in reads)
+    out = np.empty((snapshots.size, fields[-1].stop - first), dtype=np.complex128 if complex_valued else np.float64)
+    for members, raw, base, p0 in reads:
+        for field in members:
+            values = raw[snapshots - base + int(field.snapshot_shift)]  # a copy: raw serves the siblings
+            if field.keep is not None and field.keep.size != raw.shape[1]:
+                values = values[:, field.keep - p0]
+            if field.term != "x":
+                values = POINTWISE[field.term](values)
+            target = out[:, field.offset - first:field.stop - first]
+            target[...] = values
+            if field.sqrt_weight is not None:
+                target *= field.sqrt_weight[np.newaxis, :]
+    return out
 
 
 def check_finite(values: np.ndarray, reader: Reader, field: FieldRows, snapshots: np.ndarray,

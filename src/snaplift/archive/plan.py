@@ -78,6 +78,14 @@ _MIB = 2.0**20
 #: the compress model keeps at least this many snapshot blocks per worker when it can,
 #: so that all workers have work and checkpoints come at a useful granularity
 TILES_PER_WORKER = 4
+#: the in-memory path holds the whole matrix this many times (the read buffer, the kept
+#: copy, a pass's working copy) besides the method's accumulators
+IN_MEMORY_FACTOR = 3
+#: arrays of the size of the TSQR tree's last merge held at once (see ``driver_of``)
+TSQR_MERGE_COPIES = 3
+#: the largest decoded snapshot matrix the workflow plans in memory (bytes): chosen by
+#: ``tests/benchmarks/test_small_problems.py`` (README "Small problems")
+IN_MEMORY_LIMIT = 16 * 2**20
 
 
 def _mib(nbytes: float) -> str:
@@ -152,6 +160,14 @@ class TilePlan:
     result_bytes: int = 0
     partial_chunk_reads: bool = False
     baseline_bytes: int = 0
+    #: the in-memory path: the whole (lifted) matrix is read once, kept, and every pass of
+    #: the method works on it in this process (one tile; :data:`IN_MEMORY_FACTOR`)
+    in_memory: bool = False
+    #: fields (indices into ``fields``) whose rows one tile stacks (lifted fields of one
+    #: archive field) when they fit at full height
+    row_groups: tuple[tuple[int, ...], ...] = ()
+    #: bytes of the whole (lifted) snapshot matrix, decoded (compress model)
+    matrix_bytes: int = 0
 
     @property
     def n_points(self) -> int:
@@ -160,7 +176,16 @@ class TilePlan:
 
     @property
     def n_tiles(self) -> int:
-        return len(self.snapshot_blocks) * sum(len(blocks) for blocks in self.point_blocks)
+        """Tile tasks of one pass: a group of lifted fields read whole is one tile; the
+        in-memory path is one tile."""
+        if self.in_memory:
+            return 1
+        groups = self.row_groups or tuple((i,) for i in range(len(self.point_blocks)))
+        per_block = 0
+        for group in groups:
+            whole = len(group) > 1 and all(len(self.point_blocks[i]) == 1 for i in group)
+            per_block += 1 if whole else sum(len(self.point_blocks[i]) for i in group)
+        return len(self.snapshot_blocks) * per_block
 
     @property
     def tile_shape(self) -> tuple[int, int]:
@@ -212,6 +237,8 @@ class TilePlan:
             "peak_bytes_per_worker": int(2 * (self.tile_bytes + self.accumulator_bytes)) if self.method is None
             else int(2 * self.tile_bytes + self.cache_bytes + self.result_bytes),
             "partial_chunk_reads": bool(self.partial_chunk_reads),
+            "in_memory": bool(self.in_memory),
+            "matrix_bytes": int(self.matrix_bytes),
         }
 
 
@@ -288,6 +315,8 @@ def plan_tiles(
     corange_map: str = "sparse",
     baseline_bytes: int = 0,
     baseline_label: str = "",
+    row_groups: Sequence[Sequence[int]] | None = None,
+    in_memory_limit: int = 0,
 ) -> TilePlan:
     """Plan tiles aligned to stored chunks that fit a memory budget.
 
@@ -326,6 +355,16 @@ def plan_tiles(
     baseline_label
         Which processes the baseline is, for the error message (e.g. "2 worker processes,
         2 nannies and this process").
+    row_groups
+        Fields (indices into ``fields``) whose rows one tile stacks when each fits at full
+        height: the lifted fields of one archive field (delay copies, pointwise terms),
+        read once into one buffer. Their tile is counted by its actual size (the sum of
+        their rows); default: each field alone.
+    in_memory_limit
+        The in-memory path (compress model only): when the whole decoded snapshot matrix
+        is at most this many bytes and :data:`IN_MEMORY_FACTOR` times it plus the method's
+        accumulators fits the budget, the plan is one tile of everything, read once and
+        kept for every pass. 0 (the default) never plans it.
 
     Returns
     -------
@@ -374,7 +413,8 @@ def plan_tiles(
                               widths=method_widths(method, rank, oversample=oversample, sketch_widths=sketch_widths),
                               passes=method_passes(method, power_iterations=power_iterations,
                                                    check_pass=check_pass), shared_memory=shared_memory,
-                              corange_map=corange_map, baseline=baseline)
+                              corange_map=corange_map, baseline=baseline, row_groups=row_groups,
+                              in_memory_limit=int(in_memory_limit))
     chunks = [max(1, min(f.snapshot_chunk, n_snapshots)) for f in chosen]
     unit = math.lcm(*chunks) if chunks else 1
     budget = baseline.available // (2 * workers)
@@ -469,7 +509,8 @@ def _compressed(info: ArchiveInfo, f: Any) -> bool:
 def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any], *, memory_bytes: int,
                    workers: int, in_flight: int, method: str, rank: int, widths: tuple[int, int],
                    passes: int, shared_memory: bool = False, corange_map: str = "sparse",
-                   baseline: _Baseline | None = None) -> TilePlan:
+                   baseline: _Baseline | None = None, row_groups: Sequence[Sequence[int]] | None = None,
+                   in_memory_limit: int = 0) -> TilePlan:
     """The compress memory model of the module docstring; see :func:`plan_tiles`."""
     if workers < 1 or in_flight < 1 or memory_bytes <= 0:
         raise ArchiveError(f"tile plan for {info.path}: memory, workers and in_flight must be positive")
@@ -484,17 +525,28 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
     n = int(sum(points))
     chunks = [max(1, min(f.snapshot_chunk, max(m, 1))) for f in chosen]
     unit = math.lcm(*chunks) if chunks else 1
+    groups = _groups(row_groups, len(chosen))
     if method == "sketch":
         # the driver regenerates the row test matrix to form Psi Q when the sketch is finished
         cache = row_map_bytes(corange_map, n, l, s)
-        driver = s * (2 * n * k + n * rank + len(chosen) * m * l + n) + cache
+        fixed = s * (2 * n * k + n * rank + len(chosen) * m * l + n) + cache
     elif method == "randomized":
-        driver = s * (3 * n * k + m * k + n)
+        fixed = s * (3 * n * k + m * k + n)
         cache = 0
     else:
-        leaves_hint = max(1, len(chosen))
-        driver = s * (n * rank + leaves_hint * m * m + n)
+        fixed = s * (n * rank + n)
         cache = 0
+
+    def driver_of(rows: list[int]) -> int:
+        """The driver's accumulators. tsqr's R factors by their actual size (a leaf of ``r``
+        rows keeps ``min(r, m) x m``, together ``L``): kept as read and scaled by the field
+        scales (``2 L``), and while the tree is reduced its last merge, whose stacked input,
+        LAPACK copy and result are ``min(n, m) x m`` each (at most ``L``): measured,
+        ``tests/archive/test_plan_lifted.py``."""
+        if method != "tsqr":
+            return fixed
+        leaves = sum(math.ceil(p / r) * min(r, m) * m for p, r in zip(points, rows))
+        return fixed + s * (2 * leaves + TSQR_MERGE_COPIES * min(leaves, min(n, m) * m))
 
     def rows_of(cap: int) -> list[int]:
         out = []
@@ -507,6 +559,25 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
             out.append(max(step, (cap // step) * step) if cap >= step else grid_row)
         return out
 
+    def units_of(rows: list[int]) -> list[tuple[int, int, list[int]]]:
+        """Tiles as (rows, itemsize, rows of each field in it): a group of lifted fields at
+        full height is one tile of all their rows."""
+        out = []
+        for group in groups:
+            if len(group) > 1 and all(rows[i] >= points[i] for i in group):
+                out.append((sum(points[i] for i in group), max(itemsizes[i] for i in group),
+                            [points[i] for i in group]))
+            else:
+                out.extend((rows[i], itemsizes[i], [rows[i]]) for i in group)
+        return out
+
+    def result_of(units: list[tuple[int, int, list[int]]], block: int, *, slots: bool) -> int:
+        if method == "tsqr":
+            return max(sz * (sum(min(x, m) * m for x in leaves) + r * rank) for r, sz, leaves in units)
+        if slots:  # one co-range sketch per field of the tile
+            return max(sz * (r + block * (k + l * len(leaves))) for r, sz, leaves in units)
+        return max(sz * (r * k + block * (k + l * len(leaves))) for r, sz, leaves in units)
+
     # threads of one process sum range products in place in one slot per worker
     # (snaplift.linalg._slots): results in flight are small, and the driver's finishing
     # arrays exist only after the pass, when no tile is held
@@ -515,25 +586,51 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
 
     def cost(cap: int, block: int) -> tuple[int, int, int]:
         rows = rows_of(cap)
-        tile = max(r * block * sz for r, sz in zip(rows, itemsizes))
-        if method == "tsqr":
-            result = max(sz * (m * m + r * rank) for r, sz in zip(rows, itemsizes))
-        elif slotted:
-            result = max(sz * (r + block * (k + l)) for r, sz in zip(rows, itemsizes))
-        else:
-            result = max(sz * (r * k + block * (k + l)) for r, sz in zip(rows, itemsizes))
+        units = units_of(rows)
+        tile = max(r * block * sz for r, sz, _ in units)
+        result = result_of(units, block, slots=slotted)
+        driver = driver_of(rows)
         caches = cache if shared_memory else workers * cache
         if slotted:
             during = workers * 2 * tile + caches + workers * s * n * k + in_flight * result + driver_pass
             return max(during, cache + driver), tile, result
         return workers * 2 * tile + caches + in_flight * result + driver, tile, result
 
+    matrix_bytes = s * n * m
+    # sketch keeps one co-range sketch per field (F m l): with many small (lifted) fields they
+    # outweigh the matrix, and holding the tile's copy of them beside the accumulators
+    # (in memory) costs more than it saves (measured: 1.9 GB against 1.1 GB streamed for 120
+    # lifted probe rows)
+    corange_heavy = method == "sketch" and len(chosen) * m * l > 4 * n * m
+    if in_memory_limit and matrix_bytes <= in_memory_limit and not corange_heavy:
+        # one tile of everything, kept: the read buffer, the kept copy and a working copy,
+        # the method's accumulators and the tile's result
+        whole = [int(p) for p in points]
+        result = result_of([(n, s, whole)], m, slots=False)
+        peak = IN_MEMORY_FACTOR * matrix_bytes + driver_of(whole) + result + cache
+        if peak <= available:
+            return TilePlan(
+                fields=names, n_snapshots=m, field_points=tuple(points), chunk=m, block=m,
+                snapshot_blocks=((0, m),) if m else (), point_blocks=tuple(((0, p),) for p in points),
+                bytes_to_read=int(sum(f.n_points * f.n_snapshots * np.dtype(f.stored_dtype).itemsize
+                                      for f in chosen)),
+                tile_bytes=int(matrix_bytes), accumulator_bytes=int(driver_of(whole)),
+                peak_bytes_estimate=int(peak + baseline.bytes), memory_bytes=int(memory_bytes), workers=1,
+                sketch_width=int(k + l), method=method, passes=int(passes), range_width=int(k),
+                corange_width=int(l), in_flight=1, driver_bytes=int(driver_of(whole)), cache_bytes=int(cache),
+                result_bytes=int(result), baseline_bytes=int(baseline.bytes), in_memory=True,
+                row_groups=groups, matrix_bytes=int(matrix_bytes))
+
     full = max(points)
     if method == "tsqr":
         block = m
         cap = full
         if cost(cap, block)[0] > available:
-            cap = _largest(lambda rows: cost(rows, block)[0] <= available, full)
+            # taller leaves mean larger tiles but fewer R factors: the memory is not monotone
+            # in the height, so try heights on a geometric grid and keep the tallest that fits
+            heights = sorted({max(1, int(full / 1.25**i)) for i in range(200)} | {1})
+            fitting = [h for h in heights if cost(h, block)[0] <= available]
+            cap = fitting[-1] if fitting else min(heights, key=lambda h: cost(h, block)[0])
     else:
         cap = full
         first = min(unit, m) if m else 1
@@ -547,6 +644,7 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
             block = max(first, 1)
             cap = _largest(lambda rows: cost(rows, block)[0] <= available, full)
     peak, tile, result = cost(cap, block)
+    driver = driver_of(rows_of(cap))
     if peak > available:
         budget_note = (f"compress.memory is {_mib(memory_bytes)}" if not baseline.bytes
                        else f"{baseline.phrase()}, leaving {_mib(available)}")
@@ -575,8 +673,18 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
         memory_bytes=int(memory_bytes), workers=int(workers), sketch_width=int(k + l), method=method,
         passes=int(passes), range_width=int(k), corange_width=int(l), in_flight=int(in_flight),
         driver_bytes=int(driver), cache_bytes=int(cache), result_bytes=int(result), partial_chunk_reads=partial,
-        baseline_bytes=int(baseline.bytes),
+        baseline_bytes=int(baseline.bytes), row_groups=groups, matrix_bytes=int(matrix_bytes),
     )
+
+
+def _groups(row_groups: Sequence[Sequence[int]] | None, count: int) -> tuple[tuple[int, ...], ...]:
+    """``row_groups`` checked (each field in exactly one group), default one group per field."""
+    if not row_groups:
+        return tuple((i,) for i in range(count))
+    groups = tuple(tuple(int(i) for i in group) for group in row_groups)
+    if sorted(i for group in groups for i in group) != list(range(count)):
+        raise ArchiveError(f"tile plan: row_groups {groups} must hold each of the {count} fields exactly once")
+    return groups
 
 
 def _largest(fits: Callable[[int], bool], high: int) -> int:

@@ -23,7 +23,8 @@ import numpy as np
 
 from snaplift.archive._base import ArchiveInfo, FieldInfo, Reader
 from snaplift.archive._common import missing_field_error
-from snaplift.archive.plan import TilePlan, plan_tiles
+from snaplift.archive.plan import IN_MEMORY_LIMIT, TilePlan, plan_tiles
+from snaplift.archive.probes import probe_report
 from snaplift.errors import ArchiveError
 
 __all__ = [
@@ -254,6 +255,9 @@ class ScanReport:
     warnings: tuple[str, ...]
     #: snapshots per run for an archive of several runs (None: one run)
     run_lengths: tuple[int, ...] | None = None
+    #: an archive of probes (one value per snapshot per field): the suggested delay window
+    #: and its memory (:func:`snaplift.archive.probes.probe_report`); None otherwise
+    probes: dict[str, Any] | None = None
 
     def to_dict(self) -> dict[str, Any]:
         return _plain(dataclasses.asdict(self))  # type: ignore[no-any-return]
@@ -491,6 +495,12 @@ def scan_archive(
                 f"{values[-1].inf_count} Inf values in {scope}"
             )
 
+    probes = None
+    if chosen and times is not None and times.size >= 8 and all(f.n_points == 1 for f in chosen):
+        probes = probe_report(reader, names, times, memory_bytes=memory_bytes, method=method or "randomized",
+                              rank=rank, workers=workers, shared_memory=shared_memory,
+                              baseline_bytes=baseline_bytes, in_memory_limit=IN_MEMORY_LIMIT)
+
     return ScanReport(
         path=info.path,
         format=info.format,
@@ -522,4 +532,5 @@ def scan_archive(
         plan_error=plan_error,
         warnings=tuple(warnings),
         run_lengths=run_lengths,
+        probes=probes,
     )

@@ -12,6 +12,7 @@ import numpy as np
 
 __all__ = [
     "orthonormalize",
+    "field_column_squares",
     "gaussian_block",
     "normalize_signs",
     "TEST_BLOCK_ROWS",
@@ -70,6 +71,17 @@ def column_squares(raw: np.ndarray) -> np.ndarray:
     for j in range(raw.shape[0]):
         row = raw[j]
         out[j] = np.vdot(row, row).real
+    return out
+
+
+def field_column_squares(raw: np.ndarray, starts: np.ndarray, *, chunk: int = 1024) -> np.ndarray:
+    """``||x_fj||^2`` per field ``f`` (its columns start at ``starts[f]``) and snapshot of a
+    snapshot-major tile: ``(fields, snapshots)``, with temporaries of ``chunk`` snapshots."""
+    out = np.empty((len(starts), raw.shape[0]), dtype=np.float64)
+    for j0 in range(0, raw.shape[0], chunk):
+        part = raw[j0:j0 + chunk]
+        squares = part.real * part.real + part.imag * part.imag if np.iscomplexobj(part) else part * part
+        out[:, j0:j0 + chunk] = np.add.reduceat(squares, starts, axis=1).T
     return out
 
 

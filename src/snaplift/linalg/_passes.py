@@ -16,6 +16,7 @@ from __future__ import annotations
 
 import contextlib
 import uuid
+from dataclasses import replace
 from collections.abc import Sequence
 from typing import Any
 
@@ -23,7 +24,7 @@ import numpy as np
 
 from snaplift._process_memory import trim_heap
 from snaplift.archive.matrix import SnapshotMatrix
-from snaplift.linalg._tasks import Preparing, TileRef, TileSource, product_task, sketch_task
+from snaplift.linalg._tasks import Preparing, TileRef, TileSource, product_task, resident_loaded, sketch_task
 from snaplift.linalg.streaming import Checkpointer, Job, StreamState, TileRunner, run_tiles
 
 __all__ = ["build_jobs", "kept_row_blocks", "sketch_read", "product_read", "Pass", "preparing_of"]
@@ -48,13 +49,17 @@ def kept_row_blocks(matrix: SnapshotMatrix, point_blocks: Sequence[Sequence[tupl
 
 
 def build_jobs(matrix: SnapshotMatrix, row_blocks: list[list[tuple[int, int]]],
-               columns: Sequence[tuple[int, int]]) -> list[Job]:
+               columns: Sequence[tuple[int, int]], *, whole: bool = False) -> list[Job]:
     """Tiles in read order (time block by time block, fields in order), with stored bytes read.
 
-    The lifted fields of one archive field (``lift:`` pointwise terms, delays) share one raw
-    read per point range and column block (:mod:`snaplift.archive._shared_reads`): their
-    tiles come one after the other, and the bytes of the shared read (the column block plus
-    the delay window) are counted once, on the first of them.
+    The lifted fields of one archive field (``lift:`` pointwise terms, delays) are row
+    blocks of one tile when each fits a tile at full height (its planned row blocks are
+    one whole block): one task reads the raw block once (the column block plus the delay
+    window) and forms all their rows in one buffer (``TileRef.span``). When the planner
+    split their rows, their tiles of one row block come one after the other and share
+    one raw read (:mod:`snaplift.archive._shared_reads`); the bytes of the shared read are
+    counted once, on the first of them. ``whole``: one tile of every field (the in-memory
+    path), per column block.
     """
     info = matrix.reader.describe()
     jobs: list[Job] = []
@@ -62,18 +67,33 @@ def build_jobs(matrix: SnapshotMatrix, row_blocks: list[list[tuple[int, int]]],
     groups: dict[str, list[int]] = {}
     for f, field in enumerate(matrix.fields):
         groups.setdefault(field.archive_field, []).append(f)
+
+    def read_bytes(first: Any, span: int, r0: int, r1: int) -> int:
+        itemsize = int(np.dtype(info.fields[first.archive_field].stored_dtype).itemsize)
+        points = (int(first.keep[r1 - 1]) + 1 - int(first.keep[r0])) if first.keep is not None else r1 - r0
+        return (span + (int(first.window) if first.siblings > 1 else 0)) * points * itemsize
+
     for c0, c1 in columns:
         span = int(index[c1 - 1] - index[c0] + 1)
+        if whole:
+            nbytes = sum(read_bytes(matrix.fields[members[0]], span, 0, matrix.fields[members[0]].n_rows)
+                         for members in groups.values())
+            first = matrix.fields[0]
+            jobs.append(Job(len(jobs), TileRef(0, (0, first.n_rows), (int(c0), int(c1)), len(jobs),
+                                               span=len(matrix.fields)), nbytes))
+            continue
         for members in groups.values():
             first = matrix.fields[members[0]]
-            itemsize = int(np.dtype(info.fields[first.archive_field].stored_dtype).itemsize)
-            read = span + (int(first.window) if first.siblings > 1 else 0)
+            whole_rows = all(row_blocks[f] == [(0, matrix.fields[f].n_rows)] for f in members)
+            if len(members) > 1 and whole_rows and members == list(range(members[0], members[-1] + 1)):
+                jobs.append(Job(len(jobs), TileRef(members[0], (0, first.n_rows), (int(c0), int(c1)), len(jobs),
+                                                   span=len(members)), read_bytes(first, span, 0, first.n_rows)))
+                continue
             for block, (r0, r1) in enumerate(row_blocks[members[0]]):
-                points = (int(first.keep[r1 - 1]) + 1 - int(first.keep[r0])) if first.keep is not None else r1 - r0
                 for position, f in enumerate(members):
                     b0, b1 = row_blocks[f][block]
                     jobs.append(Job(len(jobs), TileRef(f, (b0, b1), (int(c0), int(c1)), len(jobs)),
-                                    read * points * itemsize if position == 0 else 0))
+                                    read_bytes(first, span, r0, r1) if position == 0 else 0))
     return jobs
 
 
@@ -102,6 +122,8 @@ class Pass:
         into ``state.arrays[slot]``; otherwise ``slot_spec`` is None and ``fold`` adds the
         returned products.
         """
+        if self.source.resident and all(resident_loaded(self.source.resident, job.id) for job in jobs):
+            jobs = [replace(job, nbytes=0) for job in jobs]  # the in-memory path reads once
         if self.progress is not None and hasattr(self.progress, "add_work"):
             self.progress.add_work(len([j for j in jobs if j.id not in state.done]))
         count = int(getattr(self.runner, "slots", 0) or 0) if slot is not None else 0
@@ -202,21 +224,29 @@ def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: S
     """The first read: ``range`` = X_w Omega, ``corange_<f>`` = (Psi_f X_f)^T, statistics."""
     n, m = matrix.shape
     dtype = matrix.dtype
-    corange = [_zeros(state, f"corange_{f}", (m, corange_width), dtype) for f in range(len(matrix.fields))] \
-        if corange_width else []
+    whole = len(jobs) == 1 and jobs[0].tile.columns == (0, m) and jobs[0].tile.span == len(matrix.fields)
+    if corange_width and whole and not state.done:  # the in-memory path: its one tile's blocks are the sums
+        corange: list[Any] = [None] * len(matrix.fields)
+    else:
+        corange = [_zeros(state, f"corange_{f}", (m, corange_width), dtype) for f in range(len(matrix.fields))] \
+            if corange_width else []
     row_sum = _zeros(state, "row_sum", (n,), dtype)
     squares = _zeros(state, "squares", (len(matrix.fields), m), np.float64)
-    fields = matrix.fields
 
     def fold(tile: TileRef, result: dict[str, Any]) -> None:
-        g0 = fields[tile.field].offset + tile.rows[0]
-        g1 = fields[tile.field].offset + tile.rows[1]
+        g0, g1 = tile.global_rows(run.source)
         c0, c1 = tile.columns
         _add_rows(state, "range", run.source, tile, result)
         row_sum[g0:g1] += result["row_sum"]
-        squares[tile.field, c0:c1] += result["squares"]
-        if corange:
-            corange[tile.field][c0:c1] += result["corange"]
+        squares[tile.field:tile.field + tile.span, c0:c1] += np.reshape(result["squares"], (tile.span, -1))
+        if not corange:
+            return
+        parts = result["corange"] if tile.span > 1 else [result["corange"]]
+        for f, part in enumerate(parts, start=tile.field):
+            if corange[f] is None:  # the only tile: its blocks are the sums
+                corange[f] = state.arrays[f"corange_{f}"] = part
+            else:
+                corange[f][c0:c1] += part
 
     run.run(sketch_task, ((int(range_width), int(corange_width)),), jobs, fold, state, slot="range")
     if "range" not in state.arrays:
@@ -231,7 +261,6 @@ def product_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: 
     width = operand.shape[1]
     dtype = np.result_type(matrix.dtype, operand.dtype)
     shared_operand = run.runner.share(operand)
-    fields = matrix.fields
     if kind == "range":
         def fold(tile: TileRef, result: dict[str, Any]) -> None:
             _add_rows(state, name, run.source, tile, result)  # only when not summed in slots

@@ -15,13 +15,14 @@ from typing import Any
 import numpy as np
 
 from snaplift.archive._base import Reader
-from snaplift.archive.matrix import FieldRows, check_finite, read_snapshot_block
+from snaplift.archive.matrix import FieldRows, check_finite, read_fields_block, read_snapshot_block
 from snaplift.errors import ArchiveError
-from snaplift.linalg._kernels import adjoint_product, column_squares, qr_factor, range_product
+from snaplift.linalg._kernels import adjoint_product, column_squares, field_column_squares, qr_factor, range_product
 from snaplift.linalg._slots import add_range_product
 from snaplift.linalg._testmatrix import apply_corange, cached_row_map, gaussian_map, set_cache_limit
 
-__all__ = ["TileSource", "TileRef", "Preparing", "sketch_task", "product_task", "tsqr_task", "tsqr_leaf_task"]
+__all__ = ["TileSource", "TileRef", "Preparing", "sketch_task", "product_task", "tsqr_task", "tsqr_leaf_task",
+           "release_resident", "resident_loaded"]
 
 
 @dataclass(frozen=True)
@@ -36,6 +37,8 @@ class TileSource:
     cache_bytes: int = 1 << 30
     #: kind of the co-range row map (``compress.corange_map``): "sparse" or "gaussian"
     corange_map: str = "gaussian"
+    #: the in-memory path: tiles read once are kept in this process under this key ("" = stream)
+    resident: str = ""
 
     @property
     def n_rows(self) -> int:
@@ -44,15 +47,28 @@ class TileSource:
 
 @dataclass(frozen=True)
 class TileRef:
-    """One tile: kept rows ``rows`` of field ``field`` (an index) x selected columns ``columns``."""
+    """One tile: kept rows ``rows`` of field ``field`` (an index) x selected columns ``columns``.
+
+    With ``span > 1`` the tile is the whole fields ``field .. field + span - 1`` stacked
+    (adjacent in ``X``, so its rows are one contiguous range): the lifted fields of one
+    archive field (delay copies, pointwise terms) as row blocks of one matrix, read once
+    (:func:`~snaplift.archive.matrix.read_fields_block`); ``rows`` is then that of the
+    first field, whole.
+    """
 
     field: int
     rows: tuple[int, int]
     columns: tuple[int, int]
     id: int = -1
+    span: int = 1
+
+    def members(self, source: TileSource) -> tuple[FieldRows, ...]:
+        return tuple(source.fields[self.field:self.field + self.span])
 
     def global_rows(self, source: TileSource) -> tuple[int, int]:
         offset = source.fields[self.field].offset
+        if self.span > 1:
+            return offset, source.fields[self.field + self.span - 1].stop
         return offset + self.rows[0], offset + self.rows[1]
 
 
@@ -65,8 +81,12 @@ class Preparing:
 
 
 def _read(source: TileSource, tile: TileRef, *, check: bool) -> tuple[np.ndarray, np.ndarray | None]:
-    field = source.fields[tile.field]
+    """The tile snapshot-major and, with ``check``, its per-snapshot sums of squares
+    (``(snapshots,)``; ``(span, snapshots)``, one row per field, for a tile of several fields)."""
     snapshots = source.snapshot_index[tile.columns[0]:tile.columns[1]]
+    if tile.span > 1 or source.resident:
+        return _read_fields(source, tile, snapshots, check=check)
+    field = source.fields[tile.field]
     raw = read_snapshot_block(source.reader, field, snapshots, tile.rows)
     if raw.shape[0] == 0 or raw.shape[1] == 0:
         return raw, np.zeros(raw.shape[0])
@@ -74,6 +94,44 @@ def _read(source: TileSource, tile: TileRef, *, check: bool) -> tuple[np.ndarray
     if check:
         check_finite(raw, source.reader, field, snapshots, tile.rows, squares)
     return raw, squares
+
+
+def _read_fields(source: TileSource, tile: TileRef, snapshots: np.ndarray, *, check: bool
+                 ) -> tuple[np.ndarray, np.ndarray | None]:
+    members = tile.members(source)
+    stored = _resident.get((source.resident, tile.id)) if source.resident else None
+    if stored is not None:
+        raw = stored.copy()  # the kept matrix stays as read: tasks prepare their copy in place
+    else:
+        raw = read_fields_block(source.reader, members, snapshots)
+        if source.resident:
+            _resident[(source.resident, tile.id)] = raw.copy()
+    if not check:
+        return raw, None
+    first = members[0].offset
+    starts = np.array([f.offset - first for f in members], dtype=np.int64)
+    if raw.shape[0] == 0 or raw.shape[1] == 0:
+        return raw, np.zeros((len(members), raw.shape[0]))
+    squares = field_column_squares(raw, starts)
+    if not np.all(np.isfinite(squares)):
+        for field in members:
+            part = raw[:, field.offset - first:field.stop - first]
+            check_finite(part, source.reader, field, snapshots, (0, field.n_rows))
+    return raw, squares
+
+
+#: matrices kept in memory by the in-memory path (``TileSource.resident``), by (key, tile id)
+_resident: dict[tuple[str, int], np.ndarray] = {}
+
+
+def release_resident(key: str | None = None) -> None:
+    """Drop the kept matrices of one compress (``key``) or of all."""
+    for name in [k for k in _resident if key is None or k[0] == key]:
+        del _resident[name]
+
+
+def resident_loaded(key: str, tile_id: int) -> bool:
+    return (key, tile_id) in _resident
 
 
 def _prepare(raw: np.ndarray, preparing: Preparing | None, g0: int, g1: int) -> np.ndarray:
@@ -114,7 +172,14 @@ def sketch_task(source: TileSource, widths: tuple[int, int], slot: Any, tile: Ti
     omega = gaussian_map(source.snapshot_index[c0:c1], range_width, seed=source.seed,
                          complex_valued=source.complex_valued)
     out: dict[str, Any] = {"corange": None, "row_sum": raw.sum(axis=0), "squares": squares}
-    if corange_width:
+    if corange_width and tile.span > 1:  # one co-range sketch per field: its scale comes later
+        first = source.fields[tile.field].offset
+        out["corange"] = [
+            apply_corange(raw[:, f.offset - first:f.stop - first],
+                          cached_row_map(f.offset, f.stop, corange_width, seed=source.seed,
+                                         complex_valued=source.complex_valued, kind=source.corange_map))
+            for f in tile.members(source)]
+    elif corange_width:
         # before the range product: that one may wait for this slot's previous tile, and
         # by now it has usually arrived
         g0, g1 = tile.global_rows(source)
@@ -166,20 +231,45 @@ def tsqr_task(source: TileSource, center: bool, slot: None, tile: TileRef,
         out["squares"] = squares
     if center:
         raw -= raw.mean(axis=0)[np.newaxis, :]
+    if tile.span > 1:
+        return _tsqr_fields(source, tile, raw, out, leaf)
     q, r = qr_factor(raw.T)
     if leaf is None:
         out["r"] = r
         return out
     first, factor = leaf
-    scale = max(float(np.abs(first).max(initial=0.0)), 1e-300)
-    if r.shape != first.shape or float(np.abs(r - first).max(initial=0.0)) > 1e-8 * scale:
-        field = source.fields[tile.field]
-        raise ArchiveError(
-            f"{source.reader.path}: field '{field.name}' rows {tile.rows[0]}..{tile.rows[1] - 1} read "
-            "differently in the second TSQR pass than in the first; the archive changed during compress"
-        )
+    _same_leaf(source, source.fields[tile.field], tile.rows, r, first)
     out["basis"] = q @ factor
     return out
+
+
+def _tsqr_fields(source: TileSource, tile: TileRef, raw: np.ndarray, out: dict[str, Any],
+                 leaf: tuple[list[np.ndarray], list[np.ndarray]] | None) -> dict[str, Any]:
+    """TSQR leaves of a tile of several fields: one leaf per field, whose R factors are
+    scaled by the field's own scale later (``R(s X) = s R(X)``)."""
+    first = source.fields[tile.field].offset
+    leaves = []
+    for index, field in enumerate(tile.members(source)):
+        q, r = qr_factor(raw[:, field.offset - first:field.stop - first].T)
+        if leaf is None:
+            leaves.append(r)
+            continue
+        _same_leaf(source, field, (0, field.n_rows), r, leaf[0][index])
+        leaves.append(q @ leaf[1][index])
+    if leaf is None:
+        out["r"] = leaves
+    else:
+        out["basis"] = np.concatenate(leaves, axis=0)
+    return out
+
+
+def _same_leaf(source: TileSource, field: FieldRows, rows: tuple[int, int], r: np.ndarray, first: np.ndarray) -> None:
+    scale = max(float(np.abs(first).max(initial=0.0)), 1e-300)
+    if r.shape != first.shape or float(np.abs(r - first).max(initial=0.0)) > 1e-8 * scale:
+        raise ArchiveError(
+            f"{source.reader.path}: field '{field.name}' rows {rows[0]}..{rows[1] - 1} read "
+            "differently in the second TSQR pass than in the first; the archive changed during compress"
+        )
 
 
 def tsqr_leaf_task(source: TileSource, center: bool, slot: None, item: tuple[TileRef, np.ndarray, np.ndarray]

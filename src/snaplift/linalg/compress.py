@@ -20,6 +20,7 @@ same arguments resumes from it, skipping finished passes and tiles.
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import json
 import os
@@ -33,12 +34,13 @@ from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.archive.plan import TilePlan
 from snaplift.errors import ArchiveError
 from snaplift.linalg._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
+from snaplift.linalg._blas import blas_threads
 from snaplift.linalg._kernels import normalize_signs
-from snaplift.linalg._tasks import TileSource
+from snaplift.linalg._tasks import TileSource, release_resident
 from snaplift.linalg._testmatrix import ROW_MAPS, row_map_bytes
 from snaplift.linalg.randomized import LowRank, randomized_compress
 from snaplift.linalg.sketch import SketchState, default_sketch_widths, finish_sketch, merge_sketches
-from snaplift.linalg.streaming import Checkpointer, StreamState, ThreadRunner, TileRunner
+from snaplift.linalg.streaming import Checkpointer, InlineRunner, StreamState, ThreadRunner, TileRunner
 from snaplift.linalg.tsqr import tsqr_compress
 from snaplift.prepare import Preparation
 
@@ -86,6 +88,10 @@ class Compression:
     info: dict[str, Any] = field(default_factory=dict)
 
 
+#: an in-memory matrix up to this size is compressed with one BLAS thread
+SINGLE_THREAD_BYTES = 32 * 2**20
+
+
 def default_in_flight(workers: int) -> int:
     """Tasks outstanding: one per worker plus one queued, so no worker waits for the driver."""
     return int(workers) + 1
@@ -102,7 +108,7 @@ def _job_key(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
         "archive": matrix.reader.path, "signature": signature, "options": repr(options),
         "fields": [(f.name, f.n_rows) for f in matrix.fields],
         "snapshots": hashlib.sha256(np.ascontiguousarray(matrix.snapshot_index).tobytes()).hexdigest(),
-        "tiles": [(j.tile.field, j.tile.rows, j.tile.columns) for j in jobs],
+        "tiles": [(j.tile.field, j.tile.rows, j.tile.columns, j.tile.span) for j in jobs],
     }
     return hashlib.sha256(json.dumps(payload, sort_keys=True, default=str).encode()).hexdigest()[:24]
 
@@ -114,14 +120,15 @@ def _columns(matrix: SnapshotMatrix, plan: TilePlan | None, method: str) -> list
     return list(matrix.blocks)
 
 
-def _source(matrix: SnapshotMatrix, options: CompressOptions, corange_width: int, row_blocks: list) -> TileSource:
+def _source(matrix: SnapshotMatrix, options: CompressOptions, corange_width: int, row_blocks: list,
+            resident: str = "") -> TileSource:
     if options.corange_map not in ROW_MAPS:
         raise ArchiveError(f"compress.corange_map {options.corange_map!r} is not one of {', '.join(ROW_MAPS)}")
     itemsize = np.dtype(matrix.dtype).itemsize
     cache = row_map_bytes(options.corange_map, matrix.shape[0], corange_width, itemsize) + (1 << 20)
     return TileSource(matrix.reader, matrix.fields, np.asarray(matrix.snapshot_index, dtype=np.int64),
                       bool(np.issubdtype(matrix.dtype, np.complexfloating)), int(options.seed), int(cache),
-                      options.corange_map)
+                      options.corange_map, resident)
 
 
 def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOptions, *,
@@ -159,8 +166,10 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
     >>> result.passes, result.projection_kind                                        # doctest: +SKIP
     (1, 'estimate')
     """
-    if runner is None:
-        with ThreadRunner(1) as own:
+    in_memory = plan is not None and plan.in_memory
+    if runner is None or (in_memory and not isinstance(runner, InlineRunner)):
+        # the in-memory path runs its one tile per pass here, whatever the scheduler
+        with (InlineRunner() if in_memory else ThreadRunner(1)) as own:
             return compress(matrix, plan, options, runner=own, in_flight=in_flight, checkpoint_dir=checkpoint_dir,
                             checkpoint_every=checkpoint_every, progress=progress)
     n, m = matrix.shape
@@ -170,20 +179,28 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
     if options.method not in ("sketch", "randomized", "tsqr"):
         raise ArchiveError(f"compress.method {options.method!r} is not one of sketch, randomized, tsqr")
     row_blocks = kept_row_blocks(matrix, plan.point_blocks if plan is not None else None)
-    jobs = build_jobs(matrix, row_blocks, _columns(matrix, plan, options.method))
+    jobs = build_jobs(matrix, row_blocks, [(0, m)] if in_memory else _columns(matrix, plan, options.method),
+                      whole=in_memory)
     range_width, corange_width = options.widths(n, m)
-    source = _source(matrix, options, corange_width, row_blocks)
-    checkpoint = Checkpointer(checkpoint_dir, checkpoint_every) if checkpoint_dir is not None else None
     key = _job_key(matrix, plan, options, jobs)
+    source = _source(matrix, options, corange_width, row_blocks, resident=key if in_memory else "")
+    # the in-memory path reads a small matrix once: a killed run loses less than a checkpoint costs
+    checkpoint = Checkpointer(checkpoint_dir, checkpoint_every) if checkpoint_dir is not None and not in_memory \
+        else None
     state = (checkpoint.load(key) if checkpoint is not None else None) or StreamState(key)
     resumed = state.pass_number > 0 or bool(state.done)
     bytes_before = int(state.bytes_read)
     run = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers), checkpoint=checkpoint,
                progress=progress)
+    # a small matrix in memory: one BLAS thread (its calls take milliseconds; a thread pool
+    # waiting on a shared machine made them 5-50x slower, measured in the small-problems benchmark)
+    small = in_memory and n * m * np.dtype(matrix.dtype).itemsize <= SINGLE_THREAD_BYTES
     try:
-        return _compress(matrix, options, run, jobs, state, source, checkpoint, rank, range_width, corange_width,
-                         row_blocks, resumed, bytes_before)
+        with blas_threads(1) if small else contextlib.nullcontext():
+            return _compress(matrix, options, run, jobs, state, source, checkpoint, rank, range_width,
+                             corange_width, row_blocks, resumed, bytes_before)
     finally:
+        release_resident(key)
         _release_caches(runner)
 
 
@@ -237,7 +254,7 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
     passes = int(state.pass_number)
     info = {"method": options.method, "range_width": range_width, "corange_width": corange_width,
             "corange_map": options.corange_map if options.method == "sketch" else None,
-            "tiles": len(jobs), "in_flight": run.in_flight, "runner": getattr(runner, "kind", "?"),
+            "tiles": len(jobs), "in_memory": bool(source.resident), "in_flight": run.in_flight, "runner": getattr(runner, "kind", "?"),
             "resumed": resumed, "checkpoints_saved": checkpoint.saves if checkpoint is not None else 0,
             "bytes_read_all_runs": int(state.bytes_read), "bytes_read_before_resume": bytes_before}
     if checkpoint is not None:

@@ -16,14 +16,15 @@ from __future__ import annotations
 
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
-import dask
-import dask.array as da
 import numpy as np
 
 from snaplift.linalg._kernels import normalize_signs
 from snaplift.linalg._testmatrix import gaussian_map
+
+if TYPE_CHECKING:  # dask.array (and the xarray/pandas it pulls in) costs ~0.5 s to import
+    import dask.array as da
 
 __all__ = ["LowRank", "randomized_svd", "gaussian_map", "randomized_compress"]
 
@@ -66,6 +67,8 @@ class LowRank:
 
 
 def _orth(y: da.Array) -> da.Array:
+    import dask.array as da
+
     if y.numblocks[1] != 1:
         y = y.rechunk({1: -1})
     q, _ = da.linalg.qr(y)
@@ -73,6 +76,8 @@ def _orth(y: da.Array) -> da.Array:
 
 
 def _small(array: np.ndarray, chunks: tuple[tuple[int, ...], ...]) -> da.Array:
+    import dask.array as da
+
     return da.from_array(array, chunks=chunks)
 
 
@@ -85,8 +90,8 @@ def randomized_svd(
     seed: int = 0,
     snapshot_index: np.ndarray | None = None,
     range_sketch: da.Array | np.ndarray | None = None,
-    compute: ComputeFn = dask.compute,
-    persist: PersistFn = dask.persist,
+    compute: ComputeFn | None = None,
+    persist: PersistFn | None = None,
 ) -> LowRank:
     """Randomized truncated SVD of a lazy (n x m) dask array, complex-safe.
 
@@ -127,6 +132,11 @@ def randomized_svd(
     >>> result.singular_value.shape
     (5,)
     """
+    import dask
+    import dask.array as da
+
+    compute = compute or dask.compute
+    persist = persist or dask.persist
     n, m = matrix.shape
     width = min(rank + oversample, n, m)
     if rank > min(n, m):

@@ -41,7 +41,7 @@ import numpy as np
 from snaplift.errors import ConfigError
 from snaplift.linalg._blas import blas_threads
 
-__all__ = ["TileRunner", "ThreadRunner", "ClientRunner", "runner_for", "StreamState", "Checkpointer",
+__all__ = ["TileRunner", "ThreadRunner", "ClientRunner", "InlineRunner", "runner_for", "StreamState", "Checkpointer",
            "run_tiles", "parse_every", "save_checkpoint", "load_checkpoint"]
 
 
@@ -212,6 +212,47 @@ class ClientRunner:
             self.client.run(discard, key, abort=abort)
         except Exception:  # a lost worker has no slots left to discard
             pass
+
+
+class _Done:
+    __slots__ = ("value",)
+
+    def __init__(self, value: Any) -> None:
+        self.value = value
+
+
+class InlineRunner:
+    """Tasks run in this thread as they are submitted: the in-memory path, where one tile
+    holds the whole matrix and a scheduler round trip would only add latency. BLAS keeps
+    its whole thread pool (the one task is the only work)."""
+
+    kind = "inline"
+    workers = 1
+    slots = 0
+
+    def __enter__(self) -> InlineRunner:
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        return None
+
+    def share(self, value: Any) -> Any:
+        return value
+
+    def submit(self, function: Callable[..., Any], *args: Any, where: int | None = None) -> Any:
+        return _Done(function(*args))
+
+    def result(self, future: Any) -> Any:
+        return future.value
+
+    def cancel(self, future: Any) -> None:
+        return None
+
+    def collect(self, key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
+        return {}
+
+    def discard(self, key: str, *, abort: bool) -> None:
+        return None
 
 
 def runner_for(scheduler: Any) -> ThreadRunner | ClientRunner:

@@ -95,6 +95,38 @@ def render_scan(report: ScanReport) -> Any:
         parts.append(tiles)
     elif data.get("plan_error"):
         parts.append(f"[red]tile plan: {data['plan_error']}[/red]")
+    probes = data.get("probes")
+    if probes:
+        parts.append(_probes(probes))
     for warning in data.get("warnings") or []:
         parts.append(f"[yellow]warning: {warning}[/yellow]")
     return Group(*parts)
+
+
+def _probes(probes: dict[str, Any]) -> Any:
+    from rich.table import Table
+
+    grid = Table.grid(padding=(0, 2))
+    grid.add_column(style="bold")
+    grid.add_column()
+    grid.add_row("probes", f"{', '.join(probes['probes'])}: {probes['values_per_snapshot']} value(s) per snapshot; "
+                           "lift them with delays to see their frequencies")
+    delays = probes["delays"]
+    if probes.get("longest_period") is not None:
+        seen = (f"spans the longest period in the periodogram, {probes['longest_period']:.6g} "
+                f"(probe {probes['longest_period_probe']})")
+    else:
+        seen = "no periodogram peak found: a minimal window"
+    grid.add_row("suggested lift", f"- {{kind: delays, count: {delays['count']}, spacing: {delays['spacing']}}}  "
+                                   f"(window {probes['window'] if probes['window'] is not None else 0:.6g}: {seen})")
+    cost = (f"lifted matrix {probes['lifted_rows']} x {probes['lifted_columns']} "
+            f"({human_bytes(probes['lifted_bytes'])})")
+    plan = probes.get("plan")
+    if plan:
+        where = "in memory (one read)" if plan.get("in_memory") else f"{plan['n_tiles']} tiles"
+        cost += (f"; compress.method {plan['method']}: {where}, peak estimate "
+                 f"{human_bytes(plan['peak_bytes_estimate'])} of {human_bytes(plan['memory_bytes'])}")
+    elif probes.get("plan_error"):
+        cost += f"; [red]{probes['plan_error']}[/red]"
+    grid.add_row("memory", cost)
+    return grid

@@ -25,7 +25,6 @@ from __future__ import annotations
 from dataclasses import dataclass, replace
 from typing import Any
 
-import dask.array as da
 import numpy as np
 
 from snaplift.archive._base import Reader
@@ -68,6 +67,23 @@ def _unscaled(preparation: Preparation) -> Preparation:
     return replace(preparation, field_scale={f: 1.0 for f in preparation.fields})
 
 
+#: an array of vectors (rank or mode x grid) up to this size is one chunk; larger ones
+#: get one chunk per vector (a chunk file per value of a small field, e.g. lifted
+#: probes, would cost a file write each)
+ONE_CHUNK_BYTES = 4 * 2**20
+#: per-field arrays up to this size are written together (:meth:`StoreWriter.arrays`)
+SMALL_ARRAY_BYTES = 64 * 2**10
+
+
+def _vector_chunks(values: np.ndarray | None, shape: tuple[int, ...] | None = None, itemsize: int = 8
+                   ) -> tuple[int, ...]:
+    shape = tuple(values.shape) if values is not None else tuple(shape or ())
+    itemsize = values.dtype.itemsize if values is not None else itemsize
+    if int(np.prod(shape)) * itemsize <= ONE_CHUNK_BYTES:
+        return tuple(max(1, int(n)) for n in shape)
+    return (1, *shape[1:])
+
+
 def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scale_setting: Any) -> None:
     """Write everything ``fit`` and ``modes`` need of a compress result (module docstring)."""
     matrix, preparation, lowrank = compressed.matrix, compressed.preparation, compressed.lowrank
@@ -90,14 +106,28 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
     writer.group_attrs("prepare", {"center": preparation.centered,
                                    "scale": scale_setting if isinstance(scale_setting, str) else dict(scale_setting),
                                    "lifted": lifted})
+    small: list[tuple[str, np.ndarray, tuple[str, ...]]] = []  # written together: one round trip
     for rows in matrix.fields:
-        # one basis vector at a time: the field's temporaries are one vector, not n x rank (issue 11)
+        # one basis vector at a time: the field's temporaries are one vector, not n x rank;
+        # small fields (e.g. the lifted fields of a delay-embedded probe) are written together
         basis_rows = _basis_field_rows(lowrank.basis, rows, compute)
         dtype = np.result_type(basis_rows, float)
-        basis_array = writer.empty("basis", rows.name, (basis_rows.shape[1], *rows.grid), dtype,
-                                   ("rank", *dims[rows.name]), chunks=(1, *rows.grid))
-        for vector in range(basis_rows.shape[1]):
-            basis_array[vector] = rows.expand(to_physical(basis_rows[:, vector], rows, preparation, add_mean=False))
+        shape = (basis_rows.shape[1], *rows.grid)
+        if int(np.prod(shape)) * dtype.itemsize <= SMALL_ARRAY_BYTES and len(matrix.fields) > 1:
+            physical = to_physical(np.asarray(basis_rows).T, rows, preparation, add_mean=False)
+            small.append((rows.name, rows.expand(physical), ("rank", *dims[rows.name])))
+        else:
+            basis_array = writer.empty("basis", rows.name, shape, dtype, ("rank", *dims[rows.name]),
+                                       chunks=_vector_chunks(None, shape, dtype.itemsize))
+            whole = np.empty(shape, dtype) if basis_array.chunks[0] == shape[0] else None
+            for vector in range(basis_rows.shape[1]):
+                values = rows.expand(to_physical(basis_rows[:, vector], rows, preparation, add_mean=False))
+                if whole is None:
+                    basis_array[vector] = values
+                else:
+                    whole[vector] = values
+            if whole is not None:  # one chunk: written at once
+                basis_array[...] = whole
         del basis_rows
         if rows.keep is not None:
             mask = np.ones(int(np.prod(rows.grid)), dtype=bool)
@@ -108,6 +138,7 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
         if preparation.mean is not None:
             mean = to_physical(preparation.mean[rows.offset:rows.stop], rows, _unscaled(preparation), add_mean=False)
             writer.array("prepare", f"mean_{rows.name}", rows.expand(mean), dims[rows.name])
+    writer.arrays("basis", small)
     for name, value in (getattr(compressed, "sketch_state", None) or {}).items():
         value = np.asarray(value)
         writer.array("sketch", name, value, tuple(f"{name}_{i}" for i in range(value.ndim)))
@@ -117,7 +148,7 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
 class _StoredLowRank:
     """The compress result as read back: same attributes fit/modes use of ``LowRank``."""
 
-    basis: da.Array
+    basis: Any  # dask array, or numpy for a small basis
     singular_value: np.ndarray
     coefficient: np.ndarray
     column_norm: np.ndarray
@@ -157,6 +188,18 @@ def _group(root: Any, name: str, where: str) -> Any:
     return root[name]
 
 
+def _lazy(array: Any) -> Any:
+    """``dask.array`` (``array`` None) or a lazy view of a stored array: only for a large
+    basis, since importing dask.array (and the xarray/pandas it pulls in) takes ~0.5 s."""
+    import dask.array as da
+
+    return da if array is None else da.from_zarr(array)
+
+
+#: a stored basis up to this size is loaded into memory rather than as a lazy array
+EAGER_BASIS_BYTES = 64 * 2**20
+
+
 def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int = 0,
                     snapshot_block: int = 1, where: str = "result store") -> LoadedCompressed:
     """Read a compress result back from ``root`` (a staging or complete store) without the archive.
@@ -178,11 +221,16 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     offset = 0
     centered = bool(prepare.attrs.get("center", False))
     lifted = dict(prepare.attrs.get("lifted", {}))
-    for name, field_scale in zip(fields, scale):
+    for name in fields:
         if name not in basis:
             raise ResultStoreError(f"{where}: basis/{name} is missing; the compress stage did not finish there")
+    # a small basis (many lifted fields of few points, e.g. delay-embedded probes) is read
+    # at once; a lazy graph over one array per lifted field costs more than the reading
+    eager = sum(int(np.prod(basis[name].shape)) * basis[name].dtype.itemsize for name in fields) <= EAGER_BASIS_BYTES
+    xp = np if eager else _lazy(None)
+    for name, field_scale in zip(fields, scale):
         # lazy: the modes stage computes one field's rows at a time
-        physical = da.from_zarr(basis[name])
+        physical = np.asarray(basis[name][...]) if eager else _lazy(basis[name])
         grid = tuple(int(s) for s in physical.shape[1:])
         flat = physical.reshape(physical.shape[0], -1)
         keep = None
@@ -195,7 +243,7 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
             sqrt_weight = np.sqrt(w if keep is None else w[keep])
         factor = (sqrt_weight if sqrt_weight is not None else 1.0) / field_scale
         # physical = prepared * scale / sqrt(w); at w == 0 the prepared rows are zero
-        prepared = da.where(da.isfinite(kept), kept * factor, 0.0)
+        prepared = xp.where(xp.isfinite(kept), kept * factor, 0.0)
         basis_blocks.append(prepared.T)
         n_rows = int(prepared.shape[1])
         if centered:
@@ -218,7 +266,7 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
                      else np.float64)
     matrix = SnapshotMatrix(reader, tuple(rows), snapshot_index, blocks, dtype)
     lowrank = _StoredLowRank(
-        basis=da.concatenate(basis_blocks, axis=0),
+        basis=xp.concatenate(basis_blocks, axis=0),
         singular_value=np.asarray(basis["singular_value"][...], dtype=np.float64),
         coefficient=coefficient,
         column_norm=np.asarray(diagnostics["column_norm"][...], dtype=np.float64),
@@ -323,6 +371,9 @@ def _basis_field_rows(basis: Any, rows: Any, compute: Any) -> np.ndarray:
     part = basis[rows.offset:rows.stop]
     if isinstance(part, np.ndarray):
         return part
+    if part.nbytes <= SMALL_ARRAY_BYTES:  # a small field: one task, not one per vector
+        (whole,) = compute(part)
+        return np.asarray(whole)
     out = np.empty(part.shape, dtype=part.dtype, order="F")
     for column in range(part.shape[1]):
         (out[:, column],) = compute(part[:, column])
@@ -367,12 +418,19 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
     for rows in _mode_fields(matrix):
         basis_rows = _basis_field_rows(lowrank.basis, rows, compute)
         mode_array = writer.empty("modes", rows.name, (n_modes, *rows.grid), np.complex128,
-                                  ("mode", *dims[rows.name]), chunks=(1, *rows.grid))
+                                  ("mode", *dims[rows.name]), chunks=_vector_chunks(None, (n_modes, *rows.grid), 16))
         largest = np.zeros(n_modes)
+        # one chunk (a small field): the modes are gathered and written at once
+        whole = np.empty((n_modes, *rows.grid), np.complex128) if mode_array.chunks[0] == n_modes else None
         for k in range(n_modes):
             values = to_physical(_basis_times(basis_rows, modes_rows[:, k]), rows, preparation, add_mean=False)
-            mode_array[k] = rows.expand(values)
             largest[k] = _largest(values)
+            if whole is None:
+                mode_array[k] = rows.expand(values)
+            else:
+                whole[k] = rows.expand(values)
+        if whole is not None:
+            mode_array[...] = whole
         _write_peak(writer, rows.name, largest, fit, order, np.dtype(matrix.dtype).kind != "c")
         if preparation.mean is not None:
             mean = to_physical(preparation.mean[rows.offset:rows.stop], rows, _unscaled(preparation), add_mean=False)

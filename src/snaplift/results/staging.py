@@ -119,6 +119,16 @@ class _TrackingWriter(StoreWriter):
         self._prepare(group, name)
         return super().array(group, name, data, dimensions, chunks=chunks, attrs=attrs)
 
+    def arrays(self, group: str, items: Sequence[tuple[str, np.ndarray, Sequence[str]]]) -> None:
+        names = [name for name, _, _ in items]
+        self._staged._journal_many([f"{group}/{name}" if group else name for name in names])
+        node = self.root.require_group(group) if group else self.root
+        present = set(node.keys())
+        for name in names:
+            if name in present:
+                del node[name]
+        super().arrays(group, items)
+
     def empty(self, group: str, name: str, shape: tuple[int, ...], dtype: Any, dimensions: Sequence[str],
               chunks: tuple[int, ...], attrs: dict[str, Any] | None = None) -> zarr.Array:
         self._prepare(group, name)
@@ -251,6 +261,15 @@ class StagedStore:
             raise RuntimeError("StagedStore: write outside a stage (call begin() first)")
         with open(self.records / f"{self._current}.journal", "a") as handle:
             handle.write(key + "\n")
+            handle.flush()
+            os.fsync(handle.fileno())
+
+    def _journal_many(self, keys: list[str]) -> None:
+        """:meth:`_journal` for several keys with one write and one fsync."""
+        if self._current is None:
+            raise RuntimeError("StagedStore: write outside a stage (call begin() first)")
+        with open(self.records / f"{self._current}.journal", "a") as handle:
+            handle.write("".join(key + "\n" for key in keys))
             handle.flush()
             os.fsync(handle.fileno())
 

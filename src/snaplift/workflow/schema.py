@@ -131,6 +131,8 @@ class CompressSection(_Section):
     2012), for archives with few snapshots. ``memory``: budget of the tile plan (default:
     from the cluster). ``checkpoint_every``: tiles (``200``) or a duration (``60s``)
     between checkpoints of the streaming loop, when the runner gives it a folder.
+    ``in_memory``: ``auto`` reads a small snapshot matrix once and keeps it for every pass
+    (:data:`snaplift.archive.plan.IN_MEMORY_LIMIT`), ``never`` always streams tiles.
     """
 
     method: Literal["randomized", "sketch", "tsqr"] = "randomized"
@@ -150,6 +152,10 @@ class CompressSection(_Section):
     )
     checkpoint_every: int | str | None = Field(
         None, description="tiles (e.g. 200) or a duration (e.g. 60s, 5m) between checkpoints"
+    )
+    in_memory: Literal["auto", "never"] | None = Field(
+        None, description="'auto' (default): a snapshot matrix small enough is read once and kept in memory "
+        "for every pass; 'never': always stream tiles"
     )
 
     @field_validator("memory")

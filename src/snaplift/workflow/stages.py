@@ -25,7 +25,7 @@ from snaplift.archive import (
 from snaplift.archive._base import ArchiveInfo
 from snaplift.archive._cf import SECONDS_PER_UNIT, TimeUnit, canonical_time_unit, time_unit_of
 from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
-from snaplift.archive.plan import TilePlan
+from snaplift.archive.plan import IN_MEMORY_LIMIT, TilePlan
 from snaplift.cluster import Scheduler, resident_memory
 from snaplift.errors import ArchiveError, ConfigError, FieldNotFoundError, TimeSpacingError
 from snaplift.lifting import delayed_run_lengths
@@ -448,6 +448,22 @@ def plan_compress(workflow: Workflow, info, scheduler: Scheduler, *, recorded_ba
                           "archive fields: fewer delays or pointwise terms also shrink the tiles") from None
 
 
+def _row_groups(workflow: Workflow) -> list[list[int]] | None:
+    """The lifted fields of each archive field (adjacent, in row order): one tile's rows."""
+    lift = workflow.field_lift
+    if lift is None:
+        return None
+    groups: list[list[int]] = []
+    sources: list[str] = []
+    for index, lifted in enumerate(lift.lifted(list(workflow.archive.fields))):
+        if sources and sources[-1] == lifted.source:
+            groups[-1].append(index)
+        else:
+            groups.append([index])
+            sources.append(lifted.source)
+    return groups
+
+
 def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler, recorded_baseline: int | None) -> TilePlan:
     settings = workflow.compress
     resident = resident_memory(scheduler.client, workers=scheduler.workers)
@@ -459,6 +475,8 @@ def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler, recorded_
         sketch_widths=settings.sketch_widths, shared_memory=scheduler.kind == "threads",
         corange_map=settings.corange_map or "sparse",
         baseline_bytes=resident.reserve(recorded_baseline), baseline_label=resident.label,
+        row_groups=_row_groups(workflow),
+        in_memory_limit=0 if settings.in_memory == "never" else IN_MEMORY_LIMIT,
     )
 
 
