@@ -215,7 +215,8 @@ def test_workflow_coords_name_the_coordinate_datasets(tmp_path: Path) -> None:
     store = _run(tmp_path, {"path": "a.h5", "time": "t", "coords": {"x": "xc", "y": "yc"}})
     modes = xr.open_zarr(store, group="modes")
     np.testing.assert_array_equal(modes["x"].values, 2 * X)
-    assert modes["x"].attrs["units"] == "cm" and modes["y"].attrs["units"] == "1"
+    # yc declares no unit: none is written (CF), not "1", which would say dimensionless
+    assert modes["x"].attrs["units"] == "cm" and "units" not in modes["y"].attrs
     with pytest.raises(ConfigError, match="coordinate dataset 'yc'.*needs \\(13,\\)"):
         _run(tmp_path, {"path": "a.h5", "time": "t", "coords": {"x": "yc"}}, output={"path": "r2.zarr"})
 

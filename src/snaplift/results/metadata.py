@@ -132,6 +132,10 @@ class StoreMetadata:
     # -- attributes of each array ----------------------------------------------------
     def attrs(self, group: str, name: str, dimensions: tuple[str, ...]) -> dict[str, Any]:
         """Default CF attributes of ``group/name`` (``units``, ``long_name``, ``coordinates``)."""
+        if dimensions == (name,) and name != "time":
+            coordinate = self.coordinate(name)
+            if coordinate is not None:  # a grid coordinate: the archive's attributes, nothing invented
+                return dict(coordinate.attrs)
         units, long_name = self._describe(group, name)
         # an unknown unit is left out (CF): "1" would claim the field is dimensionless
         out: dict[str, Any] = {"long_name": long_name} if units is None else {"units": units, "long_name": long_name}
@@ -213,8 +217,9 @@ class StoreMetadata:
             return "1", f"sketch state for appends: {name.replace('_', ' ')}"
         return "1", name.replace("_", " ")
 
-    def _time_units(self) -> str:
-        return str(self.time_attrs.get("units") or self.time_unit or "1")
+    def _time_units(self) -> str | None:
+        units = self.time_attrs.get("units") or self.time_unit
+        return None if not units else str(units)  # unknown: no units (not "1", dimensionless)
 
     # -- coordinates ----------------------------------------------------------------------
     def coordinate(self, dimension: str) -> Coordinate | None:
@@ -222,6 +227,9 @@ class StoreMetadata:
         if dimension == "snapshot":
             if self.time is None:
                 return None
-            attrs = {"long_name": "time of the snapshot", **self.time_attrs, "units": self._time_units()}
+            attrs = {"long_name": "time of the snapshot", **self.time_attrs}
+            units = self._time_units()
+            if units is not None:
+                attrs["units"] = units
             return Coordinate(np.asarray(self.time), attrs)
         return self.coordinates.get(dimension)

@@ -313,7 +313,7 @@ def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]
     lines.append(f"snapshot matrix: {kept} rows x {matrix.shape[1]} columns"
                  + _named(" (weights {})", workflow.archive.weights) + _named(" (mask {})", workflow.archive.mask))
     if metadata.coordinates:
-        lines.append("coordinates: " + ", ".join(f"{d} <- {c.attrs.get('archive_variable')} [{c.attrs.get('units')}]"
+        lines.append("coordinates: " + ", ".join(f"{d} <- {c.attrs.get('archive_variable')} [{c.attrs.get('units', 'unit unknown')}]"
                                                  for d, c in metadata.coordinates.items()))
     else:
         lines.append("coordinates: none in the archive (index positions; archive.coords names them)")

@@ -124,9 +124,12 @@ def _coordinate(reader: Any, info: ArchiveInfo, variable: str, length: int, dime
         raise ConfigError(f"coordinate dataset '{variable}' in {reader.path} has shape {values.shape} and dtype "
                           f"{values.dtype}; dimension '{dimension}' of field '{field}' needs ({length},) numbers")
     attrs = info.variables[variable].attrs
-    out: dict[str, Any] = {"units": str(attrs.get("units", "1")),
-                           "long_name": str(attrs.get("long_name") or attrs.get("standard_name") or variable),
+    # a coordinate whose unit the archive does not give gets no ``units`` (CF): "1" would
+    # claim it is dimensionless
+    out: dict[str, Any] = {"long_name": str(attrs.get("long_name") or attrs.get("standard_name") or variable),
                            "archive_variable": variable}
+    if attrs.get("units"):
+        out["units"] = str(attrs["units"])
     if attrs.get("standard_name"):
         out["standard_name"] = str(attrs["standard_name"])
     if attrs.get("axis"):
@@ -143,9 +146,10 @@ def _time_attrs(section: Any, info: ArchiveInfo, unit: Any) -> dict[str, Any]:
     units = attrs.get("units")
     if not units and attrs.get("time_unit") and attrs.get("time_origin"):
         units = f"{attrs['time_unit']} since {attrs['time_origin']}"  # native datetime64 values
-    if not units:
-        units = unit.name if unit is not None else "1"
-    out["units"] = str(units)
+    if not units and unit is not None:
+        units = unit.name
+    if units:  # no unit known: none written (CF), not "1", which would say dimensionless
+        out["units"] = str(units)
     out["long_name"] = str(attrs.get("long_name") or ("time (archive.step)" if section.step is not None else "time"))
     if attrs.get("calendar"):
         out["calendar"] = str(attrs["calendar"])
