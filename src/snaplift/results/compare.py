@@ -26,7 +26,7 @@ import numpy as np
 from scipy.optimize import linear_sum_assignment
 
 from snaplift.errors import ConfigError
-from snaplift.results.reading import StoreView, open_store
+from snaplift.results.reading import StoreView, open_store, units_of
 
 __all__ = ["compare_stores", "compare_json", "modal_assurance", "render_comparison"]
 
@@ -42,11 +42,15 @@ def modal_assurance(a: np.ndarray, b: np.ndarray, weights: np.ndarray | None = N
 
 
 def _rates(view: StoreView) -> np.ndarray:
+    """Continuous-time rates, in 1/s when the store's time unit converts to seconds."""
+    seconds = view.spectrum.attrs.get("time_unit_seconds")
     if "rate" in view.spectrum:
         rate = np.asarray(view.spectrum["rate"].values, dtype=np.complex128)
+        if units_of(view.spectrum["rate"]) == "1/s":  # stored in 1/s already (a store with time units)
+            return rate
     else:
         rate = np.log(np.asarray(view.spectrum["eigenvalue"].values, dtype=np.complex128)) / view.dt
-    seconds = view.spectrum.attrs.get("time_unit_seconds")
+    # per archive time unit: dt and the stored rates of older stores are in the archive's unit
     return rate / float(seconds) if seconds else rate
 
 
