@@ -29,7 +29,7 @@ from snaplift import __version__
 from snaplift.errors import ResultStoreError
 from snaplift.results.store import open_result
 
-__all__ = ["forecast_fields"]
+__all__ = ["forecast_fields", "is_complex_data"]
 
 
 def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
@@ -54,7 +54,8 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
     Returns
     -------
     dict of str to ndarray
-        ``field -> (n_steps + 1, *grid)`` real values (NaN at masked points), plus
+        ``field -> (n_steps + 1, *grid)`` values (NaN at masked points; real, or complex
+        for an archive of complex fields), plus
         ``"time"`` (n_steps + 1,).
 
     Examples
@@ -79,6 +80,7 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
     powers = np.power.outer(eigenvalue, np.arange(int(n_steps) + 1))  # (mode, step)
     weights = amplitude[:, None] * powers
     names = _mode_fields(root) if fields is None else list(fields)
+    complex_data = is_complex_data(root)
     out: dict[str, np.ndarray] = {"time": time[column] + dt * np.arange(int(n_steps) + 1)}
     for name in names:
         if name not in root["modes"]:
@@ -90,10 +92,18 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
             chosen = np.asarray(points[name], dtype=np.int64)
             modes = modes.reshape(modes.shape[0], -1)[:, chosen]
             offset = np.asarray(offset).ravel()[chosen] if np.ndim(offset) else offset
-        values = np.tensordot(weights, modes, axes=([0], [0])).real  # (step, *grid)
+        values = np.tensordot(weights, modes, axes=([0], [0]))  # (step, *grid)
+        if not complex_data:  # conjugate pairs sum to real values; complex archives keep their phase
+            values = values.real
         state_space = "operator" in root and root["operator"].attrs.get("space") == "state"
         out[name] = values if state_space else values + offset
     return out
+
+
+def is_complex_data(root) -> bool:
+    """Whether the store was fitted to complex archive fields (its basis is complex then; for
+    real data modes come in conjugate pairs and the model's values are real)."""
+    return "basis" in root and "coefficient" in root["basis"] and root["basis/coefficient"].dtype.kind == "c"
 
 
 def _mode_fields(root) -> list[str]:
