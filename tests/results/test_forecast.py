@@ -11,6 +11,7 @@ import yaml
 
 from snaplift.errors import ResultStoreError
 from snaplift.results.forecast import forecast_fields
+from snaplift.results.reading import leading_modes, open_store
 from snaplift.workflow.runner import run_workflow
 
 
@@ -80,3 +81,9 @@ def test_forecast_of_a_complex_archive_keeps_the_phase(tmp_path: Path) -> None:
     out = forecast_fields(store, -1, 30)
     assert np.iscomplexobj(out["z"])
     np.testing.assert_allclose(out["z"], waves(t[-1] + 0.05 * np.arange(31)), rtol=0, atol=1e-8)
+    # no conjugate pairs in complex data: the -3.5 Hz wave is a leading mode of its own (report, export)
+    view = open_store(store)
+    assert view.complex_data
+    chosen = leading_modes(view, 4)
+    frequency = view.spectrum["frequency"].values[chosen]
+    np.testing.assert_allclose(sorted(frequency), [-3.5, 2.0], rtol=1e-9)  # the archive's two waves

@@ -155,7 +155,9 @@ def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
     frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
     growth = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
     trusted = view.trusted
-    shown = frequency >= 0  # conjugate partners mirror these
+    # conjugate partners of real data mirror the positive frequencies; complex data have none
+    shown = np.ones(frequency.size, dtype=bool) if view.complex_data else frequency >= 0
+    which = "all frequencies (complex data)" if view.complex_data else "frequency >= 0; conjugates mirror"
     figure = _figure(10, 2.4 * (1 + len(fields)) + 0.4)
     axes = np.atleast_1d(figure.subplots(1 + len(fields), 1, sharex=True))
     top = axes[0]
@@ -163,7 +165,7 @@ def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
                    _marker_sizes(np.asarray(view.spectrum["amplitude"].values)[shown]), count=False)
     top.axhline(0.0, color=PALETTE["archive"], linewidth=0.9)
     top.set_ylabel(label("growth rate", view.growth_unit))
-    top.set_title("growth rate and peak amplitude against frequency (frequency >= 0; conjugates mirror)",
+    top.set_title(f"growth rate and peak amplitude against frequency ({which})",
                   loc="left", fontsize=11)
     top.legend(loc="best", fontsize=8, framealpha=0.9)
     _style(top)

@@ -136,7 +136,8 @@ def _probes(view: StoreView, fields: list[str]) -> tuple[list[Probe], str, int]:
             if view.prepare is not None and mean_key in view.prepare:
                 projection = projection + float(np.asarray(view.prepare[mean_key].values).ravel()[point])
         archive_time, archive = archive_values.get(field, (None, None))
-        probes.append(Probe(field, _where(view, field, point), time, forecast[field][:, 0],
+        # complex archives: the real part, as for the archive values and the projection
+        probes.append(Probe(f"Re {field}" if view.complex_data else field, _where(view, field, point), time, np.real(forecast[field][:, 0]),
                             view.time[columns], projection, archive_time, archive, view.field_units(field)))
     return probes, note, read
 

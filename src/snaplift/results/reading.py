@@ -164,6 +164,11 @@ class StoreView:
         return amplitude * np.exp(1j * phase)
 
     @property
+    def complex_data(self) -> bool:
+        """Fitted to complex archive fields (complex basis): modes have no conjugate partners."""
+        return self.basis is not None and "coefficient" in self.basis and self.basis["coefficient"].dtype.kind == "c"
+
+    @property
     def time(self) -> np.ndarray:
         return np.asarray(self.diagnostics["time"].values, dtype=np.float64)
 
@@ -202,10 +207,14 @@ def open_store(path: str | Path) -> StoreView:
 
 def leading_modes(view: StoreView, count: int) -> list[int]:
     """Positions of the ``count`` leading modes (store ranking: trusted first, then amplitude),
-    one of each conjugate pair (the one with frequency >= 0)."""
+    one of each conjugate pair (the one with frequency >= 0); every mode of complex data."""
     n = view.spectrum.sizes["mode"]
     ranking = np.asarray(view.spectrum["ranking"].values) if "ranking" in view.spectrum else np.arange(n)
     frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
     order = np.argsort(ranking, kind="stable")
-    chosen = [int(k) for k in order if frequency[k] >= 0]
+    if view.complex_data:  # no conjugate symmetry: a negative frequency is a wave of its own
+        return [int(k) for k in order][:count]
+    # a real mode without a conjugate partner (partner -1) stands alone, whatever its sign
+    partner = np.asarray(view.spectrum["partner"].values) if "partner" in view.spectrum else np.zeros(n, int)
+    chosen = [int(k) for k in order if frequency[k] >= 0 or partner[k] < 0]
     return chosen[:count]
