@@ -354,11 +354,15 @@ def forecast(
             typer.echo("the forecast does not overlap the archive: nothing to compare")
         else:
             table = _console()
+            from rich.markup import escape
             from rich.table import Table
 
-            shown = Table(title="relative error against the archive (weighted norm over the grid)",
-                          title_justify="left")
-            for header in ("step", "time", "archive snapshot", *(e[len("error_"):] for e in errors)):
+            shown = Table(title="error against the archive, relative to its RMS norm over the compared steps "
+                                "(weighted norm over the grid)", title_justify="left")
+            # "milliseconds since 2001-01-01": the values are milliseconds (the epoch is in the store)
+            time_unit = str(dataset["time"].attrs.get("units") or "").split(" since ")[0].strip()
+            for header in ("step", escape(f"time [{time_unit}]") if time_unit else "time", "archive snapshot",
+                           *(e[len("error_"):] for e in errors)):
                 shown.add_column(header, justify="right")
             picks = overlap if overlap.size <= 12 else overlap[np.unique(np.linspace(0, overlap.size - 1, 12).astype(int))]
             for s in picks:

@@ -5,9 +5,11 @@ The values come from :func:`snaplift.results.forecast.forecast_fields` (the mode
 ``x_{j+s} = offset + sum_k mode_k b_k lambda_k^s``). Step ``s`` from column ``j`` is
 archive snapshot ``snapshot_index[j] + s * every`` (``every`` the spacing of the fitted
 snapshots in the archive); it overlaps the archive while that snapshot exists and lies in
-the run of column ``j``. The error per step and field is the relative norm
-``||forecast - archive|| / ||archive||`` over the grid points that are not masked, with
-the stored point weights (cell sizes) when there are any, so it is the physical norm.
+the run of column ``j``. The error per step and field is ``||forecast_s - archive_s||``
+over the grid points that are not masked, with the stored point weights (cell sizes)
+when there are any (the physical norm), divided by the RMS of ``||archive_s||`` over the
+compared steps: one scale per field, so a field passing through zero (a standing wave)
+does not make a step's error look huge.
 """
 
 from __future__ import annotations
@@ -132,17 +134,21 @@ def _compare(dataset: xr.Dataset, view: StoreView, column: int, n_steps: int) ->
         weights = np.ones(forecast.shape[1])
         if view.prepare is not None and f"weights_{name}" in view.prepare:
             weights = np.asarray(view.prepare[f"weights_{name}"].values, dtype=np.float64).ravel()
-        error = np.full(n_steps + 1, np.nan)
+        difference = np.full(n_steps + 1, np.nan)
+        reference = np.full(n_steps + 1, np.nan)
         for position, archive in archive_snapshots(source, name, snapshots[overlap]):
             step = int(overlap[position])
             model = forecast[step]
             keep = np.isfinite(model) & np.isfinite(archive)
-            reference = np.sqrt(np.sum(weights[keep] * np.abs(archive[keep]) ** 2))
-            difference = np.sqrt(np.sum(weights[keep] * np.abs(model[keep] - archive[keep]) ** 2))
-            error[step] = difference / reference if reference > 0 else difference
+            reference[step] = np.sum(weights[keep] * np.abs(archive[keep]) ** 2)
+            difference[step] = np.sqrt(np.sum(weights[keep] * np.abs(model[keep] - archive[keep]) ** 2))
+        # relative to the archive's RMS norm over the compared steps, not to each step's own
+        # norm: a standing wave passes through zero, and a ratio to ~0 would read as 1e13
+        scale = np.sqrt(np.nanmean(reference)) if overlap.size else np.nan
+        error = difference / scale if scale > 0 else difference
         dataset[f"error_{name}"] = xr.DataArray(error, dims=("step",), attrs={
-            "long_name": f"relative error of {name} against the archive (weighted norm over the grid)",
-            "units": "1"})
+            "long_name": f"error of {name} against the archive relative to the archive's RMS norm over the "
+                         "compared steps (weighted norm over the grid)", "units": "1"})
 
 
 def write_forecast(dataset: xr.Dataset, out: str | Path) -> Path:
