@@ -34,7 +34,8 @@ __all__ = ["forecast_fields", "is_complex_data"]
 
 def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
                     fields: list[str] | None = None,
-                    points: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+                    points: dict[str, np.ndarray] | None = None,
+                    offsets: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Model fields at steps ``0 .. n_steps`` after snapshot ``snapshot`` (a column index).
 
     Parameters
@@ -50,6 +51,11 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
     points : dict of str to ndarray, optional
         Per field, flat indices into its grid (C order): forecast only those points
         (``field -> (n_steps + 1, n_points)``), e.g. probes of a long forecast.
+    offsets : ndarray, optional
+        Times after the start snapshot (archive time unit) to evaluate the model at, instead
+        of the ``n_steps + 1`` steps of ``dt``: ``lambda_k^(offset / dt)`` with the principal
+        logarithm, i.e. ``exp(rate_k offset)``, for snapshots at uneven times (optimized DMD,
+        Askham & Kutz 2018).
 
     Returns
     -------
@@ -77,11 +83,16 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
         raise ResultStoreError(f"n_steps must be an integer >= 0; got {n_steps!r}")
     column = int(snapshot) % time.size
     amplitude = _amplitudes(root, column, eigenvalue, store)
-    powers = np.power.outer(eigenvalue, np.arange(int(n_steps) + 1))  # (mode, step)
+    if offsets is None:
+        powers = np.power.outer(eigenvalue, np.arange(int(n_steps) + 1))  # (mode, step)
+        after = dt * np.arange(int(n_steps) + 1)
+    else:
+        after = np.asarray(offsets, dtype=np.float64).ravel()
+        powers = np.exp(np.multiply.outer(np.log(eigenvalue.astype(np.complex128)), after / dt))
     weights = amplitude[:, None] * powers
     names = _mode_fields(root) if fields is None else list(fields)
     complex_data = is_complex_data(root)
-    out: dict[str, np.ndarray] = {"time": time[column] + dt * np.arange(int(n_steps) + 1)}
+    out: dict[str, np.ndarray] = {"time": time[column] + after}
     for name in names:
         if name not in root["modes"]:
             raise ResultStoreError(f"result store {store} has no modes of field '{name}'; "

@@ -129,8 +129,22 @@ def _compare(dataset: xr.Dataset, view: StoreView, column: int, n_steps: int) ->
     dataset["archive_snapshot"] = xr.DataArray(snapshots, dims=("step",),
                                                attrs={"long_name": "archive snapshot at this step (-1: none)"})
     overlap = np.flatnonzero(snapshots >= 0)
+    at_archive_times = _uneven_times(view, column, snapshots)
+    if at_archive_times is not None:
+        # uneven snapshot times: step s of dt is not snapshot j + s; the model is evaluated at
+        # each compared snapshot's own time instead (known for the fitted snapshots)
+        snapshots = np.where(np.isfinite(at_archive_times), snapshots, -1)
+        overlap = np.flatnonzero(snapshots >= 0)
+        dataset["archive_snapshot"].values[:] = snapshots
+        dataset["archive_time"] = xr.DataArray(at_archive_times, dims=("step",), attrs={
+            "long_name": "time of the archive snapshot compared at this step (uneven times: the model is "
+                         "evaluated there for the comparison)", **({"units": view.time_unit} if view.time_unit else {})})
+        offsets = np.where(np.isfinite(at_archive_times), at_archive_times - view.time[column], 0.0)
+        model_at = forecast_fields(view.path, column, n_steps, fields=list(source.fields), offsets=offsets)
     for name in source.fields:
         forecast = np.asarray(dataset[name].values).reshape(n_steps + 1, -1)
+        if at_archive_times is not None:
+            forecast = np.asarray(model_at[name]).reshape(n_steps + 1, -1)
         weights = np.ones(forecast.shape[1])
         if view.prepare is not None and f"weights_{name}" in view.prepare:
             weights = np.asarray(view.prepare[f"weights_{name}"].values, dtype=np.float64).ravel()
@@ -149,6 +163,17 @@ def _compare(dataset: xr.Dataset, view: StoreView, column: int, n_steps: int) ->
         dataset[f"error_{name}"] = xr.DataArray(error, dims=("step",), attrs={
             "long_name": f"error of {name} against the archive relative to the archive's RMS norm over the "
                          "compared steps (weighted norm over the grid)", "units": "1"})
+
+
+def _uneven_times(view: StoreView, column: int, snapshots: np.ndarray) -> np.ndarray | None:
+    """Times of the archive snapshots ``snapshots`` (NaN where unknown: not fitted, or -1) when
+    the fitted times are not evenly ``dt`` apart; ``None`` for even times."""
+    time, index = view.time, np.asarray(view.diagnostics["snapshot_index"].values, dtype=np.int64)
+    steps = np.diff(time)
+    if steps.size == 0 or np.allclose(steps[steps > 0], view.dt, rtol=1e-6, atol=0):
+        return None
+    position = {int(i): k for k, i in enumerate(index)}
+    return np.array([time[position[int(s)]] if int(s) in position else np.nan for s in snapshots])
 
 
 def write_forecast(dataset: xr.Dataset, out: str | Path) -> Path:
