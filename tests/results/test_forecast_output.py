@@ -166,3 +166,25 @@ def test_compare_at_uneven_times(tmp_path: Path) -> None:
     assert np.max(ds["error_T"].values) < 1e-8
     shown = runner.invoke(app, ["forecast", str(store), "--from", "5", "--steps", "20", "--compare"])
     assert shown.exit_code == 0 and "archive time" in shown.output
+
+
+def test_forecast_gives_the_archive_fields_not_the_lifted_ones(tmp_path: Path) -> None:
+    # T = 300 K + 5 K cos(kx - 2 pi 2 Hz t) lifted by T_square: T^2 holds the mean, the wave and its
+    # second harmonic (cos^2 = (1 + cos 2a) / 2), five eigenvalues in all, so rank 5 is exact
+    import h5py
+
+    t = 0.05 * np.arange(40)
+    x = np.linspace(0.0, 0.3, 12, endpoint=False)
+    values = 300.0 + 5.0 * np.cos(2 * np.pi * x[None, :] / 0.3 - 4 * np.pi * t[:, None])
+    with h5py.File(tmp_path / "a.h5", "w") as h5:
+        h5["t"] = t
+        h5.create_dataset("T", data=values, chunks=(1, 12))
+    workflow = {"archive": {"path": "a.h5", "fields": ["T"], "time": "t"}, "compress": {"method": "tsqr", "rank": 5},
+                "lift": [{"kind": "pointwise", "terms": ["x", "square"], "fields": ["T"]}],
+                "fit": {"rank": 5}, "output": {"path": "r.zarr"}, "cluster": "threads"}
+    (tmp_path / "w.yaml").write_text(yaml.safe_dump(workflow))
+    store = run_workflow(tmp_path / "w.yaml").path
+    ds = forecast_dataset(store, 3, 30, compare=True)
+    assert [name for name in ds.data_vars if "step" in ds[name].dims and ds[name].ndim > 1] == ["T"]
+    np.testing.assert_allclose(ds["T"].values, values[3:34], rtol=0, atol=1e-8)  # the closed form above
+    assert np.max(ds["error_T"].values) < 1e-10

@@ -30,7 +30,7 @@ from snaplift.results.reading import StoreView, open_group, open_store
 from snaplift.results.store import open_result
 from snaplift.results.source import archive_snapshots, open_source
 
-__all__ = ["FORECAST_CAUTION", "forecast_dataset", "overlap_snapshots", "write_forecast"]
+__all__ = ["FORECAST_CAUTION", "archive_fields", "forecast_dataset", "overlap_snapshots", "write_forecast"]
 
 FORECAST_CAUTION = (
     "This forecast comes from a data-driven linear surrogate. It is valid only near the data it was "
@@ -63,6 +63,15 @@ def overlap_snapshots(view: StoreView, column: int, n_steps: int, archive_length
     return np.where(steps < limit, steps, -1)
 
 
+def archive_fields(view: StoreView) -> list[str]:
+    """The fields to forecast: the archive's own (a lifted field such as ``T_square`` is an
+    observable of the fit, not a field of the archive); the lifted ones only when the fit
+    kept no archive field as it is (``lift: pointwise`` without the term ``x``)."""
+    lifted = dict(view.prepare.attrs.get("lifted", {})) if view.prepare is not None else {}
+    own = [f for f in view.fields if f not in lifted]
+    return own or list(view.fields)
+
+
 def _groups(view: StoreView) -> list[str]:
     return list(open_result(view.path).group_keys())
 
@@ -70,7 +79,8 @@ def _groups(view: StoreView) -> list[str]:
 def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare: bool = False) -> xr.Dataset:
     """The forecast of every field from column ``snapshot`` as a dataset.
 
-    Variables ``<field>`` (step, *grid) in field units with the store's grid coordinates,
+    Variables ``<field>`` (step, *grid) for each archive field (not lifted ones such as
+    ``T_square``; see :func:`archive_fields`) in field units with the store's grid coordinates,
     ``time`` (step,); with ``compare`` also ``error_<field>`` (step,) and
     ``archive_snapshot`` (step,), NaN / -1 where the forecast does not overlap the archive.
 
@@ -82,7 +92,7 @@ def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare:
     """
     view = open_store(store)
     if isinstance(n_steps, (int, np.integer)) and not isinstance(n_steps, bool) and n_steps >= 0:
-        points = sum(int(np.prod(view.modes[f].shape[1:])) for f in view.fields)
+        points = sum(int(np.prod(view.modes[f].shape[1:])) for f in archive_fields(view))
         needed = 3 * 8 * (int(n_steps) + 1) * points  # the fields, and the temporaries that form them
         available = int(psutil.virtual_memory().available)
         if needed > available // 2:
@@ -90,7 +100,7 @@ def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare:
                 f"a forecast of {n_steps} steps of {points} grid values needs about {needed / 2**30:.1f} GiB, more "
                 f"than half of the {available / 2**30:.1f} GiB available; forecast fewer steps at a time "
                 "(--from and --steps)")
-    values = forecast_fields(store, snapshot, n_steps, fields=view.fields)
+    values = forecast_fields(store, snapshot, n_steps, fields=archive_fields(view))
     time = values.pop("time")
     column = int(snapshot) % view.time.size
     variables: dict[str, xr.DataArray] = {}
