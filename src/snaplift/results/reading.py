@@ -176,7 +176,9 @@ class StoreView:
         return units_of(self.modes[name])
 
     def field_name(self, name: str) -> str:
-        return str(self.modes[name].attrs.get("long_name") or name)
+        """The field's own long name (``modes/<field>`` is named "mode shape of <long name>")."""
+        long_name = str(self.modes[name].attrs.get("long_name") or name)
+        return long_name.removeprefix("mode shape of ").strip() or name
 
     def peak_amplitude(self, name: str) -> np.ndarray:
         """Peak amplitude of each mode in field units: ``spectrum/peak_<field>`` or
