@@ -72,7 +72,7 @@ def test_compare_errors(wave_stores: dict[str, Path], tmp_path: Path) -> None:
     assert out.exit_code == 2 and "missing.zarr does not exist" in out.output and "Traceback" not in out.output
 
 
-def _wave_store(folder: Path, scale: float, unit: str) -> Path:
+def _wave_store(folder: Path, scale: float, unit: str, origin: float = 0.0) -> Path:
     """A growing travelling wave (2 Hz, 0.1 1/s) over a steady 300 K, time stored as ``scale x seconds``."""
     import h5py
     import yaml
@@ -87,7 +87,8 @@ def _wave_store(folder: Path, scale: float, unit: str) -> Path:
         h5["t"] = scale * t
         h5["t"].attrs["units"] = unit
         h5.create_dataset("T", data=values, chunks=(1, 16))
-    workflow = {"archive": {"path": "a.h5", "fields": ["T"], "time": "t"}, "compress": {"method": "tsqr", "rank": 3},
+        h5["xc"] = origin + x
+    workflow = {"archive": {"path": "a.h5", "fields": ["T"], "time": "t", "coords": {"x": "xc"}}, "compress": {"method": "tsqr", "rank": 3},
                 "fit": {"rank": 3}, "output": {"path": "r.zarr"}, "cluster": "threads"}
     (folder / "w.yaml").write_text(yaml.safe_dump(workflow))
     return run_workflow(folder / "w.yaml").path
@@ -107,3 +108,13 @@ def test_stores_in_seconds_and_milliseconds_match(tmp_path: Path) -> None:
     for match in result["matched"]:
         assert abs(match["frequency_difference"]) < 1e-9 and abs(match["growth_difference"]) < 1e-9
         assert match["mac"]["T"] == pytest.approx(1.0, abs=1e-12)  # MAC of a shape with itself (definition)
+
+
+def test_grids_of_one_size_over_other_regions_get_no_mac(tmp_path: Path) -> None:
+    # the same values on a grid of the same size moved by 1 m: not the same grid, so no MAC
+    here = _wave_store(tmp_path / "here", 1.0, "s")
+    there = _wave_store(tmp_path / "there", 1.0, "s", origin=1.0)
+    result = compare_stores(here, there)
+    assert result["fields_on_other_grids"] == ["T"]
+    assert len(result["matched"]) == 3 and all(m["mac"]["T"] is None for m in result["matched"])
+    assert compare_stores(here, here)["fields_on_other_grids"] == []
