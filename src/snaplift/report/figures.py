@@ -203,13 +203,19 @@ def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, divergin
                   "cmap": SEQUENTIAL}
     ax.set_title(title, loc="left", fontsize=9)
     if len(axes) == 1:
-        ax.plot(axes[0].values, values, color=PALETTE["model"] if diverging else PALETTE["untrusted"],
+        # magnitude in a third colour: amber means "untrusted" everywhere else on the page
+        ax.plot(axes[0].values, values, color=PALETTE["model"] if diverging else PALETTE["lines"][2],
                 marker="o" if values.size < 40 else None, markersize=3, linewidth=1.4)
         ax.set_xlabel(axes[0].title, fontsize=8)
         ax.set_ylabel(label("value", units), fontsize=8)
         ax.ticklabel_format(axis="y", useOffset=False)
         if not diverging:  # a magnitude: from zero, so a flat one reads as flat
             ax.set_ylim(0.0, limits["vmax"] * 1.1)
+        elif finite.size and np.ptp(finite) <= 1e-6 * max(float(np.max(np.abs(finite))), 1e-300):
+            # a flat line (a mean mode): round-off would otherwise fill the axis with 300.0000000002
+            centre = float(np.mean(finite))
+            pad = 0.1 * abs(centre) or 1.0
+            ax.set_ylim(centre - pad, centre + pad)
         _style(ax)
         return
     rows, columns = axes  # values is (rows, columns)
