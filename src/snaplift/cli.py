@@ -370,15 +370,21 @@ def forecast(
             typer.echo("the forecast does not overlap the archive: nothing to compare")
         else:
             table = _console()
+            from rich.markup import escape
             from rich.table import Table
 
-            shown = Table(title="relative error against the archive (weighted norm over the grid)",
-                          title_justify="left")
-            for header in ("step", "time", "archive snapshot", *(e[len("error_"):] for e in errors)):
+            shown = Table(title="error against the archive, relative to its RMS norm over the compared steps "
+                                "(weighted norm over the grid)", title_justify="left")
+            # "milliseconds since 2001-01-01": the values are milliseconds (the epoch is in the store)
+            time_unit = str(dataset["time"].attrs.get("units") or "").split(" since ")[0].strip()
+            uneven = "archive_time" in dataset  # the model is compared at the snapshots' own times
+            for header in ("step", escape(f"time [{time_unit}]") if time_unit else "time", "archive snapshot",
+                           *(["archive time"] if uneven else []), *(e[len("error_"):] for e in errors)):
                 shown.add_column(header, justify="right")
             picks = overlap if overlap.size <= 12 else overlap[np.unique(np.linspace(0, overlap.size - 1, 12).astype(int))]
             for s in picks:
                 shown.add_row(str(int(s)), f"{time[s]:.6g}", str(int(dataset['archive_snapshot'].values[s])),
+                              *([f"{float(dataset['archive_time'].values[s]):.6g}"] if uneven else []),
                               *(f"{float(dataset[e].values[s]):.3e}" for e in errors))
             table.print(shown)
             if overlap.size < steps + 1:

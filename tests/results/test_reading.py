@@ -123,3 +123,27 @@ def test_complex_amplitudes_rebuild_the_first_snapshot(wave_stores: dict[str, Pa
     with h5py.File(wave_stores["archive"], "r") as h5:
         np.testing.assert_allclose(first.real, h5["p"][0], atol=1e-10)
     np.testing.assert_allclose(first.imag, 0.0, atol=1e-10)
+
+
+def test_field_names_from_a_netcdf_archive_written_by_xarray(tmp_path: Path) -> None:
+    # a CF netCDF-4 file written by xarray (times as datetimes, fields with units and long names):
+    # the report titles a field by its own long name, not by the store's "mode shape of ..."
+    import yaml
+
+    from snaplift.workflow.runner import run_workflow
+
+    t = 0.05 * np.arange(30)
+    x = np.linspace(0.0, 0.3, 10)
+    wave = 300.0 + 5.0 * np.cos(2 * np.pi * x[None, :] / 0.3 - 4 * np.pi * t[:, None])
+    times = np.datetime64("2001-01-01") + (1000 * t).round().astype("timedelta64[ms]")
+    xr.Dataset({"T": (("time", "x"), wave, {"units": "K", "long_name": "air temperature"})},
+               coords={"time": times, "x": ("x", x, {"units": "m", "long_name": "streamwise position"})}
+               ).to_netcdf(tmp_path / "a.nc", engine="netcdf4")
+    workflow = {"archive": {"path": "a.nc", "fields": ["T"]}, "compress": {"method": "tsqr", "rank": 3},
+                "fit": {"rank": 3}, "output": {"path": "r.zarr"}, "cluster": "threads"}
+    (tmp_path / "w.yaml").write_text(yaml.safe_dump(workflow))
+    view = open_store(run_workflow(tmp_path / "w.yaml").path)
+    assert view.field_name("T") == "air temperature" and view.field_units("T") == "K"
+    assert [a.title for a in field_axes(view.modes, "T")] == ["streamwise position [m]"]
+    # 2 Hz in the archive's milliseconds, shown in Hz (the wave's own frequency)
+    assert sorted(abs(f) for f in view.spectrum["frequency"].values) == pytest.approx([0.0, 2.0, 2.0], abs=1e-9)

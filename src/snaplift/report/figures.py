@@ -155,7 +155,9 @@ def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
     frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
     growth = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
     trusted = view.trusted
-    shown = frequency >= 0  # conjugate partners mirror these
+    # conjugate partners of real data mirror the positive frequencies; complex data have none
+    shown = np.ones(frequency.size, dtype=bool) if view.complex_data else frequency >= 0
+    which = "all frequencies (complex data)" if view.complex_data else "frequency >= 0; conjugates mirror"
     figure = _figure(10, 2.4 * (1 + len(fields)) + 0.4)
     axes = np.atleast_1d(figure.subplots(1 + len(fields), 1, sharex=True))
     top = axes[0]
@@ -163,7 +165,7 @@ def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
                    _marker_sizes(np.asarray(view.spectrum["amplitude"].values)[shown]), count=False)
     top.axhline(0.0, color=PALETTE["archive"], linewidth=0.9)
     top.set_ylabel(label("growth rate", view.growth_unit))
-    top.set_title("growth rate and peak amplitude against frequency (frequency >= 0; conjugates mirror)",
+    top.set_title(f"growth rate and peak amplitude against frequency ({which})",
                   loc="left", fontsize=11)
     top.legend(loc="best", fontsize=8, framealpha=0.9)
     _style(top)
@@ -201,13 +203,19 @@ def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, divergin
                   "cmap": SEQUENTIAL}
     ax.set_title(title, loc="left", fontsize=9)
     if len(axes) == 1:
-        ax.plot(axes[0].values, values, color=PALETTE["model"] if diverging else PALETTE["untrusted"],
+        # magnitude in a third colour: amber means "untrusted" everywhere else on the page
+        ax.plot(axes[0].values, values, color=PALETTE["model"] if diverging else PALETTE["lines"][2],
                 marker="o" if values.size < 40 else None, markersize=3, linewidth=1.4)
         ax.set_xlabel(axes[0].title, fontsize=8)
         ax.set_ylabel(label("value", units), fontsize=8)
         ax.ticklabel_format(axis="y", useOffset=False)
         if not diverging:  # a magnitude: from zero, so a flat one reads as flat
             ax.set_ylim(0.0, limits["vmax"] * 1.1)
+        elif finite.size and np.ptp(finite) <= 1e-6 * max(float(np.max(np.abs(finite))), 1e-300):
+            # a flat line (a mean mode): round-off would otherwise fill the axis with 300.0000000002
+            centre = float(np.mean(finite))
+            pad = 0.1 * abs(centre) or 1.0
+            ax.set_ylim(centre - pad, centre + pad)
         _style(ax)
         return
     rows, columns = axes  # values is (rows, columns)

@@ -121,7 +121,7 @@ def _probes(view: StoreView, fields: list[str]) -> tuple[list[Probe], str, int]:
             values = np.full(steps.size, np.nan)
             for position, value in archive_snapshots(source, field, snapshots[steps], np.array([points[field]])):
                 values[position] = float(np.real(value[0]))
-            archive_values[field] = (time[steps], values)
+            archive_values[field] = (_archive_times(view, snapshots[steps], time[steps]), values)
             read += steps.size
     except ArchiveError as error:
         note = f"{error}; compared with the projection on the basis only"
@@ -136,9 +136,18 @@ def _probes(view: StoreView, fields: list[str]) -> tuple[list[Probe], str, int]:
             if view.prepare is not None and mean_key in view.prepare:
                 projection = projection + float(np.asarray(view.prepare[mean_key].values).ravel()[point])
         archive_time, archive = archive_values.get(field, (None, None))
-        probes.append(Probe(field, _where(view, field, point), time, forecast[field][:, 0],
+        # complex archives: the real part, as for the archive values and the projection
+        probes.append(Probe(f"Re {field}" if view.complex_data else field, _where(view, field, point), time, np.real(forecast[field][:, 0]),
                             view.time[columns], projection, archive_time, archive, view.field_units(field)))
     return probes, note, read
+
+
+def _archive_times(view: StoreView, snapshots: np.ndarray, fallback: np.ndarray) -> np.ndarray:
+    """Each archive snapshot's own time where the store has it (uneven times: optimized DMD),
+    else the model step's time (even times, where the two agree)."""
+    index = np.asarray(view.diagnostics["snapshot_index"].values, dtype=np.int64)
+    known = dict(zip(index.tolist(), view.time.tolist()))
+    return np.array([known.get(int(s), float(t)) for s, t in zip(snapshots, fallback)])
 
 
 def _group_names(view: StoreView) -> list[str]:

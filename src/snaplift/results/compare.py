@@ -26,7 +26,7 @@ import numpy as np
 from scipy.optimize import linear_sum_assignment
 
 from snaplift.errors import ConfigError
-from snaplift.results.reading import StoreView, open_store
+from snaplift.results.reading import StoreView, field_axes, open_store, units_of
 
 __all__ = ["compare_stores", "compare_json", "modal_assurance", "render_comparison"]
 
@@ -42,11 +42,15 @@ def modal_assurance(a: np.ndarray, b: np.ndarray, weights: np.ndarray | None = N
 
 
 def _rates(view: StoreView) -> np.ndarray:
+    """Continuous-time rates, in 1/s when the store's time unit converts to seconds."""
+    seconds = view.spectrum.attrs.get("time_unit_seconds")
     if "rate" in view.spectrum:
         rate = np.asarray(view.spectrum["rate"].values, dtype=np.complex128)
+        if units_of(view.spectrum["rate"]) == "1/s":  # stored in 1/s already (a store with time units)
+            return rate
     else:
         rate = np.log(np.asarray(view.spectrum["eigenvalue"].values, dtype=np.complex128)) / view.dt
-    seconds = view.spectrum.attrs.get("time_unit_seconds")
+    # per archive time unit: dt and the stored rates of older stores are in the archive's unit
     return rate / float(seconds) if seconds else rate
 
 
@@ -54,6 +58,18 @@ def _weights(view: StoreView, field: str) -> np.ndarray | None:
     if view.prepare is not None and f"weights_{field}" in view.prepare:
         return np.asarray(view.prepare[f"weights_{field}"].values, dtype=np.float64)
     return None
+
+
+def _same_grid(a: StoreView, b: StoreView, field: str) -> bool:
+    """Same shape, and the same coordinate values on every dimension both stores give them for
+    (a grid of the same size over another region is another grid: no MAC there)."""
+    if a.modes[field].shape[1:] != b.modes[field].shape[1:]:
+        return False
+    for axis_a, axis_b in zip(field_axes(a.modes, field), field_axes(b.modes, field)):
+        if not (axis_a.is_index or axis_b.is_index) and not np.allclose(
+                axis_a.values, axis_b.values, rtol=1e-9, atol=1e-12 * float(np.max(np.abs(axis_a.values)) or 1.0)):
+            return False
+    return True
 
 
 def _mode_record(view: StoreView, k: int) -> dict[str, Any]:
@@ -85,7 +101,7 @@ def compare_stores(first: str | Path, second: str | Path, *, tolerance: float = 
     distance = np.abs(rate_a[:, None] - rate_b[None, :])
     rows, columns = linear_sum_assignment(distance) if distance.size else (np.array([], int), np.array([], int))
     fields = [f for f in a.fields if f in b.fields]
-    same_grid = {f: a.modes[f].shape[1:] == b.modes[f].shape[1:] for f in fields}
+    same_grid = {f: _same_grid(a, b, f) for f in fields}
     matched, used_a, used_b = [], set(), set()
     for i, j in sorted(zip(rows.tolist(), columns.tolist())):
         scale = max(abs(rate_a[i]), abs(rate_b[j]), 2 * np.pi / span)

@@ -29,12 +29,13 @@ from snaplift import __version__
 from snaplift.errors import ResultStoreError
 from snaplift.results.store import open_result
 
-__all__ = ["forecast_fields"]
+__all__ = ["forecast_fields", "is_complex_data"]
 
 
 def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
                     fields: list[str] | None = None,
-                    points: dict[str, np.ndarray] | None = None) -> dict[str, np.ndarray]:
+                    points: dict[str, np.ndarray] | None = None,
+                    offsets: np.ndarray | None = None) -> dict[str, np.ndarray]:
     """Model fields at steps ``0 .. n_steps`` after snapshot ``snapshot`` (a column index).
 
     Parameters
@@ -50,11 +51,17 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
     points : dict of str to ndarray, optional
         Per field, flat indices into its grid (C order): forecast only those points
         (``field -> (n_steps + 1, n_points)``), e.g. probes of a long forecast.
+    offsets : ndarray, optional
+        Times after the start snapshot (archive time unit) to evaluate the model at, instead
+        of the ``n_steps + 1`` steps of ``dt``: ``lambda_k^(offset / dt)`` with the principal
+        logarithm, i.e. ``exp(rate_k offset)``, for snapshots at uneven times (optimized DMD,
+        Askham & Kutz 2018).
 
     Returns
     -------
     dict of str to ndarray
-        ``field -> (n_steps + 1, *grid)`` real values (NaN at masked points), plus
+        ``field -> (n_steps + 1, *grid)`` values (NaN at masked points; real, or complex
+        for an archive of complex fields), plus
         ``"time"`` (n_steps + 1,).
 
     Examples
@@ -76,10 +83,16 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
         raise ResultStoreError(f"n_steps must be an integer >= 0; got {n_steps!r}")
     column = int(snapshot) % time.size
     amplitude = _amplitudes(root, column, eigenvalue, store)
-    powers = np.power.outer(eigenvalue, np.arange(int(n_steps) + 1))  # (mode, step)
+    if offsets is None:
+        powers = np.power.outer(eigenvalue, np.arange(int(n_steps) + 1))  # (mode, step)
+        after = dt * np.arange(int(n_steps) + 1)
+    else:
+        after = np.asarray(offsets, dtype=np.float64).ravel()
+        powers = np.exp(np.multiply.outer(np.log(eigenvalue.astype(np.complex128)), after / dt))
     weights = amplitude[:, None] * powers
     names = _mode_fields(root) if fields is None else list(fields)
-    out: dict[str, np.ndarray] = {"time": time[column] + dt * np.arange(int(n_steps) + 1)}
+    complex_data = is_complex_data(root)
+    out: dict[str, np.ndarray] = {"time": time[column] + after}
     for name in names:
         if name not in root["modes"]:
             raise ResultStoreError(f"result store {store} has no modes of field '{name}'; "
@@ -90,10 +103,18 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
             chosen = np.asarray(points[name], dtype=np.int64)
             modes = modes.reshape(modes.shape[0], -1)[:, chosen]
             offset = np.asarray(offset).ravel()[chosen] if np.ndim(offset) else offset
-        values = np.tensordot(weights, modes, axes=([0], [0])).real  # (step, *grid)
+        values = np.tensordot(weights, modes, axes=([0], [0]))  # (step, *grid)
+        if not complex_data:  # conjugate pairs sum to real values; complex archives keep their phase
+            values = values.real
         state_space = "operator" in root and root["operator"].attrs.get("space") == "state"
         out[name] = values if state_space else values + offset
     return out
+
+
+def is_complex_data(root) -> bool:
+    """Whether the store was fitted to complex archive fields (its basis is complex then; for
+    real data modes come in conjugate pairs and the model's values are real)."""
+    return "basis" in root and "coefficient" in root["basis"] and root["basis/coefficient"].dtype.kind == "c"
 
 
 def _mode_fields(root) -> list[str]:

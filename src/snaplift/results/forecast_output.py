@@ -5,9 +5,11 @@ The values come from :func:`snaplift.results.forecast.forecast_fields` (the mode
 ``x_{j+s} = offset + sum_k mode_k b_k lambda_k^s``). Step ``s`` from column ``j`` is
 archive snapshot ``snapshot_index[j] + s * every`` (``every`` the spacing of the fitted
 snapshots in the archive); it overlaps the archive while that snapshot exists and lies in
-the run of column ``j``. The error per step and field is the relative norm
-``||forecast - archive|| / ||archive||`` over the grid points that are not masked, with
-the stored point weights (cell sizes) when there are any, so it is the physical norm.
+the run of column ``j``. The error per step and field is ``||forecast_s - archive_s||``
+over the grid points that are not masked, with the stored point weights (cell sizes)
+when there are any (the physical norm), divided by the RMS of ``||archive_s||`` over the
+compared steps: one scale per field, so a field passing through zero (a standing wave)
+does not make a step's error look huge.
 """
 
 from __future__ import annotations
@@ -28,7 +30,7 @@ from snaplift.results.reading import StoreView, open_group, open_store
 from snaplift.results.store import open_result
 from snaplift.results.source import archive_snapshots, open_source
 
-__all__ = ["FORECAST_CAUTION", "forecast_dataset", "overlap_snapshots", "write_forecast"]
+__all__ = ["FORECAST_CAUTION", "archive_fields", "forecast_dataset", "overlap_snapshots", "write_forecast"]
 
 FORECAST_CAUTION = (
     "This forecast comes from a data-driven linear surrogate. It is valid only near the data it was "
@@ -61,6 +63,15 @@ def overlap_snapshots(view: StoreView, column: int, n_steps: int, archive_length
     return np.where(steps < limit, steps, -1)
 
 
+def archive_fields(view: StoreView) -> list[str]:
+    """The fields to forecast: the archive's own (a lifted field such as ``T_square`` is an
+    observable of the fit, not a field of the archive); the lifted ones only when the fit
+    kept no archive field as it is (``lift: pointwise`` without the term ``x``)."""
+    lifted = dict(view.prepare.attrs.get("lifted", {})) if view.prepare is not None else {}
+    own = [f for f in view.fields if f not in lifted]
+    return own or list(view.fields)
+
+
 def _groups(view: StoreView) -> list[str]:
     return list(open_result(view.path).group_keys())
 
@@ -68,7 +79,8 @@ def _groups(view: StoreView) -> list[str]:
 def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare: bool = False) -> xr.Dataset:
     """The forecast of every field from column ``snapshot`` as a dataset.
 
-    Variables ``<field>`` (step, *grid) in field units with the store's grid coordinates,
+    Variables ``<field>`` (step, *grid) for each archive field (not lifted ones such as
+    ``T_square``; see :func:`archive_fields`) in field units with the store's grid coordinates,
     ``time`` (step,); with ``compare`` also ``error_<field>`` (step,) and
     ``archive_snapshot`` (step,), NaN / -1 where the forecast does not overlap the archive.
 
@@ -80,7 +92,7 @@ def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare:
     """
     view = open_store(store)
     if isinstance(n_steps, (int, np.integer)) and not isinstance(n_steps, bool) and n_steps >= 0:
-        points = sum(int(np.prod(view.modes[f].shape[1:])) for f in view.fields)
+        points = sum(int(np.prod(view.modes[f].shape[1:])) for f in archive_fields(view))
         needed = 3 * 8 * (int(n_steps) + 1) * points  # the fields, and the temporaries that form them
         available = int(psutil.virtual_memory().available)
         if needed > available // 2:
@@ -88,7 +100,7 @@ def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare:
                 f"a forecast of {n_steps} steps of {points} grid values needs about {needed / 2**30:.1f} GiB, more "
                 f"than half of the {available / 2**30:.1f} GiB available; forecast fewer steps at a time "
                 "(--from and --steps)")
-    values = forecast_fields(store, snapshot, n_steps, fields=view.fields)
+    values = forecast_fields(store, snapshot, n_steps, fields=archive_fields(view))
     time = values.pop("time")
     column = int(snapshot) % view.time.size
     variables: dict[str, xr.DataArray] = {}
@@ -127,22 +139,51 @@ def _compare(dataset: xr.Dataset, view: StoreView, column: int, n_steps: int) ->
     dataset["archive_snapshot"] = xr.DataArray(snapshots, dims=("step",),
                                                attrs={"long_name": "archive snapshot at this step (-1: none)"})
     overlap = np.flatnonzero(snapshots >= 0)
+    at_archive_times = _uneven_times(view, column, snapshots)
+    if at_archive_times is not None:
+        # uneven snapshot times: step s of dt is not snapshot j + s; the model is evaluated at
+        # each compared snapshot's own time instead (known for the fitted snapshots)
+        snapshots = np.where(np.isfinite(at_archive_times), snapshots, -1)
+        overlap = np.flatnonzero(snapshots >= 0)
+        dataset["archive_snapshot"].values[:] = snapshots
+        dataset["archive_time"] = xr.DataArray(at_archive_times, dims=("step",), attrs={
+            "long_name": "time of the archive snapshot compared at this step (uneven times: the model is "
+                         "evaluated there for the comparison)", **({"units": view.time_unit} if view.time_unit else {})})
+        offsets = np.where(np.isfinite(at_archive_times), at_archive_times - view.time[column], 0.0)
+        model_at = forecast_fields(view.path, column, n_steps, fields=list(source.fields), offsets=offsets)
     for name in source.fields:
         forecast = np.asarray(dataset[name].values).reshape(n_steps + 1, -1)
+        if at_archive_times is not None:
+            forecast = np.asarray(model_at[name]).reshape(n_steps + 1, -1)
         weights = np.ones(forecast.shape[1])
         if view.prepare is not None and f"weights_{name}" in view.prepare:
             weights = np.asarray(view.prepare[f"weights_{name}"].values, dtype=np.float64).ravel()
-        error = np.full(n_steps + 1, np.nan)
+        difference = np.full(n_steps + 1, np.nan)
+        reference = np.full(n_steps + 1, np.nan)
         for position, archive in archive_snapshots(source, name, snapshots[overlap]):
             step = int(overlap[position])
             model = forecast[step]
             keep = np.isfinite(model) & np.isfinite(archive)
-            reference = np.sqrt(np.sum(weights[keep] * np.abs(archive[keep]) ** 2))
-            difference = np.sqrt(np.sum(weights[keep] * np.abs(model[keep] - archive[keep]) ** 2))
-            error[step] = difference / reference if reference > 0 else difference
+            reference[step] = np.sum(weights[keep] * np.abs(archive[keep]) ** 2)
+            difference[step] = np.sqrt(np.sum(weights[keep] * np.abs(model[keep] - archive[keep]) ** 2))
+        # relative to the archive's RMS norm over the compared steps, not to each step's own
+        # norm: a standing wave passes through zero, and a ratio to ~0 would read as 1e13
+        scale = np.sqrt(np.nanmean(reference)) if overlap.size else np.nan
+        error = difference / scale if scale > 0 else difference
         dataset[f"error_{name}"] = xr.DataArray(error, dims=("step",), attrs={
-            "long_name": f"relative error of {name} against the archive (weighted norm over the grid)",
-            "units": "1"})
+            "long_name": f"error of {name} against the archive relative to the archive's RMS norm over the "
+                         "compared steps (weighted norm over the grid)", "units": "1"})
+
+
+def _uneven_times(view: StoreView, column: int, snapshots: np.ndarray) -> np.ndarray | None:
+    """Times of the archive snapshots ``snapshots`` (NaN where unknown: not fitted, or -1) when
+    the fitted times are not evenly ``dt`` apart; ``None`` for even times."""
+    time, index = view.time, np.asarray(view.diagnostics["snapshot_index"].values, dtype=np.int64)
+    steps = np.diff(time)
+    if steps.size == 0 or np.allclose(steps[steps > 0], view.dt, rtol=1e-6, atol=0):
+        return None
+    position = {int(i): k for k, i in enumerate(index)}
+    return np.array([time[position[int(s)]] if int(s) in position else np.nan for s in snapshots])
 
 
 def write_forecast(dataset: xr.Dataset, out: str | Path) -> Path:

@@ -164,6 +164,11 @@ class StoreView:
         return amplitude * np.exp(1j * phase)
 
     @property
+    def complex_data(self) -> bool:
+        """Fitted to complex archive fields (complex basis): modes have no conjugate partners."""
+        return self.basis is not None and "coefficient" in self.basis and self.basis["coefficient"].dtype.kind == "c"
+
+    @property
     def time(self) -> np.ndarray:
         return np.asarray(self.diagnostics["time"].values, dtype=np.float64)
 
@@ -171,7 +176,9 @@ class StoreView:
         return units_of(self.modes[name])
 
     def field_name(self, name: str) -> str:
-        return str(self.modes[name].attrs.get("long_name") or name)
+        """The field's own long name (``modes/<field>`` is named "mode shape of <long name>")."""
+        long_name = str(self.modes[name].attrs.get("long_name") or name)
+        return long_name.removeprefix("mode shape of ").strip() or name
 
     def peak_amplitude(self, name: str) -> np.ndarray:
         """Peak amplitude of each mode in field units: ``spectrum/peak_<field>`` or
@@ -202,10 +209,14 @@ def open_store(path: str | Path) -> StoreView:
 
 def leading_modes(view: StoreView, count: int) -> list[int]:
     """Positions of the ``count`` leading modes (store ranking: trusted first, then amplitude),
-    one of each conjugate pair (the one with frequency >= 0)."""
+    one of each conjugate pair (the one with frequency >= 0); every mode of complex data."""
     n = view.spectrum.sizes["mode"]
     ranking = np.asarray(view.spectrum["ranking"].values) if "ranking" in view.spectrum else np.arange(n)
     frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
     order = np.argsort(ranking, kind="stable")
-    chosen = [int(k) for k in order if frequency[k] >= 0]
+    if view.complex_data:  # no conjugate symmetry: a negative frequency is a wave of its own
+        return [int(k) for k in order][:count]
+    # a real mode without a conjugate partner (partner -1) stands alone, whatever its sign
+    partner = np.asarray(view.spectrum["partner"].values) if "partner" in view.spectrum else np.zeros(n, int)
+    chosen = [int(k) for k in order if frequency[k] >= 0 or partner[k] < 0]
     return chosen[:count]
