@@ -196,8 +196,12 @@ def _lazy(array: Any) -> Any:
     return da if array is None else da.from_zarr(array)
 
 
-#: a stored basis up to this size is loaded into memory rather than as a lazy array
-EAGER_BASIS_BYTES = 64 * 2**20
+#: a stored basis up to this size is loaded into memory rather than as a lazy array (the
+#: many small fields of a delay-embedded probe); larger ones stay lazy, one field's rows
+#: at a time, as compress.memory plans it (at 64 MiB a 200,000-point rank-40 basis was
+#: loaded whole, twice with its prepared copy: 136 MiB over the budget in
+#: tests/faults/test_memory_budget.py)
+EAGER_BASIS_BYTES = 4 * 2**20
 
 
 def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int = 0,
