@@ -17,7 +17,6 @@ Coefficients ``S V^H`` and column norms (``||R e_j||``) are exact.
 
 from __future__ import annotations
 
-import os
 import sys
 from concurrent.futures import ThreadPoolExecutor
 from typing import Any
@@ -27,6 +26,7 @@ import numpy as np
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.linalg._blas import blas_threads
 from snaplift.linalg._kernels import leaf_factors, normalize_signs, qr_factor, reduce_r_factors
+from snaplift.units import usable_cores
 
 __all__ = ["tsqr", "tsqr_compress", "orthonormal_basis", "CHOLESKY_QR_TOLERANCE"]
 
@@ -81,7 +81,7 @@ def tsqr(a: Any, *, block_rows: int | None = None) -> tuple[Any, np.ndarray]:
     blocks = _row_blocks(n, m, block_rows)
     # leaves are independent and LAPACK releases the GIL: factor them on a few threads,
     # each with a single-threaded BLAS (threads calling a threaded BLAS oversubscribe)
-    with blas_threads(1), ThreadPoolExecutor(max(1, min(4, os.cpu_count() or 1))) as pool:
+    with blas_threads(1), ThreadPoolExecutor(min(4, usable_cores())) as pool:
         leaves = list(pool.map(lambda rows: qr_factor(a[rows[0]:rows[1]]), blocks))
         r, tree = reduce_r_factors([leaf[1] for leaf in leaves])
         factors = leaf_factors(len(leaves), tree, np.eye(r.shape[0], dtype=r.dtype))
