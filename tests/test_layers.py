@@ -30,9 +30,10 @@ LAYERS: tuple[tuple[tuple[str, ...], ...], ...] = (
     (("snaplift.results",), ("snaplift.cluster",)),
     # stream: the tile loop, tasks, checkpoints, the per-tile accumulation slots and the
     # I/O floor measurement -- the code that reads tiles and runs kernels (today in linalg;
-    # compress.py drives the passes of every method)
+    # compress.py and _method_passes.py drive the passes of each method)
     (("snaplift.linalg.streaming", "snaplift.linalg._tasks", "snaplift.linalg._passes",
-      "snaplift.linalg._slots", "snaplift.linalg._floor", "snaplift.linalg.compress"),),
+      "snaplift.linalg._slots", "snaplift.linalg._floor", "snaplift.linalg.compress",
+      "snaplift.linalg._method_passes"),),
     # archive (readers, planner, snapshot matrix), prepare, lifting, linalg kernels, fitting
     (("snaplift.archive",), ("snaplift.prepare",), ("snaplift.lifting",), ("snaplift.linalg",),
      ("snaplift.fitting",)),
@@ -50,17 +51,10 @@ ALLOWED: frozenset[tuple[str, str]] = frozenset({
     ("snaplift.fitting.edmd", "snaplift.lifting"),
     # the preparation (weights, centring) is described by the snapshot matrix it prepares
     ("snaplift.prepare", "snaplift.archive.matrix"),
-    # kernels that still drive a pass over a snapshot matrix (reading tiles is stream work):
-    # randomized_compress, finish_sketch / sketch_reconstruction, tsqr_compress belong in
-    # the stream layer, leaving pure array kernels in linalg
-    ("snaplift.linalg.randomized", "snaplift.linalg._passes"),
-    ("snaplift.linalg.randomized", "snaplift.prepare"),
+    # the sketch's finish (finish_sketch / sketch_reconstruction) reads the snapshot
+    # matrix's fields and index and builds the Preparation: it should take them as arrays
     ("snaplift.linalg.sketch", "snaplift.archive.matrix"),
     ("snaplift.linalg.sketch", "snaplift.prepare"),
-    ("snaplift.linalg.tsqr", "snaplift.archive.matrix"),
-    ("snaplift.linalg.tsqr", "snaplift.linalg._passes"),
-    ("snaplift.linalg.tsqr", "snaplift.linalg._tasks"),
-    ("snaplift.linalg.tsqr", "snaplift.prepare"),
 })
 
 
