@@ -206,7 +206,7 @@ def scan(
     """
     from snaplift.archive import open_archive, scan_archive
     from snaplift.report.scan import render_scan, scan_json
-    from snaplift.workflow.schema import parse_bytes
+    from snaplift.units import parse_bytes
 
     target = archive[0] if len(archive) == 1 else archive
     chosen = [f.strip() for f in fields.split(",")] if fields else None
@@ -291,8 +291,8 @@ def bench(
     import json
 
     from snaplift.errors import ConfigError
-    from snaplift.linalg.bench import BenchSettings, render_benchmark, run_benchmark
-    from snaplift.workflow.schema import parse_bytes
+    from snaplift.workflow.bench import BenchSettings, render_benchmark, run_benchmark
+    from snaplift.units import parse_bytes
 
     try:
         size_bytes, memory_bytes = parse_bytes(size), parse_bytes(memory)

@@ -46,9 +46,10 @@ from typing import Any, Protocol
 import dask
 
 from snaplift.errors import ConfigError
-from snaplift.workflow.schema import ClusterSection, parse_bytes, parse_duration, parse_walltime
+from snaplift.units import parse_bytes, parse_duration, parse_walltime, usable_cores
 
 __all__ = [
+    "ClusterOptions",
     "BASELINE_MARGIN",
     "BASELINE_MARGIN_BYTES",
     "TASK_RETRIES",
@@ -70,6 +71,35 @@ _BLAS_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS",
 #: tasks lost with a dead worker are re-run by the scheduler on its own
 #: (``distributed.scheduler.allowed-failures``, 3 by default)
 TASK_RETRIES = 2
+
+
+@dataclass(frozen=True)
+class ClusterOptions:
+    """Where the work runs, as plain options: the workflow converts its validated ``cluster``
+    section (``workflow.schema.ClusterSection``, which says what each key means) to this."""
+
+    kind: str = "threads"
+    profile: str | None = None
+    workers: int | None = None
+    threads_per_worker: int | None = None
+    memory_per_worker: str | None = None
+    address: str | None = None
+    queue: str | None = None
+    account: str | None = None
+    walltime: str | None = None
+    cores: int | None = None
+    memory: str | None = None
+    processes: int | None = None
+    job_extra_directives: Sequence[str] = ()
+    job_script_prologue: Sequence[str] = ()
+    worker_lifetime: str | None = None
+    lifetime_stagger: str | None = None
+    log_directory: str | None = None
+    python: str | None = None
+    interface: str | None = None
+    local_directory: str | None = None
+    launcher: str = "auto"
+    start_timeout: float = 600.0
 
 
 def single_threaded_blas_environment() -> dict[str, str]:
@@ -97,7 +127,8 @@ class Scheduler:
     """The runner's handle on the scheduler: how to compute and persist, and its size.
 
     ``client`` is the distributed client (None for ``threads``); ``progress`` receives
-    units of work as tasks finish; ``description`` goes into the store's provenance.
+    units of work as tasks finish; ``description`` goes into the store's provenance;
+    ``task_retries``: how often a failed task is run again on another worker.
     """
 
     kind: str
@@ -109,6 +140,7 @@ class Scheduler:
     client: Any = None
     progress: TaskProgress = field(default_factory=NullProgress)
     description: dict[str, Any] = field(default_factory=dict)
+    task_retries: int = TASK_RETRIES
 
 
 #: what a tile task loads in a worker process, imported before the worker is measured so
@@ -254,13 +286,12 @@ def _machine_memory() -> int:
 
 
 @contextlib.contextmanager
-def open_scheduler(section: ClusterSection, *, progress: TaskProgress | None = None) -> Iterator[Scheduler]:
+def open_scheduler(section: ClusterOptions, *, progress: TaskProgress | None = None) -> Iterator[Scheduler]:
     """Start (and afterwards stop) the scheduler described by the ``cluster`` section.
 
     Example
     -------
-    >>> from snaplift.workflow.schema import ClusterSection
-    >>> with open_scheduler(ClusterSection(kind="threads")) as scheduler:
+    >>> with open_scheduler(ClusterOptions(kind="threads")) as scheduler:
     ...     scheduler.kind
     'threads'
     """
@@ -292,10 +323,10 @@ def open_scheduler(section: ClusterSection, *, progress: TaskProgress | None = N
                 client.close()
 
 
-def _threads(section: ClusterSection, progress: TaskProgress) -> Iterator[Scheduler]:
+def _threads(section: ClusterOptions, progress: TaskProgress) -> Iterator[Scheduler]:
     from dask.callbacks import Callback
 
-    cores = os.cpu_count() or 1
+    cores = usable_cores()
     workers = section.workers or cores
     memory = parse_bytes(section.memory_per_worker) if section.memory_per_worker else _machine_memory() // 2
 
@@ -321,7 +352,7 @@ def _threads(section: ClusterSection, progress: TaskProgress) -> Iterator[Schedu
                                      "profile": section.profile})
 
 
-def _distributed(client: Any, section: ClusterSection, progress: TaskProgress, kind: str,
+def _distributed(client: Any, section: ClusterOptions, progress: TaskProgress, kind: str,
                  description: dict[str, Any], *, workers: int | None = None,
                  memory: int | None = None) -> Scheduler:
     from distributed import as_completed, futures_of
@@ -370,7 +401,7 @@ def _distributed(client: Any, section: ClusterSection, progress: TaskProgress, k
                                                      **description})
 
 
-def _wait_for_workers(client: Any, section: ClusterSection, n: int) -> None:
+def _wait_for_workers(client: Any, section: ClusterOptions, n: int) -> None:
     try:
         client.wait_for_workers(n_workers=n, timeout=section.start_timeout)
     except (TimeoutError, OSError) as error:
@@ -382,11 +413,11 @@ def _wait_for_workers(client: Any, section: ClusterSection, n: int) -> None:
 
 
 @contextlib.contextmanager
-def _start_cluster(section: ClusterSection) -> Iterator[tuple[Any, int, int, dict[str, Any]]]:
+def _start_cluster(section: ClusterOptions) -> Iterator[tuple[Any, int, int, dict[str, Any]]]:
     from distributed import LocalCluster
 
     if section.kind == "local":
-        cores = os.cpu_count() or 1
+        cores = usable_cores()
         workers = section.workers or cores
         memory = (parse_bytes(section.memory_per_worker) if section.memory_per_worker
                   else int(0.8 * _machine_memory() / workers))
@@ -515,7 +546,7 @@ def allocation_resources(environ: dict[str, str] | os._Environ[str]) -> dict[str
     8
     """
     if environ.get("SLURM_JOB_ID"):
-        cpus = int(environ.get("SLURM_CPUS_ON_NODE") or os.cpu_count() or 1)
+        cpus = int(environ.get("SLURM_CPUS_ON_NODE") or usable_cores())
         nodes = int(environ.get("SLURM_JOB_NUM_NODES") or environ.get("SLURM_NNODES") or 1)
         if environ.get("SLURM_MEM_PER_NODE"):
             memory = int(environ["SLURM_MEM_PER_NODE"]) * 2**20  # SLURM reports MiB
@@ -527,7 +558,7 @@ def allocation_resources(environ: dict[str, str] | os._Environ[str]) -> dict[str
         return {"system": "slurm", "job": environ["SLURM_JOB_ID"], "cpus": cpus, "memory": memory,
                 "nodes": nodes, "tasks": tasks}
     if environ.get("PBS_JOBID"):
-        cpus = int(environ.get("NCPUS") or environ.get("PBS_NUM_PPN") or os.cpu_count() or 1)
+        cpus = int(environ.get("NCPUS") or environ.get("PBS_NUM_PPN") or usable_cores())
         nodes = 1
         nodefile = environ.get("PBS_NODEFILE")
         if nodefile and os.path.isfile(nodefile):
@@ -541,7 +572,7 @@ def allocation_resources(environ: dict[str, str] | os._Environ[str]) -> dict[str
     )
 
 
-def jobqueue_options(section: ClusterSection) -> dict[str, Any]:
+def jobqueue_options(section: ClusterOptions) -> dict[str, Any]:
     """Keyword arguments of dask-jobqueue's ``SLURMCluster`` / ``PBSCluster`` for a profile.
 
     Workers retire ``worker_lifetime`` after they start (default: walltime minus 10 %,
@@ -550,7 +581,7 @@ def jobqueue_options(section: ClusterSection) -> dict[str, Any]:
 
     Example
     -------
-    >>> section = ClusterSection(kind="slurm", cores=4, memory="8GiB", walltime="01:00:00")
+    >>> section = ClusterOptions(kind="slurm", cores=4, memory="8GiB", walltime="01:00:00")
     >>> jobqueue_options(section)["worker_extra_args"]
     ['--lifetime', '3240s', '--lifetime-stagger', '162s']
     """

@@ -14,15 +14,31 @@ with scale ``s_f``, ``Psi A = sum_f s_f (Psi_f X_f - (Psi_f mu_f) 1^T)``.
 
 from __future__ import annotations
 
+from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any, Protocol
 
 import numpy as np
 
-from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.errors import ArchiveError
 
 __all__ = ["Preparation", "finish_preparation", "corrected_sketch", "corrected_corange",
            "prepared_column_squares", "field_sums", "to_physical"]
+
+
+class PreparedMatrix(Protocol):
+    """What the preparation needs of a snapshot matrix (``archive.matrix.SnapshotMatrix``
+    has it): its shape, its fields (``name``, ``offset``, ``stop``, ``n_rows``,
+    ``sqrt_weight``) and its reader's ``path`` for messages."""
+
+    @property
+    def shape(self) -> tuple[int, int]: ...
+
+    @property
+    def fields(self) -> Sequence[Any]: ...
+
+    @property
+    def reader(self) -> Any: ...
 
 
 @dataclass(frozen=True)
@@ -45,7 +61,7 @@ class Preparation:
 
 
 def finish_preparation(
-    matrix: SnapshotMatrix,
+    matrix: PreparedMatrix,
     row_sum: np.ndarray,
     column_squares: list[np.ndarray],
     *,

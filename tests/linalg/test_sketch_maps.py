@@ -13,7 +13,8 @@ import pytest
 from scipy import stats
 
 from snaplift.errors import ArchiveError
-from snaplift.linalg._testmatrix import SparseSignMap, apply_corange, apply_left, row_map, row_map_bytes
+from snaplift.archive.plan import row_map_bytes
+from snaplift.linalg._testmatrix import SparseSignMap, apply_corange, apply_left, row_map
 from snaplift.linalg.compress import CompressOptions, compress, sketch_append
 from snaplift.linalg.sketch import SketchState, merge_sketches
 
@@ -72,6 +73,9 @@ def test_kept_bytes_model():
     # per row: zeta = 8 int32 columns and float64 signs, one int32 pointer of the chunk matrices
     assert psi.nbytes == row_map_bytes("sparse", 4096, 163) == 4096 * (8 * 12 + 4)
     assert row_map_bytes("gaussian", 4096, 163) == 4096 * 163 * 8
+    # the planner's model of narrow maps (zeta = width < 8) against the maps themselves
+    for width in (1, 3, 8, 9):
+        assert SparseSignMap(0, 100, width, seed=1).nbytes == row_map_bytes("sparse", 100, width)
 
 
 def _sigma() -> np.ndarray:

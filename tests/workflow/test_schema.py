@@ -8,7 +8,8 @@ import pytest
 import yaml
 
 from snaplift.errors import ConfigError
-from snaplift.workflow.schema import ClusterSection, load_workflow, parse_bytes, parse_workflow
+from snaplift.units import parse_bytes
+from snaplift.workflow.schema import ClusterSection, load_workflow, parse_workflow
 
 ROOT = Path(__file__).resolve().parents[2]
 
@@ -154,7 +155,7 @@ def test_batch_kinds_need_cores_memory_and_a_lifetime_below_walltime() -> None:
 
 
 def test_durations_and_walltimes() -> None:
-    from snaplift.workflow.schema import parse_duration, parse_walltime
+    from snaplift.units import parse_duration, parse_walltime
 
     assert parse_duration("1h30m") == 5400.0 and parse_duration("90s") == 90.0 and parse_duration(12) == 12.0
     assert parse_walltime("02:00:00") == 7200.0 and parse_walltime("1-00:30:00") == 88200.0

@@ -70,9 +70,9 @@ import numpy as np
 from snaplift.archive._base import ArchiveInfo
 from snaplift.archive._common import missing_field_error
 from snaplift.errors import ArchiveError
-from snaplift.linalg._testmatrix import row_map_bytes
+from snaplift.units import format_bytes
 
-__all__ = ["TilePlan", "Tile", "plan_tiles", "method_widths", "method_passes"]
+__all__ = ["TilePlan", "Tile", "plan_tiles", "method_widths", "method_passes", "row_map_bytes"]
 
 _MIB = 2.0**20
 #: the compress model keeps at least this many snapshot blocks per worker when it can,
@@ -86,10 +86,20 @@ TSQR_MERGE_COPIES = 3
 #: the largest decoded snapshot matrix the workflow plans in memory (bytes): chosen by
 #: ``tests/benchmarks/test_small_problems.py`` (README "Small problems")
 IN_MEMORY_LIMIT = 16 * 2**20
+#: nonzeros per row of the sparse sign co-range map (``linalg._testmatrix.SPARSE_NONZEROS``;
+#: tests/linalg/test_sketch_maps.py holds the model to the map's own ``nbytes``)
+SPARSE_MAP_NONZEROS = 8
+
+
+def row_map_bytes(kind: str, rows: int, width: int, itemsize: int = 8) -> int:
+    """Bytes a process keeps for ``rows`` rows of a co-range row map of this kind."""
+    if kind == "sparse":  # int32 column + float64 sign per nonzero, an int32 column pointer per row
+        return int(rows) * (max(1, min(int(width), SPARSE_MAP_NONZEROS)) * (4 + 8) + 4)
+    return int(rows) * int(width) * int(itemsize)
 
 
 def _mib(nbytes: float) -> str:
-    return f"{nbytes / _MIB:.1f} MiB"
+    return format_bytes(nbytes, "MiB")
 
 
 @dataclass(frozen=True)

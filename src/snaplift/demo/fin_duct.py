@@ -48,7 +48,6 @@ from __future__ import annotations
 import json
 import math
 import os
-import re
 import secrets
 from collections.abc import Callable
 from dataclasses import asdict, dataclass, replace
@@ -60,6 +59,7 @@ from numpy.typing import NDArray
 
 from snaplift.demo.lbm import LatticeFlow, channel_walls, relaxation_time
 from snaplift.errors import ConfigError
+from snaplift.units import parse_bytes, size_label
 
 __all__ = [
     "FinDuctPlan",
@@ -81,10 +81,6 @@ T_INLET = 293.15  # K
 T_FIN = 353.15  # K
 REYNOLDS = 100.0
 FIELD_BYTES = 3 * 4  # u, v, T as float32 per cell and snapshot
-
-_UNITS = {"kB": 1e3, "MB": 1e6, "GB": 1e9, "TB": 1e12, "KiB": 2**10, "MiB": 2**20,
-          "GiB": 2**30, "TiB": 2**40, "B": 1}
-_SIZE_PATTERN = re.compile(r"^\s*(\d+(?:\.\d+)?)\s*([kmgt]i?b|b)\s*$", re.IGNORECASE)
 
 
 @dataclass(frozen=True)
@@ -167,15 +163,6 @@ _DEFAULT = FinDuctPlan(
 _MIN_SNAPSHOTS = 20
 
 
-def _parse_bytes(size: str) -> tuple[str, int] | None:
-    match = _SIZE_PATTERN.match(size)
-    if match is None:
-        return None
-    number, unit = match.groups()
-    unit = next(u for u in _UNITS if u.lower() == unit.lower())
-    return f"{number}{unit}", int(float(number) * _UNITS[unit])
-
-
 def plan_fin_duct(size: str = "default") -> FinDuctPlan:
     """Parameters for a named size ("small", "default") or a byte size ("500MB", "4GiB").
 
@@ -198,13 +185,13 @@ def plan_fin_duct(size: str = "default") -> FinDuctPlan:
     key = size.strip().lower()
     if key in ("small", "default"):
         return _SMALL if key == "small" else _DEFAULT
-    parsed = _parse_bytes(size)
-    if parsed is None:
+    try:
+        label, target = size_label(size), parse_bytes(size)
+    except ValueError:
         raise ConfigError(
             f"demo size {size!r} not understood; expected 'small', 'default' or a byte "
             "size such as '500MB', '2GB', '4GiB'"
-        )
-    label, target = parsed
+        ) from None
     scale = max(1, round((target / _DEFAULT.nbytes) ** 0.25))
     base = _DEFAULT
     ny, nx = base.ny * scale, base.nx * scale

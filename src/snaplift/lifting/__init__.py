@@ -16,7 +16,7 @@ its lifted matrix ``(n_terms, n_samples)``.
 from __future__ import annotations
 
 from snaplift.lifting._base import BYTES_PER_VALUE, Description, DictionaryPart
-from snaplift.lifting.dictionary import Dictionary, as_dictionary, format_bytes
+from snaplift.lifting.dictionary import Dictionary, as_dictionary
 from snaplift.lifting.expressions import (
     CONSTANTS,
     FUNCTIONS,
@@ -52,7 +52,6 @@ __all__ = [
     "DictionaryPart",
     "Dictionary",
     "as_dictionary",
-    "format_bytes",
     "monomials",
     "monomial_count",
     "identity",

@@ -24,8 +24,9 @@ from snaplift.lifting._base import (
     state_matrix,
 )
 from snaplift.lifting.polynomial import Monomials
+from snaplift.units import format_bytes
 
-__all__ = ["Dictionary", "format_bytes"]
+__all__ = ["Dictionary"]
 
 
 class Dictionary:
@@ -259,13 +260,3 @@ def as_dictionary(value: DictionaryPart | Dictionary | Iterable[DictionaryPart])
     raise ConfigError(
         f"expected a Dictionary, a dictionary part or a list of parts; got {type(value).__name__}"
     )
-
-
-def format_bytes(size: int) -> str:
-    """``1536 -> '1.5 KiB'``: sizes in messages, powers of 1024."""
-    value = float(size)
-    for unit in ("bytes", "KiB", "MiB", "GiB", "TiB"):
-        if value < 1024 or unit == "TiB":
-            return f"{int(value)} bytes" if unit == "bytes" else f"{value:.1f} {unit}"
-        value /= 1024
-    return f"{value:.1f} TiB"  # pragma: no cover

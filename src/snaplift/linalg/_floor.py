@@ -20,7 +20,6 @@ effort, not a strawman):
 
 from __future__ import annotations
 
-import os
 import queue
 import threading
 import time
@@ -31,14 +30,11 @@ import numpy as np
 
 from snaplift.linalg._blas import blas_threads
 from snaplift.linalg._slots import _gemm_into
+from snaplift.units import usable_cores
 
 __all__ = ["floor_pass", "FLOOR_SCHEDULES"]
 
 FLOOR_SCHEDULES = ("serial", "prefetch", "workers")
-
-
-def _cores() -> int:
-    return max(1, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity") else (os.cpu_count() or 1))
 
 
 def _blocks(m: int, block: int) -> list[tuple[int, int]]:
@@ -174,7 +170,7 @@ def floor_pass(path: Path, width: int, block: int, *, seed: int = 1,
             elif schedule == "prefetch":
                 y, w = _prefetch(data, omega, psi_t, block)
             elif schedule == "workers":
-                y, w = _workers(data, omega, psi_t, block, _cores())
+                y, w = _workers(data, omega, psi_t, block, usable_cores())
             else:
                 raise ValueError(f"unknown floor schedule {schedule!r}; expected one of {FLOOR_SCHEDULES}")
             times[schedule] = time.perf_counter() - start

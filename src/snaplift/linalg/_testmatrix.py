@@ -31,10 +31,11 @@ from typing import Any
 import numpy as np
 
 from snaplift.linalg._kernels import TEST_BLOCK_ROWS, gaussian_block
+from snaplift.units import usable_cores
 
 __all__ = ["gaussian_map", "row_map", "cached_row_map", "set_cache_limit", "cache_info", "clear_cache", "release",
            "SNAPSHOT_STREAM", "ROW_STREAM", "SPARSE_STREAM", "ROW_MAPS", "SparseSignMap", "sparse_nonzeros",
-           "apply_corange", "apply_left", "row_map_bytes"]
+           "apply_corange", "apply_left"]
 
 #: stream numbers separate the independent test matrices drawn from one seed
 SNAPSHOT_STREAM = 0
@@ -56,8 +57,7 @@ _limit = 1 << 30
 _stats = {"generated": 0, "hits": 0}
 #: threads that generate one large test matrix (blocks of rows at a time), and the
 #: fewest blocks worth a thread of their own
-_GENERATOR_THREADS = max(1, min(4, len(os.sched_getaffinity(0)) if hasattr(os, "sched_getaffinity")
-                                else (os.cpu_count() or 1)))
+_GENERATOR_THREADS = min(4, usable_cores())
 _BLOCKS_PER_THREAD = 64
 
 
@@ -304,13 +304,6 @@ def apply_left(psi: np.ndarray | SparseSignMap, values: np.ndarray) -> np.ndarra
     if isinstance(psi, SparseSignMap):
         return psi.left(values)
     return psi.T @ values
-
-
-def row_map_bytes(kind: str, rows: int, width: int, itemsize: int = 8) -> int:
-    """Bytes a process keeps for ``rows`` rows of a row map of this kind (the planner's model)."""
-    if kind == "sparse":  # int32 column + float64 sign per nonzero, an int32 column pointer per row
-        return int(rows) * (sparse_nonzeros(width) * (4 + 8) + 4)
-    return int(rows) * int(width) * int(itemsize)
 
 
 def row_map(start: int, stop: int, width: int, *, seed: int, complex_valued: bool,

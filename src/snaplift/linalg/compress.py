@@ -31,17 +31,17 @@ from typing import Any
 import numpy as np
 
 from snaplift.archive.matrix import SnapshotMatrix
-from snaplift.archive.plan import TilePlan
+from snaplift.archive.plan import TilePlan, row_map_bytes
 from snaplift.errors import ArchiveError
 from snaplift.linalg._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
 from snaplift.linalg._blas import blas_threads
 from snaplift.linalg._kernels import normalize_signs
 from snaplift.linalg._tasks import TileSource, release_resident
-from snaplift.linalg._testmatrix import ROW_MAPS, row_map_bytes
-from snaplift.linalg.randomized import LowRank, randomized_compress
+from snaplift.linalg._testmatrix import ROW_MAPS
+from snaplift.linalg._method_passes import randomized_compress, tsqr_compress
+from snaplift.linalg.randomized import LowRank
 from snaplift.linalg.sketch import SketchState, default_sketch_widths, finish_sketch, merge_sketches
 from snaplift.linalg.streaming import Checkpointer, InlineRunner, StreamState, ThreadRunner, TileRunner
-from snaplift.linalg.tsqr import tsqr_compress
 from snaplift.prepare import Preparation
 
 __all__ = ["CompressOptions", "Compression", "compress", "sketch_append", "default_in_flight"]

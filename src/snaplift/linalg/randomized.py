@@ -6,7 +6,7 @@ Algorithms 4.3/4.4 (randomized range finder with QR-stabilised subspace iteratio
 Algorithm 5.1 (direct SVD of the small projected matrix).
 
 Passes over the data: one for the range sketch, two per power iteration, one for the
-projection ``B = Q^H A``: ``2 + 2q`` in all. :func:`randomized_compress` streams the
+projection ``B = Q^H A``: ``2 + 2q`` in all. :func:`snaplift.linalg._method_passes.randomized_compress` streams the
 archive tile by tile (the statistics for centring and scaling come from the first read,
 whose sketch is corrected afterwards; later passes centre and scale inside each tile);
 :func:`randomized_svd` does the same on a dask array that fits a task graph.
@@ -26,7 +26,7 @@ from snaplift.linalg._testmatrix import gaussian_map
 if TYPE_CHECKING:  # dask.array (and the xarray/pandas it pulls in) costs ~0.5 s to import
     import dask.array as da
 
-__all__ = ["LowRank", "randomized_svd", "gaussian_map", "randomized_compress"]
+__all__ = ["LowRank", "randomized_svd", "gaussian_map"]
 
 ComputeFn = Callable[..., Sequence[Any]]
 PersistFn = Callable[..., Sequence[Any]]
@@ -174,62 +174,3 @@ def randomized_svd(
         column_norm=np.sqrt(np.asarray(column_norm_sq, dtype=np.float64)),
         passes=passes,
     )
-
-
-def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, rank: int, oversample: int,
-                        power_iterations: int, seed: int, center: bool, scale: Any,
-                        first_read: Any = None) -> tuple[Any, LowRank]:
-    """Randomized SVD of the prepared snapshot matrix over the archive: ``2 + 2q`` streamed passes.
-
-    Pass 0 reads ``Y = X_w Omega`` with the statistics (corrected to ``A Omega``
-    afterwards); each power iteration is one pass for ``A^H Q`` and one for ``A Z``
-    (each factor re-orthonormalised, Halko et al. 2011, Alg. 4.4); the last pass gives
-    ``B^H = A^H Q`` and the exact column norms of ``A``. Every pass resumes from
-    ``state`` (a :class:`~snaplift.linalg.streaming.StreamState`).
-
-    Returns ``(Preparation, LowRank)``; the basis is in memory (n x rank).
-    """
-    from snaplift.linalg._passes import preparing_of, product_read, sketch_read
-    from snaplift.linalg.tsqr import orthonormal_basis
-    from snaplift.prepare import corrected_sketch, finish_preparation
-
-    n, m = matrix.shape
-    if rank > min(n, m):
-        raise ValueError(f"rank {rank} exceeds the matrix size {n} x {m}")
-    width = min(rank + oversample, n, m)
-    complex_valued = np.issubdtype(matrix.dtype, np.complexfloating)
-    if state.pass_number == 0:
-        sketch_read(run, matrix, jobs, state, width, 0)
-    preparation = finish_preparation(matrix, state.arrays["row_sum"], list(state.arrays["squares"]),
-                                     center=center, scale=scale)
-    if state.pass_number == 0:
-        omega = gaussian_map(matrix.snapshot_index, width, seed=seed, complex_valued=complex_valued)
-        state.arrays["q"] = orthonormal_basis(corrected_sketch(state.arrays.pop("range"), preparation, omega),
-                                                  overwrite=True)
-        run.end_pass(state)
-    preparing = run.runner.share(preparing_of(preparation))
-    for iteration in range(power_iterations):
-        first = 1 + 2 * iteration
-        if state.pass_number == first:
-            product_read(run, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="adjoint",
-                         norms=False)
-            state.arrays["z"] = np.linalg.qr(state.arrays.pop("adjoint"))[0]
-            state.arrays.pop("adjoint_norm_squares", None)  # from a checkpoint of an older run
-            state.arrays.pop("q")  # the range pass makes the next one: n x k fewer during it
-            run.end_pass(state)
-        if state.pass_number == first + 1:
-            product_read(run, matrix, jobs, state, preparing, state.arrays["z"], "range", name="range")
-            state.arrays["q"] = orthonormal_basis(state.arrays.pop("range"), overwrite=True)
-            state.arrays.pop("z", None)
-            run.end_pass(state)
-    final = 1 + 2 * power_iterations
-    if state.pass_number == final:
-        product_read(run, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="projection")
-        run.end_pass(state)
-    b = np.asarray(state.arrays["projection"]).conj().T  # B = Q^H A (width x m)
-    u_small, s, vh = np.linalg.svd(b, full_matrices=False)
-    u_small, vh = normalize_signs(u_small[:, :rank], vh[:rank])
-    lowrank = LowRank(basis=state.arrays["q"] @ u_small, singular_value=s[:rank].astype(np.float64), vh=vh,
-                      column_norm=np.sqrt(np.asarray(state.arrays["projection_norm_squares"], dtype=np.float64)),
-                      passes=2 + 2 * power_iterations, projection_kind="exact")
-    return preparation, lowrank

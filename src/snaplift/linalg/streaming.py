@@ -26,7 +26,6 @@ from __future__ import annotations
 
 import json
 import os
-import re
 import tempfile
 import time
 from collections import deque
@@ -38,11 +37,11 @@ from typing import Any, Protocol
 
 import numpy as np
 
-from snaplift.errors import ConfigError
 from snaplift.linalg._blas import blas_threads
+from snaplift.units import parse_every, usable_cores
 
 __all__ = ["TileRunner", "ThreadRunner", "ClientRunner", "InlineRunner", "runner_for", "StreamState", "Checkpointer",
-           "run_tiles", "parse_every", "save_checkpoint", "load_checkpoint"]
+           "run_tiles", "save_checkpoint", "load_checkpoint"]
 
 
 class TileRunner(Protocol):
@@ -67,12 +66,6 @@ class TileRunner(Protocol):
     def slots(self) -> int:
         """Accumulation slots for range products (0: tasks return their products instead)."""
         ...
-
-
-def _cores() -> int:
-    if hasattr(os, "sched_getaffinity"):
-        return max(1, len(os.sched_getaffinity(0)))
-    return max(1, os.cpu_count() or 1)  # pragma: no cover - platforms without affinity
 
 
 class ThreadRunner:
@@ -101,7 +94,7 @@ class ThreadRunner:
 
     @property
     def blas_threads_per_tile(self) -> int:
-        return max(1, _cores() // self.workers)
+        return max(1, usable_cores() // self.workers)
 
     def tiles_running(self) -> Any:
         """Context of a pass: BLAS limited to :attr:`blas_threads_per_tile` threads."""
@@ -259,11 +252,9 @@ def runner_for(scheduler: Any) -> ThreadRunner | ClientRunner:
     """The runner matching a :class:`snaplift.cluster.Scheduler` (use it as a context manager)."""
     client = getattr(scheduler, "client", None)
     if client is not None:
-        from snaplift import cluster
-
         # workers of batch jobs retire on a lifetime: keep no state in them
         stable = getattr(scheduler, "kind", "local") in ("local", "allocation")
-        return ClientRunner(client, retries=getattr(cluster, "TASK_RETRIES", 0), use_slots=stable)
+        return ClientRunner(client, retries=getattr(scheduler, "task_retries", 0), use_slots=stable)
     return ThreadRunner(getattr(scheduler, "workers", 1))
 
 
@@ -342,43 +333,6 @@ def load_checkpoint(path: str | os.PathLike[str]) -> StreamState:
         done = {int(i) for i in data["done"]}
     return StreamState(meta["key"], int(meta["pass_number"]), arrays, done, int(meta["bytes_read"]),
                        dict(meta.get("info") or {}))
-
-
-_DURATION = re.compile(r"^(?:(\d+(?:\.\d+)?)h)?(?:(\d+(?:\.\d+)?)m(?:in)?)?(?:(\d+(?:\.\d+)?)s)?$")
-
-
-def parse_every(value: int | float | str | None) -> tuple[int | None, float | None]:
-    """``compress.checkpoint_every``: a number of tiles (``200``, ``"200 tiles"``) or a duration.
-
-    Returns ``(tiles, seconds)`` with one of them set (both None for None).
-
-    Example
-    -------
-    >>> parse_every("90s"), parse_every(50), parse_every("1h30m")
-    ((None, 90.0), (50, None), (None, 5400.0))
-    """
-    if value is None:
-        return None, None
-    if isinstance(value, bool):
-        raise ConfigError(f"compress.checkpoint_every = {value!r}: expected a number of tiles or a duration like 60s")
-    if isinstance(value, int):
-        if value < 1:
-            raise ConfigError(f"compress.checkpoint_every = {value}: a number of tiles must be >= 1")
-        return value, None
-    text = str(value).strip().lower().replace(" ", "")
-    tiles = re.fullmatch(r"(\d+)(tiles?)?", text)
-    if tiles and int(tiles.group(1)) >= 1:
-        return int(tiles.group(1)), None
-    match = _DURATION.fullmatch(text)
-    if text and match and any(match.groups()):
-        hours, minutes, seconds = (float(g) if g else 0.0 for g in match.groups())
-        total = 3600 * hours + 60 * minutes + seconds
-        if total > 0:
-            return None, total
-    raise ConfigError(
-        f"compress.checkpoint_every = {value!r}: expected a number of tiles (e.g. 200) or a duration "
-        "such as 60s, 5m, 1h"
-    )
 
 
 class Checkpointer:

@@ -7,7 +7,7 @@ again up a binary tree, and Q is the product of the leaves' Q factors and the tr
 applied implicitly. Q keeps orthonormal columns to machine precision whatever the
 condition number (unlike Cholesky QR or the normal equations, which square it).
 
-Over an archive (:func:`tsqr_compress`) a leaf is one row block x *all* selected
+Over an archive (:func:`snaplift.linalg._method_passes.tsqr_compress`) a leaf is one row block x *all* selected
 snapshots, so this method suits archives with few snapshots; on time-major archives its
 tiles are partial-chunk reads (the planner says so and counts the bytes). Two passes:
 R factors, then the basis ``U = Q U_R`` by recomputing each leaf (cheaper than storing Q,
@@ -17,18 +17,17 @@ Coefficients ``S V^H`` and column norms (``||R e_j||``) are exact.
 
 from __future__ import annotations
 
-import os
 import sys
 from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
 
-from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.linalg._blas import blas_threads
-from snaplift.linalg._kernels import leaf_factors, normalize_signs, qr_factor, reduce_r_factors
+from snaplift.linalg._kernels import leaf_factors, qr_factor, reduce_r_factors
+from snaplift.units import usable_cores
 
-__all__ = ["tsqr", "tsqr_compress", "orthonormal_basis", "CHOLESKY_QR_TOLERANCE"]
+__all__ = ["tsqr", "orthonormal_basis", "CHOLESKY_QR_TOLERANCE"]
 
 #: how far from the identity (largest entry of ``G - I``) the Gram matrix of a Cholesky QR
 #: step's input may be for its output to be kept: the step is then a Cholesky QR of a
@@ -81,7 +80,7 @@ def tsqr(a: Any, *, block_rows: int | None = None) -> tuple[Any, np.ndarray]:
     blocks = _row_blocks(n, m, block_rows)
     # leaves are independent and LAPACK releases the GIL: factor them on a few threads,
     # each with a single-threaded BLAS (threads calling a threaded BLAS oversubscribe)
-    with blas_threads(1), ThreadPoolExecutor(max(1, min(4, os.cpu_count() or 1))) as pool:
+    with blas_threads(1), ThreadPoolExecutor(min(4, usable_cores())) as pool:
         leaves = list(pool.map(lambda rows: qr_factor(a[rows[0]:rows[1]]), blocks))
         r, tree = reduce_r_factors([leaf[1] for leaf in leaves])
         factors = leaf_factors(len(leaves), tree, np.eye(r.shape[0], dtype=r.dtype))
@@ -265,81 +264,3 @@ def _binary_tree_factors(count: int, tree: list[Any]) -> Any:
         return leaf_factors(count, tree, top)
 
     return factors
-
-
-def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any, *, rank: int, center: bool,
-                  scale: str | dict[str, float]) -> tuple[Any, Any]:
-    """Exact truncated SVD of the prepared snapshot matrix by TSQR over the archive (2 passes).
-
-    ``jobs`` must each hold one row block with *all* selected snapshots. Returns
-    ``(Preparation, LowRank)``. Centring is exact inside each leaf (it has every
-    snapshot of its rows); the per-field scales, known only after the first pass, scale
-    the leaves' R factors before the tree is reduced (``R(s X) = s R(X)`` for ``s > 0``).
-    """
-    from snaplift.linalg._passes import _zeros
-    from snaplift.linalg._tasks import tsqr_leaf_task, tsqr_task
-    from snaplift.linalg.randomized import LowRank
-    from snaplift.prepare import finish_preparation
-
-    n, m = matrix.shape
-    fields = matrix.fields
-    for job in jobs:
-        if job.tile.columns != (0, m):
-            raise ValueError("tsqr_compress needs tiles holding every selected snapshot")
-    # one leaf per field and row block: a tile of several fields (lifted ones) holds one each
-    leaves = [(f, job.tile.rows[0] if job.tile.span == 1 else 0) for job in jobs
-              for f in range(job.tile.field, job.tile.field + job.tile.span)]
-    if state.pass_number == 0:
-        row_sum = _zeros(state, "row_sum", (n,), matrix.dtype)
-        squares = _zeros(state, "squares", (len(fields), m), np.float64)
-
-        def fold(tile: Any, result: dict[str, Any]) -> None:
-            g0, g1 = tile.global_rows(run.source)
-            row_sum[g0:g1] += result["row_sum"]
-            squares[tile.field:tile.field + tile.span] += np.reshape(result["squares"], (tile.span, -1))
-            if tile.span > 1:
-                for f, r in enumerate(result["r"], start=tile.field):
-                    state.arrays[f"r_{f}_0"] = r
-            else:
-                state.arrays[f"r_{tile.field}_{tile.rows[0]}"] = result["r"]
-
-        run.run(tsqr_task, (bool(center),), jobs, fold, state)
-        run.end_pass(state)
-    preparation = finish_preparation(matrix, state.arrays["row_sum"], list(state.arrays["squares"]),
-                                     center=center, scale=scale)
-    raw_r = [state.arrays[f"r_{f}_{r0}"] for f, r0 in leaves]
-    scaled = [r / preparation.field_scale[fields[f].name] for r, (f, _) in zip(raw_r, leaves)]
-    if sum(r.shape[0] for r in scaled) * m * np.dtype(matrix.dtype).itemsize <= FLAT_TREE_BYTES:
-        # a flat tree: the stacked leaves are small (e.g. many lifted fields of few points),
-        # one QR of them instead of a binary tree of as many QRs as leaves
-        root, factors_of = _flat_tree(scaled)
-    else:
-        root, tree = reduce_r_factors(scaled)
-        factors_of = _binary_tree_factors(len(leaves), tree)
-    u_r, s, vh = np.linalg.svd(root, full_matrices=False)
-    rank = min(rank, s.size)
-    u_r, vh = normalize_signs(u_r[:, :rank], vh[:rank])
-    factors = factors_of(u_r)
-    if state.pass_number == 1:
-        basis = _zeros(state, "basis", (n, rank), np.result_type(matrix.dtype, u_r.dtype))
-        items = []
-        position = 0
-        for job in jobs:
-            count = job.tile.span
-            if count > 1:
-                item = (job.tile, raw_r[position:position + count], factors[position:position + count])
-            else:
-                item = (job.tile, raw_r[position], factors[position])
-            items.append(type(job)(job.id, item, job.nbytes))
-            position += count
-
-        def fold_basis(item: Any, result: dict[str, Any]) -> None:
-            g0, g1 = item[0].global_rows(run.source)
-            basis[g0:g1] = result["basis"]
-
-        run.run(tsqr_leaf_task, (bool(center),), items, fold_basis, state)
-        run.end_pass(state)
-    column_norm = np.linalg.norm(root, axis=0)  # A = Q R with orthonormal Q: ||a_j|| = ||R e_j||
-    lowrank = LowRank(basis=state.arrays["basis"], singular_value=s[:rank].astype(np.float64), vh=vh,
-                      column_norm=column_norm, passes=2, projection_kind="exact")
-    return preparation, lowrank

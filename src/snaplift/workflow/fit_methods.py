@@ -155,7 +155,7 @@ def _leading(compressed: Any, count: int | None) -> np.ndarray:
 
 def _edmd(workflow: Any, compressed: Any, scanned: Any, run_lengths: np.ndarray, memory_budget: int | None,
           say: Callable[[str], None] | None) -> FitOutcome:
-    from snaplift.lifting import format_bytes
+    from snaplift.units import format_bytes
     from snaplift.workflow.lift_section import state_dictionary
 
     settings = workflow.fit

@@ -41,7 +41,7 @@ import numpy as np
 
 from snaplift import __version__
 from snaplift._process_memory import trim_heap
-from snaplift.cluster import Scheduler, TaskProgress, open_scheduler
+from snaplift.cluster import ClusterOptions, Scheduler, TaskProgress, open_scheduler
 from snaplift.errors import SnapliftError
 from snaplift.results import stages as stored
 from snaplift.results import store as result_store
@@ -270,7 +270,7 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
                         f"({lease.taken_over.get('reason')})")
     records: dict[str, dict[str, Any]] = {}
     progress: TaskProgress = faults
-    with open_scheduler(workflow.cluster, progress=progress) as scheduler:
+    with open_scheduler(ClusterOptions(**workflow.cluster.model_dump()), progress=progress) as scheduler:
         # scan: metadata, times and the archive's fingerprint; always run (it decides the rest)
         faults.enter("scan")
         reporter.begin("scan", f"{workflow.archive.path} ({scheduler.kind} scheduler, {scheduler.workers} workers)")
@@ -409,7 +409,7 @@ def _compress(workflow: Workflow, scanned: Any, scheduler: Scheduler, store: Sta
     faults.enter("compress")
     lifted = ""
     if scanned.lifted_rows:
-        from snaplift.lifting import format_bytes
+        from snaplift.units import format_bytes
 
         size = format_bytes(8 * scanned.lifted_rows * int(scanned.snapshot_index.size))
         lifted = f", lifted to {scanned.lifted_rows} values per snapshot ({size} per read, never stored)"

@@ -18,6 +18,7 @@ import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
 from snaplift.errors import ConfigError
+from snaplift.units import parse_bytes, parse_duration, parse_every, parse_walltime
 from snaplift.workflow._text import MAX_MESSAGE, MAX_WORKFLOW_BYTES, safe_load, shown, shorten
 from snaplift.workflow.lift_section import LiftEntry, check_lift, field_lift, state_source
 
@@ -33,8 +34,6 @@ __all__ = [
     "load_workflow",
     "parse_workflow",
     "section_fingerprint",
-    "parse_duration",
-    "parse_walltime",
 ]
 
 
@@ -169,8 +168,6 @@ class CompressSection(_Section):
     @classmethod
     def _every(cls, value: int | str | None) -> int | str | None:
         if value is not None:
-            from snaplift.linalg.streaming import parse_every
-
             try:
                 parse_every(value)
             except ConfigError as error:
@@ -350,42 +347,6 @@ class ClusterSection(_Section):
         return self
 
 
-def parse_duration(value: str | float | int) -> float:
-    """``'55m'`` -> 3300.0 seconds; ``'1h30m'``, ``'90s'``, numbers are seconds."""
-    if isinstance(value, int | float) and not isinstance(value, bool):
-        if value <= 0:
-            raise ValueError(f"a duration must be positive, got {value}")
-        return float(value)
-    text = str(value).strip().lower().replace(" ", "")
-    parts = re.fullmatch(r"(?:(\d+(?:\.\d+)?)h)?(?:(\d+(?:\.\d+)?)m)?(?:(\d+(?:\.\d+)?)s?)?", text)
-    if not text or parts is None or not any(parts.groups()):
-        raise ValueError(f"{value!r} is not a duration; expected e.g. 90s, 55m, 1h30m")
-    hours, minutes, seconds = (float(p) if p else 0.0 for p in parts.groups())
-    total = 3600 * hours + 60 * minutes + seconds
-    if total <= 0:
-        raise ValueError(f"a duration must be positive, got {value!r}")
-    return total
-
-
-def parse_walltime(value: str) -> float:
-    """``'02:00:00'`` / ``'1-12:00:00'`` / ``'30:00'`` -> seconds (SLURM and PBS notation)."""
-    text = str(value).strip()
-    days = 0
-    if "-" in text:
-        head, text = text.split("-", 1)
-        days = int(head) if head.isdigit() else -1
-    fields = text.split(":")
-    if days < 0 or not 1 <= len(fields) <= 3 or not all(f.isdigit() for f in fields):
-        raise ValueError(f"walltime {value!r} is not HH:MM:SS (or D-HH:MM:SS, MM:SS)")
-    numbers = [int(f) for f in fields]
-    while len(numbers) < 3:
-        numbers.insert(0, 0)
-    total = days * 86400 + numbers[0] * 3600 + numbers[1] * 60 + numbers[2]
-    if total <= 0:
-        raise ValueError(f"walltime {value!r} must be positive")
-    return float(total)
-
-
 class Workflow(_Section):
     archive: ArchiveSection
     prepare: PrepareSection = PrepareSection()
@@ -455,31 +416,6 @@ def scale_of(scale: dict[str, float], name: str) -> float:
         return float(scale[name])
     base = re.sub(r"_delay\d+$", "", name)
     return float(scale[base])
-
-
-_UNITS = {"": 1, "b": 1, "k": 10**3, "kb": 10**3, "m": 10**6, "mb": 10**6, "g": 10**9,
-          "gb": 10**9, "t": 10**12, "tb": 10**12, "kib": 2**10, "mib": 2**20, "gib": 2**30,
-          "tib": 2**40}
-
-
-def parse_bytes(value: str | int) -> int:
-    """``'2GiB'`` -> 2147483648; ``'500MB'`` -> 500000000; integers pass through."""
-    if isinstance(value, int):
-        if value <= 0:
-            raise ValueError(f"a byte count must be positive, got {value}")
-        return value
-    text = str(value).strip().lower().replace(" ", "")
-    number = text.rstrip("abcdefghijklmnopqrstuvwxyz")
-    unit = text[len(number):]
-    try:
-        amount = float(number)
-    except ValueError:
-        amount = -1.0
-    if unit not in _UNITS or amount <= 0:
-        raise ValueError(
-            f"{value!r} is not a size; expected a number with a unit such as 512MB, 2GiB, 1.5TB"
-        )
-    return int(amount * _UNITS[unit])
 
 
 def _check_formula_names(workflow: Any) -> None:

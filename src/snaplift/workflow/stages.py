@@ -32,7 +32,8 @@ from snaplift.lifting import delayed_run_lengths
 from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation
 from snaplift.workflow.fit_methods import FitOutcome, fit_outcome, state_variables
-from snaplift.workflow.schema import Workflow, parse_bytes, resolve_path, scale_of
+from snaplift.units import parse_bytes
+from snaplift.workflow.schema import Workflow, resolve_path, scale_of
 from snaplift.workflow.store_metadata import store_metadata
 
 __all__ = ["Scanned", "Compressed", "scan_stage", "check_workflow", "compress_stage", "fit_stage", "plan_compress",

@@ -7,7 +7,7 @@ import pytest
 from typer.testing import CliRunner
 
 from snaplift.cli import app
-from snaplift.linalg.bench import BenchSettings, render_benchmark, run_benchmark, spectrum
+from snaplift.workflow.bench import BenchSettings, render_benchmark, run_benchmark, spectrum
 
 
 def test_tiny_benchmark_reports_every_figure(tmp_path):
@@ -37,7 +37,7 @@ def test_bench_command_dry_run_says_what_it_writes(tmp_path):
 
 
 def test_process_tree_memory_sees_a_brief_peak_without_sampling():
-    from snaplift.linalg.bench import ProcessTreeMemory
+    from snaplift.workflow.bench import ProcessTreeMemory
 
     with ProcessTreeMemory() as memory:
         block = np.ones(256 * 2**20 // 8)  # 256 MiB touched, then freed at once

@@ -285,11 +285,10 @@ def _accuracy(found: np.ndarray, sigma: np.ndarray, count: int) -> float:
 
 @contextlib.contextmanager
 def _runner(kind: str, workers: int) -> Iterator[Any]:
-    from snaplift.cluster import open_scheduler
+    from snaplift.cluster import ClusterOptions, open_scheduler
     from snaplift.linalg.streaming import runner_for
-    from snaplift.workflow.schema import ClusterSection
 
-    with open_scheduler(ClusterSection(kind=kind, workers=workers)) as scheduler, runner_for(scheduler) as runner:
+    with open_scheduler(ClusterOptions(kind=kind, workers=workers)) as scheduler, runner_for(scheduler) as runner:
         yield runner
 
 
