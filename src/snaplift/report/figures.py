@@ -9,6 +9,8 @@ magnitudes. Trusted eigenvalues are filled blue discs, untrusted ones amber tria
 
 from __future__ import annotations
 
+import textwrap
+
 from dataclasses import dataclass
 
 import numpy as np
@@ -232,7 +234,8 @@ def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, divergin
     same_units = rows.units == columns.units
     ax.set_aspect("equal" if same_units else "auto")
     ax.set_xlabel(columns.title, fontsize=8)
-    ax.set_ylabel(rows.title, fontsize=8)
+    # a long name wraps: on a flat image it would run into the panels above and below
+    ax.set_ylabel(textwrap.fill(rows.title, 18), fontsize=8)
     ax.tick_params(labelsize=7)
     bar = figure.colorbar(mesh, ax=ax, shrink=0.9, pad=0.01)
     bar.ax.tick_params(labelsize=7)
@@ -285,8 +288,8 @@ def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
     for band, k in zip(bands, modes):
         values = np.asarray(data.isel(mode=k).values) * amplitude[k]
         state = "trusted" if trusted[k] else "untrusted"
-        band.suptitle(f"mode {k}  |  frequency {frequency[k]:.4g} [{view.frequency_unit}]  |  growth "
-                      f"{growth[k]:.3g} [{view.growth_unit}]  |  {state}", x=0.01, ha="left", fontsize=10,
+        band.suptitle(f"mode {k}  |  frequency {frequency[k]:.4g} {view.frequency_unit}  |  growth "
+                      f"{growth[k]:.3g} {view.growth_unit}  |  {state}", x=0.01, ha="left", fontsize=10,
                       color=PALETTE[state])
         grid = band.subplots(2, 3, squeeze=False) if three else band.subplots(1, 2, squeeze=False)
         for part, (part_name, transform, diverging) in enumerate((("real part", np.real, True),
