@@ -203,7 +203,7 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
     archive_path = resolve_path(folder, workflow.archive.path)
     check_output_path(output, archive_path)
     # names, shapes and times are checked first: an existing store never hides a typo
-    stage_functions.check_workflow(workflow, folder)
+    checked = stage_functions.scan_stage(workflow, folder, None, with_plan=False)
     lease = Lease(output)
     with warnings.catch_warnings():
         # said below as one line through the reporter, not as a Python warning with a source line
@@ -220,7 +220,7 @@ def run(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
                 say(store.discarded)
             if overwrite:
                 say("--overwrite: every stage is recomputed from the archive")
-            summary = _run_stages(workflow, text, folder, store, lease, reporter, say, started)
+            summary = _run_stages(workflow, text, folder, store, lease, reporter, say, started, checked)
     except KeyboardInterrupt as error:
         command = f"snaplift run {workflow_path}" if workflow_path else "the same run"
         kept = store is not None and store.has_progress
@@ -262,7 +262,8 @@ def _lease_lost(lease: Lease) -> bool:
 
 
 def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore, lease: Lease,
-                reporter: ProgressReporter, say: Progress, started: _dt.datetime) -> RunSummary:
+                reporter: ProgressReporter, say: Progress, started: _dt.datetime,
+                checked: stage_functions.Scanned) -> RunSummary:
     faults = _Faults(reporter)
     warnings: list[str] = []
     if lease.taken_over:
@@ -278,7 +279,7 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
         # a killed run of this job left its scan record: plan around the baseline it reserved
         # (when the processes measure no more), so that the tiles, and the checkpoint, match
         killed_scan = store.record("scan") or {}
-        scanned = stage_functions.scan_stage(workflow, folder, scheduler,
+        scanned = stage_functions.scan_stage(workflow, folder, scheduler, checked=checked,
                                              recorded_baseline=killed_scan.get("memory_baseline"))
         fingerprint_now = archive_fingerprint(scanned.reader)
         previous_scan = store.previous_record("scan")

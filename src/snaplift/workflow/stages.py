@@ -181,13 +181,33 @@ def _check_rank_fits(workflow: Workflow, info: Any, m: int) -> None:
 
 
 def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
-               recorded_baseline: int | None = None, with_plan: bool = True) -> Scanned:
+               recorded_baseline: int | None = None, with_plan: bool = True,
+               checked: Scanned | None = None) -> Scanned:
     """Open the archive, select snapshots, check times, plan tiles. Reads metadata only.
 
     ``recorded_baseline``: the baseline a killed run of this job planned with (its scan
     record's ``memory_baseline``); see :func:`plan_compress`. ``with_plan=False`` (no
     scheduler needed) skips the tile plan: the checks of :func:`check_workflow`.
+    ``checked``: the scan those checks returned, so that a run plans on it instead of
+    opening and checking the archive a second time.
     """
+    if checked is None:
+        checked = _checked_scan(workflow, folder)
+    if not with_plan or scheduler is None:
+        return checked
+    info = checked.reader.describe()
+    plan = plan_compress(workflow, info, scheduler, recorded_baseline=recorded_baseline)
+    block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
+    # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
+    snapshot_block = max(1, block // workflow.archive.snapshots.every)
+    lifted = lifted_info(info, workflow)
+    lifted_rows = sum(f.n_points for f in lifted.fields.values()) if lifted is not info else 0
+    return replace(checked, snapshot_block=snapshot_block, memory_bytes=plan.memory_bytes, plan=plan,
+                   lifted_rows=int(lifted_rows))
+
+
+def _checked_scan(workflow: Workflow, folder: Path) -> Scanned:
+    """The archive opened, its snapshots selected and times, runs, inputs checked; no plan."""
     section = workflow.archive
     # the workflow names its fields: a one-value-per-snapshot (1-D) dataset is then a field too
     reader = open_archive(resolve_path(folder, section.path), format=section.format, fields=list(section.fields),
@@ -236,21 +256,10 @@ def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
     if workflow.state_source == "state":
         _check_state_formulas(workflow, reader, index)
     notes = input_notes(reader, info, workflow)
-    if not with_plan or scheduler is None:
-        return Scanned(reader, index[columns], times[columns], dt, 1, 0, plan=None,
-                       run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
-                       selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
-                       time_unit=unit, warnings=(*unit_warnings, *notes))
-    plan = plan_compress(workflow, info, scheduler, recorded_baseline=recorded_baseline)
-    block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
-    # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
-    snapshot_block = max(1, block // section.snapshots.every)
-    lifted = lifted_info(info, workflow)
-    lifted_rows = sum(f.n_points for f in lifted.fields.values()) if lifted is not info else 0
-    return Scanned(reader, index[columns], times[columns], dt, snapshot_block, plan.memory_bytes, plan=plan,
+    return Scanned(reader, index[columns], times[columns], dt, 1, 0, plan=None,
                    run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
                    selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
-                   lifted_rows=int(lifted_rows), time_unit=unit, warnings=(*unit_warnings, *notes))
+                   time_unit=unit, warnings=(*unit_warnings, *notes))
 
 
 def archive_time_unit(workflow: Workflow, reader: Reader, info: ArchiveInfo) -> tuple[TimeUnit | None, list[str]]:
@@ -298,7 +307,7 @@ def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]
     batch job learns a wrong name before it waits in the queue; ``run`` calls it before it
     looks at an existing result store. Returns the scan and what a run would print.
     """
-    scanned = scan_stage(workflow, folder, None, with_plan=False)
+    scanned = _checked_scan(workflow, folder)
     matrix = snapshot_matrix_of(workflow, scanned)
     metadata = store_metadata(workflow, scanned.reader, scanned.reader.describe(), scanned.time, scanned.time_unit)
     info = scanned.reader.describe()
