@@ -28,12 +28,9 @@ LAYERS: tuple[tuple[tuple[str, ...], ...], ...] = (
     # the HTML report and the spectrum table read the result store; the runner draws the report
     (("snaplift.report",),),
     (("snaplift.results",), ("snaplift.cluster",)),
-    # stream: the tile loop, tasks, checkpoints, the per-tile accumulation slots and the
-    # I/O floor measurement -- the code that reads tiles and runs kernels (today in linalg;
-    # compress.py and _method_passes.py drive the passes of each method)
-    (("snaplift.linalg.streaming", "snaplift.linalg._tasks", "snaplift.linalg._passes",
-      "snaplift.linalg._slots", "snaplift.linalg._floor", "snaplift.linalg.compress",
-      "snaplift.linalg._method_passes"),),
+    # stream: the tile loop, tasks, checkpoints, the per-tile accumulation slots, the passes of
+    # each compress method and the I/O floor measurement -- the code that reads tiles and runs kernels
+    (("snaplift.stream",),),
     # archive (readers, planner, snapshot matrix), prepare, lifting, linalg kernels, fitting
     (("snaplift.archive",), ("snaplift.prepare",), ("snaplift.lifting",), ("snaplift.linalg",),
      ("snaplift.fitting",)),
@@ -157,5 +154,5 @@ def test_an_upward_import_is_a_violation():
     assert _place("snaplift.workflow.schema")[0] < _place("snaplift.cluster")[0]
     assert _place("snaplift.linalg._testmatrix")[0] == _place("snaplift.archive.plan")[0]
     assert _place("snaplift.linalg._testmatrix")[1] != _place("snaplift.archive.plan")[1]
-    assert _place("snaplift.linalg.streaming") == _place("snaplift.linalg._passes")
-    assert _place("snaplift.linalg.streaming")[0] < _place("snaplift.linalg.sketch")[0]
+    assert _place("snaplift.stream.loop") == _place("snaplift.stream._passes")
+    assert _place("snaplift.stream.loop")[0] < _place("snaplift.linalg.sketch")[0]

@@ -146,8 +146,8 @@ class Scheduler:
 #: what a tile task loads in a worker process, imported before the worker is measured so
 #: that its baseline holds what the pass would load anyway (plus the reader's library: see
 #: :func:`resident_memory`); the driver also loads the finishing linear algebra
-TASK_MODULES = ("snaplift.linalg._tasks",)
-_DRIVER_MODULES = ("snaplift.linalg.compress",)
+TASK_MODULES = ("snaplift.stream._tasks",)
+_DRIVER_MODULES = ("snaplift.stream.compress",)
 #: reader libraries a task imports when it first opens the archive
 _READER_LIBRARIES = ("h5py", "zarr")
 #: reserved above a measured baseline, as a fraction of it and at least ``BASELINE_MARGIN_BYTES``:

@@ -20,8 +20,8 @@ from snaplift.archive import ArchiveInfo, FieldInfo, open_archive, plan_tiles
 from snaplift.archive.matrix import build_snapshot_matrix
 from snaplift.archive.plan import IN_MEMORY_FACTOR, TSQR_MERGE_COPIES, method_widths
 from snaplift.lifting import FieldLift
-from snaplift.linalg.compress import CompressOptions, compress
-from snaplift.linalg.streaming import ThreadRunner
+from snaplift.stream.compress import CompressOptions, compress
+from snaplift.stream.loop import ThreadRunner
 
 MIB = 2**20
 

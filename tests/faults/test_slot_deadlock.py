@@ -19,9 +19,9 @@ import pytest
 from snaplift.archive import open_archive, plan_tiles
 from snaplift.archive.matrix import build_snapshot_matrix
 from snaplift.cluster import open_scheduler
-from snaplift.linalg import _slots
-from snaplift.linalg.compress import CompressOptions, compress
-from snaplift.linalg.streaming import ClientRunner, runner_for
+from snaplift.stream import _slots
+from snaplift.stream.compress import CompressOptions, compress
+from snaplift.stream.loop import ClientRunner, runner_for
 from snaplift.workflow.schema import ClusterSection
 
 #: a hang guard, not a timing check: a correct run takes a few seconds

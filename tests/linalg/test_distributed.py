@@ -11,8 +11,8 @@ import pytest
 from snaplift.archive import plan_tiles
 from snaplift.archive.matrix import build_snapshot_matrix
 from snaplift.cluster import open_scheduler, resident_memory
-from snaplift.linalg.compress import CompressOptions, compress
-from snaplift.linalg.streaming import ClientRunner, runner_for
+from snaplift.stream.compress import CompressOptions, compress
+from snaplift.stream.loop import ClientRunner, runner_for
 from snaplift.workflow.schema import ClusterSection
 
 

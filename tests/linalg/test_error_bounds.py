@@ -20,11 +20,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from snaplift.linalg.compress import CompressOptions, compress
+from snaplift.stream.compress import CompressOptions, compress
 from snaplift.linalg.sketch import SketchState, sketch_error_bound, sketch_reconstruction
-from snaplift.linalg.streaming import StreamState, ThreadRunner
-from snaplift.linalg._passes import Pass, build_jobs, kept_row_blocks, sketch_read
-from snaplift.linalg.compress import _source
+from snaplift.stream.loop import StreamState, ThreadRunner
+from snaplift.stream._passes import Pass, build_jobs, kept_row_blocks, sketch_read
+from snaplift.stream.compress import _source
 
 SEEDS = range(20)
 

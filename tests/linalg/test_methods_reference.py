@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 from scipy.linalg import subspace_angles
 
-from snaplift.linalg.compress import CompressOptions, compress
-from snaplift.linalg.streaming import ThreadRunner
+from snaplift.stream.compress import CompressOptions, compress
+from snaplift.stream.loop import ThreadRunner
 
 N, M, RANK = 600, 80, 8
 

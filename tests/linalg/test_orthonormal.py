@@ -13,8 +13,8 @@ import numpy as np
 import pytest
 
 from snaplift.linalg import tsqr as tsqr_module
-from snaplift.linalg.compress import CompressOptions, compress
-from snaplift.linalg.streaming import ThreadRunner
+from snaplift.stream.compress import CompressOptions, compress
+from snaplift.stream.loop import ThreadRunner
 from snaplift.linalg.tsqr import orthonormal_basis, tsqr
 
 

@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 
 from snaplift.errors import ArchiveError
-from snaplift.linalg.compress import CompressOptions, compress, sketch_append
+from snaplift.stream.compress import CompressOptions, compress, sketch_append
 from snaplift.linalg.sketch import SketchState, finish_sketch
 
 

@@ -15,7 +15,7 @@ from scipy import stats
 from snaplift.errors import ArchiveError
 from snaplift.archive.plan import row_map_bytes
 from snaplift.linalg._testmatrix import SparseSignMap, apply_corange, apply_left, row_map
-from snaplift.linalg.compress import CompressOptions, compress, sketch_append
+from snaplift.stream.compress import CompressOptions, compress, sketch_append
 from snaplift.linalg.sketch import SketchState, merge_sketches
 
 

@@ -13,8 +13,8 @@ import pytest
 from snaplift.errors import ConfigError
 from snaplift.linalg import _testmatrix
 from snaplift.linalg._blas import _libraries, blas_threads
-from snaplift.linalg.compress import CompressOptions, compress
-from snaplift.linalg.streaming import StreamState, ThreadRunner, load_checkpoint, save_checkpoint
+from snaplift.stream.compress import CompressOptions, compress
+from snaplift.stream.loop import StreamState, ThreadRunner, load_checkpoint, save_checkpoint
 from snaplift.units import parse_every
 
 

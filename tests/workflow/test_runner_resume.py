@@ -126,7 +126,7 @@ def test_ctrl_c_keeps_finished_stages(tmp_path: Path, monkeypatch: pytest.Monkey
 
 @pytest.mark.parametrize("killed_after", [5, 11])  # inside pass 0; inside pass 1 (after a pass end)
 def test_killed_mid_compress_rereads_at_most_one_interval(tmp_path: Path, killed_after: int) -> None:
-    from snaplift.linalg.streaming import load_checkpoint
+    from snaplift.stream.loop import load_checkpoint
 
     # 8 snapshots per tile, 8 tiles per pass: 2 worker threads get TILES_PER_WORKER = 4 blocks
     # each under a budget that holds the process (compress.memory bounds the whole process

@@ -11,7 +11,7 @@ Two memory models, in bytes (``s`` = 8 for real, 16 for complex fields; ``n_t`` 
 the tile, ``b`` snapshots per block):
 
 *Compress model* (``method`` given: ``sketch``, ``randomized`` or ``tsqr``), matching the
-streaming loop of :mod:`snaplift.linalg.streaming` with ``k`` range and ``l`` co-range
+streaming loop of :mod:`snaplift.stream.loop` with ``k`` range and ``l`` co-range
 widths (:func:`method_widths`):
 
 - per tile being read: ``2 n_t b s`` (the decoded tile and the read/decoding buffer);
@@ -589,7 +589,7 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
         return max(sz * (r * k + block * (k + l * len(leaves))) for r, sz, leaves in units)
 
     # threads of one process sum range products in place in one slot per worker
-    # (snaplift.linalg._slots): results in flight are small, and the driver's finishing
+    # (snaplift.stream._slots): results in flight are small, and the driver's finishing
     # arrays exist only after the pass, when no tile is held
     slotted = shared_memory and method != "tsqr"
     driver_pass = s * (2 * n * k + 2 * m * k + len(chosen) * m * l + 2 * n)

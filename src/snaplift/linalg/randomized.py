@@ -6,7 +6,7 @@ Algorithms 4.3/4.4 (randomized range finder with QR-stabilised subspace iteratio
 Algorithm 5.1 (direct SVD of the small projected matrix).
 
 Passes over the data: one for the range sketch, two per power iteration, one for the
-projection ``B = Q^H A``: ``2 + 2q`` in all. :func:`snaplift.linalg._method_passes.randomized_compress` streams the
+projection ``B = Q^H A``: ``2 + 2q`` in all. :func:`snaplift.stream._method_passes.randomized_compress` streams the
 archive tile by tile (the statistics for centring and scaling come from the first read,
 whose sketch is corrected afterwards; later passes centre and scale inside each tile);
 :func:`randomized_svd` does the same on a dask array that fits a task graph.

@@ -7,7 +7,7 @@ again up a binary tree, and Q is the product of the leaves' Q factors and the tr
 applied implicitly. Q keeps orthonormal columns to machine precision whatever the
 condition number (unlike Cholesky QR or the normal equations, which square it).
 
-Over an archive (:func:`snaplift.linalg._method_passes.tsqr_compress`) a leaf is one row block x *all* selected
+Over an archive (:func:`snaplift.stream._method_passes.tsqr_compress`) a leaf is one row block x *all* selected
 snapshots, so this method suits archives with few snapshots; on time-major archives its
 tiles are partial-chunk reads (the planner says so and counts the bytes). Two passes:
 R factors, then the basis ``U = Q U_R`` by recomputing each leaf (cheaper than storing Q,

@@ -4,7 +4,7 @@ When the archive gained snapshots since the previous result (classified *grown* 
 :mod:`snaplift.workflow.fingerprint`) and the previous result was a single-pass
 ``sketch`` with the same settings, the sketch state kept in the store's ``sketch/``
 group is updated by reading only the new snapshots
-(:func:`snaplift.linalg.compress.sketch_append`; Tropp, Yurtsever, Udell, Cevher 2019,
+(:func:`snaplift.stream.compress.sketch_append`; Tropp, Yurtsever, Udell, Cevher 2019,
 SIAM J. Sci. Comput. 41(4): the sketches are linear in the data and the test matrices
 are keyed by global snapshot index), then finished as in a full run
 (:func:`snaplift.linalg.sketch.finish_sketch`). The result equals a from-scratch run
@@ -57,10 +57,10 @@ def append_compress(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, 
     >>> result.info["appended_snapshots"]                                           # doctest: +SKIP
     120
     """
-    from snaplift.linalg._passes import kept_row_blocks
-    from snaplift.linalg.compress import sketch_append
+    from snaplift.stream._passes import kept_row_blocks
+    from snaplift.stream.compress import sketch_append
     from snaplift.linalg.sketch import finish_sketch
-    from snaplift.linalg.streaming import runner_for
+    from snaplift.stream.loop import runner_for
 
     section = workflow.archive
     plan = scanned.plan

@@ -10,8 +10,8 @@ in bounded memory) measures, in order:
   the two thin products ``X Omega`` and ``Psi X`` of width ``rank + 10`` (test matrices
   generated before the clock starts; the fastest of three schedules: serial with a
   threaded BLAS, a reader thread overlapping the arithmetic, one thread per core with
-  its own accumulator; :mod:`snaplift.linalg._floor`);
-- each compress method through :func:`snaplift.linalg.compress.compress` (matrix
+  its own accumulator; :mod:`snaplift.stream._floor`);
+- each compress method through :func:`snaplift.stream.compress.compress` (matrix
   description, every pass, finishing), as a ratio to the floor, with passes, bytes read
   per archive byte, accuracy of the leading singular values, and peak resident memory of
   the whole process tree (psutil, sampled in a thread);
@@ -40,7 +40,7 @@ from typing import Any
 
 import numpy as np
 
-from snaplift.linalg._floor import floor_pass
+from snaplift.stream._floor import floor_pass
 
 __all__ = ["BenchSettings", "run_benchmark", "write_archive", "render_benchmark", "ProcessTreeMemory"]
 
@@ -286,7 +286,7 @@ def _accuracy(found: np.ndarray, sigma: np.ndarray, count: int) -> float:
 @contextlib.contextmanager
 def _runner(kind: str, workers: int) -> Iterator[Any]:
     from snaplift.cluster import ClusterOptions, open_scheduler
-    from snaplift.linalg.streaming import runner_for
+    from snaplift.stream.loop import runner_for
 
     with open_scheduler(ClusterOptions(kind=kind, workers=workers)) as scheduler, runner_for(scheduler) as runner:
         yield runner
@@ -304,7 +304,7 @@ def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *,
     from snaplift.archive import open_archive, plan_tiles
     from snaplift.archive.matrix import build_snapshot_matrix
     from snaplift.cluster import resident_memory
-    from snaplift.linalg.compress import CompressOptions, compress
+    from snaplift.stream.compress import CompressOptions, compress
 
     reader = open_archive(str(path))
     info = reader.describe()
@@ -362,7 +362,7 @@ def _floor(path: Path, width: int, block: int, settle: Callable[[Path], None], *
     Warm: one call, which also checks that every schedule formed the same products. Cold:
     the page cache is dropped before each schedule (each is then its own call).
     """
-    from snaplift.linalg._floor import FLOOR_SCHEDULES
+    from snaplift.stream._floor import FLOOR_SCHEDULES
 
     if not cold:
         settle(path)

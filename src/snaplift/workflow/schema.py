@@ -120,7 +120,7 @@ class PrepareSection(_Section):
 
 
 class CompressSection(_Section):
-    """How the snapshot matrix is compressed (see :mod:`snaplift.linalg.compress`).
+    """How the snapshot matrix is compressed (see :mod:`snaplift.stream.compress`).
 
     ``sketch``: one read (Tropp et al. 2017/2019), widths ``sketch_widths: [k, l]``
     (default ``[2 rank + 1, 2 k + 1]``), coefficients and projection errors estimated

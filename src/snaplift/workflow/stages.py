@@ -500,8 +500,8 @@ def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, *
     with the same settings resumes from it.
     """
     checkpoint_dir = checkpoint if checkpoint is not None else checkpoint_dir
-    from snaplift.linalg.compress import CompressOptions, compress
-    from snaplift.linalg.streaming import runner_for
+    from snaplift.stream.compress import CompressOptions, compress
+    from snaplift.stream.loop import runner_for
 
     plan = scanned.plan
     matrix = snapshot_matrix_of(workflow, scanned)

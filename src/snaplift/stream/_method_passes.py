@@ -1,8 +1,8 @@
 """The pass sequences of the randomized SVD and of TSQR over an archive (stream layer).
 
 Each function drives its passes through a run of the tile loop (``run.run`` with the
-tasks of :mod:`snaplift.linalg._tasks`, folding results into a resumable
-:class:`~snaplift.linalg.streaming.StreamState`) and finishes with the array kernels of
+tasks of :mod:`snaplift.stream._tasks`, folding results into a resumable
+:class:`~snaplift.stream.loop.StreamState`) and finishes with the array kernels of
 :mod:`snaplift.linalg.randomized` and :mod:`snaplift.linalg.tsqr`.
 
 - :func:`randomized_compress`: Halko, Martinsson & Tropp (2011), SIAM Review 53(2),
@@ -19,8 +19,8 @@ import numpy as np
 
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.linalg._kernels import normalize_signs, reduce_r_factors
-from snaplift.linalg._passes import _zeros, preparing_of, product_read, sketch_read
-from snaplift.linalg._tasks import tsqr_leaf_task, tsqr_task
+from snaplift.stream._passes import _zeros, preparing_of, product_read, sketch_read
+from snaplift.stream._tasks import tsqr_leaf_task, tsqr_task
 from snaplift.linalg._testmatrix import gaussian_map
 from snaplift.linalg.randomized import LowRank
 from snaplift.linalg.tsqr import FLAT_TREE_BYTES, _binary_tree_factors, _flat_tree, orthonormal_basis
@@ -38,7 +38,7 @@ def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, r
     afterwards); each power iteration is one pass for ``A^H Q`` and one for ``A Z``
     (each factor re-orthonormalised, Halko et al. 2011, Alg. 4.4); the last pass gives
     ``B^H = A^H Q`` and the exact column norms of ``A``. Every pass resumes from
-    ``state`` (a :class:`~snaplift.linalg.streaming.StreamState`).
+    ``state`` (a :class:`~snaplift.stream.loop.StreamState`).
 
     Returns ``(Preparation, LowRank)``; the basis is in memory (n x rank).
     """

@@ -1,6 +1,6 @@
 """Passes over the archive for the compress methods: jobs, and what each pass folds.
 
-A pass is :func:`snaplift.linalg.streaming.run_tiles` over the plan's tiles with one tile
+A pass is :func:`snaplift.stream.loop.run_tiles` over the plan's tiles with one tile
 task and one fold. Accumulators live in ``StreamState.arrays`` under fixed names, so the
 state can be checkpointed between any two tiles:
 
@@ -24,8 +24,8 @@ import numpy as np
 
 from snaplift._process_memory import trim_heap
 from snaplift.archive.matrix import SnapshotMatrix
-from snaplift.linalg._tasks import Preparing, TileRef, TileSource, product_task, resident_loaded, sketch_task
-from snaplift.linalg.streaming import Checkpointer, Job, StreamState, TileRunner, run_tiles
+from snaplift.stream._tasks import Preparing, TileRef, TileSource, product_task, resident_loaded, sketch_task
+from snaplift.stream.loop import Checkpointer, Job, StreamState, TileRunner, run_tiles
 
 __all__ = ["build_jobs", "kept_row_blocks", "sketch_read", "product_read", "Pass", "preparing_of"]
 
@@ -118,7 +118,7 @@ class Pass:
         """Run a pass; the task is called as ``task(source, *shared, slot_spec, tile)``.
 
         With ``slot`` (an accumulator name) and a runner that has slots, range products are
-        summed in place in ordered slots (:mod:`snaplift.linalg._slots`) and collected
+        summed in place in ordered slots (:mod:`snaplift.stream._slots`) and collected
         into ``state.arrays[slot]``; otherwise ``slot_spec`` is None and ``fold`` adds the
         returned products.
         """

@@ -4,7 +4,7 @@ Compression reads the archive as a sequence of tiles. Each tile is a small task 
 descriptor + index ranges) submitted to the scheduler with at most ``in_flight`` tasks
 outstanding; small results are folded, *in tile order*, into per-row-block accumulators
 held by the driver, and full-height range products are summed in place in per-worker
-slots (:mod:`snaplift.linalg._slots`) that the driver collects at pass ends and before
+slots (:mod:`snaplift.stream._slots`) that the driver collects at pass ends and before
 checkpoints. So memory is ``accumulators x (workers + 1) + in_flight x (tile + its
 result)`` whatever the archive length, and no lazy graph of full-height partial sums is
 ever built. Results depend on the seed and the data only; which worker summed which
@@ -119,12 +119,12 @@ class ThreadRunner:
         future.cancel()
 
     def collect(self, key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
-        from snaplift.linalg._slots import collect
+        from snaplift.stream._slots import collect
 
         return collect(key, name)
 
     def discard(self, key: str, *, abort: bool) -> None:
-        from snaplift.linalg._slots import discard
+        from snaplift.stream._slots import discard
 
         discard(key, abort=abort)
 
@@ -191,7 +191,7 @@ class ClientRunner:
 
     def collect(self, key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
         """The slots of every worker process (``Client.run``: outside the task queue)."""
-        from snaplift.linalg._slots import collect_remote
+        from snaplift.stream._slots import collect_remote
 
         out: dict[int, tuple[np.ndarray, list[int]]] = {}
         for part in self.client.run(collect_remote, key, name).values():
@@ -199,7 +199,7 @@ class ClientRunner:
         return out
 
     def discard(self, key: str, *, abort: bool) -> None:
-        from snaplift.linalg._slots import discard
+        from snaplift.stream._slots import discard
 
         try:
             self.client.run(discard, key, abort=abort)

@@ -5,7 +5,7 @@ buffer: positioned reads of the chunks' bytes when they are stored unfiltered, a
 HDF5 reader does, else h5py's ``read_direct``) forming the two thin products every
 randomized rank-r method needs at least, ``Y = X Omega`` (n x w, summed in place a
 chunk of rows at a time outside the GIL, as compress does: see
-:func:`snaplift.linalg._slots._gemm_into`) and ``W = Psi X`` (written straight into its
+:func:`snaplift.stream._slots._gemm_into`) and ``W = Psi X`` (written straight into its
 rows), of width ``w = r + 10``; ``Y`` is column-major. The test matrices are drawn
 before the clock starts. Three schedules are timed and the fastest is the floor (a best
 effort, not a strawman):
@@ -29,7 +29,7 @@ from pathlib import Path
 import numpy as np
 
 from snaplift.linalg._blas import blas_threads
-from snaplift.linalg._slots import _gemm_into
+from snaplift.stream._slots import _gemm_into
 from snaplift.units import usable_cores
 
 __all__ = ["floor_pass", "FLOOR_SCHEDULES"]

@@ -1,7 +1,7 @@
 """Compress the prepared snapshot matrix: one front door for the three methods.
 
 ``compress(matrix, plan, options, runner=...)`` runs the method's passes over the
-planned tiles as bounded streaming loops (:mod:`snaplift.linalg.streaming`) and returns
+planned tiles as bounded streaming loops (:mod:`snaplift.stream.loop`) and returns
 a :class:`Compression`: the preparation (centring, scales, statistics of the first
 read), the low-rank factors, passes, bytes read, whether coefficients/projection errors
 are exact or estimates, and the sketch state for later appends.
@@ -33,15 +33,15 @@ import numpy as np
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.archive.plan import TilePlan, row_map_bytes
 from snaplift.errors import ArchiveError
-from snaplift.linalg._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
+from snaplift.stream._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
 from snaplift.linalg._blas import blas_threads
 from snaplift.linalg._kernels import normalize_signs
-from snaplift.linalg._tasks import TileSource, release_resident
+from snaplift.stream._tasks import TileSource, release_resident
 from snaplift.linalg._testmatrix import ROW_MAPS
-from snaplift.linalg._method_passes import randomized_compress, tsqr_compress
+from snaplift.stream._method_passes import randomized_compress, tsqr_compress
 from snaplift.linalg.randomized import LowRank
 from snaplift.linalg.sketch import SketchState, default_sketch_widths, finish_sketch, merge_sketches
-from snaplift.linalg.streaming import Checkpointer, InlineRunner, StreamState, ThreadRunner, TileRunner
+from snaplift.stream.loop import Checkpointer, InlineRunner, StreamState, ThreadRunner, TileRunner
 from snaplift.prepare import Preparation
 
 __all__ = ["CompressOptions", "Compression", "compress", "sketch_append", "default_in_flight"]
@@ -146,7 +146,7 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
     options
         Method and settings.
     runner
-        An entered :class:`~snaplift.linalg.streaming.ThreadRunner` or ``ClientRunner``
+        An entered :class:`~snaplift.stream.loop.ThreadRunner` or ``ClientRunner``
         (default: one thread).
     in_flight
         Tasks outstanding at once (default :func:`default_in_flight`).

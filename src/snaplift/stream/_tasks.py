@@ -18,7 +18,7 @@ from snaplift.archive._base import Reader
 from snaplift.archive.matrix import FieldRows, check_finite, read_fields_block, read_snapshot_block
 from snaplift.errors import ArchiveError
 from snaplift.linalg._kernels import adjoint_product, column_squares, field_column_squares, qr_factor, range_product
-from snaplift.linalg._slots import add_range_product
+from snaplift.stream._slots import add_range_product
 from snaplift.linalg._testmatrix import apply_corange, cached_row_map, gaussian_map, set_cache_limit
 
 __all__ = ["TileSource", "TileRef", "Preparing", "sketch_task", "product_task", "tsqr_task", "tsqr_leaf_task",
@@ -150,7 +150,7 @@ def _range(out: dict[str, Any], slot: Any, source: TileSource, tile: TileRef, a:
     """``slot`` is None (return the product) or ``(key, slot index, previous tile of the slot)``."""
     if slot is None:
         out["range"] = range_product(a, right)
-    else:  # summed in place, in a fixed order, in a slot (snaplift.linalg._slots)
+    else:  # summed in place, in a fixed order, in a slot (snaplift.stream._slots)
         key, index, after = slot
         add_range_product(key, "range", (source.n_rows, right.shape[1]), tile.id, tile.global_rows(source), a,
                           right, index, after)
