@@ -359,12 +359,12 @@ def forecast(
     from snaplift.results.forecast_output import FORECAST_CAUTION, forecast_dataset, write_forecast
 
     dataset = forecast_dataset(result, start, steps, compare=compare)
-    fields = [name for name in dataset.data_vars if "step" in dataset[name].dims and dataset[name].ndim > 1]
+    fields = [str(name) for name in dataset.data_vars if "step" in dataset[name].dims and dataset[name].ndim > 1]
     time = dataset["time"].values
     typer.echo(f"forecast of {', '.join(fields)} from snapshot {dataset.attrs['start_column']} "
                f"(time {time[0]:.6g}) for {steps} steps to time {time[-1]:.6g}")
     if compare:
-        errors = [name for name in dataset.data_vars if name.startswith("error_")]
+        errors = [str(name) for name in dataset.data_vars if str(name).startswith("error_")]
         overlap = np.flatnonzero(dataset["archive_snapshot"].values >= 0)
         if overlap.size == 0:
             typer.echo("the forecast does not overlap the archive: nothing to compare")

@@ -148,14 +148,14 @@ def _numeric(dtype: np.dtype) -> bool:
     return np.dtype(dtype).kind in "biufc"
 
 
-def _field_candidates(candidates: Sequence[Candidate], fields: Sequence[str], time: str | None) -> list[str]:
+def _field_candidates(candidates: Sequence[Candidate], fields: Sequence[str] | None, time: str | None) -> list[str]:
     """Names that could be fields, for the message of a field not found: numeric arrays of
     2 or more dimensions whose leading length is the snapshot count (that of the named
     fields that exist, else of the time, else the most common), not weights or masks."""
     by_name = {c.name: c for c in candidates}
     multi = [c for c in candidates if len(c.shape) >= 2 and _numeric(c.dtype) and c.dtype.kind != "b"
              and not c.is_dimension_scale]
-    found = [by_name[n] for n in fields if n in by_name and by_name[n].shape]
+    found = [by_name[n] for n in fields or () if n in by_name and by_name[n].shape]
     if found:
         count: int | None = found[0].shape[0]
     elif time in by_name and len(by_name[time].shape) == 1:

@@ -438,7 +438,7 @@ def scan_archive(
     unit = None
     spacing = None
     if times is not None:
-        variable = info.variables.get(source) if source != "step" else None
+        variable = info.variables.get(source) if source not in (None, "step") else None
         if variable is not None:
             unit = variable.attrs.get("time_unit") or variable.attrs.get("units")
             stored = np.dtype(variable.attrs.get("stored_dtype", variable.dtype))

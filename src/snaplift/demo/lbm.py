@@ -45,6 +45,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+import numpy.typing as npt
 from numpy.typing import NDArray
 
 from snaplift.errors import ConfigError
@@ -398,7 +399,7 @@ class LatticeFlow:
         inlet_scalar: float = 0.0,
         magic: float | None = None,
         force: tuple[float, float] = (0.0, 0.0),
-        dtype: type = np.float64,
+        dtype: npt.DTypeLike = np.float64,
     ) -> None:
         solid = np.asarray(solid, dtype=bool)
         if solid.ndim != 2:
@@ -510,6 +511,7 @@ class LatticeFlow:
 
         if self.g is not None:
             g, g_next = self.g, self._g_next
+            assert self.tau_scalar is not None  # set together with self.g
             g_post, _ = collide_scalar(g, ux, uy, self.tau_scalar, out=self._g_post)
             stream(g_post, g_next, _plan=self._plan5)
             dst, src = self._scalar_bounce

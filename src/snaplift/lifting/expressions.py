@@ -257,8 +257,8 @@ class _Context:
                 head = head.left
             converted = [self.convert(head, depth + 1)]
             for negative, term in reversed(terms):
-                value = self.convert(term, depth + 1)
-                converted.append(_Apply("neg", (value,)) if negative else value)
+                operand = self.convert(term, depth + 1)
+                converted.append(_Apply("neg", (operand,)) if negative else operand)
             return _Apply("sum", tuple(converted))
         if isinstance(node, ast.BinOp):
             kind = type(node.op)

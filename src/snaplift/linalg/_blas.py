@@ -12,7 +12,7 @@ from __future__ import annotations
 import contextlib
 import ctypes
 import threading
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 
 __all__ = ["blas_threads"]
 
@@ -22,11 +22,11 @@ _GET = ("scipy_openblas_get_num_threads64_", "scipy_openblas_get_num_threads", "
         "openblas_get_num_threads")
 _lock = threading.Lock()
 _depth = 0
-_saved: list[tuple[object, int]] = []
+_saved: list[tuple[Callable[[int], object], int]] = []
 
 
-def _libraries() -> list[tuple[object, object]]:
-    found = []
+def _libraries() -> list[tuple[Callable[[int], object], Callable[[], int]]]:
+    found: list[tuple[Callable[[int], object], Callable[[], int]]] = []
     try:
         with open("/proc/self/maps") as maps:
             paths = sorted({line.split()[-1] for line in maps if "openblas" in line and line.split()[-1].startswith("/")})

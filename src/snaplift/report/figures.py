@@ -10,6 +10,7 @@ magnitudes. Trusted eigenvalues are filled blue discs, untrusted ones amber tria
 from __future__ import annotations
 
 import textwrap
+from collections.abc import Callable
 
 from dataclasses import dataclass
 
@@ -199,10 +200,11 @@ def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, divergin
     finite = values[np.isfinite(values)]
     if diverging:
         reach = float(np.max(np.abs(finite))) if finite.size else 1.0
-        limits = {"vmin": -reach or -1.0, "vmax": reach or 1.0, "cmap": DIVERGING}
+        top = reach or 1.0
+        limits = {"vmin": -top, "vmax": top, "cmap": DIVERGING}
     else:
-        limits = {"vmin": 0.0, "vmax": float(finite.max()) if finite.size and finite.max() > 0 else 1.0,
-                  "cmap": SEQUENTIAL}
+        top = float(finite.max()) if finite.size and finite.max() > 0 else 1.0
+        limits = {"vmin": 0.0, "vmax": top, "cmap": SEQUENTIAL}
     ax.set_title(title, loc="left", fontsize=9)
     if len(axes) == 1:
         # magnitude in a third colour: amber means "untrusted" everywhere else on the page
@@ -212,7 +214,7 @@ def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, divergin
         ax.set_ylabel(label("value", units), fontsize=8)
         ax.ticklabel_format(axis="y", useOffset=False)
         if not diverging:  # a magnitude: from zero, so a flat one reads as flat
-            ax.set_ylim(0.0, limits["vmax"] * 1.1)
+            ax.set_ylim(0.0, top * 1.1)
         elif finite.size and np.ptp(finite) <= 1e-6 * max(float(np.max(np.abs(finite))), 1e-300):
             # a flat line (a mean mode): round-off would otherwise fill the axis with 300.0000000002
             centre = float(np.mean(finite))
@@ -283,7 +285,7 @@ def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
     elif three:
         height = 4.2
     figure = _figure(15 if three else 12, height * len(modes) + 0.5)
-    bands = np.atleast_1d(figure.subfigures(len(modes), 1))
+    bands = np.atleast_1d(np.asarray(figure.subfigures(len(modes), 1), dtype=object))
     data = view.modes[field]
     for band, k in zip(bands, modes):
         values = np.asarray(data.isel(mode=k).values) * amplitude[k]
@@ -292,8 +294,9 @@ def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
                       f"{growth[k]:.3g} {view.growth_unit}  |  {state}", x=0.01, ha="left", fontsize=10,
                       color=PALETTE[state])
         grid = band.subplots(2, 3, squeeze=False) if three else band.subplots(1, 2, squeeze=False)
-        for part, (part_name, transform, diverging) in enumerate((("real part", np.real, True),
-                                                                   ("magnitude", np.abs, False))):
+        views: tuple[tuple[str, Callable[[np.ndarray], np.ndarray], bool], ...] = (
+            ("real part", np.real, True), ("magnitude", np.abs, False))
+        for part, (part_name, transform, diverging) in enumerate(views):
             for p, (where, plane, plane_axes) in enumerate(_planes(transform(values), axes)):
                 ax = grid[part, p] if three else grid[0, part]
                 _panel(ax, band, plane, plane_axes, diverging=diverging, units=units,

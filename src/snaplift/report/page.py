@@ -129,7 +129,7 @@ def _probes(view: StoreView, fields: list[str]) -> tuple[list[Probe], str, int]:
     coefficient = np.asarray(view.basis["coefficient"].values)[:, columns] if view.basis is not None else None
     for field, point in points.items():
         projection = np.full(length, np.nan)
-        if coefficient is not None and field in view.basis:
+        if coefficient is not None and view.basis is not None and field in view.basis:
             row = np.asarray(view.basis[field].values).reshape(view.basis[field].shape[0], -1)[:, point]
             projection = np.real(row @ coefficient)
             mean_key = f"mean_{field}"

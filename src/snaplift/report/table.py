@@ -9,7 +9,7 @@ from typing import Any
 
 import numpy as np
 
-from snaplift.results.store import open_result, read_group
+from snaplift.results.store import open_result, read_group, store_group
 
 __all__ = ["load_spectrum", "spectrum_records", "render_spectrum", "spectrum_json", "spectrum_units", "delay_hint"]
 
@@ -32,7 +32,7 @@ def spectrum_units(path: str | Path) -> dict[str, str]:
     units = {"frequency": str(attrs.get("frequency_unit", "1/(time unit)")),
              "growth": str(attrs.get("growth_unit", "1/(time unit)")),
              "period": str(attrs.get("period_unit", "(time unit)"))}
-    for name, array in root["spectrum"].arrays():
+    for name, array in store_group(root, "spectrum").arrays():
         if name.startswith("peak_"):
             # a field the archive gave no unit: its peak has none either (not "1")
             units[name] = str(array.attrs.get("units", "unit unknown"))

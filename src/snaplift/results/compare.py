@@ -49,7 +49,8 @@ def _rates(view: StoreView) -> np.ndarray:
         if units_of(view.spectrum["rate"]) == "1/s":  # stored in 1/s already (a store with time units)
             return rate
     else:
-        rate = np.log(np.asarray(view.spectrum["eigenvalue"].values, dtype=np.complex128)) / view.dt
+        rate = np.asarray(np.log(np.asarray(view.spectrum["eigenvalue"].values, dtype=np.complex128)) / view.dt,
+                          dtype=np.complex128)
     # per archive time unit: dt and the stored rates of older stores are in the archive's unit
     return rate / float(seconds) if seconds else rate
 
@@ -110,7 +111,7 @@ def compare_stores(first: str | Path, second: str | Path, *, tolerance: float = 
         used_a.add(i)
         used_b.add(j)
         record_a, record_b = _mode_record(a, i), _mode_record(b, j)
-        mac = {}
+        mac: dict[str, float | None] = {}
         for field in fields:
             if same_grid[field]:
                 mac[field] = modal_assurance(a.modes[field].values[i], b.modes[field].values[j], _weights(a, field))

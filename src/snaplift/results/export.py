@@ -183,8 +183,8 @@ def export_xdmf(store: str | Path, out: str | Path | None = None, *, leading: in
         os.replace(heavy_tmp, heavy)
         os.replace(xdmf_tmp, xdmf)
     finally:
-        for path in (heavy_tmp, xdmf_tmp):
-            path.unlink(missing_ok=True)
+        for leftover in (heavy_tmp, xdmf_tmp):
+            leftover.unlink(missing_ok=True)
     return xdmf, heavy
 
 
@@ -218,17 +218,17 @@ def export_netcdf(store: str | Path, out: str | Path | None = None) -> Path:
     variables: dict[str, xr.DataArray] = {}
     coords: dict[str, xr.Variable] = {}
     for group, dataset in (("modes", view.modes), ("spectrum", view.spectrum), ("diagnostics", view.diagnostics)):
-        names = view.fields if group == "modes" else list(dataset.data_vars)
+        names = view.fields if group == "modes" else [str(n) for n in dataset.data_vars]
         for name in names:
             for key, value in _split(name, dataset[name]).items():
                 if key in variables:
                     key = f"{group}_{key}"
                 variables[key] = value
-        for name, coordinate in dataset.coords.items():
-            if name not in coords and not np.iscomplexobj(coordinate.values):
-                coords[name] = coordinate.variable.to_base_variable()
+        for coordinate_name, coordinate in dataset.coords.items():
+            if str(coordinate_name) not in coords and not np.iscomplexobj(coordinate.values):
+                coords[str(coordinate_name)] = coordinate.variable.to_base_variable()
     if view.prepare is not None:
-        for name in view.prepare.data_vars:
+        for name in map(str, view.prepare.data_vars):
             if name.startswith(("mean_", "fixed_point_")):
                 variables.update(_split(name, view.prepare[name]))
     # a per-mode coordinate of modes/ (frequency) is the spectrum's variable of the same name

@@ -27,7 +27,7 @@ import scipy.linalg
 
 from snaplift import __version__
 from snaplift.errors import ResultStoreError
-from snaplift.results.store import open_result
+from snaplift.results.store import open_result, store_array, store_group
 
 __all__ = ["forecast_fields", "is_complex_data"]
 
@@ -74,9 +74,9 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
     for group in ("spectrum", "modes", "diagnostics"):
         if group not in root:
             raise ResultStoreError(f"result store {store} has no group '{group}'; it has no fit to forecast from")
-    eigenvalue = np.asarray(root["spectrum/eigenvalue"][...], dtype=np.complex128)
-    dt = float(root["spectrum"].attrs.get("dt", 1.0))
-    time = np.asarray(root["diagnostics/time"][...], dtype=np.float64)
+    eigenvalue = np.asarray(store_array(root, "spectrum/eigenvalue")[...], dtype=np.complex128)
+    dt = float(store_group(root, "spectrum").attrs.get("dt", 1.0))  # type: ignore[arg-type]
+    time = np.asarray(store_array(root, "diagnostics/time")[...], dtype=np.float64)
     if isinstance(snapshot, bool) or not isinstance(snapshot, (int, np.integer)) or not -time.size <= snapshot < time.size:
         raise ResultStoreError(f"snapshot must be a column index in -{time.size}..{time.size - 1}; got {snapshot!r}")
     if isinstance(n_steps, bool) or not isinstance(n_steps, (int, np.integer)) or n_steps < 0:
@@ -94,10 +94,10 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
     complex_data = is_complex_data(root)
     out: dict[str, np.ndarray] = {"time": time[column] + after}
     for name in names:
-        if name not in root["modes"]:
+        if name not in store_group(root, "modes"):
             raise ResultStoreError(f"result store {store} has no modes of field '{name}'; "
                                    f"fields: {', '.join(_mode_fields(root))}")
-        modes = np.asarray(root[f"modes/{name}"][...])  # (mode, *grid)
+        modes = np.asarray(store_array(root, f"modes/{name}")[...])  # (mode, *grid)
         offset = _offset(root, name)
         if points is not None and name in points:
             chosen = np.asarray(points[name], dtype=np.int64)

@@ -108,8 +108,8 @@ def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare:
         template = view.modes[name]
         attrs = {k: v for k, v in template.attrs.items() if k in ("units", "long_name", "standard_name")}
         variables[name] = xr.DataArray(field, dims=("step", *template.dims[1:]), attrs=attrs)
-    coords: dict[str, xr.DataArray] = {}
-    for dim in {d for v in variables.values() for d in v.dims[1:]}:
+    coords: dict[str, xr.Variable | xr.DataArray] = {}
+    for dim in {str(d) for v in variables.values() for d in v.dims[1:]}:
         if dim in view.modes.coords:
             coords[dim] = view.modes.coords[dim].variable.to_base_variable()
     time_attrs = {"long_name": "time"}
@@ -169,8 +169,8 @@ def _compare(dataset: xr.Dataset, view: StoreView, column: int, n_steps: int) ->
         # relative to the archive's RMS norm over the compared steps, not to each step's own
         # norm: a standing wave passes through zero, and a ratio to ~0 would read as 1e13
         scale = np.sqrt(np.nanmean(reference)) if overlap.size else np.nan
-        error = difference / scale if scale > 0 else difference
-        dataset[f"error_{name}"] = xr.DataArray(error, dims=("step",), attrs={
+        relative = difference / scale if scale > 0 else difference
+        dataset[f"error_{name}"] = xr.DataArray(relative, dims=("step",), attrs={
             "long_name": f"error of {name} against the archive relative to the archive's RMS norm over the "
                          "compared steps (weighted norm over the grid)", "units": "1"})
 

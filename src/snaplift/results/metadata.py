@@ -16,7 +16,7 @@ non-dimension coordinates are named in a ``coordinates`` attribute (CF section 5
 
 from __future__ import annotations
 
-from collections.abc import Hashable
+from collections.abc import Hashable, Mapping
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -29,7 +29,7 @@ SNAPSHOT_GROUPS = ("basis", "diagnostics", "eigenfunctions")
 
 
 def grid_dimensions(grids: dict[str, tuple[int, ...]],
-                    keys: dict[str, Hashable] | None = None) -> dict[str, tuple[str, ...]]:
+                    keys: Mapping[str, Hashable] | None = None) -> dict[str, tuple[str, ...]]:
     """Dimension names for each field's grid; fields on one grid share names.
 
     One common grid gets ``x`` / ``y, x`` / ``z, y, x``; fields on different (staggered)

@@ -24,7 +24,7 @@ import xarray as xr
 import zarr
 
 from snaplift.errors import ResultStoreError
-from snaplift.results.store import open_result
+from snaplift.results.store import open_result, store_group
 
 __all__ = ["Axis", "StoreView", "field_axes", "label", "leading_modes", "open_group", "open_store", "units_of"]
 
@@ -49,13 +49,13 @@ def open_group(path: str | Path, group: str) -> xr.Dataset:
                                    decode_timedelta=False, chunks=None)
         return dataset.load()
     except Exception:  # a complex or otherwise undecodable array: build the group by hand
-        return _from_zarr(root[group])
+        return _from_zarr(store_group(root, group))
 
 
 def _from_zarr(node: zarr.Group) -> xr.Dataset:
     variables: dict[str, xr.Variable] = {}
     for name, array in node.arrays():
-        dims = tuple(array.metadata.dimension_names or (f"{name}_{i}" for i in range(array.ndim)))
+        dims = tuple(getattr(array.metadata, "dimension_names", None) or (f"{name}_{i}" for i in range(array.ndim)))
         attrs = {k: v for k, v in dict(array.attrs).items() if k != "_FillValue"}
         variables[name] = xr.Variable(dims, np.asarray(array[...]), attrs)
     # CF: dimension coordinates, and the names a variable lists in its ``coordinates``
@@ -104,10 +104,10 @@ def field_axes(dataset: xr.Dataset, name: str, *, skip: tuple[str, ...] = ("mode
         size = int(variable.sizes[dim])
         if dim in dataset.coords and dataset.coords[dim].ndim == 1 and dataset.coords[dim].size == size:
             coordinate = dataset.coords[dim]
-            axes.append(Axis(dim, np.asarray(coordinate.values, dtype=np.float64), units_of(coordinate),
+            axes.append(Axis(str(dim), np.asarray(coordinate.values, dtype=np.float64), units_of(coordinate),
                              str(coordinate.attrs.get("long_name") or dim), False))
         else:
-            axes.append(Axis(dim, np.arange(size, dtype=np.float64), "", dim, True))
+            axes.append(Axis(str(dim), np.arange(size, dtype=np.float64), "", str(dim), True))
     return axes
 
 
@@ -127,7 +127,7 @@ class StoreView:
     @property
     def fields(self) -> list[str]:
         # (mode, *grid) arrays; a per-mode array such as a frequency stored beside them is not a field
-        return [name for name in self.modes.data_vars
+        return [str(name) for name in self.modes.data_vars
                 if self.modes[name].dims[:1] == ("mode",) and self.modes[name].ndim >= 2]
 
     @property

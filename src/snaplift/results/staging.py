@@ -212,7 +212,7 @@ class StagedStore:
                     f"{self.area} exists and was not made by snaplift (no {MARKER} marker); snaplift keeps its "
                     "unfinished work there: move or rename it, or choose another output.path"
                 )
-            if known.get("identity") != self.identity or not self.store_path.exists():
+            if not isinstance(known, dict) or known.get("identity") != self.identity or not self.store_path.exists():
                 self.discarded = f"discarded an unfinished staging area of another workflow ({self.area})"
                 shutil.rmtree(self.area)
             elif self.overwrite:

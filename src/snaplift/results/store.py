@@ -116,7 +116,7 @@ class StoreWriter:
         """Write the coordinate of each dimension of ``group/name`` into ``group`` once."""
         if not group:
             return
-        node = self.root[group]
+        node = store_group(self.root, group)
         for dimension in dimensions:
             target = "time" if dimension == "snapshot" else dimension
             if target == name or target in node:
@@ -215,10 +215,26 @@ def open_result(path: str | Path) -> zarr.Group:
     return root
 
 
+def store_group(root: zarr.Group, name: str) -> zarr.Group:
+    """``root[name]`` as a group, or one line saying the store has an array there instead."""
+    node = root[name]
+    if not isinstance(node, zarr.Group):
+        raise ResultStoreError(f"result store {root.store}: '{name}' is an array, expected a group")
+    return node
+
+
+def store_array(root: zarr.Group, name: str) -> zarr.Array:
+    """``root[name]`` as an array, or one line saying the store has a group there instead."""
+    node = root[name]
+    if not isinstance(node, zarr.Array):
+        raise ResultStoreError(f"result store {root.store}: '{name}' is a group, expected an array")
+    return node
+
+
 def read_group(path: str | Path, group: str) -> dict[str, np.ndarray]:
     """All arrays of one group of a complete store, in memory."""
     root = open_result(path)
     if group not in root:
         raise ResultStoreError(f"result store {path} has no group '{group}'; groups: {', '.join(sorted(root.group_keys()))}")
-    node = root[group]
+    node = store_group(root, group)
     return {name: np.asarray(array[...]) for name, array in node.arrays()}

@@ -223,8 +223,9 @@ def field_lift(entries: list[Any]) -> Any:
 def state_dictionary(entries: list[Any], variables: list[str]) -> Any:
     """The :class:`~snaplift.lifting.Dictionary` of the state entries over ``variables``."""
     from snaplift.lifting import Dictionary, expressions, fourier, identity, monomials, rbf
+    from snaplift.lifting._base import DictionaryPart
 
-    parts = []
+    parts: list[DictionaryPart] = []
     for _, entry in state_entries(entries):
         if isinstance(entry, MonomialsEntry):
             parts.append(monomials(entry.degree))

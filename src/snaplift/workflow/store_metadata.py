@@ -83,9 +83,9 @@ def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarr
         field_names[name] = base if name == source else f"{base} ({name})"
     extra = {}
     for key, dataset in _weights(section, [n for n, _, _ in lifted], [s for _, s, _ in lifted]).items():
-        variable = info.variables.get(dataset)
-        if variable is not None and variable.attrs.get("units"):
-            extra[key] = str(variable.attrs["units"])
+        weights_info = info.variables.get(dataset)
+        if weights_info is not None and weights_info.attrs.get("units"):
+            extra[key] = str(weights_info.attrs["units"])
     return StoreMetadata(field_units=field_units, field_names=field_names, dims=dims, coordinates=coordinates,
                          time=np.asarray(time), time_attrs=_time_attrs(section, info, time_unit),
                          time_unit=None if time_unit is None else time_unit.name,
