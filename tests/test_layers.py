@@ -34,7 +34,8 @@ LAYERS: tuple[tuple[tuple[str, ...], ...], ...] = (
     # archive (readers, planner, snapshot matrix), prepare, lifting, linalg kernels, fitting
     (("snaplift.archive",), ("snaplift.prepare",), ("snaplift.lifting",), ("snaplift.linalg",),
      ("snaplift.fitting",)),
-    (("snaplift.units",), ("snaplift._process_memory",)),
+    # units; the compress methods' registry (names, widths, passes, memory terms: plain arithmetic)
+    (("snaplift.units",), ("snaplift._process_memory",), ("snaplift.compress_methods",)),
     (("snaplift.errors",), ("snaplift.__init__",)),
 )
 
