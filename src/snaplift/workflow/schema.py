@@ -12,11 +12,12 @@ import hashlib
 import json
 import re
 from pathlib import Path
-from typing import Annotated, Any, Literal
+from typing import TYPE_CHECKING, Annotated, Any, Literal
 
 import yaml
 from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_validator, model_validator
 
+from snaplift.compress_methods import METHOD_NAMES
 from snaplift.errors import ConfigError
 from snaplift.units import parse_bytes, parse_duration, parse_every, parse_walltime
 from snaplift.workflow._text import MAX_MESSAGE, MAX_WORKFLOW_BYTES, safe_load, shown, shorten
@@ -35,6 +36,12 @@ __all__ = [
     "parse_workflow",
     "section_fingerprint",
 ]
+
+if TYPE_CHECKING:
+    CompressMethodName = str
+else:
+    #: ``compress.method``: a name of the registry (``Literal["randomized", "sketch", "tsqr"]``)
+    CompressMethodName = Literal[METHOD_NAMES]
 
 
 class _Section(BaseModel):
@@ -134,7 +141,8 @@ class CompressSection(_Section):
     (:data:`snaplift.archive.plan.IN_MEMORY_LIMIT`), ``never`` always streams tiles.
     """
 
-    method: Literal["randomized", "sketch", "tsqr"] = "randomized"
+    #: the choices come from the registry (:data:`snaplift.compress_methods.METHODS`)
+    method: CompressMethodName = "randomized"
     rank: int = Field(40, ge=1)
     oversample: int = Field(10, ge=0)
     power_iterations: int = Field(1, ge=0)
