@@ -157,7 +157,7 @@ def run(
         import os
 
         from snaplift.workflow.guards import check_output_path
-        from snaplift.workflow.stages import check_workflow
+        from snaplift.workflow.scanning import check_workflow
 
         wf, _, folder = load_workflow(workflow)
         output = os.path.abspath(resolve_path(folder, wf.output.path))

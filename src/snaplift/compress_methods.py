@@ -26,7 +26,6 @@ References
 from __future__ import annotations
 
 from collections.abc import Mapping
-from dataclasses import dataclass
 from typing import Protocol
 
 from snaplift.errors import ArchiveError, ConfigError
@@ -87,13 +86,12 @@ class CompressMethod(Protocol):
     def cache_bytes(self, *, n: int, widths: tuple[int, int], itemsize: int, corange_map: str) -> int: ...
 
 
-@dataclass(frozen=True)
 class _Sketch:
     """Single-pass sketch (Tropp et al. 2017/2019): range ``X Omega`` and co-range ``Psi X`` in one read."""
 
-    name: str = "sketch"
-    summary: str = "one read (+1 with check_pass), estimates (Tropp et al. 2017/2019)"
-    whole_columns: bool = False
+    name = "sketch"
+    summary = "one read (+1 with check_pass), estimates (Tropp et al. 2017/2019)"
+    whole_columns = False
 
     def widths(self, rank: int, *, oversample: int = 10, sketch_widths: tuple[int, int] | None = None,
                n: int | None = None, m: int | None = None) -> tuple[int, int]:
@@ -118,13 +116,12 @@ class _Sketch:
         return row_map_bytes(corange_map, n, widths[1], itemsize)
 
 
-@dataclass(frozen=True)
 class _Randomized:
     """Randomized SVD with QR-stabilised power iterations (Halko et al. 2011): ``2 + 2q`` reads."""
 
-    name: str = "randomized"
-    summary: str = "2 + 2 power_iterations reads, exact coefficients (Halko et al. 2011)"
-    whole_columns: bool = False
+    name = "randomized"
+    summary = "2 + 2 power_iterations reads, exact coefficients (Halko et al. 2011)"
+    whole_columns = False
 
     def widths(self, rank: int, *, oversample: int = 10, sketch_widths: tuple[int, int] | None = None,
                n: int | None = None, m: int | None = None) -> tuple[int, int]:
@@ -143,13 +140,12 @@ class _Randomized:
         return 0
 
 
-@dataclass(frozen=True)
 class _Tsqr:
     """TSQR of row blocks x all snapshots (Demmel et al. 2012): two reads, exact."""
 
-    name: str = "tsqr"
-    summary: str = "two reads, exact; tiles hold every snapshot (Demmel et al. 2012)"
-    whole_columns: bool = True
+    name = "tsqr"
+    summary = "two reads, exact; tiles hold every snapshot (Demmel et al. 2012)"
+    whole_columns = True
 
     def widths(self, rank: int, *, oversample: int = 10, sketch_widths: tuple[int, int] | None = None,
                n: int | None = None, m: int | None = None) -> tuple[int, int]:
