@@ -151,9 +151,9 @@ def test_registry_entry_is_complete(method: str) -> None:
     assert k == 0 or k >= RANK  # a range sketch narrower than the rank cannot hold the basis (common practice)
     assert described.widths(RANK, n=4, m=3)[0] <= 3  # clipped to the matrix
     assert described.passes(power_iterations=2) >= 1
-    terms = {"n": 1000, "m": 50, "fields": 1, "rank": RANK, "widths": (k, l), "itemsize": 8}
     cache = described.cache_bytes(n=1000, widths=(k, l), itemsize=8, corange_map="sparse")
-    assert described.driver_bytes(**terms, cache=cache) >= 8 * 1000 * RANK  # at least the basis (n x r)
+    driver = described.driver_bytes(n=1000, m=50, fields=1, rank=RANK, widths=(k, l), itemsize=8, cache=cache)
+    assert driver >= 8 * 1000 * RANK  # at least the basis (n x r)
 
 
 def test_rank_and_method_are_checked_once_with_one_error_each() -> None:
