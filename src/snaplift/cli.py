@@ -10,6 +10,8 @@ from typing import Annotated, Any, Callable, Optional
 import typer
 from typer.core import TyperGroup
 
+from snaplift.compress_methods import METHOD_NAMES, methods_help
+
 class _OneLineUsageErrors(TyperGroup):
     """Usage errors (a missing or extra argument, an unknown option) as one line on stderr,
     like every other user error, with the command's help named; exit status 2."""
@@ -155,7 +157,7 @@ def run(
         import os
 
         from snaplift.workflow.guards import check_output_path
-        from snaplift.workflow.stages import check_workflow
+        from snaplift.workflow.scanning import check_workflow
 
         wf, _, folder = load_workflow(workflow)
         output = os.path.abspath(resolve_path(folder, wf.output.path))
@@ -195,7 +197,7 @@ def scan(
     time: Annotated[Optional[str], typer.Option(help="dataset of snapshot times")] = None,
     step: Annotated[Optional[float], typer.Option(help="fixed time step if there is no time dataset")] = None,
     memory: Annotated[str, typer.Option(help="memory budget used to plan tiles")] = "2GiB",
-    method: Annotated[str, typer.Option(help="compress method the plan is for: sketch | randomized | tsqr")] = "randomized",
+    method: Annotated[str, typer.Option(help=f"compress method the plan is for ({methods_help()})")] = "randomized",
     rank: Annotated[int, typer.Option(help="compress rank the plan is for")] = 40,
     full: Annotated[bool, typer.Option("--full", help="also count NaN/Inf in every value")] = False,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
@@ -218,8 +220,8 @@ def scan(
         reader = open_archive(target, fields=chosen, time=time) if chosen else reader
     from snaplift.errors import ConfigError
 
-    if method not in ("sketch", "randomized", "tsqr"):
-        raise ConfigError(f"--method {method!r} is not a compress method; use sketch, randomized or tsqr")
+    if method not in METHOD_NAMES:
+        raise ConfigError(f"--method {method!r} is not a compress method; use {', '.join(METHOD_NAMES)}")
     if rank < 1:
         raise ConfigError(f"--rank must be >= 1; got {rank}")
     from snaplift.cluster import resident_memory
@@ -274,7 +276,7 @@ def bench(
     memory: Annotated[str, typer.Option(help="compress.memory budget of the tile plan")] = "2GiB",
     workers: Annotated[int, typer.Option(help="worker threads / processes")] = 2,
     folder: Annotated[Optional[Path], typer.Option(help="where to write the archive (default: a temporary folder)")] = None,
-    methods: Annotated[str, typer.Option(help="comma-separated: sketch, randomized, tsqr")] = "sketch,randomized",
+    methods: Annotated[str, typer.Option(help=f"comma-separated: {', '.join(METHOD_NAMES)}")] = "sketch,randomized",
     quick: Annotated[bool, typer.Option("--quick", help="skip zarr, worker processes and dask's svd_compressed")] = False,
     repeats: Annotated[int, typer.Option(help="runs of each compress case; the fastest is reported")] = 2,
     cold: Annotated[bool, typer.Option("--cold", help="drop the page cache before every timed read (Linux, root): "
@@ -299,9 +301,9 @@ def bench(
     except ValueError as error:
         raise ConfigError(f"--size/--memory: {error}") from None
     chosen = tuple(m.strip() for m in methods.split(",") if m.strip())
-    unknown = sorted(set(chosen) - {"sketch", "randomized", "tsqr"})
+    unknown = sorted(set(chosen) - set(METHOD_NAMES))
     if unknown or not chosen:
-        raise ConfigError(f"--methods {methods!r}: allowed are sketch, randomized, tsqr")
+        raise ConfigError(f"--methods {methods!r}: allowed are {', '.join(METHOD_NAMES)}")
     if repeats < 1:
         raise ConfigError(f"--repeats must be >= 1; got {repeats}")
     where = str(folder) if folder else "a temporary folder"

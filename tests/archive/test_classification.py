@@ -1,4 +1,4 @@
-"""Which stored arrays are fields: the rules in snaplift.archive._common.classify."""
+"""Which stored arrays are fields: the rules in snaplift.archive._common.split_fields_and_variables."""
 
 from __future__ import annotations
 

@@ -20,7 +20,7 @@ __all__ = [
     "read_block",
     "to_tile",
     "Candidate",
-    "classify",
+    "split_fields_and_variables",
     "natural_key",
     "missing_field_error",
 ]
@@ -167,7 +167,7 @@ def _field_candidates(candidates: Sequence[Candidate], fields: Sequence[str] | N
     return shown or sorted(c.name for c in candidates if len(c.shape) >= 2 and _numeric(c.dtype)) or sorted(by_name)
 
 
-def classify(
+def split_fields_and_variables(
     candidates: Sequence[Candidate],
     *,
     path: str,

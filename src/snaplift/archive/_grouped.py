@@ -25,7 +25,7 @@ from snaplift.archive._cf import (
 )
 from snaplift.archive._common import (
     Candidate,
-    classify,
+    split_fields_and_variables,
     grid_coordinate_names,
     missing_field_error,
     normalise_slice,
@@ -145,7 +145,7 @@ class GroupedReader(Reader):
     def _build_layout(self) -> Layout:
         root = self._root()
         candidates = self._candidates(root)
-        chosen, others, time_name = classify(
+        chosen, others, time_name = split_fields_and_variables(
             candidates, path=self.path, fields=self.fields, time=self.time
         )
         fields: dict[str, Entry] = {}

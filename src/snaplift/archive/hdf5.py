@@ -1,7 +1,7 @@
 """HDF5 files, including netCDF-4 files (which are HDF5 files with CF attributes).
 
 Fields are datasets stored snapshot axis first; nested groups give ``"group/name"``.
-Which datasets are fields follows :func:`snaplift.archive._common.classify`: the
+Which datasets are fields follows :func:`snaplift.archive._common.split_fields_and_variables`: the
 snapshot count comes from a time variable (CF ``axis="T"``, ``standard_name="time"``,
 ``units="... since ..."``, or a dataset named ``t``/``time``), else from the most
 common leading length of the datasets with 2 or more dimensions. netCDF dimension

@@ -1,6 +1,6 @@
 """zarr v2 and v3 stores (a group of arrays, or a single array), opened read-only.
 
-Fields and variables follow the same rule as HDF5 (:func:`snaplift.archive._common.classify`)
+Fields and variables follow the same rule as HDF5 (:func:`snaplift.archive._common.split_fields_and_variables`)
 and the same CF decoding when the attrs carry it (xarray writes ``scale_factor``,
 ``add_offset`` and ``_FillValue`` as attrs). The array's own zarr ``fill_value`` only
 names the value of unwritten chunks and is not treated as missing data.

@@ -20,6 +20,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from snaplift.compress_methods import check_rank
 from snaplift.linalg._kernels import normalize_signs
 from snaplift.linalg._testmatrix import gaussian_map
 
@@ -139,8 +140,7 @@ def randomized_svd(
     persist = persist or dask.persist
     n, m = matrix.shape
     width = min(rank + oversample, n, m)
-    if rank > min(n, m):
-        raise ValueError(f"rank {rank} exceeds the matrix size {n} x {m}")
+    check_rank(rank, n, m)
     complex_valued = np.issubdtype(matrix.dtype, np.complexfloating)
     column_chunks = matrix.chunks[1]
     passes = 0

@@ -18,6 +18,7 @@ from typing import Any
 import numpy as np
 
 from snaplift.archive.matrix import SnapshotMatrix
+from snaplift.compress_methods import check_rank
 from snaplift.linalg._kernels import normalize_signs, reduce_r_factors
 from snaplift.stream._passes import _zeros, preparing_of, product_read, sketch_read
 from snaplift.stream._tasks import tsqr_leaf_task, tsqr_task
@@ -43,8 +44,7 @@ def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, r
     Returns ``(Preparation, LowRank)``; the basis is in memory (n x rank).
     """
     n, m = matrix.shape
-    if rank > min(n, m):
-        raise ValueError(f"rank {rank} exceeds the matrix size {n} x {m}")
+    check_rank(rank, n, m)
     width = min(rank + oversample, n, m)
     complex_valued = np.issubdtype(matrix.dtype, np.complexfloating)
     if state.pass_number == 0:

@@ -32,6 +32,7 @@ import numpy as np
 
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.archive.plan import TilePlan, row_map_bytes
+from snaplift.compress_methods import check_rank, get_method
 from snaplift.errors import ArchiveError
 from snaplift.stream._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
 from snaplift.linalg._blas import blas_threads
@@ -40,7 +41,7 @@ from snaplift.stream._tasks import TileSource, release_resident
 from snaplift.linalg._testmatrix import ROW_MAPS
 from snaplift.stream._method_passes import randomized_compress, tsqr_compress
 from snaplift.linalg.randomized import LowRank
-from snaplift.linalg.sketch import SketchState, default_sketch_widths, finish_sketch, merge_sketches
+from snaplift.linalg.sketch import SketchState, finish_sketch, merge_sketches
 from snaplift.stream.loop import Checkpointer, InlineRunner, StreamState, ThreadRunner, TileRunner
 from snaplift.prepare import Preparation
 
@@ -64,15 +65,9 @@ class CompressOptions:
     corange_map: str = "sparse"
 
     def widths(self, n: int, m: int) -> tuple[int, int]:
-        """Sketch widths ``(k, l)`` of the first read for this method."""
-        if self.method == "sketch":
-            if self.sketch_widths is not None:
-                k, l = (int(w) for w in self.sketch_widths)
-                return min(k, n, m), min(max(l, k), n)
-            return default_sketch_widths(self.rank, n, m)
-        if self.method == "randomized":
-            return min(self.rank + self.oversample, n, m), 0
-        return 0, 0
+        """Sketch widths ``(k, l)`` of the first read for this method (:mod:`snaplift.compress_methods`)."""
+        return get_method(self.method).widths(self.rank, oversample=self.oversample,
+                                              sketch_widths=self.sketch_widths, n=n, m=m)
 
 
 @dataclass(frozen=True)
@@ -115,7 +110,7 @@ def _job_key(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
 
 def _columns(matrix: SnapshotMatrix, plan: TilePlan | None, method: str) -> list[tuple[int, int]]:
     m = matrix.shape[1]
-    if method == "tsqr":
+    if get_method(method).whole_columns:
         return [(0, m)]
     return list(matrix.blocks)
 
@@ -174,10 +169,8 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
                             checkpoint_every=checkpoint_every, progress=progress)
     n, m = matrix.shape
     rank = int(options.rank)
-    if rank > min(n, m):
-        raise ArchiveError(f"compress.rank = {rank} exceeds what the data allow (min of {n} points and {m} snapshots)")
-    if options.method not in ("sketch", "randomized", "tsqr"):
-        raise ArchiveError(f"compress.method {options.method!r} is not one of sketch, randomized, tsqr")
+    check_rank(rank, n, m)
+    get_method(options.method)
     row_blocks = kept_row_blocks(matrix, plan.point_blocks if plan is not None else None)
     jobs = build_jobs(matrix, row_blocks, [(0, m)] if in_memory else _columns(matrix, plan, options.method),
                       whole=in_memory)

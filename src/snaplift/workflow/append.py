@@ -21,10 +21,11 @@ import numpy as np
 
 from snaplift.archive.matrix import build_snapshot_matrix
 from snaplift.cluster import Scheduler
+from snaplift.results.stages import Compressed
+from snaplift.workflow.scanning import Scanned
 from snaplift.workflow.schema import Workflow
-from snaplift.workflow.stages import Compressed, Scanned
 
-__all__ = ["can_append", "append_compress"]
+__all__ = ["append_compress", "can_append"]
 
 
 def can_append(workflow: Workflow, old_index: np.ndarray | None, new_index: np.ndarray,
@@ -57,9 +58,9 @@ def append_compress(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, 
     >>> result.info["appended_snapshots"]                                           # doctest: +SKIP
     120
     """
+    from snaplift.linalg.sketch import finish_sketch
     from snaplift.stream._passes import kept_row_blocks
     from snaplift.stream.compress import sketch_append
-    from snaplift.linalg.sketch import finish_sketch
     from snaplift.stream.loop import runner_for
 
     section = workflow.archive

@@ -1,563 +1,446 @@
-"""The stages of a workflow as functions of plain values.
+"""The stages of a workflow: one protocol, one object per stage, one typed result each.
 
-``scan`` -> ``compress`` -> ``fit`` -> ``modes``; each takes the validated settings and
-the previous stage's result and returns a frozen record. None of them writes: the runner
-(:mod:`snaplift.workflow.runner`) owns the scheduler and the result store.
+A stage (:class:`Stage`) has a ``name``, a ``fingerprint`` (the hash of its settings and
+its inputs' fingerprints, :func:`snaplift.workflow.fingerprint.stage_fingerprints`),
+``run`` (compute from the results of the stages before it), ``write`` (what it leaves in
+the staging store; returns the details of its completion record) and ``load`` (its result
+again from a kept or reused completion record). The runner (:mod:`snaplift.workflow.runner`)
+loops over :data:`STAGES`:
+
+======== ============================= ===================================================
+stage    result                        reused when
+======== ============================= ===================================================
+scan     :class:`ScanResult`           never (it classifies the archive: decides the rest)
+compress :class:`~snaplift.results.stages.Compressed`  same fingerprint (read back: the same type)
+fit      :class:`Fitted`               fit and modes both have their fingerprints
+modes    :class:`Fitted` (unchanged)   the fit was reused
+report   summary ``dict``              never (a few numbers read from the store)
+======== ============================= ===================================================
+
+Every result that later stages use comes from the staging store, so a computed, kept or
+reused compress gives fit and modes the very same numbers.
 """
 
 from __future__ import annotations
 
+import datetime as _dt
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any
+from typing import Any, Generic, Protocol, TypeVar
 
 import numpy as np
 
-from snaplift.archive import (
-    Reader,
-    check_times,
-    open_archive,
-    plan_tiles,
-    run_lengths_from_labels,
-    selected_run_lengths,
-    snapshot_times,
+from snaplift._process_memory import trim_heap
+from snaplift.cluster import Scheduler
+from snaplift.results import store as result_store
+from snaplift.results.fit_output import modes_bytes, write_fit, write_fit_details, write_modes
+from snaplift.results.stages import Compressed, write_compressed, write_scan
+from snaplift.results.staging import StagedStore, check_free_space
+from snaplift.units import format_bytes
+from snaplift.workflow.compute import compress_stage, fit_stage, load_compressed_result, try_append
+from snaplift.workflow.fingerprint import (
+    Classification,
+    archive_fingerprint,
+    classify_archive,
+    stage_fingerprints,
+    verification_note,
 )
-from snaplift.archive._base import ArchiveInfo
-from snaplift.archive._cf import SECONDS_PER_UNIT, TimeUnit, canonical_time_unit, time_unit_of
-from snaplift.archive.matrix import SnapshotMatrix, build_snapshot_matrix
-from snaplift.archive.plan import IN_MEMORY_LIMIT, TilePlan
-from snaplift.cluster import Scheduler, resident_memory
-from snaplift.errors import ArchiveError, ConfigError, FieldNotFoundError, TimeSpacingError
-from snaplift.lifting import delayed_run_lengths
-from snaplift.linalg.randomized import LowRank
-from snaplift.prepare import Preparation
-from snaplift.workflow.fit_methods import FitOutcome, fit_outcome, state_variables
-from snaplift.units import parse_bytes
-from snaplift.workflow.schema import Workflow, resolve_path, scale_of
+from snaplift.workflow.fit_methods import FitOutcome
+from snaplift.workflow.planning import compress_memory
+from snaplift.workflow.progress import ProgressReporter
+from snaplift.workflow.scanning import Scanned, check_workflow, scan_stage
+from snaplift.workflow.schema import Workflow
 from snaplift.workflow.store_metadata import store_metadata
 
-__all__ = ["Scanned", "Compressed", "scan_stage", "check_workflow", "compress_stage", "fit_stage", "plan_compress",
-           "compress_memory", "TIME_RTOL"]
+__all__ = [
+    "STAGES",
+    "Compressed",
+    "Fitted",
+    "ScanResult",
+    "Scanned",
+    "Stage",
+    "StageContext",
+    "StageRecord",
+    "check_workflow",
+    "compress_stage",
+    "fit_stage",
+    "scan_stage",
+]
 
-#: relative tolerance on the spread of time steps before spacing counts as non-uniform
-#: (common practice: a 0.1 % jitter in dt shifts frequencies by about as much)
-TIME_RTOL = 1e-3
+Result = TypeVar("Result")
+
+
+def now() -> _dt.datetime:
+    return _dt.datetime.now(_dt.UTC)
 
 
 @dataclass(frozen=True)
-class Scanned:
-    """What scan hands on. ``snapshot_index``, ``time`` and ``run_lengths`` describe the
-    columns of the snapshot matrix (with delays: the windows, each carrying its first
-    snapshot); ``selected_index`` / ``selected_run_lengths`` the snapshots selected
-    before the delay windows are formed; ``uniform`` whether the time step is fixed."""
+class StageRecord:
+    """The completion record of a stage: the staging area's JSON and the store's provenance.
 
-    reader: Reader
-    snapshot_index: np.ndarray
-    time: np.ndarray
-    dt: float
-    snapshot_block: int
-    memory_bytes: int
+    ``status`` is ``computed``, ``appended`` (compress of a grown archive), ``kept`` (a
+    killed run of the same job finished it) or ``reused`` (from the previous complete
+    store); ``details`` holds the stage's own keys (times, method, warnings, the archive's
+    fingerprint...) and the staging area's ``arrays`` / ``group_attrs``.
+    """
+
+    stage: str
+    fingerprint: str
+    status: str
+    passes: int = 0
+    bytes_read: int = 0
+    details: Mapping[str, Any] = field(default_factory=dict)
+
+    def as_dict(self) -> dict[str, Any]:
+        return {"fingerprint": self.fingerprint, "status": self.status, "passes": self.passes,
+                "bytes_read": self.bytes_read, **self.details}
+
+    @classmethod
+    def from_dict(cls, stage: str, data: Mapping[str, Any]) -> StageRecord:
+        details = {k: v for k, v in data.items() if k not in ("fingerprint", "status", "passes", "bytes_read")}
+        return cls(stage, str(data.get("fingerprint", "")), str(data.get("status", "")), int(data.get("passes", 0)),
+                   int(data.get("bytes_read", 0)), details)
+
+    def summary(self) -> dict[str, Any]:
+        """The record without the staging area's array lists (what :class:`RunSummary` shows)."""
+        return {k: v for k, v in self.as_dict().items() if k not in ("arrays", "group_attrs")}
+
+
+@dataclass(frozen=True)
+class ScanResult:
+    """What scan hands on: the scan, the archive's classification and every stage's fingerprint."""
+
+    scanned: Scanned
+    classification: Classification
+    archive: dict[str, Any]
+    fingerprints: dict[str, str]
+
+
+@dataclass(frozen=True)
+class Fitted:
+    """What fit hands on to modes and report. ``outcome`` and ``order`` (the spectrum's
+    sort order) are None when fit and modes were kept or reused: the fit is cheap and is
+    recomputed, never read back, whenever the modes must be written again."""
+
+    n_modes: int
     warnings: tuple[str, ...] = ()
-    plan: TilePlan | None = None
-    run_lengths: np.ndarray | None = None
-    selected_index: np.ndarray | None = None
-    selected_run_lengths: np.ndarray | None = None
-    uniform: bool = True
-    lifted_rows: int = 0
-    #: the archive's time unit (None: it declares none); frequencies are in Hz when it converts
-    time_unit: TimeUnit | None = None
+    outcome: FitOutcome | None = None
+    order: np.ndarray | None = None
+
+
+@dataclass
+class StageContext:
+    """What the stages of one run share: settings, scheduler, store, progress, and the
+    results of the stages that ran before (set by the runner as each one finishes)."""
+
+    workflow: Workflow
+    folder: Path
+    scheduler: Scheduler
+    store: StagedStore
+    reporter: ProgressReporter
+    checked: Scanned
+    warnings: list[str] = field(default_factory=list)
+    results: dict[str, Any] = field(default_factory=dict)
+    #: compress retries after losing a worker (the runner's policy, see runner._compress_with_retries)
+    compress: Callable[[StageContext, Path], Compressed] | None = None
 
     @property
-    def seconds_per_unit(self) -> float | None:
-        return None if self.time_unit is None else self.time_unit.seconds
+    def scan(self) -> ScanResult:
+        return self.results["scan"]
 
     @property
-    def fit_dt(self) -> float:
-        """The step the fit uses: in seconds when the time unit converts, else in the archive's unit."""
-        return self.dt * (self.seconds_per_unit or 1.0)
+    def scanned(self) -> Scanned:
+        return self.scan.scanned
 
     @property
-    def fit_time(self) -> np.ndarray:
-        """Column times in seconds when the time unit converts, else in the archive's unit."""
-        return np.asarray(self.time, dtype=np.float64) * (self.seconds_per_unit or 1.0)
+    def fingerprints(self) -> dict[str, str]:
+        return self.scan.fingerprints
 
     @property
-    def columns_run_lengths(self) -> np.ndarray:
-        return np.array([self.snapshot_index.size]) if self.run_lengths is None else self.run_lengths
+    def compressed(self) -> Compressed:
+        return self.results["compress"]
+
+    @property
+    def fitted(self) -> Fitted:
+        return self.results["fit"]
 
 
-@dataclass(frozen=True)
-class Compressed:
-    """What compress hands on: the matrix description, preparation, factors and their record.
+class Stage(Protocol[Result]):
+    """One stage of the pipeline (module docstring)."""
 
-    ``projection_kind`` is ``"exact"`` or ``"estimate"`` (single-pass sketch without a
-    check pass); ``sketch_state`` the arrays a later append needs (``sketch`` only; the
-    store's ``sketch/`` group); ``info`` widths, tiles, runner, resume facts.
-    """
+    name: str
+    #: the result later stages use is read back from the store after writing (compress:
+    #: computed, kept and reused results are then the very same numbers)
+    read_back: bool
 
-    matrix: SnapshotMatrix
-    preparation: Preparation
-    lowrank: LowRank
-    passes: int
-    bytes_read: int
-    projection_kind: str = "exact"
-    method: str = "randomized"
-    sketch_state: dict[str, np.ndarray] = field(default_factory=dict)
-    info: dict[str, object] = field(default_factory=dict)
+    def fingerprint(self, context: StageContext) -> str: ...
 
+    def begin(self, context: StageContext) -> str:
+        """What the progress line says as the stage starts."""
+        ...
 
-def input_notes(reader: Reader, info: ArchiveInfo, workflow: Workflow) -> list[str]:
-    """What is accepted but changes what the user gets: zero weights, integer or complex fields.
+    def reusable(self, context: StageContext) -> bool:
+        """Whether a kept or reused record may stand for running the stage."""
+        ...
 
-    Weights of zero at every kept point are an error (nothing would count); weights of
-    zero at some points are said with their count (those points are excluded).
-    """
-    section = workflow.archive
-    notes: list[str] = []
-    for name in section.fields:
-        f = info.fields[name]
-        kind = np.dtype(f.stored_dtype).kind
-        if kind in "iub":
-            notes.append(f"field '{name}' holds {np.dtype(f.stored_dtype).name} values; they are converted to "
-                         "float64 (accumulation is always in float64)")
-        elif kind == "c":
-            notes.append(f"field '{name}' is complex ({np.dtype(f.stored_dtype).name}): compress and fit.method "
-                         "dmd and optimized handle it (complex128); edmd and lift entries on the state need real "
-                         "data")
-        weight_name = section.weights.get(name) if isinstance(section.weights, dict) else section.weights
-        if weight_name is None:
-            continue
-        mask_name = section.mask.get(name) if isinstance(section.mask, dict) else section.mask
-        try:
-            weights = np.asarray(reader.read_variable(weight_name), dtype=np.float64).ravel()
-            kept = (np.ones(weights.size, dtype=bool) if mask_name is None
-                    else ~np.asarray(reader.read_variable(mask_name)).astype(bool).ravel())
-        except (KeyError, ValueError, OSError):
-            continue  # a missing or misshapen dataset is reported, with its name, by the matrix
-        if kept.size != weights.size:
-            continue
-        zero = int(np.count_nonzero(weights[kept] == 0))
-        if zero and zero == int(np.count_nonzero(kept)):
-            raise ArchiveError(
-                f"{reader.path}: weights '{weight_name}' are zero at every kept point of field '{name}' "
-                f"({zero} points): nothing would count; give positive weights (cell areas or volumes)")
-        if zero:
-            notes.append(f"weights '{weight_name}' are zero at {zero} of {int(np.count_nonzero(kept))} kept points "
-                         f"of field '{name}'; those points are excluded from the fit and the modes")
-    return notes
+    def run(self, context: StageContext) -> Result: ...
+
+    def write(self, context: StageContext, result: Result) -> tuple[StageRecord, Result]:
+        """Write the result into the staging store (between ``store.begin`` and ``finish``);
+        its record and the result as written (fit: with the spectrum's sort order)."""
+        ...
+
+    def load(self, context: StageContext, record: StageRecord) -> Result: ...
+
+    def end(self, context: StageContext, record: StageRecord) -> str:
+        """What the progress line says as the stage ends."""
+        ...
 
 
-def _check_state_formulas(workflow: Workflow, reader: Reader, index: np.ndarray) -> None:
-    """Formulas on the raw state may use only its variables: checked at scan, not after compress."""
-    from snaplift.lifting.expressions import check_variables, parse_formulas
-
-    entries = [(i, e) for i, e in enumerate(workflow.lift) if e.kind == "expressions"]
-    if not entries:
-        return
-    section = workflow.archive
-    matrix = build_snapshot_matrix(reader, list(section.fields), snapshots=index, snapshot_block=1,
-                                   weights=section.weights, mask=section.mask)
-    variables = state_variables(matrix)
-    for position, entry in entries:
-        try:
-            check_variables(parse_formulas(entry.formulas), variables)
-        except ConfigError as error:
-            raise ConfigError(f"lift[{position}]: {error}") from None
+def _times(started: _dt.datetime) -> dict[str, str]:
+    return {"started": started.isoformat(), "finished": now().isoformat()}
 
 
-def _check_rank_fits(workflow: Workflow, info: Any, m: int) -> None:
-    """compress.rank above the matrix size is refused before any plan (whose numbers would mislead)."""
-    if workflow.state_source == "state":
-        return  # a small raw state: compress keeps min(n, m) for the diagnostics only
-    lifted = lifted_info(info, workflow)
-    n = sum(f.n_points for name, f in lifted.fields.items()
-            if lifted is not info or name in workflow.archive.fields)
-    rank = workflow.compress.rank
-    if rank > min(n, m):
-        raise ArchiveError(
-            f"compress.rank = {rank} exceeds what the data allow: the snapshot matrix has at most {n} points and "
-            f"{m} snapshots; use compress.rank <= {min(n, m)}"
-        )
+class _Base(Generic[Result]):
+    name = ""
+    #: the result later stages use is read back from the store after writing (compress)
+    read_back = False
+
+    def fingerprint(self, context: StageContext) -> str:
+        return context.fingerprints[self.name]
+
+    def reusable(self, context: StageContext) -> bool:
+        return True
+
+    def end(self, context: StageContext, record: StageRecord) -> str:
+        return record.status
 
 
-def scan_stage(workflow: Workflow, folder: Path, scheduler: Scheduler | None, *,
-               recorded_baseline: int | None = None, with_plan: bool = True,
-               checked: Scanned | None = None) -> Scanned:
-    """Open the archive, select snapshots, check times, plan tiles. Reads metadata only.
+class ScanStage(_Base[ScanResult]):
+    """Open, check and plan (metadata only); classify the archive against the last result."""
 
-    ``recorded_baseline``: the baseline a killed run of this job planned with (its scan
-    record's ``memory_baseline``); see :func:`plan_compress`. ``with_plan=False`` (no
-    scheduler needed) skips the tile plan: the checks of :func:`check_workflow`.
-    ``checked``: the scan those checks returned, so that a run plans on it instead of
-    opening and checking the archive a second time.
-    """
-    if checked is None:
-        checked = _checked_scan(workflow, folder)
-    if not with_plan or scheduler is None:
-        return checked
-    info = checked.reader.describe()
-    plan = plan_compress(workflow, info, scheduler, recorded_baseline=recorded_baseline)
-    block = plan.snapshot_blocks[0][1] - plan.snapshot_blocks[0][0]
-    # tiles are planned over archive snapshots; with 'every' a tile holds block/every selected ones
-    snapshot_block = max(1, block // workflow.archive.snapshots.every)
-    lifted = lifted_info(info, workflow)
-    lifted_rows = sum(f.n_points for f in lifted.fields.values()) if lifted is not info else 0
-    return replace(checked, snapshot_block=snapshot_block, memory_bytes=plan.memory_bytes, plan=plan,
-                   lifted_rows=int(lifted_rows))
+    name = "scan"
 
+    def begin(self, context: StageContext) -> str:
+        scheduler = context.scheduler
+        return f"{context.workflow.archive.path} ({scheduler.kind} scheduler, {scheduler.workers} workers)"
 
-def _checked_scan(workflow: Workflow, folder: Path) -> Scanned:
-    """The archive opened, its snapshots selected and times, runs, inputs checked; no plan."""
-    section = workflow.archive
-    # the workflow names its fields: a one-value-per-snapshot (1-D) dataset is then a field too
-    reader = open_archive(resolve_path(folder, section.path), format=section.format, fields=list(section.fields),
-                          time=section.time,
-                          missing_chunks=section.missing_chunks if section.missing_chunks != "error" else None)
-    info = reader.describe()
-    _check_state_size(workflow, info)
-    for name in section.fields:
-        if name not in info.fields:
-            raise FieldNotFoundError(
-                f"archive field '{name}' not found in {reader.path}; fields present: "
-                f"{', '.join(sorted(info.fields)) or '(none)'}"
-            )
-    total = info.fields[section.fields[0]].n_snapshots
-    stop = min(section.snapshots.stop or total, total)
-    index = np.arange(section.snapshots.start, stop, section.snapshots.every, dtype=np.int64)
-    if index.size < 3:
-        raise ArchiveError(
-            f"{reader.path}: archive.snapshots selects {index.size} snapshot(s) of {total}; at least 3 are needed"
-        )
-    if section.time is None and section.step is None and info.attrs.get("time_variable") is None:
-        raise ConfigError(
-            f"no snapshot times found in {reader.path}; set archive.time (a dataset of times; datasets present: "
-            f"{', '.join(sorted(info.variables)) or '(none)'}) or archive.step (a fixed step, with archive.time_unit)"
-        )
-    all_times = snapshot_times(reader, time=section.time, step=section.step, n_snapshots=total)
-    unit, unit_warnings = archive_time_unit(workflow, reader, info)
-    unitless = [f for f in section.fields if not str(info.fields[f].attrs.get("units") or "").strip()
-                and f not in (section.units or {})]
-    if unitless:
-        unit_warnings = [*unit_warnings, f"{reader.path} declares no units for {', '.join(unitless)}: their modes and "
-                         "peak amplitudes carry none; set archive.units (e.g. {" + f"{unitless[0]}: Pa" + "})"]
-    times = np.asarray(all_times, dtype=np.float64)[index]
-    selected_runs = selected_run_lengths(archive_run_lengths(reader, section.runs, total), index)
-    dt, uniform = _run_time_step(reader.path, times, index, selected_runs,
-                                 allow_uneven=workflow.fit.method == "optimized")
-    columns, column_runs = np.arange(index.size), selected_runs
-    lift = workflow.field_lift
-    if lift is not None and lift.delays > 1:
-        try:
-            columns = lift.columns(selected_runs)[0]
-            column_runs = delayed_run_lengths(selected_runs, lift.delays, lift.spacing)
-        except ConfigError as error:
-            raise ConfigError(f"lift delays on {reader.path}: {error}") from None
-    _check_rank_fits(workflow, info, int(columns.size))
-    if workflow.state_source == "state":
-        _check_state_formulas(workflow, reader, index)
-    notes = input_notes(reader, info, workflow)
-    return Scanned(reader, index[columns], times[columns], dt, 1, 0, plan=None,
-                   run_lengths=np.asarray(column_runs, dtype=np.int64), selected_index=index,
-                   selected_run_lengths=np.asarray(selected_runs, dtype=np.int64), uniform=uniform,
-                   time_unit=unit, warnings=(*unit_warnings, *notes))
+    def reusable(self, context: StageContext) -> bool:
+        return False
+
+    def fingerprint(self, context: StageContext) -> str:
+        return context.fingerprints["scan"]
+
+    def run(self, context: StageContext) -> ScanResult:
+        workflow, store = context.workflow, context.store
+        # a killed run of this job left its scan record: plan around the baseline it reserved
+        # (when the processes measure no more), so that the tiles, and the checkpoint, match
+        killed = store.record("scan") or {}
+        scanned = scan_stage(workflow, context.folder, context.scheduler, checked=context.checked,
+                             recorded_baseline=killed.get("memory_baseline"))
+        archive_now = archive_fingerprint(scanned.reader)
+        previous = store.previous_record("scan")
+        layout = store.previous.attrs.get(result_store.FORMAT_KEY) if store.previous is not None else None
+        if layout is not None and layout != result_store.STORE_VERSION:
+            context.warnings.append(
+                f"{store.path} holds result store layout {layout}; this snaplift writes layout "
+                f"{result_store.STORE_VERSION} (units, coordinates, peak amplitudes): every stage is recomputed")
+        info = scanned.reader.describe()
+        fields = workflow.archive.fields
+        chunk = max(1, max(info.fields[f].snapshot_chunk for f in fields))
+        chunk = min(chunk, info.fields[fields[0]].n_snapshots)
+        # a killed first run left its scan record (with the content sample) in the staging
+        # area: compare with it, so a resumed first run reads nothing again
+        resuming = previous is None and store.record("scan") is not None
+        classification = classify_archive(scanned.reader, list(fields), chunk, archive_now,
+                                          store.record("scan") if resuming else previous)
+        if resuming and classification.state == "unchanged":
+            classification = replace(classification, state="new",
+                                     reason=f"no previous result (resumed; archive {classification.reason})")
+        # every array written from here on carries units, names and coordinates from the archive
+        store.writer.metadata = store_metadata(workflow, scanned.reader, info, scanned.time, scanned.time_unit)
+        return ScanResult(scanned, classification, archive_now, stage_fingerprints(workflow, classification.identity))
+
+    def write(self, context: StageContext, result: ScanResult) -> tuple[StageRecord, ScanResult]:
+        scanned, classification = result.scanned, result.classification
+        write_scan(context.store.writer, scanned.time, scanned.snapshot_index)
+        if classification.state == "grown":
+            context.warnings.append(verification_note(classification))
+        context.warnings.extend(scanned.warnings)
+        return StageRecord("scan", result.fingerprints["scan"], "computed", 0, classification.bytes_read, {
+            "bytes_sampled": result.archive["bytes_sampled"], "archive": result.archive,
+            "samples": classification.samples, "identity": classification.identity,
+            "classification": classification.state, "classification_reason": classification.reason,
+            "verified_blocks": [list(block) for block in classification.verified],
+            "memory_baseline": int(scanned.plan.baseline_bytes) if scanned.plan is not None else 0}), result
+
+    def load(self, context: StageContext, record: StageRecord) -> ScanResult:
+        raise NotImplementedError("scan is never reused: it runs in every run")
+
+    def end(self, context: StageContext, record: StageRecord) -> str:
+        return f"archive {record.details['classification']} ({record.details['classification_reason']})"
 
 
-def archive_time_unit(workflow: Workflow, reader: Reader, info: ArchiveInfo) -> tuple[TimeUnit | None, list[str]]:
-    """The time unit of the snapshot times, and the warning to give when there is none.
+class CompressStage(_Base[Compressed]):
+    """Compress the prepared snapshot matrix (or extend the stored sketch of a grown archive)."""
 
-    From the time dataset's CF ``units`` (``"ms"``, ``"milliseconds since ..."``) or
-    ``time_unit`` attribute; ``archive.time_unit`` gives the unit of ``archive.step`` or of
-    a time dataset that declares none or one that does not convert to seconds (a dataset
-    that declares another convertible unit is an error).
-    """
-    section = workflow.archive
-    given = None
-    if section.time_unit is not None:
-        canonical = canonical_time_unit(section.time_unit)
-        assert canonical is not None  # the schema allows only convertible units
-        given = TimeUnit(section.time_unit, canonical, SECONDS_PER_UNIT[canonical])
-    found = None
-    if section.step is None:
-        name = section.time or info.attrs.get("time_variable")
-        variable = info.variables.get(name) if name else None
-        found = time_unit_of(variable.attrs) if variable is not None else None
-        if found is not None and found.seconds is None and given is not None:
-            found = None  # a unit that does not convert ("steps"): archive.time_unit says what it is
-        if found is not None and given is not None and found.canonical != given.canonical:
-            raise ConfigError(
-                f"archive.time_unit is {section.time_unit!r} but the time dataset '{name}' in {reader.path} declares "
-                f"units {found.name!r}; remove archive.time_unit (the archive's unit is used)"
-            )
-    unit = found or given
-    if unit is None:
-        return None, [f"{reader.path} declares no time unit: frequencies are in 1/(time unit), growth rates in "
-                      "1/(time unit); set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s"]
-    if unit.seconds is None:
-        return unit, [f"the time unit {unit.name!r} of {reader.path} does not convert to seconds: frequencies are "
-                      f"in 1/{unit.name.split(' since ')[0].strip()}; set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s"]
-    return unit, []
+    name = "compress"
+    read_back = True
 
+    def begin(self, context: StageContext) -> str:
+        workflow, scanned = context.workflow, context.scanned
+        lifted = ""
+        if scanned.lifted_rows:
+            size = format_bytes(8 * scanned.lifted_rows * int(scanned.snapshot_index.size))
+            lifted = f", lifted to {scanned.lifted_rows} values per snapshot ({size} per read, never stored)"
+        return (f"{workflow.compress.method}, rank {workflow.compress.rank}, "
+                f"{scanned.snapshot_index.size} snapshots{lifted}")
 
-def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]]:
-    """Everything a run checks before reading a tile: the archive opens, the fields, time,
-    time unit, runs, weights, mask and coordinates exist with the right shapes.
+    def run(self, context: StageContext) -> Compressed:
+        appended = try_append(context.workflow, context.scanned, context.scheduler, context.store,
+                              context.fingerprints, context.scan.classification, context.warnings)
+        if appended is not None:
+            return appended
+        assert context.compress is not None  # the runner gives its retry policy
+        return context.compress(context, context.store.checkpoint_directory(self.name, self.fingerprint(context)))
 
-    Reads metadata and the small datasets (times, run labels, weights, mask, coordinates),
-    no field values, and needs no scheduler: ``snaplift run --dry-run`` calls it so that a
-    batch job learns a wrong name before it waits in the queue; ``run`` calls it before it
-    looks at an existing result store. Returns the scan and what a run would print.
-    """
-    scanned = _checked_scan(workflow, folder)
-    matrix = snapshot_matrix_of(workflow, scanned)
-    metadata = store_metadata(workflow, scanned.reader, scanned.reader.describe(), scanned.time, scanned.time_unit)
-    info = scanned.reader.describe()
-    lines = [f"archive {scanned.reader.path} ({info.format}): fields "
-             + ", ".join(f"{f} {info.fields[f].shape}" for f in workflow.archive.fields)]
-    unit = scanned.time_unit
-    selected = scanned.selected_index if scanned.selected_index is not None else scanned.snapshot_index
-    lines.append(f"time: {selected.size} snapshots selected, step {scanned.dt:.6g} "
-                 f"{unit.name if unit is not None else '(no time unit)'}; frequencies in {metadata.frequency_unit}")
-    if scanned.run_lengths is not None and scanned.run_lengths.size > 1:
-        lines.append(f"runs: {scanned.run_lengths.size} ({', '.join(map(str, scanned.run_lengths.tolist()))} columns)")
-    kept = sum(rows.n_rows for rows in matrix.fields)
-    lines.append(f"snapshot matrix: {kept} rows x {matrix.shape[1]} columns"
-                 + _named(" (weights {})", workflow.archive.weights) + _named(" (mask {})", workflow.archive.mask))
-    if metadata.coordinates:
-        lines.append("coordinates: " + ", ".join(f"{d} <- {c.attrs.get('archive_variable')} [{c.attrs.get('units', 'unit unknown')}]"
-                                                 for d, c in metadata.coordinates.items()))
-    else:
-        lines.append("coordinates: none in the archive (index positions; archive.coords names them)")
-    lines.extend(f"warning: {warning}" for warning in scanned.warnings)
-    return scanned, lines
+    def write(self, context: StageContext, result: Compressed) -> tuple[StageRecord, Compressed]:
+        workflow, store = context.workflow, context.store
+        write_compressed(store.writer, result, context.scheduler.compute, scale_setting=workflow.prepare.scale)
+        details: dict[str, Any] = {"settings": context.fingerprints["compress_settings"],
+                                   "method": workflow.compress.method}
+        if "appended_snapshots" in result.info:
+            details["appended_snapshots"] = result.info["appended_snapshots"]
+            return StageRecord(self.name, self.fingerprint(context), "appended", 1, int(result.bytes_read),
+                               details), result
+        store.clear_checkpoints(self.name)
+        details.update(projection_kind=result.projection_kind, checkpointed=True)
+        return StageRecord(self.name, self.fingerprint(context), "computed", int(result.passes),
+                           int(result.bytes_read), details), result
+
+    def load(self, context: StageContext, record: StageRecord) -> Compressed:
+        return load_compressed_result(context.workflow, context.scanned, context.store, record.passes,
+                                      str(record.details.get("method", context.workflow.compress.method)))
+
+    def end(self, context: StageContext, record: StageRecord) -> str:
+        if record.status == "appended":
+            return (f"appended {record.details['appended_snapshots']} snapshots; "
+                    f"{record.bytes_read / 1e6:.1f} MB read")
+        return f"{record.status}; {record.passes} passes, {record.bytes_read / 1e6:.1f} MB read in this run"
 
 
-def _named(template: str, datasets: str | dict[str, str] | None) -> str:
-    """``" (mask 'solid')"``, ``" (mask T: 'solid', w: 'solid3d')"``; empty when not given."""
-    if not datasets:
-        return ""
-    if isinstance(datasets, str):
-        return template.format(repr(datasets))
-    return template.format(", ".join(f"{field}: {name!r}" for field, name in datasets.items()))
+class FitStage(_Base[Fitted]):
+    """``fit.method`` on the compress result; writes the spectrum, operator, runs, eigenfunctions."""
+
+    name = "fit"
+
+    def begin(self, context: StageContext) -> str:
+        return f"{context.workflow.fit.method} on {context.compressed.lowrank.rank} coefficients"
+
+    def reusable(self, context: StageContext) -> bool:
+        # fit is cheap (no archive read): recomputed whenever modes must be written again
+        return all(_can_skip(context.store, name, context.fingerprints[name]) for name in ("fit", "modes"))
+
+    def run(self, context: StageContext) -> Fitted:
+        trim_heap()  # what compress freed goes back to the system before fit and modes allocate
+        outcome = fit_stage(context.workflow, context.compressed, context.scanned,
+                            memory_budget=compress_memory(context.workflow, context.scheduler),
+                            say=context.reporter.message)
+        return Fitted(0, tuple(outcome.warnings), outcome)
+
+    def write(self, context: StageContext, result: Fitted) -> tuple[StageRecord, Fitted]:
+        outcome = result.outcome
+        assert outcome is not None
+        writer, scanned = context.store.writer, context.scanned
+        order, written = write_fit(writer, outcome, scanned.dt, residuals=outcome.residuals)
+        write_fit_details(writer, outcome, order, scanned.time)
+        warnings = [*outcome.warnings, *written]
+        context.warnings.extend(warnings)
+        details: dict[str, Any] = {outcome.details_key: dict(outcome.details)} if outcome.details else {}
+        record = StageRecord(self.name, self.fingerprint(context), "computed", 0,
+                             int(outcome.details.get("bytes_read", 0)),
+                             {"method": outcome.method, **details, "n_modes": int(order.size), "warnings": warnings})
+        return record, Fitted(int(order.size), tuple(warnings), outcome, order)
+
+    def load(self, context: StageContext, record: StageRecord) -> Fitted:
+        warnings = tuple(record.details.get("warnings", []))
+        context.warnings.extend(warnings)
+        return Fitted(int(record.details.get("n_modes", 0)), warnings)
+
+    def end(self, context: StageContext, record: StageRecord) -> str:
+        return f"computed; {record.details.get('n_modes', 0)} modes" if record.status == "computed" else record.status
 
 
-def archive_run_lengths(reader: Reader, runs: str | None, total: int) -> np.ndarray:
-    """Snapshots per run of the whole archive: from a run-label dataset, the files of a
-    several-file archive, or one run."""
-    if runs is not None:
-        info = reader.describe()
-        if runs not in info.variables and runs not in info.fields:
-            raise FieldNotFoundError(
-                f"archive.runs dataset '{runs}' not found in {reader.path}; datasets present: "
-                f"{', '.join(sorted(info.variables)) or '(none)'}"
-            )
-        labels = np.asarray(reader.read_variable(runs))
-        if labels.shape != (total,):
-            raise ArchiveError(f"{reader.path}: run dataset '{runs}' has shape {labels.shape}; expected "
-                               f"({total},), one run label per snapshot")
-        return run_lengths_from_labels(labels, name=runs, path=str(reader.path))
-    lengths = getattr(reader, "run_lengths", None)
-    return np.asarray(lengths(), dtype=np.int64) if callable(lengths) else np.array([total], dtype=np.int64)
+class ModesStage(_Base[Fitted]):
+    """The modes on the grid, fixed points and the reconstruction error."""
+
+    name = "modes"
+
+    def begin(self, context: StageContext) -> str:
+        fitted = context.fitted
+        return "modes" if fitted.outcome is None else f"{fitted.n_modes} modes on the grid"
+
+    def reusable(self, context: StageContext) -> bool:
+        return context.fitted.outcome is None  # the fit was reused, so are the modes
+
+    def run(self, context: StageContext) -> Fitted:
+        check_free_space(context.store.area, modes_bytes(context.compressed.matrix, context.fitted.n_modes),
+                         "the modes")
+        trim_heap()
+        return context.fitted
+
+    def write(self, context: StageContext, result: Fitted) -> tuple[StageRecord, Fitted]:
+        assert result.outcome is not None and result.order is not None
+        write_modes(context.store.writer, result.outcome, context.compressed, result.order, context.scheduler.compute)
+        return StageRecord(self.name, self.fingerprint(context), "computed"), result
+
+    def load(self, context: StageContext, record: StageRecord) -> Fitted:
+        return context.fitted
+
+    def end(self, context: StageContext, record: StageRecord) -> str:
+        return record.status
 
 
-def _run_time_step(path: str, times: np.ndarray, index: np.ndarray, run_lengths: np.ndarray, *,
-                   allow_uneven: bool) -> tuple[float, bool]:
-    """Time step shared by every run (times may restart in each run); (dt, uniform)."""
-    steps: list[np.ndarray] = []
-    start = 0
-    for length in np.asarray(run_lengths, dtype=np.int64):
-        segment, where = times[start:start + length], index[start:start + length]
-        start += int(length)
-        if segment.size < 2:
-            continue
-        spacing = check_times(segment, rtol=TIME_RTOL)
-        if not spacing.increasing:
-            bad = int(np.flatnonzero(np.diff(segment) <= 0)[0])
-            raise TimeSpacingError(
-                f"{path}: snapshot times must increase within a run; time[{where[bad + 1]}] = {segment[bad + 1]} "
-                f"follows time[{where[bad]}] = {segment[bad]}"
-            )
-        steps.append(np.column_stack([np.diff(segment), where[:-1], where[1:]]))
-    if not steps:
-        raise ArchiveError(f"{path}: no run has two selected snapshots; DMD needs snapshot pairs")
-    table = np.concatenate(steps)
-    dt = float(np.median(table[:, 0]))
-    deviation = np.abs(table[:, 0] - dt)
-    worst = int(np.argmax(deviation))
-    uniform = bool(deviation[worst] <= TIME_RTOL * abs(dt) + 4 * np.finfo(np.float64).eps * np.max(np.abs(times)))
-    if uniform:
-        # the mean step (the span of each run over its steps) carries less rounding than
-        # any one step, which matters for times stored as large counts (days since an epoch)
-        dt = float(np.mean(table[:, 0]))
-    if not uniform and not allow_uneven:
-        raise TimeSpacingError(
-            f"{path}: snapshot times are not uniformly spaced (median step {dt:.6g}, tolerance {TIME_RTOL:g} "
-            f"relative); worst gap {table[worst, 0]:.6g} between snapshots {int(table[worst, 1])} and "
-            f"{int(table[worst, 2])}; DMD needs a fixed step: select a uniform range with archive.snapshots, "
-            "or use fit.method: optimized (any spacing)"
-        )
-    return dt, uniform
+class ReportStage(_Base[dict[str, Any]]):
+    """A short summary of the spectrum and the errors, kept in the store's attributes."""
+
+    name = "report"
+
+    def begin(self, context: StageContext) -> str:
+        return "summary"
+
+    def reusable(self, context: StageContext) -> bool:
+        return False
+
+    def run(self, context: StageContext) -> dict[str, Any]:
+        root: Any = context.store.writer.root
+        spectrum, diagnostics = root["spectrum"], root["diagnostics"]
+        count = min(10, spectrum["eigenvalue"].shape[0])
+        leading = [{"frequency": float(spectrum["frequency"][k]), "growth": float(spectrum["growth"][k]),
+                    "amplitude": float(spectrum["amplitude"][k])} for k in range(count)]
+        return {"n_modes": int(spectrum["eigenvalue"].shape[0]), "leading_modes": leading,
+                "max_projection_error": float(np.max(diagnostics["projection_error"][...])),
+                "max_reconstruction_error": float(np.max(diagnostics["reconstruction_error"][...])),
+                "warnings": len(context.warnings)}
+
+    def write(self, context: StageContext, result: dict[str, Any]) -> tuple[StageRecord, dict[str, Any]]:
+        return StageRecord(self.name, self.fingerprint(context), "computed", details={"summary": result}), result
+
+    def load(self, context: StageContext, record: StageRecord) -> dict[str, Any]:
+        return dict(record.details.get("summary", {}))
+
+    def end(self, context: StageContext, record: StageRecord) -> str:
+        return f"{context.fitted.n_modes} modes; {len(context.warnings)} warning(s)"
 
 
-def lifted_info(info: ArchiveInfo, workflow: Workflow) -> ArchiveInfo:
-    """The archive as the planner sees it after raw-field lifting: one field per lifted field."""
-    lift = workflow.field_lift
-    if lift is None:
-        return info
-    fields = {f.name: replace(info.fields[f.source], name=f.name)
-              for f in lift.lifted(list(workflow.archive.fields))}
-    return replace(info, fields=fields)
+def _can_skip(store: StagedStore, stage: str, fingerprint: str) -> bool:
+    """Whether ``stage`` has a kept or reusable record with this fingerprint (nothing is changed)."""
+    for record in (store.record(stage), store.previous_record(stage)):
+        if record and record.get("fingerprint") == fingerprint:
+            return True
+    return False
 
 
-def _check_state_size(workflow: Workflow, info: ArchiveInfo) -> None:
-    if workflow.state_source != "state":
-        return
-    from snaplift.workflow.lift_section import STATE_LIMIT
-
-    values = sum(info.fields[f].n_points for f in workflow.archive.fields if f in info.fields)
-    if values > STATE_LIMIT:
-        raise ConfigError(
-            f"lift on: state needs a small state; the fields {workflow.archive.fields} have {values} values per "
-            f"snapshot (at most {STATE_LIMIT}); use on: coefficients (the dictionary lifts the reduced "
-            "coefficients) or mask points out (archive.mask)"
-        )
-
-
-def compress_memory(workflow: Workflow, scheduler: Scheduler) -> int:
-    """``compress.memory``, else what the cluster gives: the process's memory under threads,
-    memory per worker times workers for worker processes.
-
-    The budget of the whole process tree of the run (driver, workers, nannies): the
-    compress plan subtracts what those processes already hold (:func:`plan_compress`).
-    """
-    if workflow.compress.memory:
-        return parse_bytes(workflow.compress.memory)
-    if scheduler.kind == "threads":
-        return int(scheduler.memory_per_worker)
-    return int(scheduler.memory_per_worker) * max(1, int(scheduler.workers))
-
-
-def plan_compress(workflow: Workflow, info, scheduler: Scheduler, *, recorded_baseline: int | None = None) -> TilePlan:
-    """The tile plan of the compress stage for this workflow and scheduler (metadata only).
-
-    ``compress.memory`` is the budget of the whole process tree: the resident memory the
-    scheduler's processes hold now (:func:`snaplift.cluster.resident_memory`: this process,
-    and the worker processes and nannies of a distributed cluster), plus a small margin, is
-    the plan's ``baseline_bytes``, and the tiles are planned in what remains. With
-    ``recorded_baseline`` (a resumed run) that value is kept when the processes measure no
-    more, so the resumed run plans the tiles its checkpoint was made with
-    (:meth:`snaplift.cluster.ResidentMemory.reserve`).
-    """
-    lifted = lifted_info(info, workflow)
-    try:
-        return _plan(workflow, lifted, scheduler, recorded_baseline)
-    except ArchiveError as error:
-        if lifted is info:
-            raise
-        count = len(lifted.fields)
-        raise type(error)(f"{error}; lift: makes {count} lifted fields of the {len(workflow.archive.fields)} "
-                          "archive fields: fewer delays or pointwise terms also shrink the tiles") from None
-
-
-def _row_groups(workflow: Workflow) -> list[list[int]] | None:
-    """The lifted fields of each archive field (adjacent, in row order): one tile's rows."""
-    lift = workflow.field_lift
-    if lift is None:
-        return None
-    groups: list[list[int]] = []
-    sources: list[str] = []
-    for index, lifted in enumerate(lift.lifted(list(workflow.archive.fields))):
-        if sources and sources[-1] == lifted.source:
-            groups[-1].append(index)
-        else:
-            groups.append([index])
-            sources.append(lifted.source)
-    return groups
-
-
-def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler, recorded_baseline: int | None) -> TilePlan:
-    settings = workflow.compress
-    resident = resident_memory(scheduler.client, workers=scheduler.workers)
-    return plan_tiles(
-        info, list(info.fields) if workflow.field_lift is not None else list(workflow.archive.fields),
-        memory_bytes=compress_memory(workflow, scheduler),
-        workers=scheduler.workers, method=settings.method, rank=settings.rank, oversample=settings.oversample,
-        power_iterations=settings.power_iterations, check_pass=settings.check_pass,
-        sketch_widths=settings.sketch_widths, shared_memory=scheduler.kind == "threads",
-        corange_map=settings.corange_map or "sparse",
-        baseline_bytes=resident.reserve(recorded_baseline), baseline_label=resident.label,
-        row_groups=_row_groups(workflow),
-        in_memory_limit=0 if settings.in_memory == "never" else IN_MEMORY_LIMIT,
-    )
-
-
-def compress_stage(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, *,
-                   checkpoint: str | Path | None = None, checkpoint_dir: str | Path | None = None) -> Compressed:
-    """Compress the prepared snapshot matrix with ``compress.method`` in bounded streaming passes.
-
-    Statistics for centring and scaling come from the first read. With ``checkpoint``
-    (a folder; ``checkpoint_dir`` is the same) the loop state is saved there every
-    ``compress.checkpoint_every`` (default 60 s) and at each pass end, and a repeated call
-    with the same settings resumes from it.
-    """
-    checkpoint_dir = checkpoint if checkpoint is not None else checkpoint_dir
-    from snaplift.stream.compress import CompressOptions, compress
-    from snaplift.stream.loop import runner_for
-
-    plan = scanned.plan
-    matrix = snapshot_matrix_of(workflow, scanned)
-    n, m = matrix.shape
-    settings = workflow.compress
-    rank = settings.rank
-    if rank > min(n, m):
-        if workflow.state_source != "state":
-            raise ArchiveError(
-                f"compress.rank = {settings.rank} exceeds what the data allow (min of {n} points and {m} snapshots)"
-            )
-        rank = min(n, m)  # a small raw state: its basis is only kept for the diagnostics
-    options = CompressOptions(
-        method=settings.method, rank=rank, oversample=settings.oversample,
-        power_iterations=settings.power_iterations, seed=settings.seed,
-        sketch_widths=None if settings.sketch_widths is None else tuple(settings.sketch_widths),
-        check_pass=settings.check_pass, center=workflow.prepare.center,
-        scale=lifted_scale(workflow.prepare.scale, matrix), corange_map=settings.corange_map or "sparse",
-    )
-    with runner_for(scheduler) as runner:
-        result = compress(matrix, plan, options, runner=runner,
-                          in_flight=None if plan is None else plan.in_flight,
-                          checkpoint_dir=checkpoint_dir, checkpoint_every=settings.checkpoint_every,
-                          progress=getattr(scheduler, "progress", None))
-    return Compressed(matrix, result.preparation, result.lowrank, result.passes, result.bytes_read,
-                      projection_kind=result.projection_kind, method=result.method,
-                      sketch_state=result.sketch_state, info=result.info)
-
-
-def snapshot_matrix_of(workflow: Workflow, scanned: Scanned, snapshots: np.ndarray | None = None) -> SnapshotMatrix:
-    """The (lifted) snapshot matrix of the workflow over the scanned selection."""
-    section = workflow.archive
-    plan = scanned.plan
-    selected = scanned.selected_index if scanned.selected_index is not None else scanned.snapshot_index
-    return build_snapshot_matrix(
-        scanned.reader, list(section.fields), snapshots=selected if snapshots is None else snapshots,
-        snapshot_block=scanned.snapshot_block, weights=section.weights, mask=section.mask,
-        snapshot_blocks=None if plan is None else plan.snapshot_blocks,
-        lift=workflow.field_lift, run_lengths=scanned.selected_run_lengths if snapshots is None else None,
-    )
-
-
-def lifted_scale(scale: str | dict[str, float], matrix: SnapshotMatrix) -> str | dict[str, float]:
-    """``prepare.scale`` for every (lifted) field of ``matrix`` (delay copies share their field's)."""
-    if not isinstance(scale, dict):
-        return scale
-    return {f.name: scale_of(scale, f.name) for f in matrix.fields}
-
-
-def fit_stage(workflow: Workflow, compressed: Compressed, scanned: Scanned, *, memory_budget: int | None = None,
-              say: Any = None) -> FitOutcome:
-    """``fit.method`` on the compress result (:mod:`snaplift.workflow.fit_methods`).
-
-    DMD of the coefficients (affine term when the data were centred), EDMD of a
-    dictionary of the coefficients or of the raw state, or optimized DMD; each with
-    residuals (Colbrook & Townsend 2024) and amplitudes per run. ``memory_budget`` bounds
-    the lifted matrix of EDMD; ``say`` receives the lifted size before fitting.
-    """
-    return fit_outcome(workflow, compressed, scanned, memory_budget=memory_budget, say=say)
+#: the pipeline, in order: the runner loops over it
+STAGES: tuple[Stage[Any], ...] = (ScanStage(), CompressStage(), FitStage(), ModesStage(), ReportStage())

@@ -1,0 +1,243 @@
+"""What ``fit`` and ``modes`` write to the result store: spectrum, operator, runs,
+eigenfunctions, modes on the grid, peak amplitudes and the reconstruction error.
+
+They read the compress result as :class:`snaplift.results.stages.Compressed` (computed,
+kept or reused: the same numbers) and the fit as a
+:class:`~snaplift.workflow.fit_methods.FitOutcome` (duck-typed here: ``results`` sits below
+``workflow``).
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+import numpy as np
+
+from snaplift.archive.matrix import FieldRows, SnapshotMatrix
+from snaplift.fitting.spectrum import conjugate_pairs
+from snaplift.fitting.spectrum import frequency as mode_frequency
+from snaplift.prepare import to_physical
+from snaplift.results.stages import Compressed, _basis_field_rows, _unscaled, _vector_chunks
+from snaplift.results.store import StoreWriter
+
+__all__ = ["modes_bytes", "peak_amplitude", "write_fit", "write_fit_details", "write_modes"]
+
+
+def modes_bytes(matrix: SnapshotMatrix, n_modes: int) -> int:
+    return int(sum(n_modes * int(np.prod(f.grid)) * 16 for f in _mode_fields(matrix)))
+
+
+def write_fit(writer: StoreWriter, fit: Any, dt: float, *, residuals: Any = None) -> tuple[np.ndarray, list[str]]:
+    """Spectrum (sorted by amplitude) and operator; returns the sort order and warnings.
+
+    ``dt`` is the step in the archive's time unit (stored as the ``dt`` attribute); the
+    fit's own ``dt`` is in seconds when that unit converts (``writer.metadata``), so
+    frequencies are in Hz and rates in 1/s.
+
+    ``residuals`` (a :class:`~snaplift.fitting.ResidualReport`) fills ``spectrum/residual``
+    and ``spectrum/trusted``.
+    """
+    from snaplift.fitting import spectrum_table
+
+    warnings: list[str] = []
+    extra = {} if residuals is None else {"residual": residuals.residual, "trusted": residuals.trusted}
+    table = spectrum_table(fit, sort="amplitude", **extra)
+    order = np.asarray(table["index"])
+    n_modes = order.size
+    names = ["eigenvalue", "rate", "frequency", "growth", "period", "amplitude", "phase", "near_nyquist"]
+    for name in names + list(extra):
+        writer.array("spectrum", name, np.asarray(table[name]), ("mode",))
+    if residuals is not None:
+        writer.group_attrs("spectrum", {"residual_pairs": residuals.pairs, "residual_pair_count": residuals.n_pairs,
+                                        "trust_threshold": residuals.threshold,
+                                        "residual_reference": "Colbrook & Townsend 2024, CPAM (arXiv 2111.14889)"})
+        untrusted = int(np.count_nonzero(~np.asarray(residuals.trusted)))
+        if untrusted:
+            warnings.append(f"{untrusted} of {n_modes} eigenvalue(s) have residual above the trust threshold "
+                            f"{residuals.threshold:g} on {residuals.n_pairs} {residuals.pairs} pairs")
+    # ranking: the tool's own order of importance, trusted modes first, then by amplitude
+    # (snaplift.fitting.mode_ranking); 0 is the most important mode
+    flags = np.asarray(table["trusted"], dtype=bool) if residuals is not None else np.ones(order.size, bool)
+    ranking = np.empty(order.size, dtype=np.int64)
+    ranking[np.argsort(~flags, kind="stable")] = np.arange(order.size)
+    writer.array("spectrum", "ranking", ranking, ("mode",),
+                 attrs={"meaning": "0 = most important: trusted modes first, then by amplitude"})
+    # partner: position (in this sorted table) of the complex-conjugate eigenvalue, -1 if none
+    position = np.empty(n_modes, dtype=np.int64)
+    position[order] = np.arange(n_modes)
+    partner = np.asarray(table["partner"])
+    writer.array("spectrum", "partner", np.where(partner >= 0, position[np.maximum(partner, 0)], -1), ("mode",))
+    flagged = np.flatnonzero(np.asarray(table["near_nyquist"]))
+    if residuals is not None:
+        warnings.extend(residuals.warnings)
+    elif flagged.size:
+        warnings.append(
+            f"{flagged.size} mode(s) lie within 10 % of the Nyquist frequency 1/(2 dt) = {0.5 / fit.dt:.6g} "
+            f"{writer.metadata.frequency_unit} "
+            f"(sorted positions {', '.join(map(str, flagged[:10]))}); their frequencies may be aliased"
+        )
+    meta = writer.metadata
+    time_attrs: dict[str, Any] = {"time_unit": meta.time_unit, "frequency_unit": meta.frequency_unit,
+                  "growth_unit": meta.growth_unit, "period_unit": meta.period_unit}
+    if meta.seconds_per_unit is not None:
+        time_attrs["time_unit_seconds"] = meta.seconds_per_unit
+    # dt in the archive's own time unit, like diagnostics/time (forecasts step by it)
+    writer.group_attrs("spectrum", {"sorted_by": "amplitude", "dt": dt, "dt_unit": meta.time_unit, **time_attrs})
+    writer.array("operator", "matrix", np.asarray(fit.operator), ("mode_in", "mode_out"),
+                 attrs={"convention": "column-vector: c_next = matrix @ c (reduced coordinates)"})
+    return order, warnings
+
+
+def _mode_fields(matrix: SnapshotMatrix) -> list[FieldRows]:
+    """Fields that get modes: every field and pointwise term at the window's first time
+    (delay copies hold the same modes later in the window)."""
+    return [rows for rows in matrix.fields if rows.snapshot_shift == 0]
+
+
+def write_fit_details(writer: StoreWriter, outcome: Any, order: np.ndarray, time: np.ndarray) -> None:
+    """Amplitudes per run (``runs/``), eigenfunctions on the snapshots and the dictionary (EDMD)."""
+    lengths = np.asarray(outcome.run_lengths, dtype=np.int64)
+    starts = np.concatenate(([0], np.cumsum(lengths)[:-1])).astype(np.int64)
+    writer.array("runs", "run_start", starts, ("run",), attrs={"meaning": "first snapshot (column) of each run"})
+    writer.array("runs", "run_length", lengths, ("run",))
+    writer.array("runs", "amplitude", np.asarray(outcome.run_amplitude)[:, order], ("run", "mode"),
+                 attrs={"meaning": "optimal amplitude of each mode in each run (Jovanovic et al. 2014)"})
+    if outcome.eigenfunction is not None:
+        writer.array("eigenfunctions", "time", np.asarray(time), ("snapshot",))
+        writer.array("eigenfunctions", "value", np.asarray(outcome.eigenfunction)[order], ("mode", "snapshot"),
+                     attrs={"meaning": "Koopman eigenfunctions evaluated on the snapshots, scaled so that "
+                                       "x_j = sum_k mode_k value[k, j]"})
+    attrs = {"method": outcome.method, "space": outcome.space}
+    if outcome.details:
+        attrs[outcome.details_key] = dict(outcome.details)
+    writer.group_attrs("operator", attrs)
+
+
+def _basis_times(basis: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
+    """``basis @ coefficients`` without a complex copy of a real basis (numpy's mixed-type
+    matmul converts the whole n x rank basis to complex first: issue 11, the modes stage
+    went over compress.memory by that copy)."""
+    if np.iscomplexobj(basis) or not np.iscomplexobj(coefficients):
+        return basis @ coefficients
+    out = np.empty(basis.shape[0], dtype=np.result_type(basis, coefficients))
+    out.real = basis @ np.ascontiguousarray(coefficients.real)
+    out.imag = basis @ np.ascontiguousarray(coefficients.imag)
+    return out
+
+
+def write_modes(writer: StoreWriter, fit: Any, compressed: Compressed, order: np.ndarray, compute: Any) -> None:
+    """Physical modes chunk by chunk, fixed points (affine fits), reconstruction error.
+
+    ``fit`` is a :class:`~snaplift.workflow.fit_methods.FitOutcome`. Modes fitted on the
+    coefficients are the basis times the modes' coefficients (missing trailing
+    coefficients are zero); modes fitted on the raw state are its values on the grid.
+    """
+    matrix, preparation, lowrank = compressed.matrix, compressed.preparation, compressed.lowrank
+    dims = writer.metadata.grid_dims({f.name: f.grid for f in matrix.fields})
+    n_modes = int(order.size)
+    _write_mode_frequency(writer, fit, order)
+    if fit.space == "state":
+        _write_state_modes(writer, fit, matrix, order, dims)
+        return
+    rank = lowrank.rank
+    modes_rows = np.zeros((rank, n_modes), dtype=np.complex128)  # coefficient space (rank x mode)
+    modes_rows[: fit.modes.shape[0]] = fit.modes[:, order]
+    writer.array("operator", "mode_coefficient", modes_rows, ("rank", "mode"),
+                 attrs={"meaning": "modes in the coordinates of basis/coefficient (prepared data = basis @ this)"})
+    if fit.fixed_point is not None:
+        fixed_point = np.zeros(rank, dtype=np.result_type(fit.fixed_point, float))
+        fixed_point[: fit.fixed_point.size] = fit.fixed_point
+        writer.array("operator", "fixed_point_coefficient", fixed_point, ("rank",))
+    for rows in _mode_fields(matrix):
+        basis_rows = _basis_field_rows(lowrank.basis, rows, compute)
+        mode_array = writer.empty("modes", rows.name, (n_modes, *rows.grid), np.complex128,
+                                  ("mode", *dims[rows.name]), chunks=_vector_chunks(None, (n_modes, *rows.grid), 16))
+        largest = np.zeros(n_modes)
+        # one chunk (a small field): the modes are gathered and written at once
+        whole = np.empty((n_modes, *rows.grid), np.complex128) if mode_array.chunks[0] == n_modes else None
+        for k in range(n_modes):
+            values = to_physical(_basis_times(basis_rows, modes_rows[:, k]), rows, preparation, add_mean=False)
+            largest[k] = _largest(values)
+            if whole is None:
+                mode_array[k] = rows.expand(values)
+            else:
+                whole[k] = rows.expand(values)
+        if whole is not None:
+            mode_array[...] = whole
+        _write_peak(writer, rows.name, largest, fit, order, np.dtype(matrix.dtype).kind != "c")
+        if preparation.mean is not None:
+            mean = to_physical(preparation.mean[rows.offset:rows.stop], rows, _unscaled(preparation), add_mean=False)
+            # with the affine term the model is x_j = fixed_point + sum_k mode_k b_k lambda_k^j
+            fixed = basis_rows @ fit.fixed_point if fit.fixed_point is not None else np.zeros(rows.n_rows)
+            steady = to_physical(fixed, rows, preparation, add_mean=False) + mean
+            writer.array("prepare", f"fixed_point_{rows.name}", rows.expand(np.real_if_close(steady)),
+                         dims[rows.name], attrs={"meaning": "x_j = fixed_point + sum_k mode_k b_k lambda_k^j"})
+    coefficient, column_norm = lowrank.coefficient, lowrank.column_norm
+    projection = lowrank.projection_error()
+    model: np.ndarray = np.zeros(coefficient.shape, dtype=np.complex128)
+    model[: fit.model.shape[0]] = fit.model
+    if not np.iscomplexobj(coefficient):
+        model = model.real
+    # the basis is orthonormal: the error splits into the part outside the basis
+    # (projection error) and the model's error inside it (Pythagoras)
+    inside = np.linalg.norm(coefficient - model, axis=0)
+    total = np.sqrt(inside**2 + (projection * column_norm) ** 2)
+    reconstruction = np.divide(total, column_norm, out=np.zeros_like(total), where=column_norm > 0)
+    writer.array("diagnostics", "reconstruction_error", reconstruction, ("snapshot",),
+                 attrs={"norm": "relative, weighted and scaled (physical inner product)"})
+
+
+def _largest(values: np.ndarray) -> float:
+    """Largest modulus of a mode's values (NaN at masked or zero-weight points ignored)."""
+    magnitude = np.abs(np.asarray(values))
+    finite = magnitude[np.isfinite(magnitude)]
+    return float(finite.max()) if finite.size else 0.0
+
+
+def _write_mode_frequency(writer: StoreWriter, fit: Any, order: np.ndarray) -> None:
+    """``modes/frequency`` (mode,): the non-index coordinate of the mode arrays."""
+    values = mode_frequency(np.asarray(fit.eigenvalue)[order], fit.dt)
+    writer.array("modes", "frequency", np.asarray(values, dtype=np.float64), ("mode",))
+
+
+def peak_amplitude(largest: np.ndarray, amplitude: np.ndarray, eigenvalue: np.ndarray, *,
+                   real: bool = True) -> np.ndarray:
+    """Peak amplitude of each mode's part of the data at the first snapshot, in field units.
+
+    A mode ``phi_k`` (field units, per unit amplitude) with amplitude ``b_k`` contributes
+    ``phi_k b_k lambda_k^j`` to snapshot ``j``; a complex-conjugate pair contributes
+    ``2 Re(phi_k b_k lambda_k^j)``, an oscillation of amplitude ``2 |phi_k b_k|`` at each
+    point. So the peak is ``max |phi_k| |b_k|``, doubled for a mode with a conjugate
+    partner (both modes of a pair show the pair's peak): a standing wave
+    ``40 Pa cos(omega t) sin(k x)`` reads 40 Pa.
+    """
+    partner = conjugate_pairs(np.asarray(eigenvalue, dtype=np.complex128))
+    # complex data have no conjugate symmetry: each mode stands alone
+    factor = np.where(partner >= 0, 2.0, 1.0) if real else np.ones(partner.shape)
+    return np.asarray(largest) * np.abs(np.asarray(amplitude)) * factor
+
+
+def _write_peak(writer: StoreWriter, name: str, largest: np.ndarray, fit: Any, order: np.ndarray, real: bool) -> None:
+    amplitude = np.asarray(fit.amplitude)[order]
+    eigenvalue = np.asarray(fit.eigenvalue)[order]
+    writer.array("spectrum", f"peak_{name}", peak_amplitude(largest, amplitude, eigenvalue, real=real), ("mode",),
+                 attrs={"meaning": "max over the grid of |mode| |amplitude| (x 2 for a conjugate pair): the "
+                                   "mode's peak contribution at the first snapshot of the fit, in field units"})
+
+
+def _write_state_modes(writer: StoreWriter, fit: Any, matrix: SnapshotMatrix, order: np.ndarray,
+                       dims: dict[str, tuple[str, ...]]) -> None:
+    modes = np.asarray(fit.modes)[:, order]
+    for rows in matrix.fields:
+        values = modes[rows.offset:rows.stop].T  # (mode, kept points), raw units
+        writer.array("modes", rows.name, rows.expand(values).astype(np.complex128), ("mode", *dims[rows.name]),
+                     chunks=(1, *rows.grid))
+        largest = np.array([_largest(v) for v in values])
+        _write_peak(writer, rows.name, largest, fit, order, np.dtype(matrix.dtype).kind != "c")
+    data, model = np.asarray(fit.data), np.asarray(fit.model)
+    model = model.real if not np.iscomplexobj(data) else model
+    norm = np.linalg.norm(data, axis=0)
+    error = np.linalg.norm(data - model, axis=0)
+    writer.array("diagnostics", "reconstruction_error", np.divide(error, norm, out=np.zeros_like(error),
+                                                                  where=norm > 0), ("snapshot",),
+                 attrs={"norm": "relative, raw state values (unweighted, unscaled)"})
