@@ -37,7 +37,8 @@ LAYERS: tuple[tuple[tuple[str, ...], ...], ...] = (
     # of the snapshot matrix) and by the fit (EDMD's dictionary), so below both
     (("snaplift.lifting",),),
     # units; the compress methods' registry (names, widths, passes, memory terms: plain arithmetic)
-    (("snaplift.units",), ("snaplift._process_memory",), ("snaplift.compress_methods",)),
+    # and the fit methods' registry (names, summaries, needs: plain data)
+    (("snaplift.units",), ("snaplift._process_memory",), ("snaplift.compress_methods",), ("snaplift.fit_methods",)),
     (("snaplift.errors",), ("snaplift.__init__",)),
 )
 

@@ -11,6 +11,7 @@ import typer
 from typer.core import TyperGroup
 
 from snaplift.compress_methods import METHOD_NAMES, methods_help
+from snaplift.fit_methods import fit_methods_help
 
 class _OneLineUsageErrors(TyperGroup):
     """Usage errors (a missing or extra argument, an unknown option) as one line on stderr,
@@ -131,7 +132,7 @@ def demo(
         typer.echo(str(summary.path))
 
 
-@app.command()
+@app.command(epilog=f"fit.method choices -- {fit_methods_help()}")
 @_user_errors
 def run(
     workflow: Annotated[Path, typer.Argument(help="workflow YAML file")],

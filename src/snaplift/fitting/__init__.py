@@ -1,5 +1,8 @@
 """Fitting: DMD / EDMD / optimized DMD, debiasing, residuals, spectra, rank, reconstruction.
 
+Every fit method of the registry (:data:`FIT_METHODS`, names and needs in
+:mod:`snaplift.fit_methods`) takes a :class:`FitProblem` and returns a :class:`FitResult`.
+
 Everything here works on small in-memory numpy arrays (the coefficients ``C = U^H X``,
 r x m, or a small raw state); mapping modes back to physical fields with the basis ``U``
 is the caller's job.
@@ -15,6 +18,7 @@ from snaplift.fitting.assessment import (
     dmd_residuals,
     fit_dmd_with_residuals,
     mode_ranking,
+    optimized_residuals,
 )
 from snaplift.fitting.debias import (
     DEBIAS_METHODS,
@@ -23,6 +27,14 @@ from snaplift.fitting.debias import (
 )
 from snaplift.fitting.dmd import DMDFit, fit_dmd, normalize_modes, run_pair_mask
 from snaplift.fitting.edmd import EDMDFit, eigenfunctions, fit_edmd, forecast_edmd
+from snaplift.fitting.methods import (
+    FIT_METHODS,
+    FitMethod,
+    FitProblem,
+    FitResult,
+    modal_model,
+    run_fit,
+)
 from snaplift.fitting.optimized import OptimizedDMDFit, fit_optimized_dmd, optimized_reconstruct
 from snaplift.fitting.rank import (
     choose_rank,
@@ -100,6 +112,13 @@ __all__ = [
     "dmd_residuals",
     "fit_dmd_with_residuals",
     "mode_ranking",
+    "optimized_residuals",
+    "FIT_METHODS",
+    "FitMethod",
+    "FitProblem",
+    "FitResult",
+    "modal_model",
+    "run_fit",
     "run_amplitudes",
     "run_amplitude_table",
     "run_lengths_from_mask",

@@ -3,8 +3,7 @@ eigenfunctions, modes on the grid, peak amplitudes and the reconstruction error.
 
 They read the compress result as :class:`snaplift.results.stages.Compressed` (computed,
 kept or reused: the same numbers) and the fit as a
-:class:`~snaplift.workflow.fit_methods.FitOutcome` (duck-typed here: ``results`` sits below
-``workflow``).
+:class:`~snaplift.fitting.FitResult` (every fit method gives one).
 """
 
 from __future__ import annotations
@@ -14,6 +13,7 @@ from typing import Any
 import numpy as np
 
 from snaplift.archive.matrix import FieldRows, SnapshotMatrix
+from snaplift.fitting.assessment import mode_ranking
 from snaplift.fitting.spectrum import conjugate_pairs
 from snaplift.fitting.spectrum import frequency as mode_frequency
 from snaplift.prepare import to_physical
@@ -57,14 +57,14 @@ def write_fit(writer: StoreWriter, fit: Any, dt: float, *, residuals: Any = None
                             f"{residuals.threshold:g} on {residuals.n_pairs} {residuals.pairs} pairs")
     # ranking: the tool's own order of importance, trusted modes first, then by amplitude
     # (snaplift.fitting.mode_ranking); 0 is the most important mode
-    flags = np.asarray(table["trusted"], dtype=bool) if residuals is not None else np.ones(order.size, bool)
-    ranking = np.empty(order.size, dtype=np.int64)
-    ranking[np.argsort(~flags, kind="stable")] = np.arange(order.size)
+    position = np.empty(n_modes, dtype=np.int64)  # position of each fitted mode in this sorted table
+    position[order] = np.arange(n_modes)
+    ranked = mode_ranking(fit, trusted=None if residuals is None else residuals.trusted)
+    ranking = np.empty(n_modes, dtype=np.int64)
+    ranking[position[ranked]] = np.arange(n_modes)
     writer.array("spectrum", "ranking", ranking, ("mode",),
                  attrs={"meaning": "0 = most important: trusted modes first, then by amplitude"})
     # partner: position (in this sorted table) of the complex-conjugate eigenvalue, -1 if none
-    position = np.empty(n_modes, dtype=np.int64)
-    position[order] = np.arange(n_modes)
     partner = np.asarray(table["partner"])
     writer.array("spectrum", "partner", np.where(partner >= 0, position[np.maximum(partner, 0)], -1), ("mode",))
     flagged = np.flatnonzero(np.asarray(table["near_nyquist"]))
@@ -128,7 +128,7 @@ def _basis_times(basis: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
 def write_modes(writer: StoreWriter, fit: Any, compressed: Compressed, order: np.ndarray, compute: Any) -> None:
     """Physical modes chunk by chunk, fixed points (affine fits), reconstruction error.
 
-    ``fit`` is a :class:`~snaplift.workflow.fit_methods.FitOutcome`. Modes fitted on the
+    ``fit`` is a :class:`~snaplift.fitting.FitResult`. Modes fitted on the
     coefficients are the basis times the modes' coefficients (missing trailing
     coefficients are zero); modes fitted on the raw state are its values on the grid.
     """

@@ -16,13 +16,14 @@ import numpy as np
 
 from snaplift.cluster import Scheduler
 from snaplift.compress_methods import check_rank
+from snaplift.fitting.methods import FitResult
 from snaplift.results.stages import Compressed, load_compressed
 from snaplift.results.staging import StagedStore
 from snaplift.stream.compress import CompressOptions, compress
 from snaplift.stream.loop import runner_for
 from snaplift.workflow.append import append_compress, can_append
 from snaplift.workflow.fingerprint import Classification
-from snaplift.workflow.fit_methods import FitOutcome, fit_outcome
+from snaplift.workflow.fit_methods import fit_outcome
 from snaplift.workflow.scanning import Scanned, lifted_scale, snapshot_matrix_of
 from snaplift.workflow.schema import Workflow
 
@@ -95,7 +96,7 @@ def try_append(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, store
 
 
 def fit_stage(workflow: Workflow, compressed: Compressed, scanned: Scanned, *, memory_budget: int | None = None,
-              say: Any = None) -> FitOutcome:
+              say: Any = None) -> FitResult:
     """``fit.method`` on the compress result (:mod:`snaplift.workflow.fit_methods`).
 
     DMD of the coefficients (affine term when the data were centred), EDMD of a

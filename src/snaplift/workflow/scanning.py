@@ -28,6 +28,7 @@ from snaplift.archive.plan import TilePlan
 from snaplift.cluster import Scheduler
 from snaplift.compress_methods import check_rank
 from snaplift.errors import ArchiveError, ConfigError, FieldNotFoundError, TimeSpacingError
+from snaplift.fit_methods import get_fit_method
 from snaplift.lifting import delayed_run_lengths
 from snaplift.lifting.expressions import check_variables, parse_formulas
 from snaplift.workflow.fit_methods import state_variables
@@ -215,7 +216,7 @@ def _checked_scan(workflow: Workflow, folder: Path) -> Scanned:
     times = np.asarray(all_times, dtype=np.float64)[index]
     selected_runs = selected_run_lengths(archive_run_lengths(reader, section.runs, total), index)
     dt, uniform = _run_time_step(reader.path, times, index, selected_runs,
-                                 allow_uneven=workflow.fit.method == "optimized")
+                                 allow_uneven=not get_fit_method(workflow.fit.method).uniform_steps)
     columns, column_runs = np.arange(index.size), selected_runs
     lift = workflow.field_lift
     if lift is not None and lift.delays > 1:

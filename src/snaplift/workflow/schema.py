@@ -19,6 +19,7 @@ from pydantic import BaseModel, ConfigDict, Field, ValidationError, field_valida
 
 from snaplift.compress_methods import METHOD_NAMES
 from snaplift.errors import ConfigError
+from snaplift.fit_methods import FIT_METHOD_NAMES, FIT_METHODS
 from snaplift.units import parse_bytes, parse_every
 from snaplift.workflow._text import MAX_MESSAGE, MAX_WORKFLOW_BYTES, safe_load, shorten, shown
 from snaplift.workflow.cluster_section import ClusterSection
@@ -40,9 +41,12 @@ __all__ = [
 
 if TYPE_CHECKING:
     CompressMethodName = str
+    FitMethodName = str
 else:
     #: ``compress.method``: a name of the registry (``Literal["randomized", "sketch", "tsqr"]``)
     CompressMethodName = Literal[METHOD_NAMES]
+    #: ``fit.method``: a name of the fit registry (``Literal["dmd", "edmd", "optimized"]``)
+    FitMethodName = Literal[FIT_METHOD_NAMES]
 
 
 class _Section(BaseModel):
@@ -204,6 +208,12 @@ class EnergyRank(_Section):
     energy: float = Field(gt=0, lt=1, description="smallest rank keeping this fraction of the energy")
 
 
+def _methods_with(option: str) -> str:
+    """``'edmd' and 'optimized'``: the fit methods a ``fit:`` key applies to (from the registry)."""
+    names = [f"'{info.name}'" for info in FIT_METHODS.values() if option in info.options]
+    return " and ".join(names) if len(names) < 3 else ", ".join(names[:-1]) + " and " + names[-1]
+
+
 class FitSection(_Section):
     """``fit:`` — DMD on the coefficients, with residuals on held-out pairs.
 
@@ -213,7 +223,8 @@ class FitSection(_Section):
     residual (Colbrook & Townsend 2024), ``trust_threshold`` marks it trusted.
     """
 
-    method: Literal["dmd", "edmd", "optimized"] = "dmd"
+    #: the choices come from the registry (:data:`snaplift.fit_methods.FIT_METHODS`)
+    method: FitMethodName = "dmd"
     rank: int | Literal["optimal"] | EnergyRank | None = Field(
         None, description="dmd: second truncation; edmd: truncation of the lifted data; optimized: exponentials"
     )
@@ -233,13 +244,16 @@ class FitSection(_Section):
 
     @model_validator(mode="after")
     def _method_options(self) -> FitSection:
-        if self.debias != "none" and self.method != "dmd":
-            raise ValueError(f"debias applies to method 'dmd', not {self.method!r} (optimized DMD is itself "
-                             "robust to noise; for edmd use a truncation rank)")
-        if self.method == "optimized" and self.rank is not None and not isinstance(self.rank, int):
-            raise ValueError("method 'optimized' needs rank as a number of exponentials (or none: all coefficients)")
-        if self.coefficients is not None and self.method == "dmd":
-            raise ValueError("coefficients applies to methods 'edmd' and 'optimized'; for dmd use rank")
+        info = FIT_METHODS[self.method]
+        if self.debias != "none" and "debias" not in info.options:
+            raise ValueError(f"debias applies to method {_methods_with('debias')}, not {self.method!r} (optimized "
+                             "DMD is itself robust to noise; for edmd use a truncation rank)")
+        if info.integer_rank and self.rank is not None and not isinstance(self.rank, int):
+            raise ValueError(f"method {self.method!r} needs rank as a number of exponentials (or none: all "
+                             "coefficients)")
+        if self.coefficients is not None and "coefficients" not in info.options:
+            raise ValueError(f"coefficients applies to methods {_methods_with('coefficients')}; for "
+                             f"{self.method} use rank")
         return self
 
     def rank_argument(self) -> int | float | str | None:
@@ -277,7 +291,7 @@ class Workflow(_Section):
             raise ValueError(f"fit.coefficients ({self.fit.coefficients}) cannot exceed compress.rank "
                              f"({self.compress.rank})")
         # for edmd, rank truncates the lifted data, which may have more terms than coefficients
-        if self.fit.method != "edmd" and isinstance(self.fit.rank, int) and self.fit.rank > self.compress.rank:
+        if not FIT_METHODS[self.fit.method].dictionary and isinstance(self.fit.rank, int) and self.fit.rank > self.compress.rank:
             raise ValueError(
                 f"fit.rank ({self.fit.rank}) cannot exceed compress.rank ({self.compress.rank})"
             )

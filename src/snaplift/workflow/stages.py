@@ -33,6 +33,7 @@ import numpy as np
 
 from snaplift._process_memory import trim_heap
 from snaplift.cluster import Scheduler
+from snaplift.fitting.methods import FitResult
 from snaplift.results import store as result_store
 from snaplift.results.fit_output import modes_bytes, write_fit, write_fit_details, write_modes
 from snaplift.results.stages import Compressed, write_compressed, write_scan
@@ -46,7 +47,6 @@ from snaplift.workflow.fingerprint import (
     stage_fingerprints,
     verification_note,
 )
-from snaplift.workflow.fit_methods import FitOutcome
 from snaplift.workflow.planning import compress_memory
 from snaplift.workflow.progress import ProgressReporter
 from snaplift.workflow.scanning import Scanned, check_workflow, scan_stage
@@ -125,7 +125,7 @@ class Fitted:
 
     n_modes: int
     warnings: tuple[str, ...] = ()
-    outcome: FitOutcome | None = None
+    outcome: FitResult | None = None
     order: np.ndarray | None = None
 
 
