@@ -131,7 +131,8 @@ def test_method_recovers_the_oscillator_eigenvalues(method: str, complex_valued:
                                atol=1e-6)
     np.testing.assert_allclose(np.sort(result.growth), np.sort(expected.real), atol=1e-6)
     # exact data: every eigenvalue is supported by the pairs (Colbrook & Townsend 2024)
-    assert result.residual is not None and np.all(result.residual < 1e-6) and result.trusted.all()
+    assert result.residual is not None and result.trusted is not None
+    assert np.all(result.residual < 1e-6) and result.trusted.all()
     assert sorted(result.ranking().tolist()) == list(range(result.rank))
     # the modal model reproduces the training data (exact samples of a linear system)
     assert result.model.shape == data.shape
@@ -198,5 +199,6 @@ def test_dmd_variants_recover_the_eigenvalues(options: dict[str, object]) -> Non
     _assert_same_eigenvalues(result.eigenvalue, _reference_eigenvalues())
     if options.get("affine"):
         # the fixed point solves (I - F) c = b (Hirsh et al. 2020)
+        assert result.fixed_point is not None
         np.testing.assert_allclose(result.fixed_point, offset, atol=1e-6)
     assert result.relative_error() < RECONSTRUCTION_TOL

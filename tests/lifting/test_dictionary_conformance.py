@@ -52,7 +52,7 @@ def _monomials_direct(x: np.ndarray, degree: int) -> np.ndarray:
 
 def _fourier_direct(x: np.ndarray, harmonics: int, low: np.ndarray | None = None,
                     high: np.ndarray | None = None) -> np.ndarray:
-    a = x if low is None else np.pi * (x - low[:, None]) / (high[:, None] - low[:, None])
+    a = x if low is None or high is None else np.pi * (x - low[:, None]) / (high[:, None] - low[:, None])
     return np.array([f(k * a[i]) for i in range(len(x)) for k in range(1, harmonics + 1) for f in (np.sin, np.cos)])
 
 
@@ -211,7 +211,7 @@ FIELD_LIFTS = {
     "delays": FieldLift(delays=3, spacing=2),
     "pointwise-delays": FieldLift(terms=("x", "square"), delays=2, spacing=1),
 }
-DIRECT_POINTWISE = {"x": lambda v: v, "square": lambda v: v * v, "cube": lambda v: v**3, "abs": np.abs,
+DIRECT_POINTWISE: dict[str, Callable[[np.ndarray], np.ndarray]] = {"x": lambda v: v, "square": lambda v: v * v, "cube": lambda v: v**3, "abs": np.abs,
                     "sin": np.sin, "cos": np.cos}
 
 
