@@ -31,6 +31,7 @@ from typing import Annotated, Any, Literal
 from pydantic import BaseModel, ConfigDict, Field, field_validator, model_validator
 
 from snaplift.errors import ConfigError
+from snaplift.fit_methods import FIT_METHODS
 
 __all__ = [
     "STATE_LIMIT",
@@ -182,12 +183,13 @@ def check_lift(entries: list[Any], fields: list[str], fit_method: str) -> None:
     if len(sources) > 1:
         raise ValueError("lift: every state dictionary entry must use the same 'on' (coefficients or state); "
                          f"got {sorted(sources)}")
-    if states and fit_method != "edmd":
+    lifting = [info.name for info in FIT_METHODS.values() if info.dictionary]  # from the registry: edmd
+    if states and fit_method not in lifting:
         index, entry = states[0]
-        raise ValueError(f"lift[{index}] ({entry.kind}) is a dictionary on a state: it needs fit.method: edmd, "
-                         f"not {fit_method!r}")
-    if fit_method == "edmd" and not states:
-        raise ValueError("fit.method edmd needs a dictionary in lift: at least one of "
+        raise ValueError(f"lift[{index}] ({entry.kind}) is a dictionary on a state: it needs fit.method: "
+                         f"{' or '.join(lifting)}, not {fit_method!r}")
+    if fit_method in lifting and not states:
+        raise ValueError(f"fit.method {fit_method} needs a dictionary in lift: at least one of "
                          f"{', '.join(STATE_KINDS)} (e.g. - kind: monomials, degree: 2)")
     if states and sources == {"state"} and any(e.kind in RAW_KINDS for e in entries):
         raise ValueError("lift: pointwise/delays entries lift the fields for compress; a dictionary "
