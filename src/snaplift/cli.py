@@ -313,11 +313,6 @@ def bench(
         raise ConfigError(f"--methods {methods!r}: allowed are sketch, randomized, tsqr")
     if repeats < 1:
         raise ConfigError(f"--repeats must be >= 1; got {repeats}")
-    where = str(folder) if folder else "a temporary folder"
-    extra = "" if quick else " and a zarr copy of the same size"
-    typer.echo(f"bench writes a {size_bytes / 2**30:.2f} GiB HDF5 archive{extra} to {where}", err=True)
-    if dry_run:
-        return
     if read_limit is not None or cold:
         from snaplift.workflow.bench.archive import parse_layout
         from snaplift.workflow.bench.commands import require_slowfs
@@ -333,6 +328,12 @@ def bench(
         if not chosen_layouts:
             raise ConfigError(f"--layouts {layouts!r}: give at least one layout, e.g. 1,32")
         cap = require_slowfs(read_limit, cache_limit) if read_limit is not None else None
+    where = str(folder) if folder else "a temporary folder"
+    extra = ("" if quick else " and a zarr copy of the same size") if read_limit is None else (
+        f" per chunk layout ({layouts}), one at a time")
+    typer.echo(f"bench writes a {size_bytes / 2**30:.2f} GiB HDF5 archive{extra} to {where}", err=True)
+    if dry_run:
+        return
     if read_limit is not None:
         regime = RegimeSettings(size_bytes=size_bytes, rank=rank, workers=workers, layouts=chosen_layouts, cap=cap,
                                 cold=cold, dask=not quick, clusters=not quick,

@@ -49,14 +49,15 @@ class CommandRun:
     started: float | None  # wall-clock epoch at which the command itself started (START_MARK)
 
 
-def find_slowfs_run(environ: dict[str, str] | None = None, cwd: Path | None = None) -> Path | None:
+def find_slowfs_run(environ: dict[str, str] | None = None, cwd: Path | None = None, *,
+                    source: Path | None = None) -> Path | None:
     """``slowfs-run``: ``$SNAPLIFT_SLOWFS_RUN``, else ``../shared/tools`` beside the repository
     (of this source tree or of the current folder), else on ``PATH``; ``None`` when absent."""
     environ = dict(os.environ) if environ is None else environ
     given = environ.get("SNAPLIFT_SLOWFS_RUN")
     if given:
         return Path(given) if Path(given).is_file() else None
-    here = Path(__file__).resolve()
+    here = (source or Path(__file__)).resolve()
     for base in (*here.parents, *(cwd or Path.cwd()).resolve().parents, (cwd or Path.cwd()).resolve()):
         candidate = base.parent / "shared" / "tools" / "slowfs-run"
         if candidate.is_file():
