@@ -34,6 +34,7 @@ from snaplift.prepare import Preparation, to_physical
 from snaplift.fitting.spectrum import conjugate_pairs
 from snaplift.fitting.spectrum import frequency as mode_frequency
 from snaplift.results.store import StoreWriter
+from snaplift.results.stored_basis import StoredBasis, StoredFieldBasis
 
 __all__ = [
     "LoadedCompressed",
@@ -148,7 +149,7 @@ def write_compressed(writer: StoreWriter, compressed: Any, compute: Any, *, scal
 class _StoredLowRank:
     """The compress result as read back: same attributes fit/modes use of ``LowRank``."""
 
-    basis: Any  # dask array, or numpy for a small basis
+    basis: Any  # StoredBasis (read on demand), or numpy for a small basis
     singular_value: np.ndarray
     coefficient: np.ndarray
     column_norm: np.ndarray
@@ -188,14 +189,6 @@ def _group(root: Any, name: str, where: str) -> Any:
     return root[name]
 
 
-def _lazy(array: Any) -> Any:
-    """``dask.array`` (``array`` None) or a lazy view of a stored array: only for a large
-    basis, since importing dask.array (and the xarray/pandas it pulls in) takes ~0.5 s."""
-    import dask.array as da
-
-    return da if array is None else da.from_zarr(array)
-
-
 #: a stored basis up to this size is loaded into memory rather than as a lazy array (the
 #: many small fields of a delay-embedded probe); larger ones stay lazy, one field's rows
 #: at a time, as compress.memory plans it (at 64 MiB a 200,000-point rank-40 basis was
@@ -231,25 +224,24 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     # a small basis (many lifted fields of few points, e.g. delay-embedded probes) is read
     # at once; a lazy graph over one array per lifted field costs more than the reading
     eager = sum(int(np.prod(basis[name].shape)) * basis[name].dtype.itemsize for name in fields) <= EAGER_BASIS_BYTES
-    xp = np if eager else _lazy(None)
     for name, field_scale in zip(fields, scale):
-        # lazy: the modes stage computes one field's rows at a time
-        physical = np.asarray(basis[name][...]) if eager else _lazy(basis[name])
-        grid = tuple(int(s) for s in physical.shape[1:])
-        flat = physical.reshape(physical.shape[0], -1)
+        grid = tuple(int(s) for s in basis[name].shape[1:])
         keep = None
         if f"mask_{name}" in prepare:
             keep = np.flatnonzero(~np.asarray(prepare[f"mask_{name}"][...], dtype=bool).ravel())
-        kept = flat if keep is None else flat[:, keep]
         sqrt_weight = None
         if f"weights_{name}" in prepare:
             w = np.asarray(prepare[f"weights_{name}"][...], dtype=np.float64).ravel()
             sqrt_weight = np.sqrt(w if keep is None else w[keep])
         factor = (sqrt_weight if sqrt_weight is not None else 1.0) / field_scale
-        # physical = prepared * scale / sqrt(w); at w == 0 the prepared rows are zero
-        prepared = xp.where(xp.isfinite(kept), kept * factor, 0.0)
-        basis_blocks.append(prepared.T)
-        n_rows = int(prepared.shape[1])
+        n_rows = int(np.prod(grid)) if keep is None else int(keep.size)
+        if eager:
+            flat = np.asarray(basis[name][...]).reshape(basis[name].shape[0], -1)
+            kept = flat if keep is None else flat[:, keep]
+            # physical = prepared * scale / sqrt(w); at w == 0 the prepared rows are zero
+            basis_blocks.append(np.where(np.isfinite(kept), kept * factor, 0.0).T)
+        else:  # lazy: the modes stage reads one field's rows at a time, a few vectors per read
+            basis_blocks.append(StoredFieldBasis(basis[name], keep, factor, n_rows))
         if centered:
             mean = np.asarray(prepare[f"mean_{name}"][...]).ravel()
             mean = mean if keep is None else mean[keep]
@@ -270,7 +262,7 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
                      else np.float64)
     matrix = SnapshotMatrix(reader, tuple(rows), snapshot_index, blocks, dtype)
     lowrank = _StoredLowRank(
-        basis=xp.concatenate(basis_blocks, axis=0),
+        basis=np.concatenate(basis_blocks, axis=0) if eager else StoredBasis(basis_blocks),
         singular_value=np.asarray(basis["singular_value"][...], dtype=np.float64),
         coefficient=coefficient,
         column_norm=np.asarray(diagnostics["column_norm"][...], dtype=np.float64),
@@ -377,6 +369,8 @@ def _basis_field_rows(basis: Any, rows: Any, compute: Any) -> np.ndarray:
     part = basis[rows.offset:rows.stop]
     if isinstance(part, np.ndarray):
         return part
+    if isinstance(part, StoredFieldBasis):  # read back from a store: whole chunks, no task graph
+        return np.asarray(part)
     if part.nbytes <= SMALL_ARRAY_BYTES:  # a small field: one task, not one per vector
         (whole,) = compute(part)
         return np.asarray(whole)
@@ -391,6 +385,9 @@ def _basis_field_rows(basis: Any, rows: Any, compute: Any) -> np.ndarray:
     return out
 
 
+#: complex mode values formed and written at once by :func:`write_modes`, in bytes
+MODES_GROUP_BYTES = 16 * 2**20
+
 #: basis vectors computed per task graph by :func:`_basis_field_rows`, in bytes
 BASIS_GROUP_BYTES = 32 * 2**20
 
@@ -401,7 +398,7 @@ def _basis_times(basis: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
     went over compress.memory by that copy)."""
     if np.iscomplexobj(basis) or not np.iscomplexobj(coefficients):
         return basis @ coefficients
-    out = np.empty(basis.shape[0], dtype=np.result_type(basis, coefficients))
+    out = np.empty(basis.shape[:1] + coefficients.shape[1:], dtype=np.result_type(basis, coefficients))
     out.real = basis @ np.ascontiguousarray(coefficients.real)
     out.imag = basis @ np.ascontiguousarray(coefficients.imag)
     return out
@@ -437,13 +434,21 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Any, order: np.ndarra
         largest = np.zeros(n_modes)
         # one chunk (a small field): the modes are gathered and written at once
         whole = np.empty((n_modes, *rows.grid), np.complex128) if mode_array.chunks[0] == n_modes else None
-        for k in range(n_modes):
-            values = to_physical(_basis_times(basis_rows, modes_rows[:, k]), rows, preparation, add_mean=False)
-            largest[k] = _largest(values)
+        # a few modes per product and per write: one pass over the basis forms them all
+        # (a matrix-vector product per mode read the n x rank basis twice per mode), and
+        # zarr encodes and writes the group's chunks together
+        group = max(1, MODES_GROUP_BYTES // max(1, 16 * basis_rows.shape[0]))
+        for k0 in range(0, n_modes, group):
+            k1 = min(k0 + group, n_modes)
+            products = _basis_times(basis_rows, modes_rows[:, k0:k1])
+            block = whole[k0:k1] if whole is not None else np.empty((k1 - k0, *rows.grid), np.complex128)
+            for k in range(k0, k1):
+                values = to_physical(products[:, k - k0], rows, preparation, add_mean=False)
+                largest[k] = _largest(values)
+                block[k - k0] = rows.expand(values)
+            del products
             if whole is None:
-                mode_array[k] = rows.expand(values)
-            else:
-                whole[k] = rows.expand(values)
+                mode_array[k0:k1] = block
         if whole is not None:
             mode_array[...] = whole
         _write_peak(writer, rows.name, largest, fit, order, np.dtype(matrix.dtype).kind != "c")
