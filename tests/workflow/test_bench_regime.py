@@ -4,8 +4,8 @@ the cost model's arithmetic (by hand), every section of the text; no timing is a
 from __future__ import annotations
 
 import datetime as dt
-import os
 import stat
+import sys
 from pathlib import Path
 
 import numpy as np
@@ -134,11 +134,13 @@ def test_chunk_layouts_of_the_archive(tmp_path):
 def test_every_section_prints_on_a_tiny_archive(tmp_path):
     # a stand-in for slowfs-run with the same interface and last line (no cgroup, no root):
     # the plumbing, not the regime, is under test here
-    fake = _tool(tmp_path / "slowfs-run", 'while [ "$1" != "--" ]; do shift; done; shift\n'
-                 's=$(date +%s.%N); "$@"; rc=$?; e=$(date +%s.%N)\n'
-                 'echo "slowfs-run: $(echo "$e - $s" | bc) s, exit $rc"; exit $rc\n')
-    if os.system("command -v bc >/dev/null") != 0:
-        pytest.skip("bc is not installed (the stand-in tool's arithmetic)")
+    fake = tmp_path / "slowfs-run"
+    fake.write_text(f"#!{sys.executable}\n"
+                    "import subprocess, sys, time\n"
+                    "argv = sys.argv[sys.argv.index('--') + 1:]\n"
+                    "start = time.time(); rc = subprocess.call(argv)\n"
+                    "print(f'slowfs-run: {time.time() - start:.2f} s, exit {rc}'); sys.exit(rc)\n")
+    fake.chmod(fake.stat().st_mode | stat.S_IEXEC)
     settings = RegimeSettings(size_bytes=24 * 8 * GRID[0] * GRID[1], rank=4, workers=1, layouts=((1, 1), (8, 4)),
                               cap=Cap("200MB/s", "2.5GiB", fake), clusters=False, folder=str(tmp_path / "b"))
     figures = run_regimes(settings)
