@@ -32,7 +32,7 @@ from typing import Any
 import numpy as np
 
 from snaplift.units import parse_bytes
-from snaplift.workflow.bench.archive import GRID, layout_label, warm, write_archive
+from snaplift.workflow.bench.archive import GRID, drop_page_cache, layout_label, warm, write_archive
 from snaplift.workflow.bench.commands import Cap, run_command
 from snaplift.workflow.bench.model import CostModel, predict, relative_gap
 from snaplift.workflow.bench.workers import compare_workers
@@ -162,14 +162,20 @@ def _capped(folder: Path, archive: Path, settings: RegimeSettings, sigma: np.nda
     return out
 
 
-def _cold(folder: Path, archive: Path, settings: RegimeSettings, sigma: np.ndarray,
-          say: Callable[[str], None]) -> dict[str, Any]:
-    say("  cold, uncapped: dd with 8 MiB requests, then the sketch run")
+def _cold(folder: Path, archive: Path, settings: RegimeSettings, say: Callable[[str], None]) -> dict[str, Any]:
+    """Cold, uncapped: ``dd`` with 8 MiB requests, then the sketch's compress pass (the library's
+    compress, threads, no store written), each after dropping the page cache."""
+    from snaplift.workflow.bench.floor_cases import BenchSettings, _runner, run_method
+
+    say("  cold, uncapped: dd with 8 MiB requests, then the sketch's compress pass")
     dd = run_command(["dd", f"if={archive}", "of=/dev/null", "bs=8M"], folder=folder, cap=None, cold=True).seconds
-    run = _whole_run(folder, archive, "sketch", settings, sigma, None, True)
     size = archive.stat().st_size
-    compress = run["stages"].get("compress") or run["seconds"]
-    return {"dd_rate": size / dd, "compress_rate": run["bytes_read"] / compress, "sketch": run}
+    bench = BenchSettings(rank=settings.rank, memory_bytes=parse_bytes(settings.memory), workers=settings.workers)
+    with _runner("threads", settings.workers) as runner:
+        drop_page_cache()
+        figures = run_method(archive, "sketch", bench, runner)
+    return {"dd_rate": size / dd, "compress_rate": figures["bytes_ratio"] * size / figures["seconds"],
+            "compress_seconds": figures["seconds"]}
 
 
 def run_regimes(settings: RegimeSettings, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
@@ -196,7 +202,7 @@ def run_regimes(settings: RegimeSettings, progress: Callable[[str], None] | None
             if cap is not None:
                 figures["capped"] = _capped(folder, archive, settings, sigma, say, report=index == 0)
             if settings.cold:
-                figures["cold"] = _cold(folder, archive, settings, sigma, say)
+                figures["cold"] = _cold(folder, archive, settings, say)
             if settings.clusters or cap is not None:
                 say("  warm: the sketch's compress with threads" + (" and worker processes" if settings.clusters
                                                                      else ""))

@@ -54,7 +54,7 @@ def _capped(c: dict[str, Any], figures: dict[str, Any]) -> list[str]:
         for key in ("sketch", "randomized"):
             if key in c and c[key]["stages"].get("compress"):
                 rate = c[key]["bytes_read"] / c[key]["stages"]["compress"]
-                lines.append(f"read bandwidth during compress ({key}): {rate / 1e6:.0f} MB/s = {rate / cap:.2f} of the cap")
+                lines.append(f"read bandwidth during the compress stage ({key}, writing the basis included): {rate / 1e6:.0f} MB/s = {rate / cap:.2f} of the cap")
         whole = sketch["seconds"]
         lines.append("stages of the sketch run, share of the whole run (" + f"{whole:.1f} s):")
         lines += [f"  {name:48s} {stages[key]:6.2f} s {100 * stages[key] / whole:5.1f} %"
