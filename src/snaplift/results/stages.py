@@ -386,7 +386,7 @@ def _basis_field_rows(basis: Any, rows: Any, compute: Any) -> np.ndarray:
 
 
 #: complex mode values formed and written at once by :func:`write_modes`, in bytes
-MODES_GROUP_BYTES = 16 * 2**20
+MODES_GROUP_BYTES = 16 * 2**20  # 4 modes of 262144 complex values
 
 #: basis vectors computed per task graph by :func:`_basis_field_rows`, in bytes
 BASIS_GROUP_BYTES = 32 * 2**20
@@ -398,9 +398,16 @@ def _basis_times(basis: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
     went over compress.memory by that copy)."""
     if np.iscomplexobj(basis) or not np.iscomplexobj(coefficients):
         return basis @ coefficients
-    out = np.empty(basis.shape[:1] + coefficients.shape[1:], dtype=np.result_type(basis, coefficients))
-    out.real = basis @ np.ascontiguousarray(coefficients.real)
-    out.imag = basis @ np.ascontiguousarray(coefficients.imag)
+    if coefficients.ndim == 1:
+        out = np.empty(basis.shape[0], dtype=np.result_type(basis, coefficients))
+        out.real = basis @ np.ascontiguousarray(coefficients.real)
+        out.imag = basis @ np.ascontiguousarray(coefficients.imag)
+        return out
+    # several modes: one real product over the basis gives every real and imaginary part
+    width = coefficients.shape[1]
+    both = basis @ np.concatenate([coefficients.real, coefficients.imag], axis=1)
+    out = np.empty((basis.shape[0], width), dtype=np.result_type(basis, coefficients))
+    out.real, out.imag = both[:, :width], both[:, width:]
     return out
 
 
