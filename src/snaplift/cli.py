@@ -285,11 +285,20 @@ def bench(
     keep: Annotated[bool, typer.Option("--keep", help="keep the archive afterwards")] = False,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="say what would be written and stop")] = False,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
+    read_limit: Annotated[Optional[str], typer.Option("--read-limit", help="time whole commands (dd, snaplift run, "
+                          "dask svd_compressed) with reads capped at this rate, e.g. 200MB/s (slowfs-run: Linux, "
+                          "root, cgroups)")] = None,
+    cache_limit: Annotated[str, typer.Option("--cache-limit", help="page cache of each command under --read-limit")
+                           ] = "2.5GiB",
+    layouts: Annotated[str, typer.Option(help="chunk layouts of whole commands and --cold: snapshots per chunk, "
+                                              "xPIECES to split space, e.g. 1,8,32,8x4")] = "1,32",
 ) -> None:
     """Time compress against the floor on a synthetic time-major archive (your file system, your cores).
 
     Writes an invented HDF5 archive of --size (and a zarr copy) to --folder, removed afterwards
-    unless --keep. Example: snaplift bench --size 1GiB --quick
+    unless --keep. Example: snaplift bench --size 1GiB --quick. With --read-limit the bench
+    times whole commands as multiples of one capped read instead (and --cold adds the cold,
+    uncapped read rates): snaplift bench --size 2GiB --read-limit 200MB/s --cache-limit 2.5GiB
     """
     import json
 
@@ -307,10 +316,33 @@ def bench(
         raise ConfigError(f"--methods {methods!r}: allowed are {', '.join(METHOD_NAMES)}")
     if repeats < 1:
         raise ConfigError(f"--repeats must be >= 1; got {repeats}")
+    if read_limit is not None or cold:
+        from snaplift.workflow.bench.archive import parse_layout
+        from snaplift.workflow.bench.commands import require_slowfs
+        from snaplift.workflow.bench.regime import RegimeSettings, run_regimes
+        from snaplift.workflow.bench.render_regime import render_regimes
+
+        try:
+            chosen_layouts = tuple(parse_layout(item) for item in layouts.split(",") if item.strip())
+            if read_limit is not None:
+                parse_bytes(read_limit.removesuffix("/s")), parse_bytes(cache_limit)
+        except ValueError as error:
+            raise ConfigError(f"--layouts/--read-limit/--cache-limit: {error}") from None
+        if not chosen_layouts:
+            raise ConfigError(f"--layouts {layouts!r}: give at least one layout, e.g. 1,32")
+        cap = require_slowfs(read_limit, cache_limit) if read_limit is not None else None
     where = str(folder) if folder else "a temporary folder"
-    extra = "" if quick else " and a zarr copy of the same size"
+    extra = ("" if quick else " and a zarr copy of the same size") if read_limit is None else (
+        f" per chunk layout ({layouts}), one at a time")
     typer.echo(f"bench writes a {size_bytes / 2**30:.2f} GiB HDF5 archive{extra} to {where}", err=True)
     if dry_run:
+        return
+    if read_limit is not None:
+        regime = RegimeSettings(size_bytes=size_bytes, rank=rank, workers=workers, layouts=chosen_layouts, cap=cap,
+                                cold=cold, dask=not quick, clusters=not quick,
+                                folder=str(folder) if folder else None, keep=keep, memory=memory)
+        found = run_regimes(regime, progress=None if json_output else lambda m: typer.echo(m, err=True))
+        typer.echo(json.dumps(found, default=str, indent=2) if json_output else render_regimes(found))
         return
     settings = BenchSettings(size_bytes=size_bytes, rank=rank, memory_bytes=memory_bytes, workers=workers,
                              folder=str(folder) if folder else None, methods=chosen, zarr=not quick,
@@ -320,6 +352,12 @@ def bench(
         typer.echo(json.dumps(figures, default=lambda v: v.tolist() if hasattr(v, "tolist") else str(v), indent=2))
     else:
         typer.echo(render_benchmark(figures))
+    if cold:  # the cold read rates of the compress pass against dd, per layout
+        regime = RegimeSettings(size_bytes=size_bytes, rank=rank, workers=workers, layouts=chosen_layouts, cold=True,
+                                dask=False, clusters=False, folder=str(folder) if folder else None, keep=keep,
+                                memory=memory)
+        found = run_regimes(regime, progress=None if json_output else lambda m: typer.echo(m, err=True))
+        typer.echo(json.dumps(found, default=str, indent=2) if json_output else "\n" + render_regimes(found))
 
 
 @app.command()

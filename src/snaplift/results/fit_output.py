@@ -119,10 +119,21 @@ def _basis_times(basis: np.ndarray, coefficients: np.ndarray) -> np.ndarray:
     went over compress.memory by that copy)."""
     if np.iscomplexobj(basis) or not np.iscomplexobj(coefficients):
         return basis @ coefficients
-    out = np.empty(basis.shape[0], dtype=np.result_type(basis, coefficients))
-    out.real = basis @ np.ascontiguousarray(coefficients.real)
-    out.imag = basis @ np.ascontiguousarray(coefficients.imag)
+    if coefficients.ndim == 1:
+        out = np.empty(basis.shape[0], dtype=np.result_type(basis, coefficients))
+        out.real = basis @ np.ascontiguousarray(coefficients.real)
+        out.imag = basis @ np.ascontiguousarray(coefficients.imag)
+        return out
+    # several modes: one real product over the basis gives every real and imaginary part
+    width = coefficients.shape[1]
+    both = basis @ np.concatenate([coefficients.real, coefficients.imag], axis=1)
+    out = np.empty((basis.shape[0], width), dtype=np.result_type(basis, coefficients))
+    out.real, out.imag = both[:, :width], both[:, width:]
     return out
+
+
+#: complex mode values formed and written at once by :func:`write_modes`, in bytes
+MODES_GROUP_BYTES = 16 * 2**20  # 4 modes of 262144 complex values
 
 
 def write_modes(writer: StoreWriter, fit: Any, compressed: Compressed, order: np.ndarray, compute: Any) -> None:
@@ -155,13 +166,21 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Compressed, order: np
         largest = np.zeros(n_modes)
         # one chunk (a small field): the modes are gathered and written at once
         whole = np.empty((n_modes, *rows.grid), np.complex128) if mode_array.chunks[0] == n_modes else None
-        for k in range(n_modes):
-            values = to_physical(_basis_times(basis_rows, modes_rows[:, k]), rows, preparation, add_mean=False)
-            largest[k] = _largest(values)
+        # a few modes per product and per write: one pass over the basis forms them all
+        # (a matrix-vector product per mode read the n x rank basis twice per mode), and
+        # zarr encodes and writes the group's chunks together
+        group = max(1, MODES_GROUP_BYTES // max(1, 16 * basis_rows.shape[0]))
+        for k0 in range(0, n_modes, group):
+            k1 = min(k0 + group, n_modes)
+            products = _basis_times(basis_rows, modes_rows[:, k0:k1])
+            block = whole[k0:k1] if whole is not None else np.empty((k1 - k0, *rows.grid), np.complex128)
+            for k in range(k0, k1):
+                values = to_physical(products[:, k - k0], rows, preparation, add_mean=False)
+                largest[k] = _largest(values)
+                block[k - k0] = rows.expand(values)
+            del products
             if whole is None:
-                mode_array[k] = rows.expand(values)
-            else:
-                whole[k] = rows.expand(values)
+                mode_array[k0:k1] = block
         if whole is not None:
             mode_array[...] = whole
         _write_peak(writer, rows.name, largest, fit, order, np.dtype(matrix.dtype).kind != "c")

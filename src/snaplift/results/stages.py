@@ -35,6 +35,7 @@ from snaplift.errors import ResultStoreError
 from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation, to_physical
 from snaplift.results.store import StoreWriter
+from snaplift.results.stored_basis import StoredBasis, StoredFieldBasis
 
 __all__ = ["Compressed", "basis_bytes", "load_compressed", "write_compressed", "write_scan"]
 
@@ -150,7 +151,7 @@ class Compressed:
     bytes_read: int
     projection_kind: str = "exact"
     method: str = "randomized"
-    sketch_state: dict[str, np.ndarray] = field(default_factory=dict)
+    sketch_state: dict[str, Any] = field(default_factory=dict)  # stored arrays (np.asarray reads one)
     info: dict[str, object] = field(default_factory=dict)
 
 
@@ -158,14 +159,6 @@ def _group(root: Any, name: str, where: str) -> Any:
     if name not in root:
         raise ResultStoreError(f"{where} has no group '{name}'; the compress stage did not finish there")
     return root[name]
-
-
-def _lazy(array: Any) -> Any:
-    """``dask.array`` (``array`` None) or a lazy view of a stored array: only for a large
-    basis, since importing dask.array (and the xarray/pandas it pulls in) takes ~0.5 s."""
-    import dask.array as da
-
-    return da if array is None else da.from_zarr(array)
 
 
 #: a stored basis up to this size is loaded into memory rather than as a lazy array (the
@@ -192,7 +185,7 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     if stored_fields != list(fields):
         raise ResultStoreError(f"{where}: compress result is for fields {stored_fields}, the workflow asks for {fields}")
     rows: list[FieldRows] = []
-    basis_blocks: list[np.ndarray] = []
+    basis_blocks: list[Any] = []  # numpy (small basis) or StoredFieldBasis
     means: list[np.ndarray] = []
     offset = 0
     centered = bool(prepare.attrs.get("center", False))
@@ -203,25 +196,24 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     # a small basis (many lifted fields of few points, e.g. delay-embedded probes) is read
     # at once; a lazy graph over one array per lifted field costs more than the reading
     eager = sum(int(np.prod(basis[name].shape)) * basis[name].dtype.itemsize for name in fields) <= EAGER_BASIS_BYTES
-    xp = np if eager else _lazy(None)
     for name, field_scale in zip(fields, scale):
-        # lazy: the modes stage computes one field's rows at a time
-        physical = np.asarray(basis[name][...]) if eager else _lazy(basis[name])
-        grid = tuple(int(s) for s in physical.shape[1:])
-        flat = physical.reshape(physical.shape[0], -1)
+        grid = tuple(int(s) for s in basis[name].shape[1:])
         keep = None
         if f"mask_{name}" in prepare:
             keep = np.flatnonzero(~np.asarray(prepare[f"mask_{name}"][...], dtype=bool).ravel())
-        kept = flat if keep is None else flat[:, keep]
         sqrt_weight = None
         if f"weights_{name}" in prepare:
             w = np.asarray(prepare[f"weights_{name}"][...], dtype=np.float64).ravel()
             sqrt_weight = np.sqrt(w if keep is None else w[keep])
         factor = (sqrt_weight if sqrt_weight is not None else 1.0) / field_scale
-        # physical = prepared * scale / sqrt(w); at w == 0 the prepared rows are zero
-        prepared = xp.where(xp.isfinite(kept), kept * factor, 0.0)
-        basis_blocks.append(prepared.T)
-        n_rows = int(prepared.shape[1])
+        n_rows = int(np.prod(grid)) if keep is None else int(keep.size)
+        if eager:
+            flat = np.asarray(basis[name][...]).reshape(basis[name].shape[0], -1)
+            kept = flat if keep is None else flat[:, keep]
+            # physical = prepared * scale / sqrt(w); at w == 0 the prepared rows are zero
+            basis_blocks.append(np.where(np.isfinite(kept), kept * factor, 0.0).T)
+        else:  # lazy: the modes stage reads one field's rows at a time, a few vectors per read
+            basis_blocks.append(StoredFieldBasis(basis[name], keep, factor, n_rows))
         if centered:
             mean = np.asarray(prepare[f"mean_{name}"][...]).ravel()
             mean = mean if keep is None else mean[keep]
@@ -246,10 +238,13 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     vh = np.divide(coefficient, singular_value[:, np.newaxis], out=np.zeros_like(coefficient),
                    where=singular_value[:, np.newaxis] > 0)
     kind = str(diagnostics["projection_error"].attrs.get("kind", "exact"))
-    lowrank = LowRank(basis=xp.concatenate(basis_blocks, axis=0), singular_value=singular_value, vh=vh,
+    lowrank = LowRank(basis=np.concatenate(basis_blocks, axis=0) if eager else StoredBasis(basis_blocks),
+                      singular_value=singular_value, vh=vh,
                       column_norm=np.asarray(diagnostics["column_norm"][...], dtype=np.float64), passes=passes,
                       projection_kind=kind)
-    sketch = {name: np.asarray(a[...]) for name, a in root["sketch"].arrays()} if "sketch" in root else {}
+    # the sketch state (n x k range sketch: 170 MB at rank 40 on 262144 points) only matters
+    # to a later append, which reads it itself: kept as stored arrays, read when asked for
+    sketch = dict(root["sketch"].arrays()) if "sketch" in root else {}
     return Compressed(matrix, preparation, lowrank, passes, 0, projection_kind=kind, method=method,
                       sketch_state=sketch)
 
@@ -263,10 +258,21 @@ def _basis_field_rows(basis: Any, rows: Any, compute: Any) -> np.ndarray:
     part = basis[rows.offset:rows.stop]
     if isinstance(part, np.ndarray):
         return part
+    if isinstance(part, StoredFieldBasis):  # read back from a store: whole chunks, no task graph
+        return np.asarray(part)
     if part.nbytes <= SMALL_ARRAY_BYTES:  # a small field: one task, not one per vector
         (whole,) = compute(part)
         return np.asarray(whole)
     out = np.empty(part.shape, dtype=part.dtype, order="F")
-    for column in range(part.shape[1]):
-        (out[:, column],) = compute(part[:, column])
+    # a few basis vectors per task graph: each graph costs ~10 ms of scheduling, more than
+    # reading one 2 MiB vector (rank 40 on 262144 points: 40 graphs took 0.6-1.7 s, 3 graphs
+    # 0.3-0.7 s); a group is at most BASIS_GROUP_BYTES, so the temporaries stay small
+    group = max(1, BASIS_GROUP_BYTES // max(1, part.shape[0] * part.dtype.itemsize))
+    for c0 in range(0, part.shape[1], group):
+        c1 = min(c0 + group, part.shape[1])
+        (out[:, c0:c1],) = compute(part[:, c0:c1])
     return out
+
+
+#: basis vectors computed per task graph by :func:`_basis_field_rows`, in bytes
+BASIS_GROUP_BYTES = 32 * 2**20

@@ -28,10 +28,8 @@ asserted (pass/fail tests never depend on wall time).
 from __future__ import annotations
 
 import contextlib
-import os
 import shutil
 import tempfile
-import threading
 import time
 from collections.abc import Callable, Iterator
 from dataclasses import dataclass
@@ -41,12 +39,11 @@ from typing import Any
 import numpy as np
 
 from snaplift.stream._floor import floor_pass
+from snaplift.workflow.bench.archive import (GRID, copy_to_zarr, drop_page_cache, raw_read, reader_read, warm,
+                                              write_archive)
+from snaplift.workflow.bench.memory import timed as _timed
 
-__all__ = ["BenchSettings", "run_benchmark", "write_archive", "render_benchmark", "ProcessTreeMemory"]
-
-GRID = (512, 512)
-MODES = 120
-DECAY = 0.95
+__all__ = ["BenchSettings", "run_benchmark", "render_benchmark", "run_method", "run_svd_compressed"]
 
 
 @dataclass(frozen=True)
@@ -67,207 +64,6 @@ class BenchSettings:
     #: drop the page cache before every timed read (the archive read from the disk, as an
     #: archive larger than memory is) instead of warming it (Linux, root)
     cold: bool = False
-
-
-def spectrum() -> np.ndarray:
-    return DECAY ** np.arange(MODES, dtype=np.float64)
-
-
-class ProcessTreeMemory:
-    """Peak resident memory of this process and all its children during a ``with`` block.
-
-    On Linux each process's own high-water mark (``VmHWM`` in ``/proc/PID/status``) is
-    reset on entry (writing 5 to ``/proc/PID/clear_refs``) and read on exit: nothing runs
-    during the block. (A sampling thread would hold the GIL for a moment every few
-    milliseconds and slow down the very threads being timed, most of all code that makes
-    many small numpy calls.) The peak of the tree is at most the sum of its processes'
-    peaks, exact for one process; that sum is reported. Where the high-water mark cannot
-    be reset, RSS is sampled every ``interval`` seconds instead.
-    """
-
-    def __init__(self, interval: float = 0.05) -> None:
-        import psutil
-
-        self._process = psutil.Process()
-        self.interval = interval
-        self.peak = 0
-        self.baseline = 0
-        self.sampled = False
-        self._stop = threading.Event()
-        self._thread: threading.Thread | None = None
-
-    def _tree(self) -> list[Any]:
-        return [self._process, *self._process.children(recursive=True)]
-
-    def current(self) -> int:
-        total = 0
-        for proc in self._tree():
-            with contextlib.suppress(Exception):
-                total += proc.memory_info().rss
-        return total
-
-    @staticmethod
-    def _reset(pid: int) -> bool:
-        try:
-            with open(f"/proc/{pid}/clear_refs", "w") as handle:
-                handle.write("5")
-            return True
-        except OSError:
-            return False
-
-    @staticmethod
-    def _high_water(pid: int) -> int:
-        with contextlib.suppress(OSError, ValueError, IndexError):
-            with open(f"/proc/{pid}/status") as handle:
-                for line in handle:
-                    if line.startswith("VmHWM:"):
-                        return int(line.split()[1]) * 1024
-        return 0
-
-    def __enter__(self) -> ProcessTreeMemory:
-        self.baseline = self.current()
-        self.peak = self.baseline
-        self.sampled = not all(self._reset(proc.pid) for proc in self._tree())
-        if self.sampled:
-            self._thread = threading.Thread(target=self._sample, daemon=True)
-            self._thread.start()
-        return self
-
-    def _sample(self) -> None:
-        while not self._stop.wait(self.interval):
-            self.peak = max(self.peak, self.current())
-
-    def __exit__(self, *exc: Any) -> None:
-        if self._thread is not None:
-            self._stop.set()
-            self._thread.join()
-        if self.sampled:
-            self.peak = max(self.peak, self.current())
-        else:
-            self.peak = max(self.current(), sum(self._high_water(proc.pid) for proc in self._tree()))
-
-
-def write_archive(path: Path, n_snapshots: int, *, seed: int = 0, block: int = 64) -> np.ndarray:
-    """Write the synthetic archive; returns its singular values (exact by construction)."""
-    import h5py
-
-    rng = np.random.default_rng(seed)
-    n = GRID[0] * GRID[1]
-    modes = min(MODES, n_snapshots)
-    u, _ = np.linalg.qr(rng.standard_normal((n, modes)))
-    v, _ = np.linalg.qr(rng.standard_normal((n_snapshots, modes)))
-    sigma = spectrum()[:modes]
-    with h5py.File(path, "w") as h5:
-        h5["t"] = 0.01 * np.arange(n_snapshots)
-        data = h5.create_dataset("u", shape=(n_snapshots, *GRID), dtype="f8", chunks=(1, *GRID))
-        for j0 in range(0, n_snapshots, block):
-            j1 = min(j0 + block, n_snapshots)
-            data[j0:j1] = ((v[j0:j1] * sigma) @ u.T).reshape(j1 - j0, *GRID)
-    return sigma
-
-
-def copy_to_zarr(source: Path, target: Path, *, block: int = 64) -> None:
-    """The same data as zarr v3: no compressor, one snapshot per chunk (see module docstring)."""
-    import h5py
-    import zarr
-
-    with h5py.File(source, "r") as h5:
-        data = h5["u"]
-        group = zarr.open_group(str(target), mode="w")
-        group.create_array("t", data=np.asarray(h5["t"]))
-        out = group.create_array("u", shape=data.shape, dtype="f8", chunks=(1, *data.shape[1:]), compressors=None)
-        for j0 in range(0, data.shape[0], block):
-            out[j0:j0 + block] = data[j0:j0 + block]
-
-
-def _timed(function: Callable[[], Any]) -> tuple[float, Any, ProcessTreeMemory]:
-    with ProcessTreeMemory() as memory:
-        start = time.perf_counter()
-        value = function()
-        elapsed = time.perf_counter() - start
-    return elapsed, value, memory
-
-
-def warm(path: Path) -> None:
-    """Read every byte of an archive file (or of every file under a zarr folder) once, untimed.
-
-    Each timed case starts from a warm page cache, as issue 3 measures: a machine that
-    pages out memory it sees idle (Linux DAMON-based reclaim does so on some VMs) would
-    otherwise drop parts of the archive between cases and time the disk instead.
-    """
-    files = [path] if path.is_file() else sorted(p for p in path.rglob("*") if p.is_file())
-    buffer = bytearray(1 << 24)
-    for name in files:
-        with open(name, "rb", buffering=0) as handle:
-            while handle.readinto(buffer):
-                pass
-
-
-def drop_page_cache() -> None:
-    """Write dirty pages and drop the clean page cache (Linux ``/proc/sys/vm/drop_caches``, root)."""
-    from snaplift.errors import ConfigError
-
-    os.sync()
-    try:
-        with open("/proc/sys/vm/drop_caches", "w") as handle:
-            handle.write("1")
-    except OSError as error:
-        raise ConfigError(f"--cold needs to drop the page cache through /proc/sys/vm/drop_caches (Linux, "
-                          f"as root): {error}") from None
-
-
-def raw_read(path: Path, fmt: str, *, block: int = 1, fresh: bool = False) -> float:
-    """Read every stored chunk once (blocks of ``block`` snapshots), nothing else.
-
-    By default into one reused buffer (HDF5 ``read_direct``, zarr ``out=``); with
-    ``fresh`` into a new array per block, as the readers return tiles.
-    """
-    def timed(data, into) -> float:
-        buffer = np.empty((block, *data.shape[1:]))
-        start = time.perf_counter()
-        for j0 in range(0, data.shape[0], block):
-            j1 = min(j0 + block, data.shape[0])
-            if fresh:
-                data[j0:j1]
-            else:
-                into(data, buffer[: j1 - j0], j0, j1)
-        return time.perf_counter() - start
-
-    if fmt == "hdf5":
-        import h5py
-
-        with h5py.File(path, "r") as h5:
-            return timed(h5["u"], lambda data, out, j0, j1: data.read_direct(out, np.s_[j0:j1]))
-    import zarr
-    from zarr.core.buffer.cpu import NDBuffer
-
-    return timed(zarr.open_group(str(path), mode="r")["u"],
-                 lambda data, out, j0, j1: data.get_basic_selection(np.s_[j0:j1], out=NDBuffer.from_numpy_array(out)))
-
-
-def reader_read(path: Path, block: int, threads: int = 1) -> float:
-    """Every tile of ``block`` snapshots through the archive reader (:func:`read_snapshot_block`),
-    on ``threads`` threads as the compress runner reads them."""
-    from concurrent.futures import ThreadPoolExecutor
-
-    from snaplift.archive import open_archive
-    from snaplift.archive.matrix import build_snapshot_matrix, read_snapshot_block
-
-    reader = open_archive(str(path))
-    m = reader.describe().fields["u"].n_snapshots
-    matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(m), snapshot_block=block)
-
-    def read(columns: tuple[int, int]) -> None:
-        read_snapshot_block(reader, matrix.fields[0], matrix.snapshot_index[columns[0]:columns[1]])
-
-    start = time.perf_counter()
-    with ThreadPoolExecutor(max(1, threads), thread_name_prefix="snaplift-bench-read") as pool:
-        list(pool.map(read, matrix.blocks))
-    elapsed = time.perf_counter() - start
-    from snaplift.archive import _handles
-
-    _handles.release_tile_buffers()  # as compress does when it is done
-    return elapsed
 
 
 def _best(runs: list[dict[str, Any]]) -> dict[str, Any]:
