@@ -103,6 +103,8 @@ class Pass:
     def __init__(self, runner: TileRunner, source: TileSource, *, in_flight: int,
                  checkpoint: Checkpointer | None = None, progress: Any = None) -> None:
         self.runner = runner
+        # each worker's next tile is read while it multiplies the current one
+        source = replace(source, read_ahead=int(getattr(runner, "read_ahead", 0) or 0))
         self.source = source
         self.shared_source = runner.share(source)
         self.in_flight = in_flight
@@ -132,6 +134,7 @@ class Pass:
         pending: set[int] = set()
         last: dict[int, int] = {}
         order = {job.id: position for position, job in enumerate(j for j in jobs if j.id not in state.done)}
+        jobs = _with_reads_ahead(jobs, state, key, count or self.runner.workers, self.source)
 
         def per_job(job: Job) -> tuple[Any, int | None]:
             if not count:
@@ -196,6 +199,21 @@ class Pass:
         trim_heap()
         if self.checkpoint is not None:
             self.checkpoint.save(state)
+
+
+def _with_reads_ahead(jobs: Sequence[Job], state: StreamState, key: str, stride: int, source: TileSource
+                      ) -> Sequence[Job]:
+    """Jobs whose tiles name the tile read ahead for them: the one ``stride`` later (with
+    slots, the next tile of the same slot, hence of the same worker process)."""
+    todo = [job for job in jobs if job.id not in state.done]
+    if not source.read_ahead or not todo or not all(isinstance(job.tile, TileRef) for job in todo):
+        return jobs
+    out = []
+    for position, job in enumerate(todo):
+        later = todo[position + stride].tile if position + stride < len(todo) else None
+        ahead = replace(later, ahead=None, read_key=key) if later is not None else None
+        out.append(replace(job, tile=replace(job.tile, ahead=ahead, read_key=key)))
+    return out
 
 
 def _add_rows(state: StreamState, name: str, source: TileSource, tile: Any, result: dict[str, Any]) -> None:

@@ -210,8 +210,9 @@ def _release_caches(runner: TileRunner, *, test_matrices: bool = True) -> None:
     per reading thread), in this process and in every worker."""
     from snaplift.archive import _handles
     from snaplift.linalg import _testmatrix
+    from snaplift.stream import _prefetch
 
-    functions = ((_testmatrix.release,) if test_matrices else ()) + (_handles.release_tile_buffers,)
+    functions = ((_testmatrix.release,) if test_matrices else ()) + (_prefetch.clear, _handles.release_tile_buffers)
     for function in functions:
         function()
     client = getattr(runner, "client", None)

@@ -67,6 +67,12 @@ class TileRunner(Protocol):
         """Accumulation slots for range products (0: tasks return their products instead)."""
         ...
 
+    @property
+    def read_ahead(self) -> int:
+        """Reader threads per process for reading each worker's next tile ahead (0: none;
+        :mod:`snaplift.stream._prefetch`)."""
+        ...
+
 
 class ThreadRunner:
     """Tiles in a pool of ``workers`` threads of this process.
@@ -105,6 +111,10 @@ class ThreadRunner:
 
     @property
     def slots(self) -> int:
+        return self.workers
+
+    @property
+    def read_ahead(self) -> int:
         return self.workers
 
     def submit(self, function: Callable[..., Any], *args: Any, where: int | None = None) -> Any:
@@ -146,6 +156,15 @@ class ClientRunner:
     @property
     def slots(self) -> int:
         return len(self.addresses) if self.use_slots else 0
+
+    @property
+    def read_ahead(self) -> int:
+        """Tile threads of a worker: a slot's tiles run on one worker, so its next tile is
+        read where it will be multiplied; workers that retire (no slots) read nothing ahead."""
+        if not self.use_slots:
+            return 0
+        threads = self.client.nthreads()
+        return max(1, max((int(n) for n in threads.values()), default=1))
 
     def __enter__(self) -> ClientRunner:
         return self
@@ -222,6 +241,7 @@ class InlineRunner:
     kind = "inline"
     workers = 1
     slots = 0
+    read_ahead = 0
 
     def __enter__(self) -> InlineRunner:
         return self
