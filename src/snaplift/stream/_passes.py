@@ -110,6 +110,8 @@ class Pass:
         self.in_flight = in_flight
         self.checkpoint = checkpoint
         self.progress = progress
+        #: bytes between processes of each pass run (:attr:`TileRunner.bytes_between_processes`)
+        self.bytes_between_processes: list[int] = []
 
     def slot_key(self, state: StreamState) -> str:
         # unique per run of a pass: a stopped run's slots never meet a resumed run's
@@ -180,12 +182,14 @@ class Pass:
             last.clear()
 
         running = getattr(self.runner, "tiles_running", None)
+        wire = int(getattr(self.runner, "bytes_between_processes", 0) or 0)
         try:
             with running() if running is not None else contextlib.nullcontext():
                 run_tiles(self.runner, task, (self.shared_source, *shared), jobs, fold_and_note, state,
                           in_flight=self.in_flight, checkpoint=self.checkpoint, progress=self.progress,
                           flush=flush, per_job=per_job)
             flush()
+            self.bytes_between_processes.append(int(getattr(self.runner, "bytes_between_processes", 0) or 0) - wire)
         except BaseException:
             if count:  # wake and fail tiles waiting for a predecessor that will never come
                 self.runner.discard(key, abort=True)
