@@ -184,3 +184,36 @@ def test_blas_threads_limits_and_restores():
         with blas_threads(1):
             assert getter() == 1
     assert getter() == before
+
+
+class _NoReadAhead(ThreadRunner):
+    read_ahead = 0
+
+
+@pytest.mark.parametrize("method", ["sketch", "randomized"])
+def test_tiles_read_ahead_give_the_same_result(archive, snapshot_matrix, known, monkeypatch, method):
+    from snaplift.stream import _prefetch
+
+    x = known(400, 64, 0.3 ** np.arange(1, 65), seed=33)  # a fast decay: rank 5 captures it
+    reader, _, _ = archive(x, grid=(20, 20))
+    matrix, plan = snapshot_matrix(reader, method, workers=2, rank=5, memory=2 * 2**20)
+    assert plan.n_tiles >= 6
+    asked: list[object] = []
+    request = _prefetch.request
+    monkeypatch.setattr(_prefetch, "request", lambda key, read, threads: (asked.append(key),
+                                                                          request(key, read, threads)))
+    options = CompressOptions(method=method, rank=5, seed=4, scale="none")
+    with ThreadRunner(2) as runner:
+        ahead = compress(matrix, plan, options, runner=runner)
+    # every tile asked for its own read, and all but the last two of a pass for the next one
+    assert len(asked) == ahead.passes * (2 * plan.n_tiles - 2)
+    assert _prefetch.pending_count() == 0  # nothing read ahead is left behind
+    asked.clear()
+    with _NoReadAhead(2) as runner:
+        plain = compress(matrix, plan, options, runner=runner)
+    assert not asked
+    # the same reads, the same sums in the same order: equal bits
+    np.testing.assert_array_equal(ahead.lowrank.singular_value, plain.lowrank.singular_value)
+    np.testing.assert_array_equal(ahead.lowrank.coefficient, plain.lowrank.coefficient)
+    # and the leading singular values are the matrix's (numpy SVD; tail 0.3^6 of the first, Halko et al. 2011)
+    np.testing.assert_allclose(ahead.lowrank.singular_value[:3], np.linalg.svd(x, compute_uv=False)[:3], rtol=1e-3)

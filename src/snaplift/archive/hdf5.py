@@ -177,9 +177,10 @@ class _Dataset:
     ``dataset[box]`` for a box of step-1 slices of a plain numeric dataset is read into
     :func:`snaplift.archive._handles.tile_buffer` (no page faults on fresh memory for
     every tile): whole snapshots of an unfiltered dataset as plain bytes with positioned
-    reads (:func:`snaplift.archive._handles.read_into`; they run in parallel, while h5py
-    serialises every call behind one lock), other boxes with ``read_direct``; everything
-    else is the dataset's own.
+    reads (:func:`snaplift.archive._handles.read_pieces`: chunks adjacent in the file read
+    as one run in 8 MiB requests with the next ones hinted to the kernel, so several are
+    in flight; they run in parallel, while h5py serialises every call behind one lock),
+    other boxes with ``read_direct``; everything else is the dataset's own.
     """
 
     __slots__ = ("dataset", "path")
@@ -205,10 +206,13 @@ class _Dataset:
             dataset.read_direct(out, source_sel=selection)
             return out
         handle = _handles.raw_file(self.path)
-        _handles.read_snapshot_chunks(
-            out, snapshots[0], snapshots[1], layout.per_chunk,
-            lambda chunk, rows, first: _handles.read_into(handle, rows, layout.starts[chunk]
-                                                          + first * layout.snapshot_bytes))
+        s0, s1 = snapshots
+        # chunks stored one after another are read as one run, several requests in flight
+        runs = _handles.snapshot_runs(s0, s1, layout.per_chunk,
+                                      lambda chunk, first: layout.starts[chunk] + first * layout.snapshot_bytes,
+                                      layout.snapshot_bytes)
+        flat = out.reshape(s1 - s0, -1)
+        _handles.read_pieces([(handle, offset, flat[j0 - s0:j1 - s0]) for j0, j1, offset in runs])
         return out
 
     def __getattr__(self, name: str) -> Any:

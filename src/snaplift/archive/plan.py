@@ -14,7 +14,8 @@ the tile, ``b`` snapshots per block):
 streaming loop of :mod:`snaplift.stream.loop` with ``k`` range and ``l`` co-range
 widths (:func:`method_widths`):
 
-- per tile being read: ``2 n_t b s`` (the decoded tile and the read/decoding buffer);
+- per tile being read: ``2 n_t b s`` (the decoded tile and the read/decoding buffer, or for a
+  plain tile the next one read ahead while it is multiplied: ``stream/_prefetch.py``);
 - per tile result waiting to be folded: ``s (n_t k + b (k + l))``;
 - per worker: the cached row test matrix ``c`` (``sketch`` only; all rows, since a worker
   sees every row of a time-major archive): ``(12 zeta + 4) n`` bytes for the sparse sign map

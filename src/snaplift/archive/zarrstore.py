@@ -17,6 +17,7 @@ reported in ``FieldInfo.attrs["shards"]``.
 
 from __future__ import annotations
 
+import contextlib
 import os
 from dataclasses import dataclass
 from typing import Any
@@ -131,12 +132,20 @@ def _chunk_files(array: Any) -> _ChunkFiles | None:
     return _ChunkFiles(per_chunk, tuple(paths), snapshot_bytes)
 
 
-def _read_files(files: _ChunkFiles, snapshots: tuple[int, int], out: np.ndarray) -> None:
-    def read(chunk: int, rows: np.ndarray, first: int) -> None:
-        with open(files.paths[chunk], "rb", buffering=0) as handle:
-            _handles.read_into(handle, rows, first * files.snapshot_bytes)
+#: chunk files open at once while a tile is read (their reads are hinted ahead, several in flight)
+OPEN_CHUNK_FILES = 256
 
-    _handles.read_snapshot_chunks(out, snapshots[0], snapshots[1], files.per_chunk, read)
+
+def _read_files(files: _ChunkFiles, snapshots: tuple[int, int], out: np.ndarray) -> None:
+    parts: list[tuple[int, np.ndarray, int]] = []
+    _handles.read_snapshot_chunks(out, snapshots[0], snapshots[1], files.per_chunk,
+                                  lambda chunk, rows, first: parts.append((chunk, rows, first)))
+    for g0 in range(0, len(parts), OPEN_CHUNK_FILES):
+        with contextlib.ExitStack() as stack:
+            pieces = [(stack.enter_context(open(files.paths[chunk], "rb", buffering=0)),
+                       first * files.snapshot_bytes, rows)
+                      for chunk, rows, first in parts[g0:g0 + OPEN_CHUNK_FILES]]
+            _handles.read_pieces(pieces)
 
 
 #: files of a zarr array folder that are not chunks

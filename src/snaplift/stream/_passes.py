@@ -103,11 +103,15 @@ class Pass:
     def __init__(self, runner: TileRunner, source: TileSource, *, in_flight: int,
                  checkpoint: Checkpointer | None = None, progress: Any = None) -> None:
         self.runner = runner
+        # each worker's next tile is read while it multiplies the current one
+        source = replace(source, read_ahead=int(getattr(runner, "read_ahead", 0) or 0))
         self.source = source
         self.shared_source = runner.share(source)
         self.in_flight = in_flight
         self.checkpoint = checkpoint
         self.progress = progress
+        #: bytes between processes of each pass run (:attr:`TileRunner.bytes_between_processes`)
+        self.bytes_between_processes: list[int] = []
 
     def slot_key(self, state: StreamState) -> str:
         # unique per run of a pass: a stopped run's slots never meet a resumed run's
@@ -132,6 +136,7 @@ class Pass:
         pending: set[int] = set()
         last: dict[int, int] = {}
         order = {job.id: position for position, job in enumerate(j for j in jobs if j.id not in state.done)}
+        jobs = _with_reads_ahead(jobs, state, key, count or self.runner.workers, self.source)
 
         def per_job(job: Job) -> tuple[Any, int | None]:
             if not count:
@@ -177,12 +182,14 @@ class Pass:
             last.clear()
 
         running = getattr(self.runner, "tiles_running", None)
+        wire = int(getattr(self.runner, "bytes_between_processes", 0) or 0)
         try:
             with running() if running is not None else contextlib.nullcontext():
                 run_tiles(self.runner, task, (self.shared_source, *shared), jobs, fold_and_note, state,
                           in_flight=self.in_flight, checkpoint=self.checkpoint, progress=self.progress,
                           flush=flush, per_job=per_job)
             flush()
+            self.bytes_between_processes.append(int(getattr(self.runner, "bytes_between_processes", 0) or 0) - wire)
         except BaseException:
             if count:  # wake and fail tiles waiting for a predecessor that will never come
                 self.runner.discard(key, abort=True)
@@ -196,6 +203,21 @@ class Pass:
         trim_heap()
         if self.checkpoint is not None:
             self.checkpoint.save(state)
+
+
+def _with_reads_ahead(jobs: Sequence[Job], state: StreamState, key: str, stride: int, source: TileSource
+                      ) -> Sequence[Job]:
+    """Jobs whose tiles name the tile read ahead for them: the one ``stride`` later (with
+    slots, the next tile of the same slot, hence of the same worker process)."""
+    todo = [job for job in jobs if job.id not in state.done]
+    if not source.read_ahead or not todo or not all(isinstance(job.tile, TileRef) for job in todo):
+        return jobs
+    out = []
+    for position, job in enumerate(todo):
+        later = todo[position + stride].tile if position + stride < len(todo) else None
+        ahead = replace(later, ahead=None, read_key=key) if later is not None else None
+        out.append(replace(job, tile=replace(job.tile, ahead=ahead, read_key=key)))
+    return out
 
 
 def _add_rows(state: StreamState, name: str, source: TileSource, tile: Any, result: dict[str, Any]) -> None:

@@ -18,10 +18,11 @@ from snaplift.archive._base import Reader
 from snaplift.archive.matrix import FieldRows, check_finite, read_fields_block, read_snapshot_block
 from snaplift.errors import ArchiveError
 from snaplift.linalg._kernels import adjoint_product, column_squares, field_column_squares, qr_factor, range_product
+from snaplift.stream import _prefetch
 from snaplift.stream._slots import add_range_product
 from snaplift.linalg._testmatrix import apply_corange, cached_row_map, gaussian_map, set_cache_limit
 
-__all__ = ["TileSource", "TileRef", "Preparing", "sketch_task", "product_task", "tsqr_task", "tsqr_leaf_task",
+__all__ = ["TileSource", "TileRef", "Preparing", "reads_ahead", "sketch_task", "product_task", "tsqr_task", "tsqr_leaf_task",
            "release_resident", "resident_loaded"]
 
 
@@ -39,6 +40,8 @@ class TileSource:
     corange_map: str = "gaussian"
     #: the in-memory path: tiles read once are kept in this process under this key ("" = stream)
     resident: str = ""
+    #: reader threads per process for reading tiles ahead (:mod:`snaplift.stream._prefetch`; 0: off)
+    read_ahead: int = 0
 
     @property
     def n_rows(self) -> int:
@@ -61,6 +64,10 @@ class TileRef:
     columns: tuple[int, int]
     id: int = -1
     span: int = 1
+    #: the tile this task's worker takes next, read while this one is multiplied (set by the pass)
+    ahead: TileRef | None = None
+    #: names the pass's reads ahead ("" = this tile is not read ahead)
+    read_key: str = ""
 
     def members(self, source: TileSource) -> tuple[FieldRows, ...]:
         return tuple(source.fields[self.field:self.field + self.span])
@@ -87,13 +94,38 @@ def _read(source: TileSource, tile: TileRef, *, check: bool) -> tuple[np.ndarray
     if tile.span > 1 or source.resident:
         return _read_fields(source, tile, snapshots, check=check)
     field = source.fields[tile.field]
-    raw = read_snapshot_block(source.reader, field, snapshots, tile.rows)
+    raw = _read_plain(source, tile, field, snapshots)
     if raw.shape[0] == 0 or raw.shape[1] == 0:
         return raw, np.zeros(raw.shape[0])
     squares = column_squares(raw) if check else None
     if check:
         check_finite(raw, source.reader, field, snapshots, tile.rows, squares)
     return raw, squares
+
+
+def reads_ahead(source: TileSource, tile: TileRef) -> bool:
+    """Whether ``tile`` is read in a reader thread, ahead: one plain field (no mask, no lift,
+    no read shared with siblings), whose read makes no buffer but the tile."""
+    if not source.read_ahead or source.resident or tile.span != 1:
+        return False
+    field = source.fields[tile.field]
+    return field.keep is None and field.term == "x" and field.siblings <= 1
+
+
+def _read_plain(source: TileSource, tile: TileRef, field: FieldRows, snapshots: np.ndarray) -> np.ndarray:
+    if not tile.read_key or not reads_ahead(source, tile):
+        return read_snapshot_block(source.reader, field, snapshots, tile.rows)
+
+    def reader(ref: TileRef) -> Any:
+        columns = source.snapshot_index[ref.columns[0]:ref.columns[1]]
+        return lambda: read_snapshot_block(source.reader, source.fields[ref.field], columns, ref.rows)
+
+    own = (tile.read_key, tile.id)
+    threads = source.read_ahead
+    _prefetch.request(own, reader(tile), threads)  # nothing when it was read ahead already
+    if tile.ahead is not None and reads_ahead(source, tile.ahead):
+        _prefetch.request((tile.read_key, tile.ahead.id), reader(tile.ahead), threads)
+    return _prefetch.take(own, reader(tile), threads)
 
 
 def _read_fields(source: TileSource, tile: TileRef, snapshots: np.ndarray, *, check: bool

@@ -203,8 +203,9 @@ def _release_caches(runner: TileRunner, *, test_matrices: bool = True) -> None:
     per reading thread), in this process and in every worker."""
     from snaplift.archive import _handles
     from snaplift.linalg import _testmatrix
+    from snaplift.stream import _prefetch
 
-    functions = ((_testmatrix.release,) if test_matrices else ()) + (_handles.release_tile_buffers,)
+    functions = ((_testmatrix.release,) if test_matrices else ()) + (_prefetch.clear, _handles.release_tile_buffers)
     for function in functions:
         function()
     client = getattr(runner, "client", None)
@@ -249,7 +250,10 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
             "corange_map": options.corange_map if options.method == "sketch" else None,
             "tiles": len(jobs), "in_memory": bool(source.resident), "in_flight": run.in_flight, "runner": getattr(runner, "kind", "?"),
             "resumed": resumed, "checkpoints_saved": checkpoint.saves if checkpoint is not None else 0,
-            "bytes_read_all_runs": int(state.bytes_read), "bytes_read_before_resume": bytes_before}
+            "bytes_read_all_runs": int(state.bytes_read), "bytes_read_before_resume": bytes_before,
+            # worker processes: bytes sent and received per pass run, next to the range accumulator's size
+            "bytes_between_processes": list(run.bytes_between_processes),
+            "range_accumulator_bytes": int(matrix.shape[0]) * int(range_width) * int(np.dtype(matrix.dtype).itemsize)}
     if checkpoint is not None:
         checkpoint.remove()
     # bytes read by this call; a resumed run does not count what the killed one read

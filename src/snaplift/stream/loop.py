@@ -67,6 +67,17 @@ class TileRunner(Protocol):
         """Accumulation slots for range products (0: tasks return their products instead)."""
         ...
 
+    @property
+    def read_ahead(self) -> int:
+        """Reader threads per process for reading each worker's next tile ahead (0: none;
+        :mod:`snaplift.stream._prefetch`)."""
+        ...
+
+    @property
+    def bytes_between_processes(self) -> int:
+        """Bytes of values sent to and received from worker processes so far (0 for threads)."""
+        ...
+
 
 class ThreadRunner:
     """Tiles in a pool of ``workers`` threads of this process.
@@ -107,6 +118,12 @@ class ThreadRunner:
     def slots(self) -> int:
         return self.workers
 
+    @property
+    def read_ahead(self) -> int:
+        return self.workers
+
+    bytes_between_processes = 0
+
     def submit(self, function: Callable[..., Any], *args: Any, where: int | None = None) -> Any:
         if self._pool is None:
             raise RuntimeError("ThreadRunner used outside its 'with' block")
@@ -142,10 +159,28 @@ class ClientRunner:
         # slot s lives in worker s; batch clusters whose workers retire return products instead
         self.use_slots = bool(use_slots) and bool(self.addresses)
         self._shared: list[Any] = []
+        #: bytes of the values sent to workers (scattered inputs, task arguments) and received
+        #: from them (task results, collected slots), by ``dask.sizeof``: what crosses between
+        #: processes, without the framing of the messages
+        self.bytes_sent = 0
+        self.bytes_received = 0
+
+    @property
+    def bytes_between_processes(self) -> int:
+        return self.bytes_sent + self.bytes_received
 
     @property
     def slots(self) -> int:
         return len(self.addresses) if self.use_slots else 0
+
+    @property
+    def read_ahead(self) -> int:
+        """Tile threads of a worker: a slot's tiles run on one worker, so its next tile is
+        read where it will be multiplied; workers that retire (no slots) read nothing ahead."""
+        if not self.use_slots:
+            return 0
+        threads = self.client.nthreads()
+        return max(1, max((int(n) for n in threads.values()), default=1))
 
     def __enter__(self) -> ClientRunner:
         return self
@@ -157,10 +192,12 @@ class ClientRunner:
 
     def share(self, value: Any) -> Any:
         future = self.client.scatter(value, broadcast=True, hash=False)
+        self.bytes_sent += _sizeof(value) * self.workers
         self._shared.append(future)
         return future
 
     def submit(self, function: Callable[..., Any], *args: Any, where: int | None = None) -> Any:
+        self.bytes_sent += sum(_sizeof(arg) for arg in args if not _is_future(arg))
         if where is not None and self.use_slots:
             return self.client.submit(function, *args, pure=False, retries=self.retries,
                                       workers=[self.addresses[where % len(self.addresses)]],
@@ -184,6 +221,7 @@ class ClientRunner:
         else:
             value = future.result()
         future.release()
+        self.bytes_received += _sizeof(value)
         return value
 
     def cancel(self, future: Any) -> None:
@@ -195,6 +233,7 @@ class ClientRunner:
 
         out: dict[int, tuple[np.ndarray, list[int]]] = {}
         for part in self.client.run(collect_remote, key, name).values():
+            self.bytes_received += _sizeof(part)
             out.update(part)
         return out
 
@@ -205,6 +244,19 @@ class ClientRunner:
             self.client.run(discard, key, abort=abort)
         except Exception:  # a lost worker has no slots left to discard
             pass
+
+
+def _sizeof(value: Any) -> int:
+    from dask.sizeof import sizeof  # dask is installed wherever a distributed client runs
+
+    return int(sizeof(value))
+
+
+def _is_future(value: Any) -> bool:
+    """A reference to data already on the workers (a scattered input): nothing is sent again."""
+    from distributed import Future  # imported already wherever a client runs
+
+    return isinstance(value, Future)
 
 
 class _Done:
@@ -222,6 +274,8 @@ class InlineRunner:
     kind = "inline"
     workers = 1
     slots = 0
+    read_ahead = 0
+    bytes_between_processes = 0
 
     def __enter__(self) -> InlineRunner:
         return self
