@@ -1,4 +1,5 @@
-"""Shared fixtures: the run's report switched off for speed, and an analytic archive of growing and decaying travelling waves, and stores fitted to it.
+"""Shared fixtures: the run's report switched off for speed, and an analytic archive of growing
+and decaying travelling waves, and stores fitted to it.
 
 ``u(t, y, x) = sum_k A_k exp(g_k t) cos(kappa_k x - omega_k t + phase_k)`` on a periodic
 grid (constant in y), with the same waves on a 1-D field ``p(t, x)`` (other grid: a

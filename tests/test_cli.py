@@ -21,7 +21,8 @@ def archive(tmp_path: Path) -> Path:
     t = 0.1 * np.arange(30)
     x = np.linspace(0, 1, 12)
     # two travelling waves: a known linear system (frequencies 1.0 Hz and 2.5 Hz)
-    u = np.cos(2 * np.pi * (x[None, :] - 1.0 * t[:, None])) + 0.3 * np.sin(2 * np.pi * (2 * x[None, :] - 2.5 * t[:, None]))
+    u = (np.cos(2 * np.pi * (x[None, :] - 1.0 * t[:, None]))
+         + 0.3 * np.sin(2 * np.pi * (2 * x[None, :] - 2.5 * t[:, None])))
     path = tmp_path / "wave.h5"
     with h5py.File(path, "w") as h5:
         h5["t"] = t

@@ -4,14 +4,16 @@ from __future__ import annotations
 
 import functools
 import sys
+from collections.abc import Callable
 from pathlib import Path
-from typing import Annotated, Any, Callable, Optional
+from typing import Annotated, Any
 
 import typer
 from typer.core import TyperGroup
 
 from snaplift.compress_methods import METHOD_NAMES, methods_help
 from snaplift.fit_methods import fit_methods_help
+
 
 class _OneLineUsageErrors(TyperGroup):
     """Usage errors (a missing or extra argument, an unknown option) as one line on stderr,
@@ -110,9 +112,9 @@ def _console(quiet: bool = False, columns: int = 112):
 @_user_errors
 def demo(
     size: Annotated[str, typer.Option(help="'small', 'default', or a size such as 500MB, 4GiB")] = "default",
-    output: Annotated[Optional[Path], typer.Option(help="folder for the archive and results (default: cache)")] = None,
+    output: Annotated[Path | None, typer.Option(help="folder for the archive and results (default: cache)")] = None,
     quiet: Annotated[bool, typer.Option("--quiet", "-q", help="print only the result path")] = False,
-    workflow_dir: Annotated[Optional[Path], typer.Option("--workflow-dir", help="also link the archive into this "
+    workflow_dir: Annotated[Path | None, typer.Option("--workflow-dir", help="also link the archive into this "
                                                          "folder as fin-duct.h5, where the example workflows "
                                                          "(workflows/) expect it")] = None,
 ) -> None:
@@ -139,8 +141,10 @@ def run(
     overwrite: Annotated[bool, typer.Option(help="recompute every stage from the archive (reuse nothing); also "
                                                  "replace a result store written by a different workflow")] = False,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="validate and say what would be written")] = False,
-    quiet: Annotated[bool, typer.Option("--quiet", "-q", help="no progress display; print only the result path")] = False,
-    log: Annotated[Optional[Path], typer.Option("--log", help="append time-stamped progress lines to this file (batch jobs)")] = None,
+    quiet: Annotated[bool, typer.Option("--quiet", "-q",
+                                        help="no progress display; print only the result path")] = False,
+    log: Annotated[Path | None, typer.Option(
+        "--log", help="append time-stamped progress lines to this file (batch jobs)")] = None,
 ) -> None:
     """Run a workflow file: scan, compress, fit, modes, report -> result store.
 
@@ -193,10 +197,11 @@ def run(
 @app.command()
 @_user_errors
 def scan(
-    archive: Annotated[list[str], typer.Argument(help="archive path or glob of per-snapshot files; several paths: one run each")],
-    fields: Annotated[Optional[str], typer.Option(help="comma-separated fields (default: all)")] = None,
-    time: Annotated[Optional[str], typer.Option(help="dataset of snapshot times")] = None,
-    step: Annotated[Optional[float], typer.Option(help="fixed time step if there is no time dataset")] = None,
+    archive: Annotated[list[str], typer.Argument(
+        help="archive path or glob of per-snapshot files; several paths: one run each")],
+    fields: Annotated[str | None, typer.Option(help="comma-separated fields (default: all)")] = None,
+    time: Annotated[str | None, typer.Option(help="dataset of snapshot times")] = None,
+    step: Annotated[float | None, typer.Option(help="fixed time step if there is no time dataset")] = None,
     memory: Annotated[str, typer.Option(help="memory budget used to plan tiles")] = "2GiB",
     method: Annotated[str, typer.Option(help=f"compress method the plan is for ({methods_help()})")] = "randomized",
     rank: Annotated[int, typer.Option(help="compress rank the plan is for")] = 40,
@@ -244,7 +249,7 @@ def spectrum(
     result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
     sort: Annotated[str, typer.Option(help="amplitude | frequency | growth | residual | ranking")] = "amplitude",
     all_modes: Annotated[bool, typer.Option("--all", help="show every mode (default: the first 20)")] = False,
-    field: Annotated[Optional[list[str]], typer.Option("--field", help="show this field's peak amplitude column "
+    field: Annotated[list[str] | None, typer.Option("--field", help="show this field's peak amplitude column "
                                                       "(field units); repeat or comma-separate (default: every "
                                                       "field's, up to 3)")] = None,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
@@ -276,16 +281,18 @@ def bench(
     rank: Annotated[int, typer.Option(help="compress.rank")] = 40,
     memory: Annotated[str, typer.Option(help="compress.memory budget of the tile plan")] = "2GiB",
     workers: Annotated[int, typer.Option(help="worker threads / processes")] = 2,
-    folder: Annotated[Optional[Path], typer.Option(help="where to write the archive (default: a temporary folder)")] = None,
+    folder: Annotated[Path | None, typer.Option(
+        help="where to write the archive (default: a temporary folder)")] = None,
     methods: Annotated[str, typer.Option(help=f"comma-separated: {', '.join(METHOD_NAMES)}")] = "sketch,randomized",
-    quick: Annotated[bool, typer.Option("--quick", help="skip zarr, worker processes and dask's svd_compressed")] = False,
+    quick: Annotated[bool, typer.Option(
+        "--quick", help="skip zarr, worker processes and dask's svd_compressed")] = False,
     repeats: Annotated[int, typer.Option(help="runs of each compress case; the fastest is reported")] = 2,
     cold: Annotated[bool, typer.Option("--cold", help="drop the page cache before every timed read (Linux, root): "
                                                       "time the disk, as for an archive larger than memory")] = False,
     keep: Annotated[bool, typer.Option("--keep", help="keep the archive afterwards")] = False,
     dry_run: Annotated[bool, typer.Option("--dry-run", help="say what would be written and stop")] = False,
     json_output: Annotated[bool, typer.Option("--json", help="print JSON instead of a table")] = False,
-    read_limit: Annotated[Optional[str], typer.Option("--read-limit", help="time whole commands (dd, snaplift run, "
+    read_limit: Annotated[str | None, typer.Option("--read-limit", help="time whole commands (dd, snaplift run, "
                           "dask svd_compressed) with reads capped at this rate, e.g. 200MB/s (slowfs-run: Linux, "
                           "root, cgroups)")] = None,
     cache_limit: Annotated[str, typer.Option("--cache-limit", help="page cache of each command under --read-limit")
@@ -303,8 +310,8 @@ def bench(
     import json
 
     from snaplift.errors import ConfigError
-    from snaplift.workflow.bench import BenchSettings, render_benchmark, run_benchmark
     from snaplift.units import parse_bytes
+    from snaplift.workflow.bench import BenchSettings, render_benchmark, run_benchmark
 
     try:
         size_bytes, memory_bytes = parse_bytes(size), parse_bytes(memory)
@@ -364,7 +371,7 @@ def bench(
 @_user_errors
 def report(
     result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
-    out: Annotated[Optional[Path], typer.Option(help="folder for the page and PNGs (default: RESULT.report)")] = None,
+    out: Annotated[Path | None, typer.Option(help="folder for the page and PNGs (default: RESULT.report)")] = None,
     modes: Annotated[int, typer.Option(help="leading modes drawn per field")] = 4,
 ) -> None:
     """Write the report of a result store: one self-contained HTML page plus each figure as PNG.
@@ -388,8 +395,9 @@ def forecast(
     result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
     start: Annotated[int, typer.Option("--from", help="snapshot (column of the fit) to start from; -1: the last")] = -1,
     steps: Annotated[int, typer.Option(help="steps of the archive's time step to advance")] = 10,
-    out: Annotated[Optional[Path], typer.Option(help="write the forecast to this zarr store (xarray-readable)")] = None,
-    compare: Annotated[bool, typer.Option("--compare", help="error against the archive where the forecast overlaps it")] = False,
+    out: Annotated[Path | None, typer.Option(help="write the forecast to this zarr store (xarray-readable)")] = None,
+    compare: Annotated[bool, typer.Option(
+        "--compare", help="error against the archive where the forecast overlaps it")] = False,
 ) -> None:
     """Forecast the fields from a snapshot with the fitted linear model, in field units.
 
@@ -422,7 +430,8 @@ def forecast(
             for header in ("step", escape(f"time [{time_unit}]") if time_unit else "time", "archive snapshot",
                            *(["archive time"] if uneven else []), *(e[len("error_"):] for e in errors)):
                 shown.add_column(header, justify="right")
-            picks = overlap if overlap.size <= 12 else overlap[np.unique(np.linspace(0, overlap.size - 1, 12).astype(int))]
+            spread = np.unique(np.linspace(0, overlap.size - 1, 12).astype(int))
+            picks = overlap if overlap.size <= 12 else overlap[spread]
             for s in picks:
                 shown.add_row(str(int(s)), f"{time[s]:.6g}", str(int(dataset['archive_snapshot'].values[s])),
                               *([f"{float(dataset['archive_time'].values[s]):.6g}"] if uneven else []),
@@ -441,7 +450,8 @@ def forecast(
 def export(
     result: Annotated[Path, typer.Argument(help="result store (.zarr)")],
     format: Annotated[str, typer.Option("--format", help="xdmf (XDMF + HDF5) | netcdf (CF netCDF-4)")] = "xdmf",
-    out: Annotated[Optional[Path], typer.Option(help="output file (default: RESULT stem + .modes.xdmf / .modes.nc)")] = None,
+    out: Annotated[Path | None, typer.Option(
+        help="output file (default: RESULT stem + .modes.xdmf / .modes.nc)")] = None,
     modes: Annotated[int, typer.Option(help="XDMF: leading modes in the one-period animation")] = 4,
 ) -> None:
     """Export the modes: XDMF + HDF5 for visualisation programs, or CF netCDF-4.

@@ -46,6 +46,6 @@ def test_failed_load_is_not_kept() -> None:
 def test_entries_are_bounded() -> None:
     _shared_reads.clear()
     for key in range(3 * _shared_reads.MAX_ENTRIES):
-        _shared_reads.shared_block(key, 2, lambda: key)  # each waits for a second user that never comes
+        _shared_reads.shared_block(key, 2, lambda key=key: key)  # each waits for a second user that never comes
     assert len(_shared_reads._entries) == _shared_reads.MAX_ENTRIES
     _shared_reads.clear()

@@ -91,7 +91,8 @@ def test_run_inside_one_allocation_with_srun(tmp_path: Path) -> None:
     path = _workflow(tmp_path, "inside.yaml", {"kind": "allocation", "launcher": "srun", "start_timeout": 120},
                      "inside.zarr")
     script = tmp_path / "job.sh"
-    script.write_text(f"#!/bin/bash\nexec {sys.executable} -m snaplift.cli run {path} --quiet --log {tmp_path}/run.log\n")
+    script.write_text(f"#!/bin/bash\nexec {sys.executable} -m snaplift.cli run {path} --quiet "
+                      f"--log {tmp_path}/run.log\n")
     done = subprocess.run(["sbatch", "--wait", "--ntasks=2", "--cpus-per-task=1", "--mem=3G", "--time=10",
                            f"--output={tmp_path}/job.out", str(script)],
                           capture_output=True, text=True, timeout=400)

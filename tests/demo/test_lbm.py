@@ -5,8 +5,6 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from snaplift.errors import ConfigError
-
 from snaplift.demo.lbm import (
     OPPOSITE,
     VELOCITIES,
@@ -20,6 +18,7 @@ from snaplift.demo.lbm import (
     scalar_equilibrium,
     stream,
 )
+from snaplift.errors import ConfigError
 
 
 def _random_populations(rng: np.random.Generator, shape=(6, 7)) -> np.ndarray:

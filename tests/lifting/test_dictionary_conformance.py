@@ -211,8 +211,8 @@ FIELD_LIFTS = {
     "delays": FieldLift(delays=3, spacing=2),
     "pointwise-delays": FieldLift(terms=("x", "square"), delays=2, spacing=1),
 }
-DIRECT_POINTWISE: dict[str, Callable[[np.ndarray], np.ndarray]] = {"x": lambda v: v, "square": lambda v: v * v, "cube": lambda v: v**3, "abs": np.abs,
-                    "sin": np.sin, "cos": np.cos}
+DIRECT_POINTWISE: dict[str, Callable[[np.ndarray], np.ndarray]] = {
+    "x": lambda v: v, "square": lambda v: v * v, "cube": lambda v: v**3, "abs": np.abs, "sin": np.sin, "cos": np.cos}
 
 
 @pytest.mark.parametrize("name", FIELD_LIFTS)

@@ -88,8 +88,9 @@ def _wave_store(folder: Path, scale: float, unit: str, origin: float = 0.0) -> P
         h5["t"].attrs["units"] = unit
         h5.create_dataset("T", data=values, chunks=(1, 16))
         h5["xc"] = origin + x
-    workflow = {"archive": {"path": "a.h5", "fields": ["T"], "time": "t", "coords": {"x": "xc"}}, "compress": {"method": "tsqr", "rank": 3},
-                "fit": {"rank": 3}, "output": {"path": "r.zarr"}, "cluster": "threads"}
+    workflow = {"archive": {"path": "a.h5", "fields": ["T"], "time": "t", "coords": {"x": "xc"}},
+                "compress": {"method": "tsqr", "rank": 3}, "fit": {"rank": 3}, "output": {"path": "r.zarr"},
+                "cluster": "threads"}
     (folder / "w.yaml").write_text(yaml.safe_dump(workflow))
     return run_workflow(folder / "w.yaml").path
 

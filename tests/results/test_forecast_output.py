@@ -21,7 +21,7 @@ from snaplift.workflow.runner import run_workflow
 
 runner = CliRunner()
 sys.path.insert(0, str(Path(__file__).resolve().parents[1]))
-from conftest import DT, FITTED, NX, N_SNAPSHOTS, wave_values  # noqa: E402
+from conftest import DT, FITTED, N_SNAPSHOTS, NX, wave_values  # noqa: E402
 
 
 def _exact(first: int, steps: int) -> np.ndarray:
@@ -131,8 +131,9 @@ def test_compare_error_of_a_standing_wave_through_zero(tmp_path: Path) -> None:
         h5.create_dataset("p", data=p, chunks=(1, 12))
         h5.create_dataset("u", data=np.cos(2 * np.pi * 2.0 * t)[:, None] * np.sin(np.pi * x / 0.3)[None, :],
                           chunks=(1, 12))
-    workflow = {"archive": {"path": "a.h5", "fields": ["p", "u"], "time": "t"}, "compress": {"method": "tsqr", "rank": 2},
-                "fit": {"rank": 2}, "output": {"path": "r.zarr"}, "cluster": "threads"}
+    workflow = {"archive": {"path": "a.h5", "fields": ["p", "u"], "time": "t"},
+                "compress": {"method": "tsqr", "rank": 2}, "fit": {"rank": 2}, "output": {"path": "r.zarr"},
+                "cluster": "threads"}
     (tmp_path / "w.yaml").write_text(yaml.safe_dump(workflow))
     store = run_workflow(tmp_path / "w.yaml").path
     ds = forecast_dataset(store, 0, 39, compare=True)

@@ -4,7 +4,6 @@ read the same way; where the store carries coordinates and units, every output u
 from __future__ import annotations
 
 import dataclasses
-
 import shutil
 import warnings
 import xml.etree.ElementTree as ET
@@ -30,8 +29,8 @@ def _annotate(store: Path) -> None:
     root = zarr.open_group(str(store), mode="r+")
     modes = root["modes"]
     for name in ("u_x", "p_x", "w_x"):
-        array = modes.create_array(name, shape=(32,), dtype="float64", dimension_names=(name,), fill_value=None, overwrite=True,
-                                   attributes={"units": "m", "long_name": "streamwise position"})
+        array = modes.create_array(name, shape=(32,), dtype="float64", dimension_names=(name,), fill_value=None,
+                                   overwrite=True, attributes={"units": "m", "long_name": "streamwise position"})
         array[...] = X_COORDINATE
     frequency = modes.create_array("frequency", shape=root["spectrum/frequency"].shape, dtype="float64",
                                    dimension_names=("mode",), fill_value=None, attributes={"units": "Hz"},

@@ -13,7 +13,6 @@ import pytest
 from typer.testing import CliRunner
 
 from snaplift.cli import app
-from snaplift.errors import ConfigError
 from snaplift.workflow.bench.archive import GRID, parse_layout, write_archive
 from snaplift.workflow.bench.commands import Cap, find_slowfs_run, slowfs_missing
 from snaplift.workflow.bench.model import CostModel, predict, relative_gap

@@ -20,7 +20,6 @@ import yaml
 import zarr
 
 from snaplift.results.store import read_group
-from snaplift.workflow import stages
 from snaplift.workflow.runner import FAULT_VARIABLE
 
 SNAPSHOTS = 64

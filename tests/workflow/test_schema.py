@@ -137,7 +137,8 @@ def test_unknown_profile_lists_kinds_and_profiles() -> None:
 def test_cluster_key_of_another_kind_is_an_error() -> None:
     data = _base()
     data["cluster"] = {"kind": "local", "queue": "short"}
-    with pytest.raises(ConfigError, match=r"cluster.queue does not apply to kind 'local'; it applies to kinds slurm, pbs"):
+    expected = r"cluster.queue does not apply to kind 'local'; it applies to kinds slurm, pbs"
+    with pytest.raises(ConfigError, match=expected):
         parse_workflow(data)
 
 

@@ -54,7 +54,7 @@ def grid_box(grid: Sequence[int], start: int, stop: int) -> tuple[tuple[slice, .
         return (), 0
     slices: list[slice] = []
     base = 0
-    for axis, size in enumerate(grid):
+    for axis in range(len(grid)):
         stride = int(np.prod(grid[axis + 1 :], dtype=np.int64))
         low = (start - base) // stride
         high = (stop - 1 - base) // stride + 1
@@ -121,7 +121,8 @@ def grid_coordinate_names(field: Candidate, by_name: dict[str, Candidate]) -> tu
     either on that dimension or the only axis of its length.
     """
     grid = field.shape[1:]
-    dims = tuple(field.dims[1:]) if field.dims is not None and len(field.dims) == len(field.shape) else (None,) * len(grid)
+    named = field.dims is not None and len(field.dims) == len(field.shape)
+    dims = tuple(field.dims[1:]) if named else (None,) * len(grid)
 
     def usable(name: str | None, length: int) -> bool:
         c = by_name.get(name) if name else None

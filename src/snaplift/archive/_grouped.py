@@ -25,11 +25,11 @@ from snaplift.archive._cf import (
 )
 from snaplift.archive._common import (
     Candidate,
-    split_fields_and_variables,
     grid_coordinate_names,
     missing_field_error,
     normalise_slice,
     read_block,
+    split_fields_and_variables,
     to_tile,
 )
 from snaplift.errors import ArchiveError

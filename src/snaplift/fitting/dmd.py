@@ -20,8 +20,8 @@ from numpy.typing import ArrayLike
 
 from snaplift.errors import FitError
 from snaplift.fitting import spectrum
+from snaplift.fitting._checks import finite_vector, pair_keep, positive_step, run_lengths_array, snapshot_matrix
 from snaplift.fitting._spectral import SpectrumProperties, freeze_arrays
-from snaplift.fitting._checks import run_lengths_array, finite_vector, pair_keep, positive_step, snapshot_matrix
 from snaplift.fitting.amplitudes import optimal_amplitudes
 from snaplift.fitting.debias import DEBIAS_METHODS, Debias, debiased_operator
 from snaplift.fitting.rank import choose_rank

@@ -14,7 +14,7 @@ import numpy as np
 from numpy.typing import ArrayLike
 
 from snaplift.errors import FitError
-from snaplift.fitting._checks import run_lengths_array, pair_keep, snapshot_matrix
+from snaplift.fitting._checks import pair_keep, run_lengths_array, snapshot_matrix
 from snaplift.fitting.amplitudes import optimal_amplitudes
 
 __all__ = ["run_lengths_from_mask", "run_starts", "run_amplitudes", "run_amplitude_table"]

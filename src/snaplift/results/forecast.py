@@ -77,7 +77,8 @@ def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
     eigenvalue = np.asarray(store_array(root, "spectrum/eigenvalue")[...], dtype=np.complex128)
     dt = float(store_group(root, "spectrum").attrs.get("dt", 1.0))  # type: ignore[arg-type]
     time = np.asarray(store_array(root, "diagnostics/time")[...], dtype=np.float64)
-    if isinstance(snapshot, bool) or not isinstance(snapshot, (int, np.integer)) or not -time.size <= snapshot < time.size:
+    integer = not isinstance(snapshot, bool) and isinstance(snapshot, (int, np.integer))
+    if not integer or not -time.size <= snapshot < time.size:
         raise ResultStoreError(f"snapshot must be a column index in -{time.size}..{time.size - 1}; got {snapshot!r}")
     if isinstance(n_steps, bool) or not isinstance(n_steps, (int, np.integer)) or n_steps < 0:
         raise ResultStoreError(f"n_steps must be an integer >= 0; got {n_steps!r}")

@@ -27,8 +27,8 @@ import xarray as xr
 from snaplift.errors import ArchiveError, ResultStoreError
 from snaplift.results.forecast import forecast_fields
 from snaplift.results.reading import StoreView, open_group, open_store
-from snaplift.results.store import open_result
 from snaplift.results.source import archive_snapshots, open_source
+from snaplift.results.store import open_result
 
 __all__ = ["FORECAST_CAUTION", "archive_fields", "forecast_dataset", "overlap_snapshots", "write_forecast"]
 
@@ -148,7 +148,8 @@ def _compare(dataset: xr.Dataset, view: StoreView, column: int, n_steps: int) ->
         dataset["archive_snapshot"].values[:] = snapshots
         dataset["archive_time"] = xr.DataArray(at_archive_times, dims=("step",), attrs={
             "long_name": "time of the archive snapshot compared at this step (uneven times: the model is "
-                         "evaluated there for the comparison)", **({"units": view.time_unit} if view.time_unit else {})})
+                         "evaluated there for the comparison)",
+            **({"units": view.time_unit} if view.time_unit else {})})
         offsets = np.where(np.isfinite(at_archive_times), at_archive_times - view.time[column], 0.0)
         model_at = forecast_fields(view.path, column, n_steps, fields=list(source.fields), offsets=offsets)
     for name in source.fields:

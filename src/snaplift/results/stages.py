@@ -183,7 +183,8 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     scale = np.asarray(prepare["scale"][...], dtype=np.float64)
     stored_fields = list(prepare["scale"].attrs.get("fields", fields))
     if stored_fields != list(fields):
-        raise ResultStoreError(f"{where}: compress result is for fields {stored_fields}, the workflow asks for {fields}")
+        raise ResultStoreError(
+            f"{where}: compress result is for fields {stored_fields}, the workflow asks for {fields}")
     rows: list[FieldRows] = []
     basis_blocks: list[Any] = []  # numpy (small basis) or StoredFieldBasis
     means: list[np.ndarray] = []

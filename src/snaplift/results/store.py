@@ -235,6 +235,7 @@ def read_group(path: str | Path, group: str) -> dict[str, np.ndarray]:
     """All arrays of one group of a complete store, in memory."""
     root = open_result(path)
     if group not in root:
-        raise ResultStoreError(f"result store {path} has no group '{group}'; groups: {', '.join(sorted(root.group_keys()))}")
+        groups = ", ".join(sorted(root.group_keys()))
+        raise ResultStoreError(f"result store {path} has no group '{group}'; groups: {groups}")
     node = store_group(root, group)
     return {name: np.asarray(array[...]) for name, array in node.arrays()}

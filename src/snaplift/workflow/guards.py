@@ -33,8 +33,9 @@ WRITE_ERRNOS = {
 
 def write_error(error: OSError, output: Path) -> ResultStoreError:
     where = error.filename or output
+    advice = WRITE_ERRNOS.get(error.errno or 0, "check that the output folder is writable")
     return ResultStoreError(
-        f"cannot write {where}: {error.strerror or error}; {WRITE_ERRNOS.get(error.errno or 0, 'check that the output folder is writable')}; the previous result "
+        f"cannot write {where}: {error.strerror or error}; {advice}; the previous result "
         f"store {output} (if any) is unchanged and finished stages are kept for the next run")
 
 

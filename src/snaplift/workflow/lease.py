@@ -154,7 +154,8 @@ class Lease:
     @staticmethod
     def describe(record: dict[str, Any]) -> str:
         started = record.get("started")
-        when = time.strftime("%Y-%m-%d %H:%M:%S %Z", time.localtime(started)) if isinstance(started, int | float) else "?"
+        known = isinstance(started, int | float)
+        when = time.strftime("%Y-%m-%d %H:%M:%S %Z", time.localtime(started)) if known else "?"
         return f"host {record.get('host')}, pid {record.get('pid')}, started {when}"
 
     # -- acquire / release -----------------------------------------------------------
@@ -185,7 +186,8 @@ class Lease:
                 raise LeaseHeldError(
                     f"result store {self.store} is in use by another run ({self.describe(record)}); "
                     f"wait for it to finish, or if that run is dead its lease {self.path} expires "
-                    f"{self.missed_beats * float(record.get('interval') or self.interval):.0f} s after its last heartbeat"
+                    f"{self.missed_beats * float(record.get('interval') or self.interval):.0f} s after its "
+                    "last heartbeat"
                 )
             if self._set_aside(record):
                 self.taken_over = {**record, "reason": reason}

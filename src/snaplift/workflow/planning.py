@@ -45,7 +45,8 @@ def compress_memory(workflow: Workflow, scheduler: Scheduler) -> int:
     return int(scheduler.memory_per_worker) * max(1, int(scheduler.workers))
 
 
-def plan_compress(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler, *, recorded_baseline: int | None = None) -> TilePlan:
+def plan_compress(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler, *,
+                  recorded_baseline: int | None = None) -> TilePlan:
     """The tile plan of the compress stage for this workflow and scheduler (metadata only).
 
     ``compress.memory`` is the budget of the whole process tree: the resident memory the

@@ -267,7 +267,8 @@ def archive_time_unit(workflow: Workflow, reader: Reader, info: ArchiveInfo) -> 
                       "1/(time unit); set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s")]
     if unit.seconds is None:
         return unit, [(f"the time unit {unit.name!r} of {reader.path} does not convert to seconds: frequencies are "
-                      f"in 1/{unit.name.split(' since ')[0].strip()}; set archive.time_unit (s, ms, us, min, h, day) for Hz and 1/s")]
+                      f"in 1/{unit.name.split(' since ')[0].strip()}; set archive.time_unit (s, ms, us, min, h, day) "
+                      "for Hz and 1/s")]
     return unit, []
 
 
@@ -296,8 +297,9 @@ def check_workflow(workflow: Workflow, folder: Path) -> tuple[Scanned, list[str]
     lines.append(f"snapshot matrix: {kept} rows x {matrix.shape[1]} columns"
                  + _named(" (weights {})", workflow.archive.weights) + _named(" (mask {})", workflow.archive.mask))
     if metadata.coordinates:
-        lines.append("coordinates: " + ", ".join(f"{d} <- {c.attrs.get('archive_variable')} [{c.attrs.get('units', 'unit unknown')}]"
-                                                 for d, c in metadata.coordinates.items()))
+        lines.append("coordinates: " + ", ".join(
+            f"{d} <- {c.attrs.get('archive_variable')} [{c.attrs.get('units', 'unit unknown')}]"
+            for d, c in metadata.coordinates.items()))
     else:
         lines.append("coordinates: none in the archive (index positions; archive.coords names them)")
     lines.extend(f"warning: {warning}" for warning in scanned.warnings)

@@ -78,7 +78,7 @@ def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarr
     units = {name: _field_units(section, info, source, reader.path) for name, source, _ in lifted}
     field_units = {name: lifted_units(units[name], term) for name, _, term in lifted}
     field_names = {}
-    for name, source, term in lifted:
+    for name, source, _ in lifted:
         base = str(info.fields[source].attrs.get("long_name") or source)
         field_names[name] = base if name == source else f"{base} ({name})"
     extra = {}
