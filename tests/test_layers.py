@@ -46,10 +46,6 @@ ALLOWED: frozenset[tuple[str, str]] = frozenset({
     # EDMD evaluates a Dictionary of observables: fitting should take the lifted data or a
     # callable, not the lifting package
     ("snaplift.fitting.edmd", "snaplift.lifting"),
-    # the sketch's finish (finish_sketch / sketch_reconstruction) reads the snapshot
-    # matrix's fields and index and builds the Preparation: it should take them as arrays
-    ("snaplift.linalg.sketch", "snaplift.archive.matrix"),
-    ("snaplift.linalg.sketch", "snaplift.prepare"),
 })
 
 

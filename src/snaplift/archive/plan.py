@@ -536,10 +536,13 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
     chunks = [max(1, min(f.snapshot_chunk, max(m, 1))) for f in chosen]
     unit = math.lcm(*chunks) if chunks else 1
     groups = _groups(row_groups, len(chosen))
+    # the co-range state: l columns per field, or the field's own rows when it has no more
+    # than l (kept whole: linalg.sketch.exact_layout), e.g. each lifted field of a probe
+    corange_columns = sum(min(p, l) for p in points)
     if method == "sketch":
         # the driver regenerates the row test matrix to form Psi Q when the sketch is finished
         cache = row_map_bytes(corange_map, n, l, s)
-        fixed = s * (2 * n * k + n * rank + len(chosen) * m * l + n) + cache
+        fixed = s * (2 * n * k + n * rank + corange_columns * m + n) + cache
     elif method == "randomized":
         fixed = s * (3 * n * k + m * k + n)
         cache = 0
@@ -584,15 +587,16 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
     def result_of(units: list[tuple[int, int, list[int]]], block: int, *, slots: bool) -> int:
         if method == "tsqr":
             return max(sz * (sum(min(x, m) * m for x in leaves) + r * rank) for r, sz, leaves in units)
-        if slots:  # one co-range sketch per field of the tile
-            return max(sz * (r + block * (k + l * len(leaves))) for r, sz, leaves in units)
-        return max(sz * (r * k + block * (k + l * len(leaves))) for r, sz, leaves in units)
+        # one co-range sketch per field of the tile, or its rows when it has no more than l
+        if slots:
+            return max(sz * (r + block * (k + sum(min(x, l) for x in leaves))) for r, sz, leaves in units)
+        return max(sz * (r * k + block * (k + sum(min(x, l) for x in leaves))) for r, sz, leaves in units)
 
     # threads of one process sum range products in place in one slot per worker
     # (snaplift.stream._slots): results in flight are small, and the driver's finishing
     # arrays exist only after the pass, when no tile is held
     slotted = shared_memory and method != "tsqr"
-    driver_pass = s * (2 * n * k + 2 * m * k + len(chosen) * m * l + 2 * n)
+    driver_pass = s * (2 * n * k + 2 * m * k + corange_columns * m + 2 * n)
 
     def cost(cap: int, block: int) -> tuple[int, int, int]:
         rows = rows_of(cap)
@@ -607,12 +611,7 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
         return workers * 2 * tile + caches + in_flight * result + driver, tile, result
 
     matrix_bytes = s * n * m
-    # sketch keeps one co-range sketch per field (F m l): with many small (lifted) fields they
-    # outweigh the matrix, and holding the tile's copy of them beside the accumulators
-    # (in memory) costs more than it saves (measured: 1.9 GB against 1.1 GB streamed for 120
-    # lifted probe rows)
-    corange_heavy = method == "sketch" and len(chosen) * m * l > 4 * n * m
-    if in_memory_limit and matrix_bytes <= in_memory_limit and not corange_heavy:
+    if in_memory_limit and matrix_bytes <= in_memory_limit:
         # one tile of everything, kept: the read buffer, the kept copy and a working copy,
         # the method's accumulators and the tile's result
         whole = [int(p) for p in points]
