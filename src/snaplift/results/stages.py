@@ -225,16 +225,19 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     offset = 0
     centered = bool(prepare.attrs.get("center", False))
     lifted = dict(prepare.attrs.get("lifted", {}))
+    # each array opened once (a metadata read each: 120 for the lifted fields of a probe)
+    members = dict(basis.arrays())
     for name in fields:
-        if name not in basis:
+        if name not in members:
             raise ResultStoreError(f"{where}: basis/{name} is missing; the compress stage did not finish there")
     # a small basis (many lifted fields of few points, e.g. delay-embedded probes) is read
     # at once; a lazy graph over one array per lifted field costs more than the reading
-    eager = sum(int(np.prod(basis[name].shape)) * basis[name].dtype.itemsize for name in fields) <= EAGER_BASIS_BYTES
+    eager = sum(int(np.prod(members[name].shape)) * members[name].dtype.itemsize for name in fields) \
+        <= EAGER_BASIS_BYTES
     xp = np if eager else _lazy(None)
     for name, field_scale in zip(fields, scale):
         # lazy: the modes stage computes one field's rows at a time
-        physical = np.asarray(basis[name][...]) if eager else _lazy(basis[name])
+        physical = np.asarray(members[name][...]) if eager else _lazy(members[name])
         grid = tuple(int(s) for s in physical.shape[1:])
         flat = physical.reshape(physical.shape[0], -1)
         keep = None
