@@ -43,6 +43,7 @@ from snaplift import __version__
 from snaplift._process_memory import trim_heap
 from snaplift.cluster import ClusterOptions, Scheduler, TaskProgress, open_scheduler
 from snaplift.errors import SnapliftError
+from snaplift.linalg._blas import blas_threads
 from snaplift.results import stages as stored
 from snaplift.results import store as result_store
 from snaplift.results.staging import StagedStore, check_free_space
@@ -461,6 +462,10 @@ def _compress(workflow: Workflow, scanned: Any, scheduler: Scheduler, store: Sta
     return _load(workflow, scanned, store, record), record
 
 
+#: coefficients (rank x snapshots, complex) up to this size are fitted with one BLAS thread
+SMALL_FIT_BYTES = 8 * 2**20
+
+
 #: compress attempts after losing a worker that held accumulators (each resumes from the checkpoint)
 WORKER_LOSS_RETRIES = 3
 
@@ -547,9 +552,14 @@ def _fit_and_modes(workflow: Workflow, scanned: Any, scheduler: Scheduler, store
     # fit is cheap (no archive read): recompute it whenever modes must be written again
     started = _now()
     store.begin("fit")
-    fit = stage_functions.fit_stage(workflow, compressed, scanned,
-                                    memory_budget=stage_functions.compress_memory(workflow, scheduler),
-                                    say=reporter.message)
+    # a DMD of few coefficients is millisecond BLAS calls: one thread (a waiting pool made the
+    # fit of 30 x 3941 probe coefficients 5-20x slower on a loaded 2-core machine, issue 15)
+    small = workflow.fit.method != "edmd" and \
+        16 * compressed.lowrank.rank * int(scanned.snapshot_index.size) <= SMALL_FIT_BYTES
+    with blas_threads(1) if small else contextlib.nullcontext():
+        fit = stage_functions.fit_stage(workflow, compressed, scanned,
+                                        memory_budget=stage_functions.compress_memory(workflow, scheduler),
+                                        say=reporter.message)
     order, fit_warnings = stored.write_fit(store.writer, fit, scanned.dt, residuals=fit.residuals)
     stored.write_fit_details(store.writer, fit, order, scanned.time)
     fit_warnings = list(fit.warnings) + fit_warnings
