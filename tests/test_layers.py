@@ -44,10 +44,6 @@ LAYERS: tuple[tuple[tuple[str, ...], ...], ...] = (
 
 #: today's violations, (importing module, imported module); delete an entry once it is fixed
 ALLOWED: frozenset[tuple[str, str]] = frozenset({
-    # the sketch's finish (finish_sketch / sketch_reconstruction) reads the snapshot
-    # matrix's fields and index and builds the Preparation: it should take them as arrays
-    ("snaplift.linalg.sketch", "snaplift.archive.matrix"),
-    ("snaplift.linalg.sketch", "snaplift.prepare"),
 })
 
 

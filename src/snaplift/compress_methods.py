@@ -67,7 +67,8 @@ class CompressMethod(Protocol):
     ``widths`` are the range and co-range sketch widths ``(k, l)`` accumulated next to each
     tile (clipped to the matrix when ``n`` and ``m`` are given); ``passes`` the reads of the
     archive; ``driver_bytes`` and ``cache_bytes`` the memory terms of the planner's model
-    (``s`` bytes per value, ``n`` rows, ``m`` snapshots, ``fields`` fields);
+    (``s`` bytes per value, ``n`` rows, ``m`` snapshots; ``corange_columns`` the columns of
+    the co-range state: ``l`` per field, or the field's own rows when it has no more than ``l``);
     ``whole_columns`` says that a tile holds every snapshot of its row block.
     """
 
@@ -80,7 +81,7 @@ class CompressMethod(Protocol):
 
     def passes(self, *, power_iterations: int = 1, check_pass: bool = False) -> int: ...
 
-    def driver_bytes(self, *, n: int, m: int, fields: int, rank: int, widths: tuple[int, int], itemsize: int,
+    def driver_bytes(self, *, n: int, m: int, corange_columns: int, rank: int, widths: tuple[int, int], itemsize: int,
                      cache: int) -> int: ...
 
     def cache_bytes(self, *, n: int, widths: tuple[int, int], itemsize: int, corange_map: str) -> int: ...
@@ -106,11 +107,11 @@ class _Sketch:
     def passes(self, *, power_iterations: int = 1, check_pass: bool = False) -> int:
         return 2 if check_pass else 1
 
-    def driver_bytes(self, *, n: int, m: int, fields: int, rank: int, widths: tuple[int, int], itemsize: int,
+    def driver_bytes(self, *, n: int, m: int, corange_columns: int, rank: int, widths: tuple[int, int], itemsize: int,
                      cache: int) -> int:
         # the driver regenerates the row test matrix to form Psi Q when the sketch is finished
         k, l = widths
-        return itemsize * (2 * n * k + n * rank + fields * m * l + n) + cache
+        return itemsize * (2 * n * k + n * rank + corange_columns * m + n) + cache
 
     def cache_bytes(self, *, n: int, widths: tuple[int, int], itemsize: int, corange_map: str) -> int:
         return row_map_bytes(corange_map, n, widths[1], itemsize)
@@ -131,7 +132,7 @@ class _Randomized:
     def passes(self, *, power_iterations: int = 1, check_pass: bool = False) -> int:
         return 2 + 2 * int(power_iterations)
 
-    def driver_bytes(self, *, n: int, m: int, fields: int, rank: int, widths: tuple[int, int], itemsize: int,
+    def driver_bytes(self, *, n: int, m: int, corange_columns: int, rank: int, widths: tuple[int, int], itemsize: int,
                      cache: int) -> int:
         k = widths[0]
         return itemsize * (3 * n * k + m * k + n)
@@ -154,7 +155,7 @@ class _Tsqr:
     def passes(self, *, power_iterations: int = 1, check_pass: bool = False) -> int:
         return 2
 
-    def driver_bytes(self, *, n: int, m: int, fields: int, rank: int, widths: tuple[int, int], itemsize: int,
+    def driver_bytes(self, *, n: int, m: int, corange_columns: int, rank: int, widths: tuple[int, int], itemsize: int,
                      cache: int) -> int:
         # the R factors of the leaves depend on the tile height: the planner adds them
         return itemsize * (n * rank + n)

@@ -14,7 +14,7 @@ with scale ``s_f``, ``Psi A = sum_f s_f (Psi_f X_f - (Psi_f mu_f) 1^T)``.
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from typing import Any, Protocol
 
@@ -104,17 +104,17 @@ def corrected_sketch(sketch: np.ndarray, preparation: Preparation, omega: np.nda
     return y * preparation.row_scale[:, np.newaxis]
 
 
-def corrected_corange(corange: list[np.ndarray], preparation: Preparation,
-                      psi_mean: list[np.ndarray] | None) -> np.ndarray:
-    """``(Psi A)^T`` (m x l) from the per-field ``(Psi_f X_f)^T`` and ``Psi_f mu_f`` (when centred)."""
+def corrected_corange(corange: Mapping[int, np.ndarray], preparation: Preparation,
+                      psi_mean: Mapping[int, np.ndarray] | None) -> np.ndarray | None:
+    """``sum_f s_f (Psi_f X_f - (Psi_f mu_f) 1^T)^T`` (m x l) over the fields ``f`` of
+    ``corange`` (field index -> ``(Psi_f X_f)^T``), with ``Psi_f mu_f`` when centred; None if empty."""
     total = None
-    for index, (name, values) in enumerate(zip(preparation.fields, corange)):
+    for index, values in corange.items():
         part = np.asarray(values)
         if preparation.mean is not None and psi_mean is not None:
             part = part - psi_mean[index][np.newaxis, :]
-        part = part / preparation.field_scale[name]
+        part = part / preparation.field_scale[preparation.fields[index]]
         total = part if total is None else total + part
-    assert total is not None
     return total
 
 

@@ -21,7 +21,8 @@ import numpy as np
 import pytest
 
 from snaplift.stream.compress import CompressOptions, compress
-from snaplift.linalg.sketch import SketchState, sketch_error_bound, sketch_reconstruction
+from snaplift.linalg.sketch import SketchState, sketch_error_bound
+from snaplift.stream.sketch import sketch_reconstruction
 from snaplift.stream.loop import StreamState, ThreadRunner
 from snaplift.stream._passes import Pass, build_jobs, kept_row_blocks, sketch_read
 from snaplift.stream.compress import _source
@@ -75,7 +76,8 @@ def test_sketch_mean_error_within_tropp_bound(archive, snapshot_matrix, known, c
             options = CompressOptions(method="sketch", rank=rank, seed=seed, scale="none", corange_map=corange_map)
             state = StreamState("bound")
             sketch_read(Pass(runner, _source(matrix, options, l, row_blocks), in_flight=2), matrix, jobs, state, k, l)
-            sketch = SketchState.from_stream(state.arrays, 1, matrix.snapshot_index, seed, False, corange_map)
+            sketch = SketchState.from_stream(state.arrays, [matrix.shape[0]], matrix.snapshot_index, seed, False,
+                                             corange_map, corange_width=l)
             _, q, core = sketch_reconstruction(sketch, matrix, center=False, scale="none")
             errors.append(np.linalg.norm(stored - q @ core, "fro") ** 2)
     bound = sketch_error_bound(np.linalg.svd(stored, compute_uv=False), k, l)

@@ -152,7 +152,8 @@ def test_registry_entry_is_complete(method: str) -> None:
     assert described.widths(RANK, n=4, m=3)[0] <= 3  # clipped to the matrix
     assert described.passes(power_iterations=2) >= 1
     cache = described.cache_bytes(n=1000, widths=(k, l), itemsize=8, corange_map="sparse")
-    driver = described.driver_bytes(n=1000, m=50, fields=1, rank=RANK, widths=(k, l), itemsize=8, cache=cache)
+    driver = described.driver_bytes(n=1000, m=50, corange_columns=l, rank=RANK, widths=(k, l), itemsize=8,
+                                    cache=cache)
     assert driver >= 8 * 1000 * RANK  # at least the basis (n x r)
 
 

@@ -7,7 +7,8 @@ import pytest
 
 from snaplift.errors import ArchiveError
 from snaplift.stream.compress import CompressOptions, compress, sketch_append
-from snaplift.linalg.sketch import SketchState, finish_sketch
+from snaplift.linalg.sketch import SketchState
+from snaplift.stream.sketch import finish_sketch
 
 
 @pytest.mark.parametrize("center", [False, True])
@@ -30,7 +31,7 @@ def test_append_equals_batch(archive, snapshot_matrix, known, center):
     np.testing.assert_allclose(np.asarray(lowrank.basis), np.asarray(batch.lowrank.basis), rtol=0, atol=1e-12)
     np.testing.assert_allclose(preparation.field_scale["u"], batch.preparation.field_scale["u"], rtol=1e-12)
     for name, value in merged.to_arrays().items():
-        np.testing.assert_allclose(value, batch.sketch_state[name], rtol=1e-12, atol=1e-12 * np.abs(value).max(),
+        np.testing.assert_allclose(value, batch.sketch_state[name], rtol=1e-12, atol=1e-12 * np.abs(value).max(initial=0.0),
                                    err_msg=name)
 
 

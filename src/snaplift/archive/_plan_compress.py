@@ -64,8 +64,12 @@ def plan_compress_tiles(info: ArchiveInfo, names: tuple[str, ...], chosen: list[
     unit = math.lcm(*chunks) if chunks else 1
     groups = _groups(row_groups, len(chosen))
     terms = METHODS[method]
+    # the co-range state: l columns per field, or the field's own rows when it has no more
+    # than l (kept whole: linalg.sketch.exact_layout), e.g. each lifted field of a probe
+    corange_columns = sum(min(p, l) for p in points)
     cache = terms.cache_bytes(n=n, widths=widths, itemsize=s, corange_map=corange_map)
-    fixed = terms.driver_bytes(n=n, m=m, fields=len(chosen), rank=rank, widths=widths, itemsize=s, cache=cache)
+    fixed = terms.driver_bytes(n=n, m=m, corange_columns=corange_columns, rank=rank, widths=widths, itemsize=s,
+                               cache=cache)
     whole_columns = terms.whole_columns
 
     def driver_of(rows: list[int]) -> int:
@@ -105,15 +109,16 @@ def plan_compress_tiles(info: ArchiveInfo, names: tuple[str, ...], chosen: list[
     def result_of(units: list[tuple[int, int, list[int]]], block: int, *, slots: bool) -> int:
         if whole_columns:
             return max(sz * (sum(min(x, m) * m for x in leaves) + r * rank) for r, sz, leaves in units)
-        if slots:  # one co-range sketch per field of the tile
-            return max(sz * (r + block * (k + l * len(leaves))) for r, sz, leaves in units)
-        return max(sz * (r * k + block * (k + l * len(leaves))) for r, sz, leaves in units)
+        # one co-range sketch per field of the tile, or its rows when it has no more than l
+        if slots:
+            return max(sz * (r + block * (k + sum(min(x, l) for x in leaves))) for r, sz, leaves in units)
+        return max(sz * (r * k + block * (k + sum(min(x, l) for x in leaves))) for r, sz, leaves in units)
 
     # threads of one process sum range products in place in one slot per worker
     # (snaplift.stream._slots): results in flight are small, and the driver's finishing
     # arrays exist only after the pass, when no tile is held
     slotted = shared_memory and not whole_columns
-    driver_pass = s * (2 * n * k + 2 * m * k + len(chosen) * m * l + 2 * n)
+    driver_pass = s * (2 * n * k + 2 * m * k + corange_columns * m + 2 * n)
 
     def cost(cap: int, block: int) -> tuple[int, int, int]:
         rows = rows_of(cap)
@@ -128,12 +133,7 @@ def plan_compress_tiles(info: ArchiveInfo, names: tuple[str, ...], chosen: list[
         return workers * 2 * tile + caches + in_flight * result + driver, tile, result
 
     matrix_bytes = s * n * m
-    # sketch keeps one co-range sketch per field (F m l): with many small (lifted) fields they
-    # outweigh the matrix, and holding the tile's copy of them beside the accumulators
-    # (in memory) costs more than it saves (measured: 1.9 GB against 1.1 GB streamed for 120
-    # lifted probe rows)
-    corange_heavy = len(chosen) * m * l > 4 * n * m
-    if in_memory_limit and matrix_bytes <= in_memory_limit and not corange_heavy:
+    if in_memory_limit and matrix_bytes <= in_memory_limit:
         # one tile of everything, kept: the read buffer, the kept copy and a working copy,
         # the method's accumulators and the tile's result
         whole = [int(p) for p in points]

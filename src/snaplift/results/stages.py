@@ -191,14 +191,16 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
     offset = 0
     centered = bool(prepare.attrs.get("center", False))
     lifted = dict(prepare.attrs.get("lifted", {}))
+    # each array opened once (a metadata read each: 120 for the lifted fields of a probe)
+    members = dict(basis.arrays())
     for name in fields:
-        if name not in basis:
+        if name not in members:
             raise ResultStoreError(f"{where}: basis/{name} is missing; the compress stage did not finish there")
     # a small basis (many lifted fields of few points, e.g. delay-embedded probes) is read
     # at once; a lazy graph over one array per lifted field costs more than the reading
-    eager = sum(int(np.prod(basis[name].shape)) * basis[name].dtype.itemsize for name in fields) <= EAGER_BASIS_BYTES
+    eager = sum(int(np.prod(members[name].shape)) * members[name].dtype.itemsize for name in fields) <= EAGER_BASIS_BYTES
     for name, field_scale in zip(fields, scale):
-        grid = tuple(int(s) for s in basis[name].shape[1:])
+        grid = tuple(int(s) for s in members[name].shape[1:])
         keep = None
         if f"mask_{name}" in prepare:
             keep = np.flatnonzero(~np.asarray(prepare[f"mask_{name}"][...], dtype=bool).ravel())
@@ -209,12 +211,12 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
         factor = (sqrt_weight if sqrt_weight is not None else 1.0) / field_scale
         n_rows = int(np.prod(grid)) if keep is None else int(keep.size)
         if eager:
-            flat = np.asarray(basis[name][...]).reshape(basis[name].shape[0], -1)
+            flat = np.asarray(members[name][...]).reshape(members[name].shape[0], -1)
             kept = flat if keep is None else flat[:, keep]
             # physical = prepared * scale / sqrt(w); at w == 0 the prepared rows are zero
             basis_blocks.append(np.where(np.isfinite(kept), kept * factor, 0.0).T)
         else:  # lazy: the modes stage reads one field's rows at a time, a few vectors per read
-            basis_blocks.append(StoredFieldBasis(basis[name], keep, factor, n_rows))
+            basis_blocks.append(StoredFieldBasis(members[name], keep, factor, n_rows))
         if centered:
             mean = np.asarray(prepare[f"mean_{name}"][...]).ravel()
             mean = mean if keep is None else mean[keep]

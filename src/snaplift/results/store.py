@@ -39,9 +39,10 @@ __all__ = ["StoreWriter", "open_result", "read_group", "grid_dimensions", "COMPL
 COMPLETE_KEY = "snaplift_complete"
 FORMAT_KEY = "snaplift_store_version"
 #: layout of the result store; change it with the layout (2: CF units and long names,
-#: coordinates, spectrum/peak_<field>). Stage fingerprints include it, so a store written
+#: coordinates, spectrum/peak_<field>; 3: sketch/exact_rows, the fields kept whole).
+#: Stage fingerprints include it, so a store written
 #: in another layout is recomputed, never reused (snaplift.workflow.fingerprint).
-STORE_VERSION = 2
+STORE_VERSION = 3
 
 
 class StoreWriter:
@@ -116,16 +117,24 @@ class StoreWriter:
         """Write the coordinate of each dimension of ``group/name`` into ``group`` once."""
         if not group:
             return
-        node = store_group(self.root, group)
+        # coordinates this writer has seen in the group: one look-up in the store each, not one
+        # per array (each costs a metadata read; the 120 lifted fields of a probe made 240)
+        seen = self.__dict__.setdefault("_coordinates_seen", set())
+        node = None
         for dimension in dimensions:
             target = "time" if dimension == "snapshot" else dimension
-            if target == name or target in node:
+            if target == name or (group, target) in seen:
+                continue
+            node = store_group(self.root, group) if node is None else node
+            if target in node:
+                seen.add((group, target))
                 continue
             if dimension == "snapshot" and group not in ("basis", "diagnostics", "eigenfunctions"):
                 continue
             coordinate = self.metadata.coordinate(dimension)
             if coordinate is not None:
                 self.array(group, target, coordinate.values, (dimension,), attrs=coordinate.attrs)
+                seen.add((group, target))
 
     def arrays(self, group: str, items: Sequence[tuple[str, np.ndarray, Sequence[str]]]) -> None:
         """Several small arrays of one group, ``(name, data, dimensions)`` each, written together.

@@ -24,6 +24,7 @@ import numpy as np
 
 from snaplift._process_memory import trim_heap
 from snaplift.archive.matrix import SnapshotMatrix
+from snaplift.linalg.sketch import exact_layout
 from snaplift.stream._tasks import Preparing, TileRef, TileSource, product_task, resident_loaded, sketch_task
 from snaplift.stream.loop import Checkpointer, Job, StreamState, TileRunner, run_tiles
 
@@ -242,16 +243,23 @@ def _zeros(state: StreamState, name: str, shape: tuple[int, ...], dtype: Any) ->
 
 
 def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: StreamState,
-                range_width: int, corange_width: int) -> None:
-    """The first read: ``range`` = X_w Omega, ``corange_<f>`` = (Psi_f X_f)^T, statistics."""
+                range_width: int, corange_width: int, exact_limit: int = 0) -> None:
+    """The first read: ``range`` = X_w Omega, ``corange_<f>`` = (Psi_f X_f)^T, statistics.
+
+    The fields of at most ``exact_limit`` rows keep their raw rows instead, side by side in
+    ``exact`` (m x their rows; :func:`snaplift.linalg.sketch.exact_layout`).
+    """
     n, m = matrix.shape
     dtype = matrix.dtype
+    exact, start = exact_layout([f.n_rows for f in matrix.fields], exact_limit if corange_width else 0)
     whole = len(jobs) == 1 and jobs[0].tile.columns == (0, m) and jobs[0].tile.span == len(matrix.fields)
-    if corange_width and whole and not state.done:  # the in-memory path: its one tile's blocks are the sums
+    first_only = whole and not state.done  # the in-memory path: its one tile's blocks are the sums
+    if corange_width and first_only:
         corange: list[Any] = [None] * len(matrix.fields)
     else:
-        corange = [_zeros(state, f"corange_{f}", (m, corange_width), dtype) for f in range(len(matrix.fields))] \
-            if corange_width else []
+        corange = [None if exact[f] else _zeros(state, f"corange_{f}", (m, corange_width), dtype)
+                   for f in range(len(matrix.fields))] if corange_width else []
+    kept = None if first_only or not start[-1] else _zeros(state, "exact", (m, int(start[-1])), dtype)
     row_sum = _zeros(state, "row_sum", (n,), dtype)
     squares = _zeros(state, "squares", (len(matrix.fields), m), np.float64)
 
@@ -263,14 +271,25 @@ def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: S
         squares[tile.field:tile.field + tile.span, c0:c1] += np.reshape(result["squares"], (tile.span, -1))
         if not corange:
             return
+        if result.get("exact") is not None:
+            first = next(f for f in range(tile.field, tile.field + tile.span) if exact[f])
+            e0 = int(start[first]) + (tile.rows[0] if tile.span == 1 else 0)
+            block = result["exact"]
+            if kept is None:  # the only tile: its block is the state
+                state.arrays["exact"] = block
+            else:
+                kept[c0:c1, e0:e0 + block.shape[1]] = block
         parts = result["corange"] if tile.span > 1 else [result["corange"]]
         for f, part in enumerate(parts, start=tile.field):
+            if part is None:
+                continue
             if corange[f] is None:  # the only tile: its blocks are the sums
                 corange[f] = state.arrays[f"corange_{f}"] = part
             else:
                 corange[f][c0:c1] += part
 
-    run.run(sketch_task, ((int(range_width), int(corange_width)),), jobs, fold, state, slot="range")
+    run.run(sketch_task, ((int(range_width), int(corange_width), int(exact_limit)),), jobs, fold, state,
+            slot="range")
     if "range" not in state.arrays:
         state.arrays["range"] = np.zeros((n, range_width), dtype=dtype)
 

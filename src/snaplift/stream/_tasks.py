@@ -189,28 +189,44 @@ def _range(out: dict[str, Any], slot: Any, source: TileSource, tile: TileRef, a:
         out["range"] = None
 
 
-def sketch_task(source: TileSource, widths: tuple[int, int], slot: Any, tile: TileRef) -> dict[str, Any]:
+def sketch_task(source: TileSource, widths: tuple[int, ...], slot: Any, tile: TileRef) -> dict[str, Any]:
     """First read of a tile: range sketch ``X Omega``, co-range sketch ``Psi X`` (if any), statistics.
 
-    Returns ``range`` (rows x k; None when summed into the worker's ``slot``), ``corange``
-    (snapshots x l, this tile's columns of ``(Psi X)^T``, None when ``l == 0``),
-    ``row_sum`` (rows) and ``squares`` (snapshots). The test matrices are keyed by global
-    snapshot and row index (Tropp et al. 2017).
+    ``widths = (k, l)`` or ``(k, l, exact_limit)``. Returns ``range`` (rows x k; None when
+    summed into the worker's ``slot``), ``corange`` (snapshots x l, this tile's columns of
+    ``(Psi X)^T``; for a tile of several fields a list with one per field, None for a field
+    kept whole; None when ``l == 0``), ``exact`` (snapshots x rows: the raw rows of the
+    fields of at most ``exact_limit`` rows, :func:`snaplift.linalg.sketch.exact_layout`, or
+    None), ``row_sum`` (rows) and ``squares`` (snapshots). The test matrices are keyed by
+    global snapshot and row index (Tropp et al. 2017).
     """
     set_cache_limit(source.cache_bytes)
-    range_width, corange_width = widths
+    range_width, corange_width = widths[0], widths[1]
+    exact_limit = widths[2] if len(widths) > 2 and corange_width else 0
     raw, squares = _read(source, tile, check=True)
     c0, c1 = tile.columns
     omega = gaussian_map(source.snapshot_index[c0:c1], range_width, seed=source.seed,
                          complex_valued=source.complex_valued)
-    out: dict[str, Any] = {"corange": None, "row_sum": raw.sum(axis=0), "squares": squares}
+    out: dict[str, Any] = {"corange": None, "exact": None, "row_sum": raw.sum(axis=0), "squares": squares}
     if corange_width and tile.span > 1:  # one co-range sketch per field: its scale comes later
         first = source.fields[tile.field].offset
-        out["corange"] = [
-            apply_corange(raw[:, f.offset - first:f.stop - first],
-                          cached_row_map(f.offset, f.stop, corange_width, seed=source.seed,
-                                         complex_valued=source.complex_valued, kind=source.corange_map))
-            for f in tile.members(source)]
+        parts: list[Any] = []
+        kept: list[tuple[int, int]] = []
+        for f in tile.members(source):
+            if f.n_rows <= exact_limit:  # narrower than the sketch: kept whole
+                parts.append(None)
+                kept.append((f.offset - first, f.stop - first))
+                continue
+            parts.append(apply_corange(raw[:, f.offset - first:f.stop - first],
+                                       cached_row_map(f.offset, f.stop, corange_width, seed=source.seed,
+                                                      complex_valued=source.complex_valued,
+                                                      kind=source.corange_map)))
+        out["corange"] = parts
+        if kept:  # the kept fields of a tile are adjacent in the state: one block of columns
+            out["exact"] = np.concatenate([raw[:, a:b] for a, b in kept], axis=1) if len(kept) < len(parts) \
+                else raw.copy()
+    elif corange_width and source.fields[tile.field].n_rows <= exact_limit:
+        out["exact"] = raw.copy()
     elif corange_width:
         # before the range product: that one may wait for this slot's previous tile, and
         # by now it has usually arrived

@@ -41,7 +41,8 @@ from snaplift.stream._tasks import TileSource, release_resident
 from snaplift.linalg._testmatrix import ROW_MAPS
 from snaplift.stream._method_passes import randomized_compress, tsqr_compress
 from snaplift.linalg.randomized import LowRank
-from snaplift.linalg.sketch import SketchState, finish_sketch, merge_sketches
+from snaplift.linalg.sketch import SketchState, merge_sketches
+from snaplift.stream.sketch import finish_sketch
 from snaplift.stream.loop import Checkpointer, InlineRunner, StreamState, ThreadRunner, TileRunner
 from snaplift.prepare import Preparation
 
@@ -224,13 +225,15 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
     sketch_arrays: dict[str, np.ndarray] = {}
     if options.method == "sketch":
         if state.pass_number == 0:
-            sketch_read(run, matrix, jobs, state, range_width, corange_width)
+            # a field no wider than the co-range sketch is kept whole (exact_layout)
+            sketch_read(run, matrix, jobs, state, range_width, corange_width, corange_width)
             run.end_pass(state)
         # the single read is over: its tile buffers go before the finishing temporaries come
         # (the row test matrices stay: finishing applies them once more)
         _release_caches(runner, test_matrices=False)
-        sketch = SketchState.from_stream(state.arrays, len(matrix.fields), matrix.snapshot_index,
-                                         options.seed, source.complex_valued, options.corange_map)
+        sketch = SketchState.from_stream(state.arrays, [f.n_rows for f in matrix.fields], matrix.snapshot_index,
+                                         options.seed, source.complex_valued, options.corange_map,
+                                         corange_width=corange_width, exact_limit=corange_width)
         global_blocks = row_blocks
         preparation, lowrank = finish_sketch(sketch, matrix, rank, center=options.center, scale=options.scale,
                                              row_blocks=global_blocks)
@@ -282,7 +285,7 @@ def sketch_append(old: SketchState | dict[str, np.ndarray], new_matrix: Snapshot
 
     ``new_matrix`` is the snapshot matrix of the *new* snapshots only (same fields, mask,
     weights; archive snapshot numbers after the stored ones). The merged state finished
-    by :func:`snaplift.linalg.sketch.finish_sketch` equals a from-scratch sketch of all
+    by :func:`snaplift.stream.sketch.finish_sketch` equals a from-scratch sketch of all
     snapshots with the same seed to rounding, because both sketches are linear in the
     data and the test matrices are keyed by global index (Tropp et al. 2019, Sec. 2.3).
 
@@ -303,7 +306,9 @@ def sketch_append(old: SketchState | dict[str, np.ndarray], new_matrix: Snapshot
     source = _source(new_matrix, options, l, row_blocks)
     state = StreamState("append")
     run = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers))
-    sketch_read(run, new_matrix, jobs, state, k, l)
-    new = SketchState.from_stream(state.arrays, len(new_matrix.fields), new_matrix.snapshot_index,
-                                  old_state.seed, source.complex_valued, old_state.corange_map)
+    # the stored state's layout: which fields it kept whole (none in a store from before)
+    sketch_read(run, new_matrix, jobs, state, k, l, old_state.exact_limit)
+    new = SketchState.from_stream(state.arrays, [f.n_rows for f in new_matrix.fields], new_matrix.snapshot_index,
+                                  old_state.seed, source.complex_valued, old_state.corange_map,
+                                  corange_width=l, exact_limit=old_state.exact_limit)
     return merge_sketches(old_state, new)

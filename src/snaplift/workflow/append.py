@@ -7,7 +7,7 @@ group is updated by reading only the new snapshots
 (:func:`snaplift.stream.compress.sketch_append`; Tropp, Yurtsever, Udell, Cevher 2019,
 SIAM J. Sci. Comput. 41(4): the sketches are linear in the data and the test matrices
 are keyed by global snapshot index), then finished as in a full run
-(:func:`snaplift.linalg.sketch.finish_sketch`). The result equals a from-scratch run
+(:func:`snaplift.stream.sketch.finish_sketch`). The result equals a from-scratch run
 with the same seed to rounding. Other methods (``randomized``, ``tsqr``) and
 ``check_pass: true`` (whose exact coefficients need every snapshot again) are
 recomputed instead.
@@ -58,9 +58,9 @@ def append_compress(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, 
     >>> result.info["appended_snapshots"]                                           # doctest: +SKIP
     120
     """
-    from snaplift.linalg.sketch import finish_sketch
     from snaplift.stream._passes import kept_row_blocks
     from snaplift.stream.compress import sketch_append
+    from snaplift.stream.sketch import finish_sketch
     from snaplift.stream.loop import runner_for
 
     section = workflow.archive

@@ -23,6 +23,7 @@ reused compress gives fit and modes the very same numbers.
 
 from __future__ import annotations
 
+import contextlib
 import datetime as _dt
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, replace
@@ -34,6 +35,7 @@ import numpy as np
 from snaplift._process_memory import trim_heap
 from snaplift.cluster import Scheduler
 from snaplift.fitting.methods import FitResult
+from snaplift.linalg._blas import blas_threads
 from snaplift.results import store as result_store
 from snaplift.results.fit_output import modes_bytes, write_fit, write_fit_details, write_modes
 from snaplift.results.stages import Compressed, write_compressed, write_scan
@@ -330,6 +332,10 @@ class CompressStage(_Base[Compressed]):
         return f"{record.status}; {record.passes} passes, {record.bytes_read / 1e6:.1f} MB read in this run"
 
 
+#: coefficients (rank x snapshots, complex) up to this size are fitted with one BLAS thread
+SMALL_FIT_BYTES = 8 * 2**20
+
+
 class FitStage(_Base[Fitted]):
     """``fit.method`` on the compress result; writes the spectrum, operator, runs, eigenfunctions."""
 
@@ -344,9 +350,15 @@ class FitStage(_Base[Fitted]):
 
     def run(self, context: StageContext) -> Fitted:
         trim_heap()  # what compress freed goes back to the system before fit and modes allocate
-        outcome = fit_stage(context.workflow, context.compressed, context.scanned,
-                            memory_budget=compress_memory(context.workflow, context.scheduler),
-                            say=context.reporter.message)
+        # a DMD of few coefficients is millisecond BLAS calls: one thread (a waiting pool made the
+        # fit of 30 x 3941 probe coefficients 5-20x slower on a loaded 2-core machine, issue 15)
+        compressed, workflow = context.compressed, context.workflow
+        small = workflow.fit.method != "edmd" and \
+            16 * compressed.lowrank.rank * int(context.scanned.snapshot_index.size) <= SMALL_FIT_BYTES
+        with blas_threads(1) if small else contextlib.nullcontext():
+            outcome = fit_stage(workflow, compressed, context.scanned,
+                                memory_budget=compress_memory(workflow, context.scheduler),
+                                say=context.reporter.message)
         return Fitted(0, tuple(outcome.warnings), outcome)
 
     def write(self, context: StageContext, result: Fitted) -> tuple[StageRecord, Fitted]:
