@@ -47,6 +47,7 @@ from snaplift.results import stages as stored
 from snaplift.results import store as result_store
 from snaplift.results.staging import StagedStore, check_free_space
 from snaplift.workflow import stages as stage_functions
+from snaplift.workflow.checksums import record_checksums
 from snaplift.workflow.fingerprint import (
     archive_fingerprint,
     classify_archive,
@@ -417,19 +418,21 @@ def _compress(workflow: Workflow, scanned: Any, scheduler: Scheduler, store: Sta
     reporter.begin("compress", f"{workflow.compress.method}, rank {workflow.compress.rank}, "
                    f"{scanned.snapshot_index.size} snapshots{lifted}")
     record = _kept_or_reused(store, "compress", fingerprint)
+    verified = ""
     if record is None:
         started = _now()
         appended = _try_append(workflow, scanned, scheduler, store, fingerprints, classification, warnings)
         if appended is not None:
             store.begin("compress")
             stored.write_compressed(store.writer, appended, scheduler.compute, scale_setting=workflow.prepare.scale)
-            record = store.finish("compress", {
+            checks, verified = record_checksums(store, workflow, appended.info, warnings, keep_previous=True)
+            record = store.finish("compress", {**checks,
                 "fingerprint": fingerprint, "settings": fingerprints["compress_settings"], "status": "appended",
                 "passes": 1, "bytes_read": int(appended.bytes_read), "method": workflow.compress.method,
                 "appended_snapshots": appended.info["appended_snapshots"],
                 "started": started.isoformat(), "finished": _now().isoformat()})
             reporter.end("compress", f"appended {appended.info['appended_snapshots']} snapshots; "
-                         f"{int(appended.bytes_read) / 1e6:.1f} MB read")
+                         f"{int(appended.bytes_read) / 1e6:.1f} MB read" + (f"; {verified}" if verified else ""))
             faults.finished("compress")
             return _load(workflow, scanned, store, record), record
         store.begin("compress")
@@ -448,7 +451,8 @@ def _compress(workflow: Workflow, scanned: Any, scheduler: Scheduler, store: Sta
             reporter.expect(int(scanned.plan.passes) * int(scanned.plan.n_tiles))
         result = _compress_with_retries(workflow, scanned, scheduler, keywords, warnings)
         stored.write_compressed(store.writer, result, scheduler.compute, scale_setting=workflow.prepare.scale)
-        full = store.finish("compress", {
+        checks, verified = record_checksums(store, workflow, getattr(result, "info", {}), warnings)
+        full = store.finish("compress", {**checks,
             "fingerprint": fingerprint, "settings": fingerprints["compress_settings"], "status": "computed",
             "passes": int(result.passes), "projection_kind": getattr(result, "projection_kind", "exact"),
             "bytes_read": int(result.bytes_read), "method": workflow.compress.method,
@@ -456,7 +460,8 @@ def _compress(workflow: Workflow, scanned: Any, scheduler: Scheduler, store: Sta
         store.clear_checkpoints("compress")
         record = full
     reporter.end("compress", f"{record['status']}; {record.get('passes', 0)} passes, "
-                 f"{int(record.get('bytes_read', 0)) / 1e6:.1f} MB read in this run")
+                 f"{int(record.get('bytes_read', 0)) / 1e6:.1f} MB read in this run"
+                 + (f"; {verified}" if record["status"] == "computed" and verified else ""))
     faults.finished("compress")
     return _load(workflow, scanned, store, record), record
 

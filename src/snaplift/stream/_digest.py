@@ -1,0 +1,162 @@
+"""Checksums of the tiles as they are read, so a block read again is verified against its first read.
+
+Every tile task of a pass runs inside :func:`digested`: the tile read (``_tasks._read``)
+calls :func:`note_read` with the values as read (decoded, masked, weighted; before any
+centring or scaling), which takes a CRC-32C of their bytes (Castagnoli, Braeutigam &
+Herrmann 1993, "Optimization of cyclic redundancy-check codes with 24 and 32 parity
+bits", IEEE Trans. Commun. 41(6); hardware-accelerated through ``google_crc32c``, which
+zarr already installs; ``zlib.crc32`` otherwise). No byte is read for it: the tile is
+in memory for the arithmetic anyway. The task returns the digest beside its products.
+
+On the driver, :func:`verify` keeps one digest per tile in the loop state
+(``StreamState.arrays['block_digest']``, checkpointed with the accumulators): the first
+read of a tile records it, every later read (the next pass of ``randomized`` or
+``tsqr``, a tile read again after a resume) must give the same digest, or the pass
+stops with :class:`~snaplift.errors.ArchiveChangedError` naming the file, field, rows
+and snapshots, before the changed values are folded into anything.
+
+:func:`digest_table` turns the state's digests into a table keyed by what each tile
+holds (field, rows, first and last archive snapshot, count), so that a later run with
+the same tiling can verify the blocks it reads again against the stored result
+(:mod:`snaplift.workflow.checksums`).
+"""
+
+from __future__ import annotations
+
+import threading
+from typing import Any
+
+import numpy as np
+
+from snaplift.errors import ArchiveChangedError
+
+try:  # hardware CRC-32C (SSE 4.2 / ARMv8): about 4x faster than zlib's CRC-32 here
+    import google_crc32c as _crc32c
+
+    def _extend(value: int, data: Any) -> int:
+        return int(_crc32c.extend(value, data))
+
+    ALGORITHM = "crc32c"
+except ImportError:  # pragma: no cover - zarr depends on google-crc32c
+    import zlib
+
+    def _extend(value: int, data: Any) -> int:
+        return int(zlib.crc32(data, value))
+
+    ALGORITHM = "crc32"
+
+__all__ = ["ALGORITHM", "block_digest", "note_read", "digested", "verify", "digest_table"]
+
+#: the name of the per-tile digests in ``StreamState.arrays`` (-1: not read yet)
+DIGESTS = "block_digest"
+
+_notes = threading.local()
+
+
+def block_digest(values: np.ndarray) -> int:
+    """CRC of the bytes of ``values`` (C order) and of its shape: equal values, equal digest.
+
+    Example
+    -------
+    >>> block_digest(np.arange(6.0).reshape(2, 3)) == block_digest(np.arange(6.0).reshape(2, 3))
+    True
+    >>> block_digest(np.arange(6.0).reshape(2, 3)) == block_digest(np.arange(6.0).reshape(3, 2))
+    False
+    """
+    value = _extend(0, np.asarray(values.shape, dtype=np.int64).tobytes() + values.dtype.str.encode())
+    view = values.view()
+    view.flags.writeable = False  # the checksum reads a read-only buffer; the tile stays writeable
+    if view.flags.c_contiguous:
+        return _extend(value, view.reshape(-1))
+    for row in view.reshape(view.shape[0], -1) if view.ndim > 1 else [view]:
+        part = np.ascontiguousarray(row)
+        part.flags.writeable = False
+        value = _extend(value, part)
+    return value
+
+
+def note_read(values: np.ndarray) -> None:
+    """Called by the tile read with the values just read; records their digest inside :func:`digested`."""
+    if getattr(_notes, "active", False):
+        _notes.digest = block_digest(values)
+
+
+def digested(task: Any, *args: Any) -> Any:
+    """Run ``task(*args)`` and add the digest of the tile it read to its result (``'digest'``;
+    None when it read nothing, e.g. a tile kept in memory)."""
+    _notes.active, _notes.digest = True, None
+    try:
+        out = task(*args)
+    finally:
+        _notes.active = False
+    if isinstance(out, dict):
+        out["digest"] = _notes.digest
+    return out
+
+
+def _tile_of(tile: Any) -> Any:
+    return tile[0] if isinstance(tile, tuple) else tile
+
+
+def verify(state: Any, source: Any, tile: Any, result: Any, checkpoint: Any = None) -> None:
+    """Record the first digest of a tile, or check a later one against it (module docstring).
+
+    On a difference the checkpoint (if any) is removed, so that the next run starts
+    afresh from the archive as it is then, and :class:`ArchiveChangedError` is raised.
+    """
+    digest = result.pop("digest", None) if isinstance(result, dict) else None
+    if digest is None:
+        return
+    ref = _tile_of(tile)
+    table = state.arrays.get(DIGESTS)
+    if table is None or table.size <= ref.id:
+        grown = np.full(max(ref.id + 1, 2 * (0 if table is None else table.size)), -1, dtype=np.int64)
+        if table is not None:
+            grown[:table.size] = table
+        table = state.arrays[DIGESTS] = grown
+    first = int(table[ref.id])
+    if first < 0:
+        table[ref.id] = int(digest)
+        return
+    if first != int(digest):
+        if checkpoint is not None:
+            checkpoint.remove()
+        raise ArchiveChangedError(
+            f"{source.reader.path}: {describe(source, ref)} read in compress pass {int(state.pass_number) + 1} "
+            "differs from its first read (checksum; a resumed run compares with the interrupted one): the "
+            "archive was rewritten during the run; nothing was written and the checkpoint is dropped, so "
+            "running again computes from the archive as it is then")
+    state.info["blocks_verified"] = int(state.info.get("blocks_verified", 0)) + 1
+
+
+def describe(source: Any, ref: Any) -> str:
+    """``field 'u' rows 0..99, snapshots 8..15`` of a tile (archive snapshot numbers)."""
+    fields = source.fields[ref.field:ref.field + max(1, int(ref.span))]
+    names = "+".join(f"'{f.name}'" for f in fields)
+    snapshots = source.snapshot_index[ref.columns[0]:ref.columns[1]]
+    r0, r1 = ref.rows if ref.span <= 1 else (0, fields[0].n_rows)
+    where = f"field {names} rows {r0}..{r1 - 1}" if ref.span <= 1 else f"fields {names}"
+    if snapshots.size:
+        where += f", snapshots {int(snapshots[0])}..{int(snapshots[-1])}"
+    return where
+
+
+def digest_table(state: Any, source: Any, jobs: Any) -> dict[str, np.ndarray]:
+    """The digests of the tiles read, keyed by content: field, rows, first/last snapshot, count, span."""
+    table = state.arrays.get(DIGESTS)
+    rows: list[tuple[int, ...]] = []
+    names: list[str] = []
+    digests: list[int] = []
+    for job in jobs:
+        ref = _tile_of(job.tile)
+        if table is None or ref.id >= table.size or table[ref.id] < 0:
+            continue
+        snapshots = source.snapshot_index[ref.columns[0]:ref.columns[1]]
+        if not snapshots.size:
+            continue
+        names.append(source.fields[ref.field].name)
+        rows.append((int(ref.rows[0]), int(ref.rows[1]), int(snapshots[0]), int(snapshots[-1]), int(snapshots.size),
+                     int(ref.span)))
+        digests.append(int(table[ref.id]))
+    return {"field": np.array(names, dtype=str), "extent": np.array(rows, dtype=np.int64).reshape(-1, 6),
+            "digest": np.array(digests, dtype=np.int64)}
