@@ -2,22 +2,22 @@
 
 Every tile task of a pass runs inside :func:`digested`: the tile read (``_tasks._read``)
 calls :func:`note_read` with the values as read (decoded, masked, weighted; before any
-centring or scaling), which takes a CRC-32C of their bytes (Castagnoli, Braeutigam &
+centring or scaling), which takes a CRC-32C of the bytes of each snapshot (Castagnoli, Braeutigam &
 Herrmann 1993, "Optimization of cyclic redundancy-check codes with 24 and 32 parity
 bits", IEEE Trans. Commun. 41(6); hardware-accelerated through ``google_crc32c``, which
 zarr already installs; ``zlib.crc32`` otherwise). No byte is read for it: the tile is
-in memory for the arithmetic anyway. The task returns the digest beside its products.
+in memory for the arithmetic anyway. The task returns the digests beside its products, one per snapshot of the tile.
 
-On the driver, :func:`verify` keeps one digest per tile in the loop state
+On the driver, :func:`verify` keeps the digests of every tile in the loop state
 (``StreamState.arrays['block_digest']``, checkpointed with the accumulators): the first
 read of a tile records it, every later read (the next pass of ``randomized`` or
 ``tsqr``, a tile read again after a resume) must give the same digest, or the pass
 stops with :class:`~snaplift.errors.ArchiveChangedError` naming the file, field, rows
-and snapshots, before the changed values are folded into anything.
+and the first snapshot that differs, before the changed values are folded into anything.
 
 :func:`digest_table` turns the state's digests into a table keyed by what each tile
-holds (field, rows, first and last archive snapshot, count), so that a later run with
-the same tiling can verify the blocks it reads again against the stored result
+holds (field, rows, archive snapshot), so that a later run with the same row blocks
+(any snapshot blocks: a grown archive has other ones) can verify the blocks it reads again against the stored result
 (:mod:`snaplift.workflow.checksums`).
 """
 
@@ -53,26 +53,28 @@ DIGESTS = "block_digest"
 _notes = threading.local()
 
 
-def block_digest(values: np.ndarray) -> int:
-    """CRC of the bytes of ``values`` (C order) and of its shape: equal values, equal digest.
+def block_digest(values: np.ndarray) -> np.ndarray:
+    """CRC of the bytes of each snapshot (row) of a snapshot-major tile: ``(snapshots,)`` int64.
 
     Example
     -------
-    >>> block_digest(np.arange(6.0).reshape(2, 3)) == block_digest(np.arange(6.0).reshape(2, 3))
+    >>> tile = np.arange(6.0).reshape(2, 3)
+    >>> bool(np.all(block_digest(tile) == block_digest(tile.copy())))
     True
-    >>> block_digest(np.arange(6.0).reshape(2, 3)) == block_digest(np.arange(6.0).reshape(3, 2))
-    False
+    >>> tile[1, 2] = 7.0
+    >>> bool(block_digest(tile)[0] == block_digest(np.arange(6.0).reshape(2, 3))[0])
+    True
     """
-    value = _extend(0, np.asarray(values.shape, dtype=np.int64).tobytes() + values.dtype.str.encode())
     view = values.view()
     view.flags.writeable = False  # the checksum reads a read-only buffer; the tile stays writeable
-    if view.flags.c_contiguous:
-        return _extend(value, view.reshape(-1))
-    for row in view.reshape(view.shape[0], -1) if view.ndim > 1 else [view]:
-        part = np.ascontiguousarray(row)
-        part.flags.writeable = False
-        value = _extend(value, part)
-    return value
+    rows = view.reshape(view.shape[0], -1) if view.ndim > 1 else view.reshape(1, -1)
+    out = np.empty(rows.shape[0], dtype=np.int64)
+    for index, row in enumerate(rows):
+        if not row.flags.c_contiguous:
+            row = np.ascontiguousarray(row)
+            row.flags.writeable = False
+        out[index] = _extend(0, row)
+    return out
 
 
 def note_read(values: np.ndarray) -> None:
@@ -99,34 +101,39 @@ def _tile_of(tile: Any) -> Any:
 
 
 def verify(state: Any, source: Any, tile: Any, result: Any, checkpoint: Any = None) -> None:
-    """Record the first digest of a tile, or check a later one against it (module docstring).
+    """Record the first digests of a tile, or check a later read against them (module docstring).
 
-    On a difference the checkpoint (if any) is removed, so that the next run starts
-    afresh from the archive as it is then, and :class:`ArchiveChangedError` is raised.
+    ``state.arrays['block_digest']`` is ``(tiles, widest tile)``, -1 where nothing was
+    read yet. On a difference the checkpoint (if any) is removed, so that the next run
+    starts afresh from the archive as it is then, and :class:`ArchiveChangedError` is raised.
     """
     digest = result.pop("digest", None) if isinstance(result, dict) else None
     if digest is None:
         return
     ref = _tile_of(tile)
+    width = int(ref.columns[1] - ref.columns[0])
     table = state.arrays.get(DIGESTS)
-    if table is None or table.size <= ref.id:
-        grown = np.full(max(ref.id + 1, 2 * (0 if table is None else table.size)), -1, dtype=np.int64)
+    if table is None or table.shape[0] <= ref.id or table.shape[1] < width:
+        rows = max(ref.id + 1, 0 if table is None else table.shape[0])
+        grown = np.full((rows, max(width, 0 if table is None else table.shape[1])), -1, dtype=np.int64)
         if table is not None:
-            grown[:table.size] = table
+            grown[:table.shape[0], :table.shape[1]] = table
         table = state.arrays[DIGESTS] = grown
-    first = int(table[ref.id])
-    if first < 0:
-        table[ref.id] = int(digest)
+    first = table[ref.id, :width]
+    if np.all(first < 0):
+        first[:] = digest
         return
-    if first != int(digest):
+    differing = np.flatnonzero(first != digest)
+    if differing.size:
         if checkpoint is not None:
             checkpoint.remove()
+        snapshot = int(source.snapshot_index[ref.columns[0] + int(differing[0])])
         raise ArchiveChangedError(
-            f"{source.reader.path}: {describe(source, ref)} read in compress pass {int(state.pass_number) + 1} "
-            "differs from its first read (checksum; a resumed run compares with the interrupted one): the "
-            "archive was rewritten during the run; nothing was written and the checkpoint is dropped, so "
-            "running again computes from the archive as it is then")
-    state.info["blocks_verified"] = int(state.info.get("blocks_verified", 0)) + 1
+            f"{source.reader.path}: {describe(source, ref)} (snapshot {snapshot} first) read in compress pass "
+            f"{int(state.pass_number) + 1} differs from its first read (checksum; a resumed run compares with "
+            "the interrupted one): the archive was rewritten during the run; nothing was written and the "
+            "checkpoint is dropped, so running again computes from the archive as it is then")
+    state.info["blocks_verified"] = int(state.info.get("blocks_verified", 0)) + width
 
 
 def describe(source: Any, ref: Any) -> str:
@@ -142,21 +149,28 @@ def describe(source: Any, ref: Any) -> str:
 
 
 def digest_table(state: Any, source: Any, jobs: Any) -> dict[str, np.ndarray]:
-    """The digests of the tiles read, keyed by content: field, rows, first/last snapshot, count, span."""
+    """The digests read, one per snapshot of each field's row block, keyed by content:
+    field name and ``extent`` = (row start, row stop, archive snapshot, fields in the tile)."""
     table = state.arrays.get(DIGESTS)
-    rows: list[tuple[int, ...]] = []
     names: list[str] = []
-    digests: list[int] = []
+    extents: list[np.ndarray] = []
+    digests: list[np.ndarray] = []
     for job in jobs:
         ref = _tile_of(job.tile)
-        if table is None or ref.id >= table.size or table[ref.id] < 0:
+        if table is None or ref.id >= table.shape[0]:
             continue
         snapshots = source.snapshot_index[ref.columns[0]:ref.columns[1]]
-        if not snapshots.size:
+        values = table[ref.id, :snapshots.size]
+        kept = values >= 0
+        if not kept.any():
             continue
-        names.append(source.fields[ref.field].name)
-        rows.append((int(ref.rows[0]), int(ref.rows[1]), int(snapshots[0]), int(snapshots[-1]), int(snapshots.size),
-                     int(ref.span)))
-        digests.append(int(table[ref.id]))
-    return {"field": np.array(names, dtype=str), "extent": np.array(rows, dtype=np.int64).reshape(-1, 6),
-            "digest": np.array(digests, dtype=np.int64)}
+        count = int(kept.sum())
+        r0, r1 = (int(ref.rows[0]), int(ref.rows[1])) if ref.span <= 1 else (0, int(source.fields[ref.field].n_rows))
+        names.extend([source.fields[ref.field].name] * count)
+        extent = np.empty((count, 4), dtype=np.int64)
+        extent[:, 0], extent[:, 1], extent[:, 2], extent[:, 3] = r0, r1, snapshots[kept], int(ref.span)
+        extents.append(extent)
+        digests.append(values[kept])
+    return {"field": np.array(names, dtype=str),
+            "extent": np.concatenate(extents) if extents else np.zeros((0, 4), dtype=np.int64),
+            "digest": np.concatenate(digests) if digests else np.zeros(0, dtype=np.int64)}

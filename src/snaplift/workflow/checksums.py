@@ -8,15 +8,15 @@ with the compress result, in the store's ``checksums/`` group:
 
 - ``checksums/field`` (block,): the field of each block (the first of a tile of
   several lifted fields);
-- ``checksums/extent`` (block, 6): kept-row start and stop within the field, first and
-  last archive snapshot, snapshot count, number of fields in the tile;
+- ``checksums/extent`` (block, 4): kept-row start and stop within the field, archive
+  snapshot, number of fields in the tile (a block is one snapshot of one row block);
 - ``checksums/digest`` (block,): the CRC of the block's values as read (decoded,
   masked, weighted), attribute ``covers``: a fingerprint of what the values depend on
   (archive section and raw-field lifting), ``algorithm``.
 
 A later run that reads the archive again (compress recomputed, or the append path
 reading new blocks) compares every block it read whose extent matches a stored one
-(same tiling) with the stored checksum: equal blocks are *verified*; the count, and
+(same row blocks; the snapshot blocks may differ) with the stored checksum: equal blocks are *verified*; the count, and
 any block that differs, are said in the run's output and kept in the compress record
 (``blocks_verified_against_previous``, ``blocks_differing_from_previous``, with the
 note ``force_full_recompute``: ``snaplift run --overwrite``). Blocks a run does not read
@@ -51,7 +51,7 @@ def covers(workflow: Workflow) -> str:
 
 
 def _empty() -> dict[str, np.ndarray]:
-    return {"field": np.array([], dtype=str), "extent": np.zeros((0, 6), dtype=np.int64),
+    return {"field": np.array([], dtype=str), "extent": np.zeros((0, 4), dtype=np.int64),
             "digest": np.zeros(0, dtype=np.int64)}
 
 
@@ -61,7 +61,7 @@ def write_digests(writer: Any, table: dict[str, np.ndarray] | None, basis: str) 
         return 0
     attrs = {"covers": basis, "algorithm": ALGORITHM,
              "meaning": "checksum of each block's values as read (decoded, masked, weighted)",
-             "extent": ["row_start", "row_stop", "first_snapshot", "last_snapshot", "snapshots", "fields"]}
+             "extent": ["row_start", "row_stop", "snapshot", "fields"]}
     writer.array(GROUP, "field", np.asarray(table["field"]), ("block",))
     writer.array(GROUP, "extent", np.asarray(table["extent"], dtype=np.int64), ("block", "extent"))
     writer.array(GROUP, "digest", np.asarray(table["digest"], dtype=np.int64), ("block",), attrs=attrs)
@@ -78,7 +78,7 @@ def stored_digests(root: Any, basis: str) -> dict[str, np.ndarray] | None:
         if dict(digest.attrs).get("covers") != basis:
             return None
         return {"field": np.array([str(f) for f in np.asarray(group["field"][...]).ravel()], dtype=str),
-                "extent": np.asarray(group["extent"][...], dtype=np.int64).reshape(-1, 6),
+                "extent": np.asarray(group["extent"][...], dtype=np.int64).reshape(-1, 4),
                 "digest": np.asarray(digest[...], dtype=np.int64)}
     except (KeyError, OSError, ValueError, TypeError):  # an older store, or another layout: nothing to compare
         return None
@@ -95,26 +95,41 @@ def merge(old: dict[str, np.ndarray] | None, new: dict[str, np.ndarray] | None) 
         return _empty()
     keys = list(merged)
     return {"field": np.array([k[0] for k in keys], dtype=str),
-            "extent": np.array([k[1:] for k in keys], dtype=np.int64).reshape(-1, 6),
+            "extent": np.array([k[1:] for k in keys], dtype=np.int64).reshape(-1, 4),
             "digest": np.array([merged[k] for k in keys], dtype=np.int64)}
 
 
 def compare(stored: dict[str, np.ndarray] | None, current: dict[str, np.ndarray] | None
             ) -> tuple[int, list[str]]:
-    """Blocks of ``current`` equal to the stored block of the same extent, and those that differ (named)."""
+    """Blocks of ``current`` equal to the stored block of the same extent; the differing ones,
+    named by field, rows and snapshot ranges (one entry per range)."""
     if stored is None or current is None:
         return 0, []
     before = _keyed(stored)
-    verified, differing = 0, []
+    verified = 0
+    differing: dict[tuple[str, int, int], list[int]] = {}
     for key, digest in _keyed(current).items():
         if key not in before:
             continue
         if before[key] == digest:
             verified += 1
         else:
-            name, r0, r1, s0, s1 = key[:5]
-            differing.append(f"field '{name}' rows {r0}..{r1 - 1}, snapshots {s0}..{s1}")
-    return verified, differing
+            differing.setdefault(key[:3], []).append(int(key[3]))
+    named = []
+    for (name, r0, r1), snapshots in differing.items():
+        for a, b in _ranges(sorted(snapshots)):
+            named.append(f"field '{name}' rows {r0}..{r1 - 1}, " + (f"snapshot {a}" if a == b else f"snapshots {a}..{b}"))
+    return verified, named
+
+
+def _ranges(values: list[int]) -> list[tuple[int, int]]:
+    out: list[tuple[int, int]] = []
+    for value in values:
+        if out and value == out[-1][1] + 1:
+            out[-1] = (out[-1][0], value)
+        else:
+            out.append((value, value))
+    return out
 
 
 def checksum_record(read_again: int, written: int, against: int, differing: list[str], *,
@@ -123,16 +138,16 @@ def checksum_record(read_again: int, written: int, against: int, differing: list
     record: dict[str, Any] = {
         "checksum": ALGORITHM, "blocks_checksummed": int(written), "blocks_verified_in_run": int(read_again),
         "blocks_verified_against_previous": int(against), "blocks_differing_from_previous": differing[:NAMED],
-        "blocks_differing_count": len(differing), "force_full_recompute": FORCE}
+        "blocks_differing_ranges": len(differing), "force_full_recompute": FORCE}
     # "N blocks verified by checksum": reads in this run equal to the first read of the same
     # block (later passes, a resume) plus blocks equal to the previous result's
     text = f"{read_again + against} blocks verified by checksum" if read_again or previous else ""
     if differing:
-        text += f", {len(differing)} differ from the previous result"
+        text += f"; {len(differing)} part(s) differ from the previous result (named in the warnings)"
     warning = None
     if differing:
         more = f" and {len(differing) - NAMED} more" if len(differing) > NAMED else ""
-        warning = (f"{len(differing)} block(s) of the archive differ from what the previous result read "
+        warning = (f"{len(differing)} part(s) of the archive differ from what the previous result read "
                    f"({'; '.join(differing[:NAMED])}{more}): the archive was rewritten; this run's results "
                    "come from the archive as it is now")
     return record, text, warning
