@@ -22,8 +22,11 @@ widths (:func:`method_widths`):
 - driver accumulators: ``sketch`` ``s (2 n k + n r + F m l + n) + c`` (with its own copy of
   the row test matrix for finishing); ``randomized``
   ``s (3 n k + m k + n)``; ``tsqr`` ``s (n r + L m^2 + n)`` (``F`` fields, ``L`` leaves);
-- ``peak = workers x (2 tile + cache) + in_flight x result + driver``
-  which must fit ``memory_bytes - baseline_bytes`` (below). When the workers are threads of one process
+- ``peak = workers x (2 tile + cache) + in_flight x result + driver``, and for worker
+  processes (not ``tsqr``) ``workers s n k`` more (each worker's slot of range products or
+  copy of the operand ``Q``) with the driver at least ``s ((workers + 1) n k + m k + n)``
+  (the slots collected beside its own accumulator); this
+  must fit ``memory_bytes - baseline_bytes`` (below). When the workers are threads of one process
   (``shared_memory``) the cache is held once and range products are summed in place
   in one ``s n k`` slot per worker, so a result in flight is only ``s (n_t + b (k + l))``
   and the driver holds ``s (2 n k + 2 m k + F m l + 2 n)`` while tiles are read; its
@@ -604,6 +607,14 @@ def _plan_compress(info: ArchiveInfo, names: tuple[str, ...], chosen: list[Any],
         if slotted:
             during = workers * 2 * tile + caches + workers * s * n * k + in_flight * result + driver_pass
             return max(during, cache + driver), tile, result
+        if method != "tsqr":
+            # worker processes: each holds an n x k array through a pass (its slot of range
+            # products, or the scattered operand Q of an adjoint pass), and collecting the
+            # slots brings one per worker to the driver beside its own (issue 11: measured
+            # 611 MiB for a 531 MiB budget with cluster: local before these were counted)
+            held = workers * s * n * k
+            collect = s * ((workers + 1) * n * k + m * k + n)
+            return workers * 2 * tile + caches + in_flight * result + held + max(driver, collect), tile, result
         return workers * 2 * tile + caches + in_flight * result + driver, tile, result
 
     matrix_bytes = s * n * m

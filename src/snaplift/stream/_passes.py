@@ -282,8 +282,13 @@ def product_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: 
 
         if not norms:
             kind = "adjoint_only"
-    run.run(product_task, (preparing_handle, shared_operand, kind), jobs, fold, state,
-            slot=name if kind == "range" else None)
+    try:
+        run.run(product_task, (preparing_handle, shared_operand, kind), jobs, fold, state,
+                slot=name if kind == "range" else None)
+    finally:
+        unshare = getattr(run.runner, "unshare", None)
+        if unshare is not None:  # worker processes: the operand leaves them with its pass
+            unshare(shared_operand)
     if kind == "range" and name not in state.arrays:
         state.arrays[name] = np.zeros((n, width), dtype=dtype)
 
