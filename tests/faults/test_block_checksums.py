@@ -250,3 +250,32 @@ def test_a_block_rewritten_before_a_grown_archive_is_run_again_is_reported(tmp_p
     fresh = _workflow(tmp_path, output="fresh.zarr", name="fresh.yaml")
     assert faults.cli("run", fresh, "-q").code == 0
     _same_results(tmp_path / "r.zarr", tmp_path / "fresh.zarr")
+
+
+def test_stored_and_new_checksums_are_matched_by_field_rows_and_snapshot() -> None:
+    from snaplift.workflow.checksums import compare, merge
+
+    rng = np.random.default_rng(3)
+
+    def table(n: int) -> dict:
+        extent = np.column_stack([np.zeros(n, int), np.full(n, 100), rng.permutation(n), np.ones(n, int)])
+        return {"field": rng.choice(["u", "p"], n), "extent": extent, "digest": rng.integers(0, 4, n)}
+
+    old, new = table(300), table(400)
+    # reference: the same comparison with plain Python dictionaries (common practice)
+    before = {(f, *map(int, e)): int(d) for f, e, d in zip(old["field"], old["extent"], old["digest"])}
+    after = {(f, *map(int, e)): int(d) for f, e, d in zip(new["field"], new["extent"], new["digest"])}
+    common = set(before) & set(after)
+    verified, differing = compare(old, new)
+    assert verified == sum(before[k] == after[k] for k in common)
+    named = {(k[0], k[3]) for k in common if before[k] != after[k]}
+    listed = set()
+    for text in differing:  # "field 'u' rows 0..99, snapshot 7" or "snapshots 7..9"
+        name = text.split("'")[1]
+        span = text.rsplit(" ", 1)[1].split("..")
+        listed |= {(name, s) for s in range(int(span[0]), int(span[-1]) + 1)}
+    assert listed == named
+    merged = merge(old, new)
+    together = {**before, **after}
+    assert {(f, *map(int, e)): int(d) for f, e, d in zip(merged["field"], merged["extent"], merged["digest"])} \
+        == together

@@ -115,6 +115,8 @@ def verify(state: Any, source: Any, tile: Any, result: Any, checkpoint: Any = No
     table = state.arrays.get(DIGESTS)
     if table is None or table.shape[0] <= ref.id or table.shape[1] < width:
         rows = max(ref.id + 1, 0 if table is None else table.shape[0])
+        if table is not None and ref.id >= table.shape[0]:
+            rows = max(rows, 2 * table.shape[0])  # grown by doubling: tile ids arrive in order
         grown = np.full((rows, max(width, 0 if table is None else table.shape[1])), -1, dtype=np.int64)
         if table is not None:
             grown[:table.shape[0], :table.shape[1]] = table
@@ -152,7 +154,7 @@ def digest_table(state: Any, source: Any, jobs: Any) -> dict[str, np.ndarray]:
     """The digests read, one per snapshot of each field's row block, keyed by content:
     field name and ``extent`` = (row start, row stop, archive snapshot, fields in the tile)."""
     table = state.arrays.get(DIGESTS)
-    names: list[str] = []
+    fields: list[np.ndarray] = []
     extents: list[np.ndarray] = []
     digests: list[np.ndarray] = []
     for job in jobs:
@@ -162,15 +164,16 @@ def digest_table(state: Any, source: Any, jobs: Any) -> dict[str, np.ndarray]:
         snapshots = source.snapshot_index[ref.columns[0]:ref.columns[1]]
         values = table[ref.id, :snapshots.size]
         kept = values >= 0
-        if not kept.any():
-            continue
         count = int(kept.sum())
+        if not count:
+            continue
         r0, r1 = (int(ref.rows[0]), int(ref.rows[1])) if ref.span <= 1 else (0, int(source.fields[ref.field].n_rows))
-        names.extend([source.fields[ref.field].name] * count)
+        fields.append(np.full(count, ref.field, dtype=np.int64))
         extent = np.empty((count, 4), dtype=np.int64)
         extent[:, 0], extent[:, 1], extent[:, 2], extent[:, 3] = r0, r1, snapshots[kept], int(ref.span)
         extents.append(extent)
         digests.append(values[kept])
-    return {"field": np.array(names, dtype=str),
+    names = np.array([f.name for f in source.fields], dtype=str)
+    return {"field": names[np.concatenate(fields)] if fields else np.array([], dtype=str),
             "extent": np.concatenate(extents) if extents else np.zeros((0, 4), dtype=np.int64),
             "digest": np.concatenate(digests) if digests else np.zeros(0, dtype=np.int64)}

@@ -84,42 +84,52 @@ def stored_digests(root: Any, basis: str) -> dict[str, np.ndarray] | None:
         return None
 
 
-def _keyed(table: dict[str, np.ndarray]) -> dict[tuple[Any, ...], int]:
-    return {(str(f), *map(int, e)): int(d) for f, e, d in zip(table["field"], table["extent"], table["digest"])}
+def _keys(tables: list[dict[str, np.ndarray]]) -> list[np.ndarray]:
+    """Each table's blocks as one structured key (field, rows, snapshot, span) per row, with
+    the field names numbered alike in every table; vectorised, so a million blocks cost
+    arrays, not Python objects."""
+    names = np.unique(np.concatenate([np.asarray(t["field"], dtype=str) for t in tables]))
+    kind = np.dtype([("field", np.int64), ("r0", np.int64), ("r1", np.int64), ("snapshot", np.int64),
+                     ("span", np.int64)])
+    out = []
+    for t in tables:
+        key = np.empty(len(t["digest"]), dtype=kind)
+        key["field"] = np.searchsorted(names, np.asarray(t["field"], dtype=str))
+        extent = np.asarray(t["extent"], dtype=np.int64).reshape(-1, 4)
+        key["r0"], key["r1"], key["snapshot"], key["span"] = extent.T
+        out.append(key)
+    return out
 
 
 def merge(old: dict[str, np.ndarray] | None, new: dict[str, np.ndarray] | None) -> dict[str, np.ndarray]:
     """One table of both (the new entry wins where both hold a block)."""
-    merged = {**_keyed(old or _empty()), **_keyed(new or _empty())}
-    if not merged:
-        return _empty()
-    keys = list(merged)
-    return {"field": np.array([k[0] for k in keys], dtype=str),
-            "extent": np.array([k[1:] for k in keys], dtype=np.int64).reshape(-1, 4),
-            "digest": np.array([merged[k] for k in keys], dtype=np.int64)}
+    old, new = old or _empty(), new or _empty()
+    if not len(old["digest"]):
+        return new
+    old_key, new_key = _keys([old, new])
+    keep = ~np.isin(old_key, new_key)
+    return {name: np.concatenate([np.asarray(old[name])[keep], np.asarray(new[name])]) for name in ("field", "extent", "digest")}
 
 
 def compare(stored: dict[str, np.ndarray] | None, current: dict[str, np.ndarray] | None
             ) -> tuple[int, list[str]]:
     """Blocks of ``current`` equal to the stored block of the same extent; the differing ones,
     named by field, rows and snapshot ranges (one entry per range)."""
-    if stored is None or current is None:
+    if stored is None or current is None or not len(stored["digest"]) or not len(current["digest"]):
         return 0, []
-    before = _keyed(stored)
-    verified = 0
+    stored_key, current_key = _keys([stored, current])
+    _, i_stored, i_current = np.intersect1d(stored_key, current_key, assume_unique=False, return_indices=True)
+    same = np.asarray(stored["digest"])[i_stored] == np.asarray(current["digest"])[i_current]
     differing: dict[tuple[str, int, int], list[int]] = {}
-    for key, digest in _keyed(current).items():
-        if key not in before:
-            continue
-        if before[key] == digest:
-            verified += 1
-        else:
-            differing.setdefault(key[:3], []).append(int(key[3]))
+    for index in i_current[~same]:
+        name = str(current["field"][index])
+        r0, r1, snapshot, _ = (int(v) for v in current["extent"][index])
+        differing.setdefault((name, r0, r1), []).append(snapshot)
     named = []
     for (name, r0, r1), snapshots in differing.items():
         for a, b in _ranges(sorted(snapshots)):
             named.append(f"field '{name}' rows {r0}..{r1 - 1}, " + (f"snapshot {a}" if a == b else f"snapshots {a}..{b}"))
-    return verified, named
+    return int(same.sum()), named
 
 
 def _ranges(values: list[int]) -> list[tuple[int, int]]:
