@@ -108,7 +108,8 @@ def merge(old: dict[str, np.ndarray] | None, new: dict[str, np.ndarray] | None) 
         return new
     old_key, new_key = _keys([old, new])
     keep = ~np.isin(old_key, new_key)
-    return {name: np.concatenate([np.asarray(old[name])[keep], np.asarray(new[name])]) for name in ("field", "extent", "digest")}
+    return {name: np.concatenate([np.asarray(old[name])[keep], np.asarray(new[name])])
+            for name in ("field", "extent", "digest")}
 
 
 def compare(stored: dict[str, np.ndarray] | None, current: dict[str, np.ndarray] | None
@@ -128,7 +129,8 @@ def compare(stored: dict[str, np.ndarray] | None, current: dict[str, np.ndarray]
     named = []
     for (name, r0, r1), snapshots in differing.items():
         for a, b in _ranges(sorted(snapshots)):
-            named.append(f"field '{name}' rows {r0}..{r1 - 1}, " + (f"snapshot {a}" if a == b else f"snapshots {a}..{b}"))
+            where = f"snapshot {a}" if a == b else f"snapshots {a}..{b}"
+            named.append(f"field '{name}' rows {r0}..{r1 - 1}, {where}")
     return int(same.sum()), named
 
 

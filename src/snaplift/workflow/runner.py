@@ -287,7 +287,8 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
         layout = store.previous.attrs.get(result_store.FORMAT_KEY) if store.previous is not None else None
         if layout is not None and layout != result_store.STORE_VERSION:
             warnings.append(f"{store.path} holds result store layout {layout}; this snaplift writes layout "
-                            f"{result_store.STORE_VERSION} (units, coordinates, peak amplitudes): every stage is recomputed")
+                            f"{result_store.STORE_VERSION} (units, coordinates, peak amplitudes, block "
+                            "checksums): every stage is recomputed")
         info = scanned.reader.describe()
         chunk = max(1, max(info.fields[f].snapshot_chunk for f in workflow.archive.fields))
         chunk = min(chunk, info.fields[workflow.archive.fields[0]].n_snapshots)
