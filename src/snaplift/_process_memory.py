@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import ctypes
 import ctypes.util
+import functools
 import importlib
 import os
 import socket
@@ -26,13 +27,22 @@ def trim_heap() -> bool:
     counted in the baseline it would be counted twice. dask's documentation recommends the
     same call to release a worker's unmanaged memory.
     """
+    trim = _malloc_trim()
+    return bool(trim(0)) if trim is not None else False
+
+
+@functools.cache
+def _malloc_trim() -> Any:
+    """glibc's ``malloc_trim``, looked up once per process: ``find_library`` runs
+    ``ldconfig`` in a child process, and a child of a large process, counted between its
+    fork and its exec, is as large again in a sum over the process tree (issue 11)."""
     name = ctypes.util.find_library("c")
     if not name:
-        return False
+        return None
     try:
-        return bool(ctypes.CDLL(name).malloc_trim(0))
+        return ctypes.CDLL(name).malloc_trim
     except (OSError, AttributeError):  # not glibc (musl, macOS): nothing to trim
-        return False
+        return None
 
 
 def resident(modules: Sequence[str] = ()) -> dict[str, Any]:

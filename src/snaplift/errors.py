@@ -59,6 +59,10 @@ class NonFiniteError(ArchiveError):
     """NaN or Inf found in data that is not masked."""
 
 
+class ArchiveChangedError(ArchiveError):
+    """A block of the archive read again differs from an earlier read of it (checksum)."""
+
+
 class TimeSpacingError(ArchiveError):
     """Snapshot times are not uniformly spaced where the method needs them to be."""
 

@@ -37,7 +37,10 @@ def _peak(n_t, b, k, l, *, n, m, r, fields, workers, in_flight, method, s=8):
     result = s * (n_t * k + b * (k + l))
     driver = {"sketch": s * (2 * n * k + n * r + fields * m * l + n) + cache,
               "randomized": s * (3 * n * k + m * k + n)}[method]
-    return workers * (2 * tile + cache) + in_flight * result + driver
+    # worker processes: each holds an n x k slot or operand through a pass, and the driver
+    # collects one slot per worker beside its own accumulator
+    driver = max(driver, s * ((workers + 1) * n * k + m * k + n))
+    return workers * (2 * tile + cache + s * n * k) + in_flight * result + driver
 
 
 @pytest.mark.parametrize("method", ["sketch", "randomized"])
@@ -62,15 +65,16 @@ def test_block_is_the_longest_that_fits_when_memory_is_the_limit():
 
 def test_rows_are_split_when_one_chunk_does_not_fit():
     info = _info(_field("w", (100, 512, 512), (4, 512, 512)))
-    # the driver's accumulators take ~126 MB; a full-height chunk tile and its results ~100 MB more
-    plan = plan_tiles(info, ["w"], memory_bytes=160 * MIB, workers=1, method="randomized", rank=10)
+    # the driver's accumulators take ~126 MB, the worker's n x k slot 42 MB; a full-height chunk
+    # tile and its results ~100 MB more
+    plan = plan_tiles(info, ["w"], memory_bytes=200 * MIB, workers=1, method="randomized", rank=10)
     assert plan.block == 4  # one stored chunk of snapshots
     sizes = {stop - start for start, stop in plan.point_blocks[0][:-1]}
     assert len(plan.point_blocks[0]) > 1 and len(sizes) == 1 and sizes.pop() % 512 == 0  # whole grid rows
-    assert plan.partial_chunk_reads and plan.peak_bytes_estimate <= 160 * MIB
+    assert plan.partial_chunk_reads and plan.peak_bytes_estimate <= 200 * MIB
     assert plan.bytes_to_read == 100 * 512 * 512 * 8  # uncompressed: partial reads cost their bytes
     compressed = _info(_field("w", (100, 512, 512), (4, 512, 512), attrs={"compression": "gzip"}))
-    again = plan_tiles(compressed, ["w"], memory_bytes=160 * MIB, workers=1, method="randomized", rank=10)
+    again = plan_tiles(compressed, ["w"], memory_bytes=200 * MIB, workers=1, method="randomized", rank=10)
     # each row block decompresses whole chunks again
     assert again.bytes_to_read == len(again.point_blocks[0]) * 100 * 512 * 512 * 8
 

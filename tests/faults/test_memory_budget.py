@@ -70,3 +70,78 @@ def test_whole_run_peak_stays_within_a_budget_near_the_smallest(tmp_path: Path, 
     # the budget is the whole run's: compress.memory bounds the process tree (DEVELOPERS.md);
     # the report, drawn after the commit, is outside the plan (README) and switched off here
     assert peak <= budget, f"peak {peak / 2**20:.1f} MiB over the budget {budget / 2**20:.1f} MiB"
+
+
+# cluster: local runs tiles in worker processes: the whole process tree counts. A thread of
+# the run sums psutil's RSS over this process and all its children every few milliseconds
+# and keeps the largest sum. A sampler can miss a short peak but never invents one, so the
+# check cannot fail spuriously; it may pass a brief excess between two samples.
+_TREE_RUN = """
+import json, sys, threading, time
+import psutil
+
+
+def watch(peak):
+    me = psutil.Process()
+    while True:
+        total = 0
+        try:
+            for process in [me, *me.children(recursive=True)]:
+                try:
+                    total += process.memory_info().rss
+                except psutil.Error:
+                    pass
+        except psutil.Error:
+            pass
+        peak[0] = max(peak[0], total)
+        time.sleep(0.002)
+
+
+def main():
+    from snaplift.cli import app
+
+    peak = [0]
+    threading.Thread(target=watch, args=(peak,), daemon=True).start()
+    try:
+        code = app(sys.argv[1:], standalone_mode=False) or 0
+    except SystemExit as error:
+        code = error.code or 0
+    print("PEAK", json.dumps(peak[0]))
+    sys.exit(code)
+
+
+if __name__ == "__main__":  # worker processes are spawned: they import this module, not run it
+    main()
+"""
+
+
+def _run_local(folder: Path, memory: str) -> tuple[int, str, int | None]:
+    workflow = folder / "local.yaml"
+    workflow.write_text(yaml.safe_dump({
+        "archive": {"path": "wide.h5", "fields": ["u"], "time": "t"},
+        "compress": {"method": "randomized", "rank": 40, "oversample": 4, "power_iterations": 1, "memory": memory},
+        "fit": {"rank": 10}, "output": {"path": "local.zarr", "report": False},
+        "cluster": {"kind": "local", "workers": 2, "threads_per_worker": 1}}))
+    script = folder / "tree_run.py"
+    script.write_text(_TREE_RUN)
+    done = subprocess.run([sys.executable, str(script), "run", str(workflow), "-q", "--overwrite"],
+                          capture_output=True, text=True, cwd=folder, timeout=900)
+    peak = re.search(r"PEAK (\d+)", done.stdout)
+    return done.returncode, done.stderr, int(peak.group(1)) if peak else None
+
+
+@pytest.mark.slow
+def test_local_cluster_process_tree_stays_within_a_budget_near_the_smallest(tmp_path: Path) -> None:
+    pytest.importorskip("psutil")
+    _wide(tmp_path / "wide.h5", 200_000)
+    # the planner names the smallest budget for 2 worker processes and this one
+    _, message, _ = _run_local(tmp_path, "450MiB")
+    smallest = int(re.search(r"raise compress.memory to at least (\d+) bytes", message).group(1))
+    # measured before issue 11's fixes (the planner's smallest then, 511 MiB, + 4 %): 611-681 MiB
+    # over the process tree for a 531 MiB budget (each adjoint pass's operand stayed in
+    # every worker; the workers' slots and their collection were not planned); after:
+    # 609-622 MiB for 671 MiB. 6 % above the smallest: three processes' baselines move.
+    budget = int(smallest * 1.06)
+    code, stderr, peak = _run_local(tmp_path, str(budget // 2**10) + "KiB")
+    assert code == 0 and peak is not None, stderr[-2000:]
+    assert peak <= budget, f"peak {peak / 2**20:.1f} MiB over the budget {budget / 2**20:.1f} MiB"

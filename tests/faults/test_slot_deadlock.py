@@ -92,7 +92,10 @@ def _local_cluster_runs(tmp_path: Path, repeats: int) -> None:
     reader = open_archive(str(path))
     info = reader.describe()
     options = CompressOptions(method="randomized", rank=8, oversample=4, power_iterations=1, scale="none")
-    plan = plan_tiles(info, ["u"], memory_bytes=20 * 2**20, workers=2, method="randomized", rank=8)
+    # 20 MiB for the tiles and the driver, plus what the plan counts for each worker process's
+    # n x k slot (8 bytes x 40,000 points x k = 18, the planner's width for rank 8): the same tiles as before
+    plan = plan_tiles(info, ["u"], memory_bytes=20 * 2**20 + 2 * 8 * 40_000 * 18, workers=2,
+                      method="randomized", rank=8)
     matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(20), snapshot_block=1,
                                    snapshot_blocks=plan.snapshot_blocks)
     with open_scheduler(ClusterSection(kind="local", workers=2)) as scheduler, runner_for(scheduler) as runner:

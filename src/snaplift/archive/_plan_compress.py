@@ -130,6 +130,14 @@ def plan_compress_tiles(info: ArchiveInfo, names: tuple[str, ...], chosen: list[
         if slotted:
             during = workers * 2 * tile + caches + workers * s * n * k + in_flight * result + driver_pass
             return max(during, cache + driver), tile, result
+        if not whole_columns:
+            # worker processes: each holds an n x k array through a pass (its slot of range
+            # products, or the scattered operand Q of an adjoint pass), and collecting the
+            # slots brings one per worker to the driver beside its own (issue 11: measured
+            # 611 MiB for a 531 MiB budget with cluster: local before these were counted)
+            held = workers * s * n * k
+            collect = s * ((workers + 1) * n * k + m * k + n)
+            return workers * 2 * tile + caches + in_flight * result + held + max(driver, collect), tile, result
         return workers * 2 * tile + caches + in_flight * result + driver, tile, result
 
     matrix_bytes = s * n * m

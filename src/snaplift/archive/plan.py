@@ -23,8 +23,11 @@ widths (:func:`method_widths`):
 - driver accumulators: ``sketch`` ``s (2 n k + n r + F m l + n) + c`` (with its own copy of
   the row test matrix for finishing); ``randomized``
   ``s (3 n k + m k + n)``; ``tsqr`` ``s (n r + L m^2 + n)`` (``F`` fields, ``L`` leaves);
-- ``peak = workers x (2 tile + cache) + in_flight x result + driver``
-  which must fit ``memory_bytes - baseline_bytes`` (below). When the workers are threads of one process
+- ``peak = workers x (2 tile + cache) + in_flight x result + driver``, and for worker
+  processes (not ``tsqr``) ``workers s n k`` more (each worker's slot of range products or
+  copy of the operand ``Q``) with the driver at least ``s ((workers + 1) n k + m k + n)``
+  (the slots collected beside its own accumulator); this
+  must fit ``memory_bytes - baseline_bytes`` (below). When the workers are threads of one process
   (``shared_memory``) the cache is held once and range products are summed in place
   in one ``s n k`` slot per worker, so a result in flight is only ``s (n_t + b (k + l))``
   and the driver holds ``s (2 n k + 2 m k + F m l + 2 n)`` while tiles are read; its

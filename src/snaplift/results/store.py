@@ -39,8 +39,8 @@ __all__ = ["StoreWriter", "open_result", "read_group", "grid_dimensions", "COMPL
 COMPLETE_KEY = "snaplift_complete"
 FORMAT_KEY = "snaplift_store_version"
 #: layout of the result store; change it with the layout (2: CF units and long names,
-#: coordinates, spectrum/peak_<field>; 3: sketch/exact_rows, the fields kept whole).
-#: Stage fingerprints include it, so a store written
+#: coordinates, spectrum/peak_<field>; 3: sketch/exact_rows, the fields kept whole, and
+#: checksums/ of the blocks compress read). Stage fingerprints include it, so a store written
 #: in another layout is recomputed, never reused (snaplift.workflow.fingerprint).
 STORE_VERSION = 3
 

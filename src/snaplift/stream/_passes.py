@@ -25,6 +25,8 @@ import numpy as np
 from snaplift._process_memory import trim_heap
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.linalg.sketch import exact_layout
+from snaplift.errors import ArchiveChangedError
+from snaplift.stream._digest import digested, verify
 from snaplift.stream._tasks import Preparing, TileRef, TileSource, product_task, resident_loaded, sketch_task
 from snaplift.stream.loop import Checkpointer, Job, StreamState, TileRunner, run_tiles
 
@@ -148,6 +150,7 @@ class Pass:
             return (key, index, after), index
 
         def fold_and_note(tile: Any, result: Any) -> None:
+            verify(state, self.source, tile, result, self.checkpoint)  # before the values count
             fold(tile, result)
             pending.add(_tile_id(tile))
 
@@ -174,9 +177,10 @@ class Pass:
                 again = StreamState(state.key)
 
                 def add_only(tile: Any, result: Any) -> None:
+                    verify(state, self.source, tile, result, self.checkpoint)
                     _add_rows(state, slot, self.source, tile, result)
 
-                run_tiles(self.runner, task, (self.shared_source, *shared, None),
+                run_tiles(self.runner, digested, (task, self.shared_source, *shared, None),
                           [by_id[i] for i in sorted(missing)], add_only, again, in_flight=self.in_flight)
                 state.bytes_read += again.bytes_read
             pending.clear()
@@ -186,14 +190,16 @@ class Pass:
         wire = int(getattr(self.runner, "bytes_between_processes", 0) or 0)
         try:
             with running() if running is not None else contextlib.nullcontext():
-                run_tiles(self.runner, task, (self.shared_source, *shared), jobs, fold_and_note, state,
+                run_tiles(self.runner, digested, (task, self.shared_source, *shared), jobs, fold_and_note, state,
                           in_flight=self.in_flight, checkpoint=self.checkpoint, progress=self.progress,
                           flush=flush, per_job=per_job)
             flush()
             self.bytes_between_processes.append(int(getattr(self.runner, "bytes_between_processes", 0) or 0) - wire)
-        except BaseException:
+        except BaseException as error:
             if count:  # wake and fail tiles waiting for a predecessor that will never come
                 self.runner.discard(key, abort=True)
+            if isinstance(error, ArchiveChangedError) and self.checkpoint is not None:
+                self.checkpoint.remove()  # read from another archive: the next run starts afresh
             raise
 
     def end_pass(self, state: StreamState) -> None:
@@ -317,8 +323,13 @@ def product_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: 
 
         if not norms:
             kind = "adjoint_only"
-    run.run(product_task, (preparing_handle, shared_operand, kind), jobs, fold, state,
-            slot=name if kind == "range" else None)
+    try:
+        run.run(product_task, (preparing_handle, shared_operand, kind), jobs, fold, state,
+                slot=name if kind == "range" else None)
+    finally:
+        unshare = getattr(run.runner, "unshare", None)
+        if unshare is not None:  # worker processes: the operand leaves them with its pass
+            unshare(shared_operand)
     if kind == "range" and name not in state.arrays:
         state.arrays[name] = np.zeros((n, width), dtype=dtype)
 

@@ -16,9 +16,10 @@ import numpy as np
 
 from snaplift.archive._base import Reader
 from snaplift.archive.matrix import FieldRows, check_finite, read_fields_block, read_snapshot_block
-from snaplift.errors import ArchiveError
+from snaplift.errors import ArchiveChangedError
 from snaplift.linalg._kernels import adjoint_product, column_squares, field_column_squares, qr_factor, range_product
 from snaplift.stream import _prefetch
+from snaplift.stream._digest import note_read
 from snaplift.stream._slots import add_range_product
 from snaplift.linalg._testmatrix import apply_corange, cached_row_map, gaussian_map, set_cache_limit
 
@@ -95,6 +96,7 @@ def _read(source: TileSource, tile: TileRef, *, check: bool) -> tuple[np.ndarray
         return _read_fields(source, tile, snapshots, check=check)
     field = source.fields[tile.field]
     raw = _read_plain(source, tile, field, snapshots)
+    note_read(raw)  # checksum of the block as read (snaplift.stream._digest)
     if raw.shape[0] == 0 or raw.shape[1] == 0:
         return raw, np.zeros(raw.shape[0])
     squares = column_squares(raw) if check else None
@@ -136,6 +138,7 @@ def _read_fields(source: TileSource, tile: TileRef, snapshots: np.ndarray, *, ch
         raw = stored.copy()  # the kept matrix stays as read: tasks prepare their copy in place
     else:
         raw = read_fields_block(source.reader, members, snapshots)
+        note_read(raw)  # checksum of the block as read (snaplift.stream._digest)
         if source.resident:
             _resident[(source.resident, tile.id)] = raw.copy()
     if not check:
@@ -314,7 +317,7 @@ def _tsqr_fields(source: TileSource, tile: TileRef, raw: np.ndarray, out: dict[s
 def _same_leaf(source: TileSource, field: FieldRows, rows: tuple[int, int], r: np.ndarray, first: np.ndarray) -> None:
     scale = max(float(np.abs(first).max(initial=0.0)), 1e-300)
     if r.shape != first.shape or float(np.abs(r - first).max(initial=0.0)) > 1e-8 * scale:
-        raise ArchiveError(
+        raise ArchiveChangedError(
             f"{source.reader.path}: field '{field.name}' rows {rows[0]}..{rows[1] - 1} read "
             "differently in the second TSQR pass than in the first; the archive changed during compress"
         )

@@ -34,6 +34,7 @@ from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.archive.plan import TilePlan, row_map_bytes
 from snaplift.compress_methods import check_rank, get_method
 from snaplift.errors import ArchiveError
+from snaplift.stream._digest import digest_table
 from snaplift.stream._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
 from snaplift.linalg._blas import blas_threads
 from snaplift.linalg._kernels import normalize_signs
@@ -256,7 +257,10 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
             "bytes_read_all_runs": int(state.bytes_read), "bytes_read_before_resume": bytes_before,
             # worker processes: bytes sent and received per pass run, next to the range accumulator's size
             "bytes_between_processes": list(run.bytes_between_processes),
-            "range_accumulator_bytes": int(matrix.shape[0]) * int(range_width) * int(np.dtype(matrix.dtype).itemsize)}
+            "range_accumulator_bytes": int(matrix.shape[0]) * int(range_width) * int(np.dtype(matrix.dtype).itemsize),
+            # checksums of the blocks read, and how many reads were verified against them (stream/_digest.py)
+            "block_digests": digest_table(state, source, jobs),
+            "blocks_verified": int(state.info.get("blocks_verified", 0))}
     if checkpoint is not None:
         checkpoint.remove()
     # bytes read by this call; a resumed run does not count what the killed one read
@@ -280,7 +284,8 @@ def _check_pass(run: Pass, matrix: SnapshotMatrix, jobs: list[Any], state: Strea
 
 
 def sketch_append(old: SketchState | dict[str, np.ndarray], new_matrix: SnapshotMatrix, plan: TilePlan | None, *,
-                  runner: TileRunner | None = None, in_flight: int | None = None) -> SketchState:
+                  runner: TileRunner | None = None, in_flight: int | None = None,
+                  digests: dict[str, Any] | None = None) -> SketchState:
     """Update a stored sketch with snapshots appended to the archive, reading only those.
 
     ``new_matrix`` is the snapshot matrix of the *new* snapshots only (same fields, mask,
@@ -297,7 +302,7 @@ def sketch_append(old: SketchState | dict[str, np.ndarray], new_matrix: Snapshot
     old_state = old if isinstance(old, SketchState) else SketchState.from_arrays(old)
     if runner is None:
         with ThreadRunner(1) as own:
-            return sketch_append(old_state, new_matrix, plan, runner=own, in_flight=in_flight)
+            return sketch_append(old_state, new_matrix, plan, runner=own, in_flight=in_flight, digests=digests)
     k, l = old_state.widths
     options = CompressOptions(method="sketch", rank=1, seed=old_state.seed, sketch_widths=(k, l),
                               corange_map=old_state.corange_map)

@@ -196,6 +196,13 @@ class ClientRunner:
         self._shared.append(future)
         return future
 
+    def unshare(self, shared: Any) -> None:
+        """Drop a value :meth:`share` gave every worker once its pass is over (an operand of
+        ``n x k`` kept until the runner closes would stay in every worker beside the next one)."""
+        if any(shared is kept for kept in self._shared):
+            self._shared = [kept for kept in self._shared if kept is not shared]
+            shared.release()
+
     def submit(self, function: Callable[..., Any], *args: Any, where: int | None = None) -> Any:
         self.bytes_sent += sum(_sizeof(arg) for arg in args if not _is_future(arg))
         if where is not None and self.use_slots:

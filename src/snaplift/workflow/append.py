@@ -74,9 +74,10 @@ def append_compress(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, 
 
     new_matrix = matrix_of(index[old_count:])
     full_matrix = matrix_of(index)
+    digests: dict[str, Any] = {}  # checksums of the new blocks as read (snaplift.workflow.checksums)
     with runner_for(scheduler) as runner:
         merged = sketch_append(sketch_state, new_matrix, plan, runner=runner,
-                               in_flight=None if plan is None else plan.in_flight)
+                               in_flight=None if plan is None else plan.in_flight, digests=digests)
     row_blocks = kept_row_blocks(full_matrix, plan.point_blocks if plan is not None else None)
     preparation, lowrank = finish_sketch(merged, full_matrix, workflow.compress.rank,
                                          center=workflow.prepare.center, scale=workflow.prepare.scale,
@@ -89,4 +90,5 @@ def append_compress(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, 
     return Compressed(full_matrix, preparation, lowrank, 1, int(bytes_read),
                       projection_kind=getattr(lowrank, "projection_kind", "estimate"), method="sketch",
                       sketch_state=merged.to_arrays(),
-                      info={"appended_snapshots": new_count, "previous_snapshots": int(old_count)})
+                      info={"appended_snapshots": new_count, "previous_snapshots": int(old_count),
+                            "block_digests": digests or None, "blocks_verified": 0})

@@ -33,7 +33,10 @@ with one snapshot per chunk: 8 snapshots), bounded by 1 % of the archive or 64 M
 are read only when the archive grew (and on a first run, to record them). The price of
 not reading every old chunk on the append path is that an edit of an old snapshot
 *outside* the sample, in a file that also grew, goes unnoticed; the warning says so.
-``snaplift run --overwrite`` always recomputes every stage from the archive.
+``snaplift run --overwrite`` always recomputes every stage from the archive. Blocks a run
+reads again are verified by checksum against the previous result's (the checksums of
+every block compress read, kept with its result: :mod:`snaplift.workflow.checksums`), so
+a compress that reads the archive again names any old block that differs.
 
 Stage fingerprints chain: ``scan`` hashes the archive section and the archive's content
 identity; ``compress`` hashes scan's fingerprint with ``prepare``, ``lift`` and the

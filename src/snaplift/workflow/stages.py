@@ -41,6 +41,7 @@ from snaplift.results.fit_output import modes_bytes, write_fit, write_fit_detail
 from snaplift.results.stages import Compressed, write_compressed, write_scan
 from snaplift.results.staging import StagedStore, check_free_space
 from snaplift.units import format_bytes
+from snaplift.workflow.checksums import record_checksums
 from snaplift.workflow.compute import compress_stage, fit_stage, load_compressed_result, try_append
 from snaplift.workflow.fingerprint import (
     Classification,
@@ -247,7 +248,8 @@ class ScanStage(_Base[ScanResult]):
         if layout is not None and layout != result_store.STORE_VERSION:
             context.warnings.append(
                 f"{store.path} holds result store layout {layout}; this snaplift writes layout "
-                f"{result_store.STORE_VERSION} (units, coordinates, peak amplitudes): every stage is recomputed")
+                f"{result_store.STORE_VERSION} (units, coordinates, peak amplitudes, block checksums): every stage is "
+                "recomputed")
         info = scanned.reader.describe()
         fields = workflow.archive.fields
         chunk = max(1, max(info.fields[f].snapshot_chunk for f in fields))
@@ -310,9 +312,12 @@ class CompressStage(_Base[Compressed]):
     def write(self, context: StageContext, result: Compressed) -> tuple[StageRecord, Compressed]:
         workflow, store = context.workflow, context.store
         write_compressed(store.writer, result, context.scheduler.compute, scale_setting=workflow.prepare.scale)
-        details: dict[str, Any] = {"settings": context.fingerprints["compress_settings"],
-                                   "method": workflow.compress.method}
-        if "appended_snapshots" in result.info:
+        appended = "appended_snapshots" in result.info
+        # the checksums of the blocks read, compared with the previous result's (workflow/checksums.py)
+        checks, verified = record_checksums(store, workflow, result.info, context.warnings, keep_previous=appended)
+        details: dict[str, Any] = {**checks, "settings": context.fingerprints["compress_settings"],
+                                   "method": workflow.compress.method, "checksum_note": verified}
+        if appended:
             details["appended_snapshots"] = result.info["appended_snapshots"]
             return StageRecord(self.name, self.fingerprint(context), "appended", 1, int(result.bytes_read),
                                details), result
@@ -326,10 +331,12 @@ class CompressStage(_Base[Compressed]):
                                       str(record.details.get("method", context.workflow.compress.method)))
 
     def end(self, context: StageContext, record: StageRecord) -> str:
+        note = str(record.details.get("checksum_note") or "")
+        note = f"; {note}" if note and record.status in ("appended", "computed") else ""
         if record.status == "appended":
             return (f"appended {record.details['appended_snapshots']} snapshots; "
-                    f"{record.bytes_read / 1e6:.1f} MB read")
-        return f"{record.status}; {record.passes} passes, {record.bytes_read / 1e6:.1f} MB read in this run"
+                    f"{record.bytes_read / 1e6:.1f} MB read{note}")
+        return f"{record.status}; {record.passes} passes, {record.bytes_read / 1e6:.1f} MB read in this run{note}"
 
 
 #: coefficients (rank x snapshots, complex) up to this size are fitted with one BLAS thread
