@@ -121,8 +121,9 @@ def grid_coordinate_names(field: Candidate, by_name: dict[str, Candidate]) -> tu
     either on that dimension or the only axis of its length.
     """
     grid = field.shape[1:]
-    named = field.dims is not None and len(field.dims) == len(field.shape)
-    dims = tuple(field.dims[1:]) if named else (None,) * len(grid)
+    dims: tuple[str | None, ...] = (None,) * len(grid)
+    if field.dims is not None and len(field.dims) == len(field.shape):
+        dims = tuple(field.dims[1:])
 
     def usable(name: str | None, length: int) -> bool:
         c = by_name.get(name) if name else None

@@ -348,13 +348,13 @@ def build_snapshot_matrix(
         offset += n_rows
         complex_valued |= np.issubdtype(field_info.dtype, np.complexfloating)
     if lift is not None:
-        counts: dict[str, int] = {}
+        siblings: dict[str, int] = {}
         windows: dict[str, int] = {}
-        for entry in rows:
-            counts[entry.archive_field] = counts.get(entry.archive_field, 0) + 1
-            windows[entry.archive_field] = max(windows.get(entry.archive_field, 0), entry.snapshot_shift)
-        rows = [replace(entry, siblings=counts[entry.archive_field], window=windows[entry.archive_field])
-                for entry in rows]
+        for row in rows:
+            siblings[row.archive_field] = siblings.get(row.archive_field, 0) + 1
+            windows[row.archive_field] = max(windows.get(row.archive_field, 0), row.snapshot_shift)
+        rows = [replace(row, siblings=siblings[row.archive_field], window=windows[row.archive_field])
+                for row in rows]
     if snapshot_blocks is not None:
         blocks = column_blocks(snapshots, tuple(snapshot_blocks))
     else:

@@ -52,7 +52,7 @@ _TRANSPOSE_SNAPSHOTS = 8
 
 _lock = threading.Lock()
 _pid = os.getpid()
-_cache: OrderedDict[tuple, np.ndarray] = OrderedDict()
+_cache: OrderedDict[tuple, np.ndarray | SparseSignMap] = OrderedDict()
 _limit = 1 << 30
 _stats = {"generated": 0, "hits": 0}
 #: threads that generate one large test matrix (blocks of rows at a time), and the

@@ -252,7 +252,7 @@ def psi_products(q: np.ndarray, field_bounds: Sequence[tuple[int, int]], l: int,
         for g0, g1 in blocks:
             psi_t = generate(g0, g1, l, seed=seed, complex_valued=complex_valued, kind=kind)
             psi_q += apply_left(psi_t, q[g0:g1])
-            if part is not None:
+            if part is not None and mean is not None:
                 part += apply_left(psi_t, mean[g0:g1])
         if part is not None:
             psi_mean[index] = part

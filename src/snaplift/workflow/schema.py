@@ -291,8 +291,8 @@ class Workflow(_Section):
             raise ValueError(f"fit.coefficients ({self.fit.coefficients}) cannot exceed compress.rank "
                              f"({self.compress.rank})")
         # for edmd, rank truncates the lifted data, which may have more terms than coefficients
-        counted = isinstance(self.fit.rank, int)
-        if not FIT_METHODS[self.fit.method].dictionary and counted and self.fit.rank > self.compress.rank:
+        if (not FIT_METHODS[self.fit.method].dictionary and isinstance(self.fit.rank, int)
+                and self.fit.rank > self.compress.rank):
             raise ValueError(
                 f"fit.rank ({self.fit.rank}) cannot exceed compress.rank ({self.compress.rank})"
             )
