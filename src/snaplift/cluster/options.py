@@ -1,0 +1,91 @@
+"""The plain options a scheduler is opened with, the scheduler handed to library code, and
+the progress protocol it drives.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+_BLAS_VARIABLES = ("OMP_NUM_THREADS", "OPENBLAS_NUM_THREADS", "MKL_NUM_THREADS", "BLIS_NUM_THREADS")
+
+#: a task that raised is tried again this many times (e.g. a transient file-system error);
+#: tasks lost with a dead worker are re-run by the scheduler on its own
+#: (``distributed.scheduler.allowed-failures``, 3 by default)
+TASK_RETRIES = 2
+
+
+@dataclass(frozen=True)
+class ClusterOptions:
+    """Where the work runs, as plain options: the workflow converts its validated ``cluster``
+    section (``workflow.schema.ClusterSection``, which says what each key means) to this."""
+
+    kind: str = "threads"
+    profile: str | None = None
+    workers: int | None = None
+    threads_per_worker: int | None = None
+    memory_per_worker: str | None = None
+    address: str | None = None
+    queue: str | None = None
+    account: str | None = None
+    walltime: str | None = None
+    cores: int | None = None
+    memory: str | None = None
+    processes: int | None = None
+    job_extra_directives: Sequence[str] = ()
+    job_script_prologue: Sequence[str] = ()
+    worker_lifetime: str | None = None
+    lifetime_stagger: str | None = None
+    log_directory: str | None = None
+    python: str | None = None
+    interface: str | None = None
+    local_directory: str | None = None
+    launcher: str = "auto"
+    start_timeout: float = 600.0
+
+
+def single_threaded_blas_environment() -> dict[str, str]:
+    return {name: "1" for name in _BLAS_VARIABLES}
+
+
+class TaskProgress(Protocol):
+    """What the scheduler reports to: units of work announced and finished."""
+
+    def add_work(self, units: int) -> None: ...
+
+    def advance(self, units: int = 1) -> None: ...
+
+
+class NullProgress:
+    def add_work(self, units: int) -> None:
+        pass
+
+    def advance(self, units: int = 1) -> None:
+        pass
+
+
+@dataclass(frozen=True)
+class Scheduler:
+    """The runner's handle on the scheduler: how to compute and persist, and its size.
+
+    ``client`` is the distributed client (None for ``threads``); ``progress`` receives
+    units of work as tasks finish; ``description`` goes into the store's provenance;
+    ``task_retries``: how often a failed task is run again on another worker.
+    """
+
+    kind: str
+    workers: int
+    compute: Callable[..., Sequence[Any]]
+    persist: Callable[..., Sequence[Any]]
+    memory_per_worker: int
+    dashboard: str | None = None
+    client: Any = None
+    progress: TaskProgress = field(default_factory=NullProgress)
+    description: dict[str, Any] = field(default_factory=dict)
+    task_retries: int = TASK_RETRIES
+
+
+#: what a tile task loads in a worker process, imported before the worker is measured so
+#: that its baseline holds what the pass would load anyway (plus the reader's library: see
+#: :func:`resident_memory`); the driver also loads the finishing linear algebra
