@@ -5,8 +5,8 @@ schema (the allowed values of ``compress.method``), the command line (help text 
 ``--method`` checks), the tile planner (:mod:`snaplift.archive.plan`: widths, passes and
 the driver's memory terms) and the streaming front door (:mod:`snaplift.stream.compress`:
 widths, the tile shape and the rank check). The passes themselves (what a method does to
-the tiles) are bound to the names by :data:`snaplift.stream.methods.PASSES`, one layer
-up, since they read tiles; ``tests/stream/test_method_conformance.py`` runs every method
+the tiles) are bound to the names by :data:`snaplift.stream.compress.METHOD_PASSES`, one layer
+up, since they read tiles; ``tests/linalg/test_method_conformance.py`` runs every method
 of :data:`METHODS` against numpy's SVD.
 
 The module is pure arithmetic on plain numbers (no archive, no array), so every layer can
@@ -62,7 +62,7 @@ def check_rank(rank: int, n: int, m: int) -> None:
 
 
 class CompressMethod(Protocol):
-    """What a compress method is, reads and holds (its passes: :mod:`snaplift.stream.methods`).
+    """What a compress method is, reads and holds (what it runs: :data:`snaplift.stream.compress.METHOD_PASSES`).
 
     ``widths`` are the range and co-range sketch widths ``(k, l)`` accumulated next to each
     tile (clipped to the matrix when ``n`` and ``m`` are given); ``passes`` the reads of the

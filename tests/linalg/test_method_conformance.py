@@ -21,7 +21,7 @@ from snaplift.archive import plan_tiles
 from snaplift.archive.matrix import build_snapshot_matrix
 from snaplift.compress_methods import METHOD_NAMES, METHODS, check_rank, get_method
 from snaplift.errors import ArchiveError, ConfigError
-from snaplift.stream.compress import CompressOptions, compress
+from snaplift.stream.compress import METHOD_PASSES, CompressOptions, compress
 from snaplift.stream.loop import ThreadRunner
 
 N, M, RANK, TRUE_RANK = 600, 48, 5, 8
@@ -141,6 +141,11 @@ def test_resumed_run_equals_clean_run(archive, known, tmp_path: Path, method: st
     np.testing.assert_allclose(resumed.lowrank.coefficient, clean.lowrank.coefficient, rtol=0,
                                atol=1e-12 * np.abs(clean.lowrank.coefficient).max())
     assert resumed.bytes_read < clean.bytes_read  # what the killed run checkpointed is not read again
+
+
+def test_every_registered_method_runs_and_every_runner_is_registered() -> None:
+    # the registry (what a method is) and the stream's table (what it runs) name the same methods
+    assert set(METHOD_PASSES) == set(METHOD_NAMES)
 
 
 @pytest.mark.parametrize("method", METHOD_NAMES)

@@ -24,8 +24,8 @@ import contextlib
 import hashlib
 import json
 import os
+from collections.abc import Callable
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -34,18 +34,18 @@ from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.archive.plan import TilePlan, row_map_bytes
 from snaplift.compress_methods import check_rank, get_method
 from snaplift.errors import ArchiveError
-from snaplift.stream._digest import digest_table
-from snaplift.stream._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
 from snaplift.linalg._blas import blas_threads
 from snaplift.linalg._kernels import normalize_signs
-from snaplift.stream._tasks import TileSource, release_resident
 from snaplift.linalg._testmatrix import ROW_MAPS
-from snaplift.stream._method_passes import randomized_compress, tsqr_compress
 from snaplift.linalg.randomized import LowRank
 from snaplift.linalg.sketch import SketchState, merge_sketches
-from snaplift.stream.sketch import finish_sketch
-from snaplift.stream.loop import Checkpointer, InlineRunner, StreamState, ThreadRunner, TileRunner
 from snaplift.prepare import Preparation
+from snaplift.stream._digest import digest_table
+from snaplift.stream._method_passes import randomized_compress, tsqr_compress
+from snaplift.stream._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
+from snaplift.stream._tasks import TileSource, release_resident
+from snaplift.stream.loop import Checkpointer, InlineRunner, StreamState, ThreadRunner, TileRunner
+from snaplift.stream.sketch import finish_sketch
 
 __all__ = ["CompressOptions", "Compression", "compress", "sketch_append", "default_in_flight"]
 
@@ -223,32 +223,9 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
               source: TileSource, checkpoint: Checkpointer | None, rank: int, range_width: int, corange_width: int,
               row_blocks: list, resumed: bool, bytes_before: int) -> Compression:
     runner = run.runner
-    sketch_arrays: dict[str, np.ndarray] = {}
-    if options.method == "sketch":
-        if state.pass_number == 0:
-            # a field no wider than the co-range sketch is kept whole (exact_layout)
-            sketch_read(run, matrix, jobs, state, range_width, corange_width, corange_width)
-            run.end_pass(state)
-        # the single read is over: its tile buffers go before the finishing temporaries come
-        # (the row test matrices stay: finishing applies them once more)
-        _release_caches(runner, test_matrices=False)
-        sketch = SketchState.from_stream(state.arrays, [f.n_rows for f in matrix.fields], matrix.snapshot_index,
-                                         options.seed, source.complex_valued, options.corange_map,
-                                         corange_width=corange_width, exact_limit=corange_width)
-        global_blocks = row_blocks
-        preparation, lowrank = finish_sketch(sketch, matrix, rank, center=options.center, scale=options.scale,
-                                             row_blocks=global_blocks)
-        sketch_arrays = sketch.to_arrays()
-        if options.check_pass:
-            lowrank = _check_pass(run, matrix, jobs, state, preparation, lowrank)
-    elif options.method == "randomized":
-        preparation, lowrank = randomized_compress(
-            run, matrix, jobs, state, rank=rank, oversample=options.oversample,
-            power_iterations=options.power_iterations, seed=options.seed, center=options.center,
-            scale=options.scale)
-    else:
-        preparation, lowrank = tsqr_compress(run, matrix, jobs, state, rank=rank, center=options.center,
-                                             scale=options.scale)
+    passes_of = METHOD_PASSES[options.method]
+    preparation, lowrank, sketch_arrays = passes_of(_MethodRun(run, matrix, jobs, state, source, options, rank,
+                                                               range_width, corange_width, row_blocks))
     passes = int(state.pass_number)
     info = {"method": options.method, "range_width": range_width, "corange_width": corange_width,
             "corange_map": options.corange_map if options.method == "sketch" else None,
@@ -266,6 +243,70 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
     # bytes read by this call; a resumed run does not count what the killed one read
     return Compression(preparation, lowrank, passes, int(state.bytes_read) - bytes_before,
                        lowrank.projection_kind, options.method, sketch_arrays, info)
+
+
+@dataclass(frozen=True)
+class _MethodRun:
+    """What the passes of a compress method get: the pass runner, the matrix and its tile
+    jobs, the stream state (resumed or fresh), the options and the widths."""
+
+    run: Pass
+    matrix: SnapshotMatrix
+    jobs: list[Any]
+    state: StreamState
+    source: TileSource
+    options: CompressOptions
+    rank: int
+    range_width: int
+    corange_width: int
+    row_blocks: list
+
+
+_Passes = tuple[Preparation, LowRank, dict[str, np.ndarray]]
+
+
+def _sketch_passes(m: _MethodRun) -> _Passes:
+    """Single-pass sketch (Tropp et al. 2017/2019), finished in the driver; ``check_pass``
+    adds one read for exact coefficients."""
+    run, matrix, state, options = m.run, m.matrix, m.state, m.options
+    if state.pass_number == 0:
+        # a field no wider than the co-range sketch is kept whole (exact_layout)
+        sketch_read(run, matrix, m.jobs, state, m.range_width, m.corange_width, m.corange_width)
+        run.end_pass(state)
+    # the single read is over: its tile buffers go before the finishing temporaries come
+    # (the row test matrices stay: finishing applies them once more)
+    _release_caches(run.runner, test_matrices=False)
+    sketch = SketchState.from_stream(state.arrays, [f.n_rows for f in matrix.fields], matrix.snapshot_index,
+                                     options.seed, m.source.complex_valued, options.corange_map,
+                                     corange_width=m.corange_width, exact_limit=m.corange_width)
+    preparation, lowrank = finish_sketch(sketch, matrix, m.rank, center=options.center, scale=options.scale,
+                                         row_blocks=m.row_blocks)
+    if options.check_pass:
+        lowrank = _check_pass(run, matrix, m.jobs, state, preparation, lowrank)
+    return preparation, lowrank, sketch.to_arrays()
+
+
+def _randomized_passes(m: _MethodRun) -> _Passes:
+    """Randomized SVD with power iterations (Halko et al. 2011)."""
+    options = m.options
+    preparation, lowrank = randomized_compress(
+        m.run, m.matrix, m.jobs, m.state, rank=m.rank, oversample=options.oversample,
+        power_iterations=options.power_iterations, seed=options.seed, center=options.center, scale=options.scale)
+    return preparation, lowrank, {}
+
+
+def _tsqr_passes(m: _MethodRun) -> _Passes:
+    """TSQR of row blocks (Demmel et al. 2012), then the SVD of R."""
+    preparation, lowrank = tsqr_compress(m.run, m.matrix, m.jobs, m.state, rank=m.rank, center=m.options.center,
+                                         scale=m.options.scale)
+    return preparation, lowrank, {}
+
+
+#: the passes of each method of :data:`snaplift.compress_methods.METHODS` (the registry keeps
+#: what a method is, widths, passes, memory terms; this table what it runs; a test checks that
+#: the two name the same methods)
+METHOD_PASSES: dict[str, Callable[[_MethodRun], _Passes]] = {
+    "sketch": _sketch_passes, "randomized": _randomized_passes, "tsqr": _tsqr_passes}
 
 
 def _check_pass(run: Pass, matrix: SnapshotMatrix, jobs: list[Any], state: StreamState,
