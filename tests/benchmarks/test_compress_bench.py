@@ -11,8 +11,8 @@ import os
 
 import pytest
 
-from snaplift.workflow.bench import BenchSettings, render_benchmark, run_benchmark
 from snaplift.units import parse_bytes
+from snaplift.workflow.bench import BenchSettings, render_benchmark, run_benchmark
 
 pytestmark = pytest.mark.benchmark
 

@@ -20,12 +20,11 @@ from __future__ import annotations
 import numpy as np
 import pytest
 
-from snaplift.stream.compress import CompressOptions, compress
 from snaplift.linalg.sketch import SketchState, sketch_error_bound
-from snaplift.stream.sketch import sketch_reconstruction
-from snaplift.stream.loop import StreamState, ThreadRunner
 from snaplift.stream._passes import Pass, build_jobs, kept_row_blocks, sketch_read
-from snaplift.stream.compress import _source
+from snaplift.stream.compress import CompressOptions, _source, compress
+from snaplift.stream.loop import StreamState, ThreadRunner
+from snaplift.stream.sketch import sketch_reconstruction
 
 SEEDS = range(20)
 

@@ -13,9 +13,9 @@ import numpy as np
 import pytest
 
 from snaplift.linalg import tsqr as tsqr_module
+from snaplift.linalg.tsqr import orthonormal_basis, tsqr
 from snaplift.stream.compress import CompressOptions, compress
 from snaplift.stream.loop import ThreadRunner
-from snaplift.linalg.tsqr import orthonormal_basis, tsqr
 
 
 def _conditioned(n: int, m: int, condition: float, *, complex_valued: bool = False, seed: int = 0) -> np.ndarray:

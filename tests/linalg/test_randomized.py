@@ -8,7 +8,7 @@ import numpy as np
 import pytest
 from scipy.linalg import subspace_angles
 
-from snaplift.linalg.randomized import randomized_svd, gaussian_map
+from snaplift.linalg.randomized import gaussian_map, randomized_svd
 
 
 def _matrix(n: int, m: int, spectrum: np.ndarray, *, complex_valued: bool, seed: int = 0) -> np.ndarray:

@@ -6,8 +6,8 @@ import numpy as np
 import pytest
 
 from snaplift.errors import ArchiveError
-from snaplift.stream.compress import CompressOptions, compress, sketch_append
 from snaplift.linalg.sketch import SketchState
+from snaplift.stream.compress import CompressOptions, compress, sketch_append
 from snaplift.stream.sketch import finish_sketch
 
 
@@ -31,8 +31,8 @@ def test_append_equals_batch(archive, snapshot_matrix, known, center):
     np.testing.assert_allclose(np.asarray(lowrank.basis), np.asarray(batch.lowrank.basis), rtol=0, atol=1e-12)
     np.testing.assert_allclose(preparation.field_scale["u"], batch.preparation.field_scale["u"], rtol=1e-12)
     for name, value in merged.to_arrays().items():
-        np.testing.assert_allclose(value, batch.sketch_state[name], rtol=1e-12, atol=1e-12 * np.abs(value).max(initial=0.0),
-                                   err_msg=name)
+        np.testing.assert_allclose(value, batch.sketch_state[name], rtol=1e-12,
+                                   atol=1e-12 * np.abs(value).max(initial=0.0), err_msg=name)
 
 
 def test_append_refuses_mismatched_state(archive, snapshot_matrix, known):

@@ -12,11 +12,11 @@ import numpy as np
 import pytest
 from scipy import stats
 
-from snaplift.errors import ArchiveError
 from snaplift.archive.plan import row_map_bytes
+from snaplift.errors import ArchiveError
 from snaplift.linalg._testmatrix import SparseSignMap, apply_corange, apply_left, row_map
-from snaplift.stream.compress import CompressOptions, compress, sketch_append
 from snaplift.linalg.sketch import SketchState, merge_sketches
+from snaplift.stream.compress import CompressOptions, compress, sketch_append
 
 
 def test_rows_hold_zeta_distinct_signed_entries():

@@ -119,7 +119,8 @@ def test_checkpoint_round_trip_is_atomic(tmp_path: Path):
     state.save(path)
     state.save(path)  # replacing an existing checkpoint
     again = StreamState.load(path)
-    assert (again.key, again.pass_number, again.done, again.bytes_read, again.info) == ("k", 2, {1, 4}, 99, {"note": "x"})
+    restored = (again.key, again.pass_number, again.done, again.bytes_read, again.info)
+    assert restored == ("k", 2, {1, 4}, 99, {"note": "x"})
     np.testing.assert_array_equal(again.arrays["range"], state.arrays["range"])
     assert [p.name for p in path.parent.iterdir()] == ["c.npz"]  # no temporary file left behind
 

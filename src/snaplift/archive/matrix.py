@@ -224,7 +224,8 @@ def check_finite(values: np.ndarray, reader: Reader, field: FieldRows, snapshots
     )
 
 
-def column_blocks(snapshot_index: np.ndarray, snapshot_blocks: tuple[tuple[int, int], ...]) -> tuple[tuple[int, int], ...]:
+def column_blocks(snapshot_index: np.ndarray,
+                  snapshot_blocks: tuple[tuple[int, int], ...]) -> tuple[tuple[int, int], ...]:
     """Column ranges of the selected snapshots that fall in each planned archive block.
 
     The planner cuts the archive's snapshot axis at stored-chunk boundaries; a selection

@@ -29,7 +29,8 @@ def _libraries() -> list[tuple[Callable[[int], object], Callable[[], int]]]:
     found: list[tuple[Callable[[int], object], Callable[[], int]]] = []
     try:
         with open("/proc/self/maps") as maps:
-            paths = sorted({line.split()[-1] for line in maps if "openblas" in line and line.split()[-1].startswith("/")})
+            paths = sorted({line.split()[-1] for line in maps
+                            if "openblas" in line and line.split()[-1].startswith("/")})
     except OSError:
         return found
     for path in paths:

@@ -46,7 +46,7 @@ import numpy as np
 
 from snaplift.errors import ArchiveError
 from snaplift.linalg._kernels import normalize_signs, solve_small
-from snaplift.linalg._testmatrix import apply_corange, apply_left, cached_row_map, gaussian_map, row_map
+from snaplift.linalg._testmatrix import apply_corange, apply_left, cached_row_map, row_map
 
 __all__ = ["SketchState", "default_sketch_widths", "merge_sketches", "sketch_error_bound", "exact_layout",
            "psi_products", "exact_corange", "reconstruction_core", "truncated_factors"]

@@ -198,7 +198,8 @@ def load_compressed(root: Any, reader: Reader, fields: list[str], *, passes: int
             raise ResultStoreError(f"{where}: basis/{name} is missing; the compress stage did not finish there")
     # a small basis (many lifted fields of few points, e.g. delay-embedded probes) is read
     # at once; a lazy graph over one array per lifted field costs more than the reading
-    eager = sum(int(np.prod(members[name].shape)) * members[name].dtype.itemsize for name in fields) <= EAGER_BASIS_BYTES
+    stored_bytes = sum(int(np.prod(members[name].shape)) * members[name].dtype.itemsize for name in fields)
+    eager = stored_bytes <= EAGER_BASIS_BYTES
     for name, field_scale in zip(fields, scale):
         grid = tuple(int(s) for s in members[name].shape[1:])
         keep = None

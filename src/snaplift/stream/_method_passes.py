@@ -20,12 +20,12 @@ import numpy as np
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.compress_methods import check_rank
 from snaplift.linalg._kernels import normalize_signs, reduce_r_factors
-from snaplift.stream._passes import _zeros, preparing_of, product_read, sketch_read
-from snaplift.stream._tasks import tsqr_leaf_task, tsqr_task
 from snaplift.linalg._testmatrix import gaussian_map
 from snaplift.linalg.randomized import LowRank
 from snaplift.linalg.tsqr import FLAT_TREE_BYTES, _binary_tree_factors, _flat_tree, orthonormal_basis
 from snaplift.prepare import corrected_sketch, finish_preparation
+from snaplift.stream._passes import _zeros, preparing_of, product_read, sketch_read
+from snaplift.stream._tasks import tsqr_leaf_task, tsqr_task
 
 __all__ = ["randomized_compress", "tsqr_compress"]
 

@@ -229,7 +229,8 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
     passes = int(state.pass_number)
     info = {"method": options.method, "range_width": range_width, "corange_width": corange_width,
             "corange_map": options.corange_map if options.method == "sketch" else None,
-            "tiles": len(jobs), "in_memory": bool(source.resident), "in_flight": run.in_flight, "runner": getattr(runner, "kind", "?"),
+            "tiles": len(jobs), "in_memory": bool(source.resident), "in_flight": run.in_flight,
+            "runner": getattr(runner, "kind", "?"),
             "resumed": resumed, "checkpoints_saved": checkpoint.saves if checkpoint is not None else 0,
             "bytes_read_all_runs": int(state.bytes_read), "bytes_read_before_resume": bytes_before,
             # worker processes: bytes sent and received per pass run, next to the range accumulator's size

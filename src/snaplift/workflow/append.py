@@ -60,8 +60,8 @@ def append_compress(workflow: Workflow, scanned: Scanned, scheduler: Scheduler, 
     """
     from snaplift.stream._passes import kept_row_blocks
     from snaplift.stream.compress import sketch_append
-    from snaplift.stream.sketch import finish_sketch
     from snaplift.stream.loop import runner_for
+    from snaplift.stream.sketch import finish_sketch
 
     section = workflow.archive
     plan = scanned.plan

@@ -305,7 +305,8 @@ def verification_note(classification: Classification) -> str:
 
 def workflow_identity(workflow: Workflow, archive_path: str) -> str:
     """What makes a store 'of this workflow': the archive it reduces and the fields."""
-    paths = [os.path.abspath(p) for p in archive_path] if isinstance(archive_path, list) else os.path.abspath(archive_path)
+    paths = ([os.path.abspath(p) for p in archive_path] if isinstance(archive_path, list)
+             else os.path.abspath(archive_path))
     return section_fingerprint("identity", paths, list(workflow.archive.fields))
 
 
