@@ -286,18 +286,17 @@ def _planes(values: np.ndarray, axes: list[Axis]) -> list[tuple[str, np.ndarray,
 # figure once more just to measure its labels, most of the report's time on large grids)
 _LEFT = 0.95     # tick labels and a y label wrapped to three lines
 _BAR_GAP, _BAR, _BAR_LABELS = 0.1, 0.14, 0.8   # colour bar: gap, bar, its tick labels and units
+_BAR_MIN = 1.0   # shortest colour bar (where the panel has room for it)
 _LINE_RIGHT = 0.25
 _BAND_TITLE, _PANEL_TITLE, _BOTTOM = 0.34, 0.26, 0.46
 _FIGURE_TITLE = 0.4
 
 
-def _panel_boxes(width: float, height: float, shape: tuple[int, int], image: bool
-                 ) -> list[list[tuple[float, float, float]]]:
-    """(left, bottom-of-cell offset, width) of the axes in each cell of a band, in inches."""
-    columns = shape[1]
+def _panel_boxes(width: float, columns: int, image: bool) -> list[tuple[float, float]]:
+    """(left, width) of the axes box in each column of a band, in inches."""
     cell = width / columns
     used = _LEFT + (_BAR_GAP + _BAR + _BAR_LABELS if image else _LINE_RIGHT)
-    return [[(c * cell + _LEFT, 0.0, max(cell - used, 0.5)) for c in range(columns)] for _ in range(shape[0])]
+    return [(c * cell + _LEFT, max(cell - used, 0.5)) for c in range(columns)]
 
 
 def _axes_at(figure: Figure, left: float, bottom: float, width: float, height: float):
@@ -343,7 +342,7 @@ def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
     figure = _figure(width, height * len(modes) + 0.5, layout=None)
     shape = (2, 3) if three else (1, 2)
     image = len(axes) >= 2
-    boxes = _panel_boxes(width, height, shape, image)
+    boxes = _panel_boxes(width, shape[1], image)
     row_height = (height - _BAND_TITLE) / shape[0]
     data = view.modes[field]
     figure_height = figure.get_figheight()
@@ -360,13 +359,16 @@ def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
         for part, (part_name, transform, diverging) in enumerate(views):
             for p, (where, plane, plane_axes) in enumerate(_planes(transform(values), axes)):
                 row, column = (part, p) if three else (0, part)
-                left, _, box_width = boxes[row][column]
+                left, box_width = boxes[column]
                 cell_top = band_top - _BAND_TITLE - row * row_height
                 box_height = max(row_height - _PANEL_TITLE - _BOTTOM, 0.4)
                 w, h = _aspect_box(box_width, box_height, plane_axes) if image else (box_width, box_height)
                 bottom = cell_top - _PANEL_TITLE - h
                 ax = _axes_at(figure, left, bottom, w, h)
-                bar = _axes_at(figure, left + w + _BAR_GAP, bottom, _BAR, h) if image else None
+                # a thin image keeps a colour bar long enough for its tick labels, centred beside it
+                bar_height = max(h, min(box_height, _BAR_MIN))
+                bar = _axes_at(figure, left + w + _BAR_GAP, bottom + 0.5 * (h - bar_height), _BAR,
+                               bar_height) if image else None
                 _panel(ax, figure, plane, plane_axes, diverging=diverging, units=units,
                        title=part_name + (f", {where}" if where else ""), bar_ax=bar)
     figure.text(0.01, 1 - 0.1 / figure_height, f"leading modes of {view.field_name(field)} (amplitude x mode, "
