@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import textwrap
 from collections.abc import Callable
+from typing import Any
 
 from dataclasses import dataclass
 
@@ -50,6 +51,19 @@ def _figure(width: float, height: float, layout: str | None = "constrained") -> 
     return figure
 
 
+def _fixed(width: float, height: float, rows: int, columns: int, *, left: float = 0.85, right: float = 0.25,
+           top: float = 0.4, bottom: float = 0.55, wgap: float = 0.95, hgap: float = 0.4, **kwargs) -> tuple[Figure, Any]:
+    """A figure of ``rows`` x ``columns`` axes at fixed margins in inches (labels, titles): no
+    layout engine, which would draw the figure once more only to measure its labels."""
+    figure = _figure(width, height, layout=None)
+    axes = figure.subplots(rows, columns, squeeze=False, **kwargs)
+    panel_width = (width - left - right - (columns - 1) * wgap) / columns
+    panel_height = (height - top - bottom - (rows - 1) * hgap) / rows
+    figure.subplots_adjust(left=left / width, right=1 - right / width, bottom=bottom / height, top=1 - top / height,
+                           wspace=wgap / panel_width, hspace=hgap / panel_height)
+    return figure, axes
+
+
 def _style(ax) -> None:
     ax.grid(True, color=PALETTE["grid"], linewidth=0.8)
     ax.set_axisbelow(True)
@@ -68,8 +82,8 @@ def energy_figure(view: StoreView) -> Figure | None:
         total = max(total, float(np.sum(np.asarray(view.diagnostics["column_norm"].values) ** 2)))
     cumulative = np.cumsum(energy) / total if total > 0 else np.zeros_like(energy)
     index = np.arange(1, s.size + 1)
-    figure = _figure(10, 3.6)
-    left, right = figure.subplots(1, 2)
+    figure, grid = _fixed(10, 3.6, 1, 2)
+    left, right = grid[0]
     left.plot(index, cumulative, color=PALETTE["model"], marker="o", markersize=3.5, linewidth=1.6)
     left.set_ylim(min(0.0, float(cumulative.min())), 1.02)
     left.axhline(1.0, color=PALETTE["archive"], linewidth=0.8, linestyle=":")
@@ -127,8 +141,8 @@ def eigenvalue_figure(view: StoreView) -> Figure:
     """Eigenvalues in the complex plane with the unit circle; size by amplitude."""
     eigenvalue = np.asarray(view.spectrum["eigenvalue"].values, dtype=np.complex128)
     trusted = view.trusted
-    figure = _figure(10, 5.0)
-    plane, zoom = figure.subplots(1, 2)
+    figure, grid = _fixed(10, 5.0, 1, 2, bottom=0.7)
+    plane, zoom = grid[0]
     angle = np.linspace(0, 2 * np.pi, 400)
     for ax in (plane, zoom):
         ax.plot(np.cos(angle), np.sin(angle), color=PALETTE["archive"], linewidth=1.0, linestyle="--")
@@ -161,8 +175,8 @@ def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
     # conjugate partners of real data mirror the positive frequencies; complex data have none
     shown = np.ones(frequency.size, dtype=bool) if view.complex_data else frequency >= 0
     which = "all frequencies (complex data)" if view.complex_data else "frequency >= 0; conjugates mirror"
-    figure = _figure(10, 2.4 * (1 + len(fields)) + 0.4)
-    axes = np.atleast_1d(figure.subplots(1 + len(fields), 1, sharex=True))
+    figure, grid = _fixed(10, 2.4 * (1 + len(fields)) + 0.4, 1 + len(fields), 1, hgap=0.25, sharex=True)
+    axes = grid[:, 0]
     top = axes[0]
     _scatter_trust(top, frequency[shown], growth[shown], trusted[shown],
                    _marker_sizes(np.asarray(view.spectrum["amplitude"].values)[shown]), count=False)
@@ -408,8 +422,8 @@ def point_figure(view: StoreView, fields: list[str], modes: list[int]) -> Figure
 def error_figure(view: StoreView) -> Figure:
     """Projection error (what the basis misses) and reconstruction error (the model) over time."""
     time = view.time
-    figure = _figure(10, 3.4)
-    ax = figure.subplots()
+    figure, grid = _fixed(10, 3.4, 1, 1)
+    ax = grid[0, 0]
     for name, colour, style, text in (("projection_error", PALETTE["projection"], "--", "projection on the basis"),
                                       ("reconstruction_error", PALETTE["model"], "-", "model reconstruction")):
         if name in view.diagnostics:
@@ -442,8 +456,8 @@ class Probe:
 
 def probe_figure(probes: list[Probe], time_unit: str, note: str) -> Figure:
     """Forecast against the archive at the probe points (points of largest variance)."""
-    figure = _figure(10, 2.3 * len(probes) + 0.6)
-    axes = np.atleast_1d(figure.subplots(len(probes), 1, sharex=True, squeeze=False)[:, 0])
+    figure, grid = _fixed(10, 2.3 * len(probes) + 0.6, len(probes), 1, top=0.75, hgap=0.4, sharex=True)
+    axes = grid[:, 0]
     for ax, probe in zip(axes, probes):
         if probe.archive is not None and probe.archive_time is not None:
             ax.plot(probe.archive_time, probe.archive, linestyle="none", marker="o", markersize=3.2,
