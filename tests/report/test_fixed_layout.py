@@ -80,3 +80,25 @@ def test_colour_bar_spans_the_image_it_belongs_to(wave_stores: dict[str, Path]) 
         assert b.x0 > a.x1 and b.x0 - a.x1 < 0.05
         assert b.height >= a.height - 1e-9
         assert np.isclose(b.y0 + b.height / 2, a.y0 + a.height / 2)
+
+
+def test_large_grid_thinned_to_the_pixels_drawn() -> None:
+    # a 3000 x 3000 grid in a 4-inch panel at 100 dpi: at most twice the panel's pixels per axis are
+    # handed to the image (nearest-neighbour drawing shows no more; common practice), over the grid's
+    # full extent (cell edges half a step beyond the first and last coordinates)
+    from snaplift.report.figures import _figure, _panel
+    from snaplift.results.reading import Axis
+
+    x = Axis("x", np.linspace(0.0, 3.0, 3000), "m", "x", False)
+    y = Axis("y", np.linspace(0.0, 3.0, 3000), "m", "y", False)
+    values = np.add.outer(np.arange(3000.0), np.arange(3000.0))
+    figure = _figure(6, 6, layout=None)
+    ax = figure.add_axes((0.1, 0.1, 4 / 6, 4 / 6))
+    bar = figure.add_axes((0.85, 0.1, 0.03, 4 / 6))
+    _panel(ax, figure, values, [y, x], diverging=False, units="K", title="magnitude", bar_ax=bar)
+    shown = ax.images[0].get_array()
+    assert 400 <= shown.shape[0] <= 800 and 400 <= shown.shape[1] <= 800
+    step = 3.0 / 2999
+    np.testing.assert_allclose(ax.images[0].get_extent(), (-step / 2, 3 + step / 2, -step / 2, 3 + step / 2))
+    # the colour scale still spans the whole field (0 .. 5998), not only the values kept
+    assert ax.images[0].norm.vmax == 5998.0

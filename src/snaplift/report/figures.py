@@ -272,7 +272,7 @@ def _fit_pixels(values: np.ndarray, ax, figure: Figure) -> np.ndarray:
     width, height = ax.get_position().width, ax.get_position().height
     dpi = figure.dpi
     pixels = (height * figure.get_figheight() * dpi, width * figure.get_figwidth() * dpi)
-    steps = [max(1, int(size // max(2.0 * p, 1.0))) for size, p in zip(values.shape, pixels)]
+    steps = [int(np.ceil(size / max(2.0 * p, 1.0))) if size > 2.0 * p else 1 for size, p in zip(values.shape, pixels)]
     if steps == [1, 1]:
         return values
     return values[::steps[0], ::steps[1]]

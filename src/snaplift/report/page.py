@@ -82,8 +82,9 @@ def _probe_points(view: StoreView, field: str, columns: slice) -> int | None:
         covariance = (c @ c.conj().T) / max(1, c.shape[1])
         finite = np.all(np.isfinite(flat), axis=0)
         safe = np.where(finite, flat, 0.0)
-        # diag(B^H C B) point by point, as one product (an einsum over three operands loops in C)
-        variance = np.real(np.sum(safe.conj() * (covariance.T @ safe), axis=0))
+        # diag(B^H C B) point by point: one matrix product, then a two-operand einsum (the
+        # three-operand einsum looped in C, a column sum over a copy strode through memory)
+        variance = np.real(np.einsum("rp,rp->p", safe.conj(), covariance.T @ safe))
     else:
         values = np.abs(np.asarray(view.modes[field].values))
         flat = values.reshape(values.shape[0], -1)
