@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import textwrap
 from collections.abc import Callable
+from typing import Any
 
 from dataclasses import dataclass
 
@@ -42,12 +43,25 @@ DIVERGING = _DIVERGING.with_extremes(bad=(1.0, 1.0, 1.0, 0.0))
 SEQUENTIAL = _SEQUENTIAL.with_extremes(bad=(1.0, 1.0, 1.0, 0.0))
 
 
-def _figure(width: float, height: float) -> Figure:
+def _figure(width: float, height: float, layout: str | None = "constrained") -> Figure:
     # the Agg canvas of each figure itself: no pyplot, no global backend switched under the caller
-    figure = Figure(figsize=(width, height), dpi=100, layout="constrained")
+    figure = Figure(figsize=(width, height), dpi=100, layout=layout)
     FigureCanvasAgg(figure)
     figure.patch.set_facecolor("white")
     return figure
+
+
+def _fixed(width: float, height: float, rows: int, columns: int, *, left: float = 0.85, right: float = 0.25,
+           top: float = 0.4, bottom: float = 0.55, wgap: float = 0.95, hgap: float = 0.4, **kwargs) -> tuple[Figure, Any]:
+    """A figure of ``rows`` x ``columns`` axes at fixed margins in inches (labels, titles): no
+    layout engine, which would draw the figure once more only to measure its labels."""
+    figure = _figure(width, height, layout=None)
+    axes = figure.subplots(rows, columns, squeeze=False, **kwargs)
+    panel_width = (width - left - right - (columns - 1) * wgap) / columns
+    panel_height = (height - top - bottom - (rows - 1) * hgap) / rows
+    figure.subplots_adjust(left=left / width, right=1 - right / width, bottom=bottom / height, top=1 - top / height,
+                           wspace=wgap / panel_width, hspace=hgap / panel_height)
+    return figure, axes
 
 
 def _style(ax) -> None:
@@ -68,8 +82,8 @@ def energy_figure(view: StoreView) -> Figure | None:
         total = max(total, float(np.sum(np.asarray(view.diagnostics["column_norm"].values) ** 2)))
     cumulative = np.cumsum(energy) / total if total > 0 else np.zeros_like(energy)
     index = np.arange(1, s.size + 1)
-    figure = _figure(10, 3.6)
-    left, right = figure.subplots(1, 2)
+    figure, grid = _fixed(10, 3.6, 1, 2)
+    left, right = grid[0]
     left.plot(index, cumulative, color=PALETTE["model"], marker="o", markersize=3.5, linewidth=1.6)
     left.set_ylim(min(0.0, float(cumulative.min())), 1.02)
     left.axhline(1.0, color=PALETTE["archive"], linewidth=0.8, linestyle=":")
@@ -127,8 +141,8 @@ def eigenvalue_figure(view: StoreView) -> Figure:
     """Eigenvalues in the complex plane with the unit circle; size by amplitude."""
     eigenvalue = np.asarray(view.spectrum["eigenvalue"].values, dtype=np.complex128)
     trusted = view.trusted
-    figure = _figure(10, 5.0)
-    plane, zoom = figure.subplots(1, 2)
+    figure, grid = _fixed(10, 5.0, 1, 2, bottom=0.7)
+    plane, zoom = grid[0]
     angle = np.linspace(0, 2 * np.pi, 400)
     for ax in (plane, zoom):
         ax.plot(np.cos(angle), np.sin(angle), color=PALETTE["archive"], linewidth=1.0, linestyle="--")
@@ -161,8 +175,8 @@ def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
     # conjugate partners of real data mirror the positive frequencies; complex data have none
     shown = np.ones(frequency.size, dtype=bool) if view.complex_data else frequency >= 0
     which = "all frequencies (complex data)" if view.complex_data else "frequency >= 0; conjugates mirror"
-    figure = _figure(10, 2.4 * (1 + len(fields)) + 0.4)
-    axes = np.atleast_1d(figure.subplots(1 + len(fields), 1, sharex=True))
+    figure, grid = _fixed(10, 2.4 * (1 + len(fields)) + 0.4, 1 + len(fields), 1, hgap=0.25, sharex=True)
+    axes = grid[:, 0]
     top = axes[0]
     _scatter_trust(top, frequency[shown], growth[shown], trusted[shown],
                    _marker_sizes(np.asarray(view.spectrum["amplitude"].values)[shown]), count=False)
@@ -196,7 +210,9 @@ def spectrum_figure(view: StoreView, fields: list[str]) -> Figure:
 
 
 def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, diverging: bool, units: str,
-           title: str) -> None:
+           title: str, bar_ax=None) -> None:
+    """One panel: a line (1-D) or an image with its colour bar (2-D; in ``bar_ax`` when given,
+    else beside ``ax``)."""
     finite = values[np.isfinite(values)]
     if diverging:
         reach = float(np.max(np.abs(finite))) if finite.size else 1.0
@@ -224,24 +240,42 @@ def _panel(ax, figure: Figure, values: np.ndarray, axes: list[Axis], *, divergin
         return
     rows, columns = axes  # values is (rows, columns)
     if _uniform(rows.values) and _uniform(columns.values):  # an image: much faster to draw
-        half_x = 0.5 * (columns.values[1] - columns.values[0]) if columns.values.size > 1 else 0.5
-        half_y = 0.5 * (rows.values[1] - rows.values[0]) if rows.values.size > 1 else 0.5
-        extent = (columns.values[0] - half_x, columns.values[-1] + half_x,
-                  rows.values[0] - half_y, rows.values[-1] + half_y)
-        mesh = ax.imshow(np.ma.masked_invalid(values), origin="lower", extent=extent, interpolation="nearest",
-                         aspect="auto", **limits)
+        extent = _extent(rows.values, columns.values)
+        mesh = ax.imshow(np.ma.masked_invalid(_fit_pixels(values, ax, figure)), origin="lower", extent=extent,
+                         interpolation="nearest", aspect="auto", **limits)
     else:
         mesh = ax.pcolormesh(columns.values, rows.values, np.ma.masked_invalid(values), shading="nearest",
                              rasterized=True, **limits)
-    same_units = rows.units == columns.units
-    ax.set_aspect("equal" if same_units else "auto")
+    if bar_ax is None:  # placed by hand (mode figures) already at the grid's aspect
+        ax.set_aspect("equal" if rows.units == columns.units else "auto")
     ax.set_xlabel(columns.title, fontsize=8)
     # a long name wraps: on a flat image it would run into the panels above and below
     ax.set_ylabel(textwrap.fill(rows.title, 18), fontsize=8)
     ax.tick_params(labelsize=7)
-    bar = figure.colorbar(mesh, ax=ax, shrink=0.9, pad=0.01)
+    bar = figure.colorbar(mesh, cax=bar_ax) if bar_ax is not None else figure.colorbar(mesh, ax=ax, shrink=0.9,
+                                                                                       pad=0.01)
     bar.ax.tick_params(labelsize=7)
     bar.set_label(units or "field units", fontsize=8)
+
+
+def _extent(rows: np.ndarray, columns: np.ndarray) -> tuple[float, float, float, float]:
+    """Image extent of a uniform grid: each value fills its own cell (half a step beyond the ends)."""
+    half_x = 0.5 * (columns[1] - columns[0]) if columns.size > 1 else 0.5
+    half_y = 0.5 * (rows[1] - rows[0]) if rows.size > 1 else 0.5
+    return (float(columns[0] - half_x), float(columns[-1] + half_x), float(rows[0] - half_y), float(rows[-1] + half_y))
+
+
+def _fit_pixels(values: np.ndarray, ax, figure: Figure) -> np.ndarray:
+    """Every ``n``-th value of an image with more values than the panel has pixels (twice over
+    per axis, so a cell is never narrower than half a pixel): what nearest-neighbour drawing
+    shows anyway, without resampling the whole grid at every draw."""
+    width, height = ax.get_position().width, ax.get_position().height
+    dpi = figure.dpi
+    pixels = (height * figure.get_figheight() * dpi, width * figure.get_figwidth() * dpi)
+    steps = [int(np.ceil(size / max(2.0 * p, 1.0))) if size > 2.0 * p else 1 for size, p in zip(values.shape, pixels)]
+    if steps == [1, 1]:
+        return values
+    return values[::steps[0], ::steps[1]]
 
 
 def _uniform(values: np.ndarray) -> bool:
@@ -260,6 +294,40 @@ def _planes(values: np.ndarray, axes: list[Axis]) -> list[tuple[str, np.ndarray,
     return [(f"{a.dim} = {a.values[i]:.4g}", values[i], [b, c]),
             (f"{b.dim} = {b.values[j]:.4g}", values[:, j, :], [a, c]),
             (f"{c.dim} = {c.values[k]:.4g}", values[:, :, k], [a, b])]
+
+
+# the mode figure's layout, in inches (placed by hand: a layout engine would draw every
+# figure once more just to measure its labels, most of the report's time on large grids)
+_LEFT = 0.95     # tick labels and a y label wrapped to three lines
+_BAR_GAP, _BAR, _BAR_LABELS = 0.1, 0.14, 0.8   # colour bar: gap, bar, its tick labels and units
+_BAR_MIN = 1.0   # shortest colour bar (where the panel has room for it)
+_LINE_RIGHT = 0.25
+_BAND_TITLE, _PANEL_TITLE, _BOTTOM = 0.34, 0.26, 0.46
+_FIGURE_TITLE = 0.4
+
+
+def _panel_boxes(width: float, columns: int, image: bool) -> list[tuple[float, float]]:
+    """(left, width) of the axes box in each column of a band, in inches."""
+    cell = width / columns
+    used = _LEFT + (_BAR_GAP + _BAR + _BAR_LABELS if image else _LINE_RIGHT)
+    return [(c * cell + _LEFT, max(cell - used, 0.5)) for c in range(columns)]
+
+
+def _axes_at(figure: Figure, left: float, bottom: float, width: float, height: float):
+    w, h = figure.get_figwidth(), figure.get_figheight()
+    return figure.add_axes((left / w, bottom / h, width / w, height / h))
+
+
+def _aspect_box(width: float, height: float, plane_axes: list[Axis]) -> tuple[float, float]:
+    """The largest box of the grid's own aspect (equal scales when both axes share units) in
+    ``width`` x ``height`` inches; the whole box when the units differ."""
+    if len(plane_axes) != 2 or plane_axes[0].units != plane_axes[1].units:
+        return width, height
+    x0, x1, y0, y1 = _extent(plane_axes[0].values, plane_axes[1].values)
+    ratio = abs(y1 - y0) / max(abs(x1 - x0), 1e-300)
+    if ratio * width <= height:
+        return width, ratio * width
+    return height / max(ratio, 1e-300), height
 
 
 def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
@@ -284,25 +352,41 @@ def mode_figure(view: StoreView, field: str, modes: list[int]) -> Figure:
         height = float(np.clip(5.0 * ratio + 1.0, 1.8, 4.2))
     elif three:
         height = 4.2
-    figure = _figure(15 if three else 12, height * len(modes) + 0.5)
-    bands = np.atleast_1d(np.asarray(figure.subfigures(len(modes), 1), dtype=object))
+    width = 15.0 if three else 12.0
+    figure = _figure(width, height * len(modes) + 0.5, layout=None)
+    shape = (2, 3) if three else (1, 2)
+    image = len(axes) >= 2
+    boxes = _panel_boxes(width, shape[1], image)
+    row_height = (height - _BAND_TITLE) / shape[0]
     data = view.modes[field]
-    for band, k in zip(bands, modes):
+    figure_height = figure.get_figheight()
+    for n, k in enumerate(modes):
         values = np.asarray(data.isel(mode=k).values) * amplitude[k]
         state = "trusted" if trusted[k] else "untrusted"
-        band.suptitle(f"mode {k}  |  frequency {frequency[k]:.4g} {view.frequency_unit}  |  growth "
-                      f"{growth[k]:.3g} {view.growth_unit}  |  {state}", x=0.01, ha="left", fontsize=10,
-                      color=PALETTE[state])
-        grid = band.subplots(2, 3, squeeze=False) if three else band.subplots(1, 2, squeeze=False)
+        band_top = figure_height - _FIGURE_TITLE - n * height
+        figure.text(0.01, (band_top - 0.06) / figure_height,
+                    f"mode {k}  |  frequency {frequency[k]:.4g} {view.frequency_unit}  |  growth "
+                    f"{growth[k]:.3g} {view.growth_unit}  |  {state}", ha="left", va="top", fontsize=10,
+                    color=PALETTE[state])
         views: tuple[tuple[str, Callable[[np.ndarray], np.ndarray], bool], ...] = (
             ("real part", np.real, True), ("magnitude", np.abs, False))
         for part, (part_name, transform, diverging) in enumerate(views):
             for p, (where, plane, plane_axes) in enumerate(_planes(transform(values), axes)):
-                ax = grid[part, p] if three else grid[0, part]
-                _panel(ax, band, plane, plane_axes, diverging=diverging, units=units,
-                       title=part_name + (f", {where}" if where else ""))
-    figure.suptitle(f"leading modes of {view.field_name(field)} (amplitude x mode, {units or 'field units'}; "
-                    "blank: masked points)", x=0.01, ha="left", fontsize=11)
+                row, column = (part, p) if three else (0, part)
+                left, box_width = boxes[column]
+                cell_top = band_top - _BAND_TITLE - row * row_height
+                box_height = max(row_height - _PANEL_TITLE - _BOTTOM, 0.4)
+                w, h = _aspect_box(box_width, box_height, plane_axes) if image else (box_width, box_height)
+                bottom = cell_top - _PANEL_TITLE - h
+                ax = _axes_at(figure, left, bottom, w, h)
+                # a thin image keeps a colour bar long enough for its tick labels, centred beside it
+                bar_height = max(h, min(box_height, _BAR_MIN))
+                bar = _axes_at(figure, left + w + _BAR_GAP, bottom + 0.5 * (h - bar_height), _BAR,
+                               bar_height) if image else None
+                _panel(ax, figure, plane, plane_axes, diverging=diverging, units=units,
+                       title=part_name + (f", {where}" if where else ""), bar_ax=bar)
+    figure.text(0.01, 1 - 0.1 / figure_height, f"leading modes of {view.field_name(field)} (amplitude x mode, "
+                f"{units or 'field units'}; blank: masked points)", ha="left", va="top", fontsize=11)
     return figure
 
 
@@ -338,8 +422,8 @@ def point_figure(view: StoreView, fields: list[str], modes: list[int]) -> Figure
 def error_figure(view: StoreView) -> Figure:
     """Projection error (what the basis misses) and reconstruction error (the model) over time."""
     time = view.time
-    figure = _figure(10, 3.4)
-    ax = figure.subplots()
+    figure, grid = _fixed(10, 3.4, 1, 1)
+    ax = grid[0, 0]
     for name, colour, style, text in (("projection_error", PALETTE["projection"], "--", "projection on the basis"),
                                       ("reconstruction_error", PALETTE["model"], "-", "model reconstruction")):
         if name in view.diagnostics:
@@ -372,8 +456,8 @@ class Probe:
 
 def probe_figure(probes: list[Probe], time_unit: str, note: str) -> Figure:
     """Forecast against the archive at the probe points (points of largest variance)."""
-    figure = _figure(10, 2.3 * len(probes) + 0.6)
-    axes = np.atleast_1d(figure.subplots(len(probes), 1, sharex=True, squeeze=False)[:, 0])
+    figure, grid = _fixed(10, 2.3 * len(probes) + 0.6, len(probes), 1, top=0.75, hgap=0.4, sharex=True)
+    axes = grid[:, 0]
     for ax, probe in zip(axes, probes):
         if probe.archive is not None and probe.archive_time is not None:
             ax.plot(probe.archive_time, probe.archive, linestyle="none", marker="o", markersize=3.2,

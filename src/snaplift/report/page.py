@@ -67,7 +67,8 @@ def report_folder(store: str | Path) -> Path:
 
 def _png(figure: Any) -> bytes:
     buffer = io.BytesIO()
-    figure.savefig(buffer, format="png", dpi=100)
+    # zlib level 1: a quarter of level 6's time on large noisy images, files ~5 % larger
+    figure.savefig(buffer, format="png", dpi=100, pil_kwargs={"compress_level": 1})
     return buffer.getvalue()
 
 
@@ -81,7 +82,9 @@ def _probe_points(view: StoreView, field: str, columns: slice) -> int | None:
         covariance = (c @ c.conj().T) / max(1, c.shape[1])
         finite = np.all(np.isfinite(flat), axis=0)
         safe = np.where(finite, flat, 0.0)
-        variance = np.real(np.einsum("rp,rs,sp->p", safe, covariance, safe.conj()))
+        # diag(B^H C B) point by point: one matrix product, then a two-operand einsum (the
+        # three-operand einsum looped in C, a column sum over a copy strode through memory)
+        variance = np.real(np.einsum("rp,rp->p", safe.conj(), covariance.T @ safe))
     else:
         values = np.abs(np.asarray(view.modes[field].values))
         flat = values.reshape(values.shape[0], -1)
