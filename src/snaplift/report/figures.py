@@ -11,9 +11,8 @@ from __future__ import annotations
 
 import textwrap
 from collections.abc import Callable
-from typing import Any
-
 from dataclasses import dataclass
+from typing import Any, Literal
 
 import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
@@ -43,7 +42,7 @@ DIVERGING = _DIVERGING.with_extremes(bad=(1.0, 1.0, 1.0, 0.0))
 SEQUENTIAL = _SEQUENTIAL.with_extremes(bad=(1.0, 1.0, 1.0, 0.0))
 
 
-def _figure(width: float, height: float, layout: str | None = "constrained") -> Figure:
+def _figure(width: float, height: float, layout: Literal["constrained"] | None = "constrained") -> Figure:
     # the Agg canvas of each figure itself: no pyplot, no global backend switched under the caller
     figure = Figure(figsize=(width, height), dpi=100, layout=layout)
     FigureCanvasAgg(figure)
@@ -52,7 +51,8 @@ def _figure(width: float, height: float, layout: str | None = "constrained") -> 
 
 
 def _fixed(width: float, height: float, rows: int, columns: int, *, left: float = 0.85, right: float = 0.25,
-           top: float = 0.4, bottom: float = 0.55, wgap: float = 0.95, hgap: float = 0.4, **kwargs) -> tuple[Figure, Any]:
+           top: float = 0.4, bottom: float = 0.55, wgap: float = 0.95, hgap: float = 0.4,
+           **kwargs) -> tuple[Figure, Any]:
     """A figure of ``rows`` x ``columns`` axes at fixed margins in inches (labels, titles): no
     layout engine, which would draw the figure once more only to measure its labels."""
     figure = _figure(width, height, layout=None)
@@ -127,7 +127,8 @@ def _scatter_trust(ax, x: np.ndarray, y: np.ndarray, trusted: np.ndarray, sizes:
         if not chosen.any():
             continue
         ax.scatter(x[chosen], y[chosen], s=sizes[chosen], marker=marker, color=PALETTE[name],
-                   edgecolors="#1a1a1a", linewidths=0.6, alpha=0.85, label=f"{name} ({int(chosen.sum())})" if count else name,
+                   edgecolors="#1a1a1a", linewidths=0.6, alpha=0.85,
+                   label=f"{name} ({int(chosen.sum())})" if count else name,
                    zorder=3)
 
 
@@ -464,7 +465,8 @@ def probe_figure(probes: list[Probe], time_unit: str, note: str) -> Figure:
                     color=PALETTE["archive"], label="archive")
         ax.plot(probe.projection_time, probe.projection, color=PALETTE["projection"], linestyle="--",
                 linewidth=1.2, label="projection on the basis")
-        ax.plot(probe.time, probe.model, color=PALETTE["model"], linewidth=1.7, label="forecast from the first snapshot")
+        ax.plot(probe.time, probe.model, color=PALETTE["model"], linewidth=1.7,
+                label="forecast from the first snapshot")
         ax.set_ylabel(label(probe.field, probe.units), fontsize=9)
         ax.set_title(f"{probe.field} at {probe.where}", loc="left", fontsize=9)
         _style(ax)

@@ -140,8 +140,9 @@ def _probes(view: StoreView, fields: list[str]) -> tuple[list[Probe], str, int]:
                 projection = projection + float(np.asarray(view.prepare[mean_key].values).ravel()[point])
         archive_time, archive = archive_values.get(field, (None, None))
         # complex archives: the real part, as for the archive values and the projection
-        probes.append(Probe(f"Re {field}" if view.complex_data else field, _where(view, field, point), time, np.real(forecast[field][:, 0]),
-                            view.time[columns], projection, archive_time, archive, view.field_units(field)))
+        probes.append(Probe(f"Re {field}" if view.complex_data else field, _where(view, field, point), time,
+                            np.real(forecast[field][:, 0]), view.time[columns], projection, archive_time, archive,
+                            view.field_units(field)))
     return probes, note, read
 
 
@@ -232,7 +233,8 @@ def _spectrum_rows(view: StoreView, limit: int = 16) -> str:
         trusted = bool(view.trusted[k])
         rows.append(
             f"<tr><td class='num'>{k}</td><td class='num'>{abs(eig):.6f}</td>"
-            f"<td class='num'>{float(s['frequency'].values[k]):.5g}</td><td class='num'>{float(s['growth'].values[k]):.4g}</td>"
+            f"<td class='num'>{float(s['frequency'].values[k]):.5g}</td>"
+            f"<td class='num'>{float(s['growth'].values[k]):.4g}</td>"
             f"<td class='num'>{float(s['amplitude'].values[k]):.4g}</td><td class='num'>{residual[k]:.2g}</td>"
             f"<td class='{'trusted' if trusted else 'untrusted'}'>"
             f"{'&#9679; trusted' if trusted else '&#9650; untrusted'}</td></tr>")
@@ -245,7 +247,8 @@ def _page(view: StoreView, figures: list[tuple[str, str, bytes]], seconds: float
     parts = [f"<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'><title>snaplift report: "
              f"{html.escape(view.path.name)}</title><style>{STYLE}</style></head><body>",
              f"<header><h1>Modes and spectrum of {html.escape(view.path.name)}</h1>"
-             f"<p>{html.escape(str(view.attrs.get('archive', '')))} &middot; {view.spectrum.sizes['mode']} modes &middot; "
+             f"<p>{html.escape(str(view.attrs.get('archive', '')))} &middot; "
+             f"{view.spectrum.sizes['mode']} modes &middot; "
              f"fields {', '.join(html.escape(f) for f in view.fields)}</p></header>",
              f"<p class='caution'><strong>Caution.</strong> {html.escape(REPORT_CAUTION)}</p>",
              "<h2>Leading modes (trusted first, then by amplitude)</h2>", _spectrum_rows(view)]
@@ -266,7 +269,8 @@ def _page(view: StoreView, figures: list[tuple[str, str, bytes]], seconds: float
     parts.append("<ul>" + "".join(f"<li class='warn'>{html.escape(w)}</li>" for w in warnings) + "</ul>"
                  if warnings else "<p>none</p>")
     parts.append(f"<h2>Workflow</h2><pre>{html.escape(str(view.attrs.get('workflow', '')))}</pre>")
-    parts.append(f"<footer>Written by snaplift {html.escape(str((view.attrs.get('versions') or {}).get('snaplift', '')))}"
+    version = html.escape(str((view.attrs.get("versions") or {}).get("snaplift", "")))
+    parts.append(f"<footer>Written by snaplift {version}"
                  f" in {seconds:.1f} s ({read} values read from the archive at the probe points). "
                  f"<span id='image-check'>images not checked (scripts off)</span></footer>")
     parts.append(CHECK_SCRIPT + "</body></html>")

@@ -34,7 +34,8 @@ def render_scan(report: ScanReport) -> Any:
     head = Table.grid(padding=(0, 2))
     head.add_column(style="bold")
     head.add_column()
-    head.add_row("archive", f"{data['path']} ({data['format']}, {data['files']} file(s), {human_bytes(data['size_bytes'])} on disk)")
+    size = human_bytes(data["size_bytes"])
+    head.add_row("archive", f"{data['path']} ({data['format']}, {data['files']} file(s), {size} on disk)")
     head.add_row("snapshots", str(data["n_snapshots"]))
     runs = data.get("run_lengths") or []
     if len(runs) > 1:

@@ -69,7 +69,7 @@ def spectrum_records(spectrum: dict[str, np.ndarray], *, sort: str = "amplitude"
         keys = np.asarray(spectrum[sort])
         order = np.argsort(np.abs(keys) if np.iscomplexobj(keys) else keys, kind="stable")
     records = []
-    for rank, i in enumerate(order):
+    for i in order:
         record: dict[str, Any] = {"mode": int(i)}
         extra = [n for n in spectrum if n.startswith("peak_")] if peaks is None else peaks
         for name in (*COLUMNS, *extra):
