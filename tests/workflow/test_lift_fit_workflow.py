@@ -222,6 +222,7 @@ def test_edmd_on_coefficients_of_a_field(tmp_path: Path) -> None:
     assert read_group(store, "modes")["u"].shape == (rate.size, 50)
 
 
+@pytest.mark.slow  # ~18 s: builds the lifted matrix up to the budget
 def test_edmd_lifted_matrix_over_budget_fails_with_numbers(tmp_path: Path) -> None:
     # degree 8 on 20 coefficients is C(28, 8) = 3108105 terms (binomial count, handbook formula):
     # 3108105 x 59 samples x 16 bytes = 2.9 GB, above a 2 GiB budget that does hold the

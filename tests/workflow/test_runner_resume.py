@@ -123,7 +123,8 @@ def test_ctrl_c_keeps_finished_stages(tmp_path: Path, monkeypatch: pytest.Monkey
     assert summary.stages["compress"]["status"] == "kept" and summary.bytes_read == 0
 
 
-@pytest.mark.parametrize("killed_after", [5, 11])  # inside pass 0; inside pass 1 (after a pass end)
+# inside pass 0; inside pass 1 (after a pass end: the long case, run with the slow checks)
+@pytest.mark.parametrize("killed_after", [5, pytest.param(11, marks=pytest.mark.slow)])
 def test_killed_mid_compress_rereads_at_most_one_interval(tmp_path: Path, killed_after: int) -> None:
     from snaplift.stream.loop import load_checkpoint
 
