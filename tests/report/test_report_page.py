@@ -93,3 +93,31 @@ def test_report_command_and_foreign_folder(wave_stores: dict[str, Path], tmp_pat
     assert (foreign / "notes.txt").read_text() == "keep"
     bad = runner.invoke(app, ["report", str(tmp_path / "none.zarr")])
     assert bad.exit_code == 2 and "does not exist" in bad.output and "Traceback" not in bad.output
+
+
+def test_probe_fields_are_fields_of_the_report(tmp_path: Path) -> None:
+    # two sensor signals (one value per snapshot): their modes are stored as (mode,) arrays and
+    # must be read as fields, drawn as one-point bars and forecast at their single point.
+    # Analytic signals: x = cos(2 pi f t), y = sin(2 pi f t + 0.4) with f = 0.7 (invented probe data)
+    import h5py
+
+    from snaplift.results.reading import open_store
+
+    t = 0.05 * np.arange(400)
+    with h5py.File(tmp_path / "probes.h5", "w") as h5:
+        h5["x"] = np.cos(2 * np.pi * 0.7 * t)
+        h5["y"] = np.sin(2 * np.pi * 0.7 * t + 0.4)
+    workflow = {"archive": {"path": "probes.h5", "fields": ["x", "y"], "step": 0.05},
+                "lift": [{"kind": "delays", "count": 4}], "compress": {"method": "tsqr", "rank": 2},
+                "output": {"path": "p.zarr", "report": False}, "cluster": "threads"}
+    (tmp_path / "p.yaml").write_text(yaml.safe_dump(workflow))
+    store = run_workflow(tmp_path / "p.yaml").path
+    view = open_store(store)
+    assert view.fields == ["x", "y"]  # the frequency stored beside them is not a field
+    summary = render_report(store, tmp_path / "page")
+    assert {"modes_points", "forecast"} <= set(summary.figures)
+    text = summary.index.read_text()
+    assert "fields x, y" in text
+    # one sinusoid: the leading pair sits at 0.7 per time unit (the archive gives no time unit)
+    frequency = np.abs(np.asarray(view.spectrum["frequency"].values[:2]))
+    np.testing.assert_allclose(frequency, 0.7, rtol=1e-6)

@@ -408,7 +408,7 @@ def point_figure(view: StoreView, fields: list[str], modes: list[int]) -> Figure
             ax.bar(positions + (i - (len(fields) - 1) / 2) * width, part, width, color=colour, hatch=hatch,
                    edgecolor="#1a1a1a", linewidth=0.5, label=label(field, view.field_units(field)))
     growth = np.asarray(view.spectrum["growth"].values, dtype=np.float64)
-    ticks = [f"mode {k}\nf {frequency[k]:.3g}, growth {growth[k]:.3g}" for k in modes]
+    ticks = [f"mode {k}\nf {frequency[k]:.3g}\ngrowth {growth[k]:.2g}" for k in modes]
     for ax, title in ((real_ax, "real part"), (magnitude_ax, "magnitude")):
         ax.set_xticks(positions, ticks, fontsize=8)
         ax.axhline(0.0, color=PALETTE["archive"], linewidth=0.8)
@@ -468,7 +468,8 @@ def probe_figure(probes: list[Probe], time_unit: str, note: str) -> Figure:
         ax.plot(probe.time, probe.model, color=PALETTE["model"], linewidth=1.7,
                 label="forecast from the first snapshot")
         ax.set_ylabel(label(probe.field, probe.units), fontsize=9)
-        ax.set_title(f"{probe.field} at {probe.where}", loc="left", fontsize=9)
+        ax.set_title(f"{probe.field} at {probe.where}" if probe.where else f"{probe.field} (one point)", loc="left",
+                     fontsize=9)
         _style(ax)
     axes[0].legend(fontsize=8, loc="lower right", bbox_to_anchor=(1.0, 1.0), frameon=False, ncols=3)  # above the data
     axes[-1].set_xlabel(label("time", time_unit))

@@ -126,9 +126,14 @@ class StoreView:
 
     @property
     def fields(self) -> list[str]:
-        # (mode, *grid) arrays; a per-mode array such as a frequency stored beside them is not a field
-        return [str(name) for name in self.modes.data_vars
-                if self.modes[name].dims[:1] == ("mode",) and self.modes[name].ndim >= 2]
+        # (mode, *grid) arrays, (mode,) for a one-point field (a probe); a per-mode array such
+        # as the frequency stored beside them (named in the fields' ``coordinates``) is not a field
+        modes = self.modes
+        named = {c for v in modes.data_vars.values() for c in str(v.attrs.get("coordinates", "")).split()}
+        named |= {c for v in modes.data_vars.values() for c in str(v.encoding.get("coordinates", "")).split()}
+        return [str(name) for name in modes.data_vars
+                if modes[name].dims[:1] == ("mode",) and str(name) not in named and name not in modes.coords
+                and (modes[name].ndim >= 2 or str(modes[name].attrs.get("long_name", "")).startswith("mode shape"))]
 
     @property
     def dt(self) -> float:
