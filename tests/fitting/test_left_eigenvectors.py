@@ -10,7 +10,7 @@ from snaplift.fitting.residuals import left_eigenvectors
 
 def _check(matrix: np.ndarray, wanted: np.ndarray) -> None:
     left = left_eigenvectors(matrix, wanted)
-    # definition: u_i^H-free form u_i^T A = lambda_i u_i^T (checked directly, numpy as the reference)
+    # the definition u_i^T A = lambda_i u_i^T, checked directly with numpy
     np.testing.assert_allclose(left.T @ matrix, wanted[:, None] * left.T, atol=1e-9)
 
 
