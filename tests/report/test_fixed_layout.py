@@ -15,7 +15,7 @@ from snaplift.report.figures import (
     mode_figure,
     spectrum_figure,
 )
-from snaplift.results.reading import open_store, leading_modes
+from snaplift.results.reading import leading_modes, open_store
 
 
 def _overlap(a, b) -> bool:
@@ -36,7 +36,8 @@ def _check(figure: Figure, name: str) -> None:
     for ax, _ in panels:
         # title, axis labels and the tick labels drawn (matplotlib's own measure of them)
         assert _inside(ax.get_tightbbox(renderer), canvas), (name, ax.get_title())
-        labels = [ax.xaxis.get_tightbbox(renderer), ax.yaxis.get_tightbbox(renderer), ax.title.get_window_extent(renderer)]
+        labels = [ax.xaxis.get_tightbbox(renderer), ax.yaxis.get_tightbbox(renderer),
+                  ax.title.get_window_extent(renderer)]
         for other, area in panels:
             if other is ax or other in bars or ax in bars:
                 continue  # a colour bar sits beside its own image by design

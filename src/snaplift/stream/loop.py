@@ -360,9 +360,10 @@ def save_checkpoint(state: StreamState, path: str | os.PathLike[str]) -> None:
     """
     path = Path(path)
     path.parent.mkdir(parents=True, exist_ok=True)
+    names = sorted(state.arrays)
     meta = {"key": state.key, "pass_number": int(state.pass_number), "bytes_read": int(state.bytes_read),
-            "info": state.info, "names": sorted(state.arrays)}
-    payload = {f"array_{i}": np.asarray(state.arrays[name]) for i, name in enumerate(meta["names"])}
+            "info": state.info, "names": names}
+    payload: dict[str, Any] = {f"array_{i}": np.asarray(state.arrays[name]) for i, name in enumerate(names)}
     payload["done"] = np.array(sorted(state.done), dtype=np.int64)
     payload["meta"] = np.frombuffer(json.dumps(meta, default=str).encode(), dtype=np.uint8)
     handle, temporary = tempfile.mkstemp(prefix=path.name + ".", suffix=".tmp", dir=path.parent)
@@ -484,7 +485,8 @@ def run_tiles(
     queue: deque[tuple[Job, Any]] = deque()
     limit = max(1, int(in_flight))
 
-    def fold_head() -> None:
+    def fold_head() -> bool:
+        """Fold the oldest result; True when the checkpoint is due."""
         job, future = queue.popleft()
         result = runner.result(future)
         fold(job.tile, result)
