@@ -176,3 +176,17 @@ def test_worker_comparison_uses_one_plan_and_the_engines_byte_count(tmp_path):
                            "points": GRID[0] * GRID[1], "rank": 4, "workers": 2,
                            "layouts": {"1 per chunk": {"workers": out}}})
     assert "same tiles" in text and "range accumulators of" in text
+
+
+def test_the_capped_bench_byte_compiles_the_package_first():
+    # an installed package carries its bytecode (common practice: pip compiles on install);
+    # the bench gives an editable tree the same, so startup is not a compile of the package
+    import importlib.util
+
+    import snaplift
+    from snaplift.workflow.bench.regime import compile_package
+
+    cached = Path(importlib.util.cache_from_source(str(Path(snaplift.__file__).parent / "cli.py")))
+    cached.unlink(missing_ok=True)
+    assert compile_package() is True
+    assert cached.is_file()
