@@ -201,7 +201,8 @@ def _gram(a: np.ndarray) -> np.ndarray | None:
         b = a[rows[0]:rows[1]]
         return np.matmul(b.conj().T, b)
 
-    workers = min(usable_cores(), len(blocks))
+    # a small matrix: milliseconds of work, less than starting the threads
+    workers = min(usable_cores(), len(blocks)) if a.size > SMALL_BLAS_VALUES else 1
     with blas_threads(1):
         if workers > 1:
             with ThreadPoolExecutor(workers) as pool:
