@@ -146,7 +146,7 @@ def test_gram_by_row_blocks_matches_numpy_on_any_core_count(monkeypatch, order, 
     from snaplift.linalg import tsqr as tsqr_module
 
     monkeypatch.setattr(tsqr_module, "GRAM_CHUNK_ROWS", 7)
-    monkeypatch.setattr(tsqr_module, "SMALL_BLAS_VALUES", 0)  # the thread pool, even this small
+    monkeypatch.setattr(tsqr_module, "SMALL_BLAS_VALUES", 0)  # the row blocks and threads, even this small
     rng = np.random.default_rng(21)
     a = rng.standard_normal((53, 6)) + (1j * rng.standard_normal((53, 6)) if complex_valued else 0)
     a = np.asarray(a, order=order)
