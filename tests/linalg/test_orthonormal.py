@@ -137,3 +137,27 @@ def test_overwriting_the_input_gives_the_same_basis(condition, order: str) -> No
     np.testing.assert_allclose(q @ (q.T @ kept), kept, rtol=0, atol=1e-12 * np.abs(kept).max())
     reference = orthonormal_basis(kept.copy(order="K"))
     np.testing.assert_allclose(np.linalg.svd(q.T @ reference, compute_uv=False)[:15], 1.0, atol=1e-9)
+
+
+@pytest.mark.parametrize("order", ["C", "F"])
+@pytest.mark.parametrize("complex_valued", [False, True])
+def test_gram_by_row_blocks_matches_numpy_on_any_core_count(monkeypatch, order, complex_valued):
+    # blocks of 7 rows (the last one short): numpy's a^H a is the reference; the sum is
+    # formed in block order, so one or two threads give the same bits, exactly Hermitian
+    from snaplift.linalg import tsqr as tsqr_module
+
+    monkeypatch.setattr(tsqr_module, "GRAM_CHUNK_ROWS", 7)
+    monkeypatch.setattr(tsqr_module, "SMALL_BLAS_VALUES", 0)  # the row blocks and threads, even this small
+    rng = np.random.default_rng(21)
+    a = rng.standard_normal((53, 6)) + (1j * rng.standard_normal((53, 6)) if complex_valued else 0)
+    a = np.asarray(a, order=order)
+    expected = a.conj().T @ a
+    monkeypatch.setattr(tsqr_module, "usable_cores", lambda: 2)
+    two = tsqr_module._gram(a)
+    monkeypatch.setattr(tsqr_module, "usable_cores", lambda: 1)
+    one = tsqr_module._gram(a)
+    np.testing.assert_allclose(two, expected, rtol=0, atol=1e-12)
+    np.testing.assert_array_equal(one, two)
+    np.testing.assert_array_equal(two, two.conj().T)
+    a[3, 2] = np.nan
+    assert tsqr_module._gram(a) is None

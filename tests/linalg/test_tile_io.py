@@ -245,3 +245,31 @@ def test_blocks_of_ended_threads_are_dropped():
     assert len(_handles._buffers) == 1
     _handles.release_tile_buffers()
     assert not _handles._buffers
+
+
+def test_sketch_row_sums_are_summed_in_the_slots_not_returned(tmp_path, monkeypatch):
+    # two tile threads with slots: no tile returns its full-height row sums (issue 16: only
+    # per-worker accumulators leave a worker); the sums collected from the slots give the
+    # temporal mean numpy gives (numpy as the reference)
+    from snaplift.stream import _tasks
+    from snaplift.stream.compress import CompressOptions, compress
+    from snaplift.stream.loop import ThreadRunner
+
+    data = np.random.default_rng(8).standard_normal((12, 6, 5))
+    path = tmp_path / "sums.h5"
+    _write(path, data, chunks=(1, 6, 5))
+    matrix = build_snapshot_matrix(open_archive(str(path)), ["u"], snapshots=np.arange(12), snapshot_block=3)
+    returned = []
+    original = _tasks.sketch_task
+
+    def watched(*args):
+        out = original(*args)
+        returned.append(out["row_sum"])
+        return out
+
+    monkeypatch.setattr("snaplift.stream._passes.sketch_task", watched)
+    with ThreadRunner(2) as runner:
+        result = compress(matrix, None, CompressOptions(method="sketch", rank=3, center=True, scale="none"),
+                          runner=runner)
+    assert len(returned) == 4 and all(value is None for value in returned)
+    np.testing.assert_allclose(result.preparation.mean, data.reshape(12, -1).mean(axis=0), rtol=0, atol=1e-14)

@@ -121,13 +121,15 @@ class Pass:
         return f"{state.key}:{state.pass_number}:{uuid.uuid4().hex[:12]}"
 
     def run(self, task: Any, shared: tuple[Any, ...], jobs: Sequence[Job], fold: Any, state: StreamState,
-            *, slot: str | None = None) -> None:
+            *, slot: str | None = None, sums: tuple[str, ...] = ()) -> None:
         """Run a pass; the task is called as ``task(source, *shared, slot_spec, tile)``.
 
         With ``slot`` (an accumulator name) and a runner that has slots, range products are
         summed in place in ordered slots (:mod:`snaplift.stream._slots`) and collected
         into ``state.arrays[slot]``; otherwise ``slot_spec`` is None and ``fold`` adds the
-        returned products.
+        returned products. ``sums``: names of ``(n,)`` vectors that the task sums in the
+        same slots (as ``(n, 1)`` accumulators, e.g. ``row_sum``), collected into
+        ``state.arrays[name]`` alike; without slots the task returns them for ``fold``.
         """
         if self.source.resident and all(resident_loaded(self.source.resident, job.id) for job in jobs):
             jobs = [replace(job, nbytes=0) for job in jobs]  # the in-memory path reads once
@@ -154,34 +156,48 @@ class Pass:
             fold(tile, result)
             pending.add(_tile_id(tile))
 
-        def flush() -> None:
-            if not count:
-                return
-            parts = self.runner.collect(key, "range")
+        def gather(name: str, target: str, vector: bool) -> set[int]:
+            """Collect the slots of ``name`` into ``state.arrays[target]``; the tiles they hold."""
+            parts = self.runner.collect(key, name)
             ids = [i for index in sorted(parts) for i in parts[index][1]]
             if len(ids) != len(set(ids)) or not set(ids) <= pending:
                 raise RuntimeError(f"compress pass {state.pass_number}: a tile was counted twice "
                                    "(a task ran twice); run again to resume from the last checkpoint")
             for index in sorted(parts):  # a fixed order of summation
                 value = parts[index][0]  # emptied out of its slot: ours to keep or add into
-                if slot in state.arrays:
-                    state.arrays[slot] += value
+                if vector:
+                    value = value[:, 0]
+                if target in state.arrays:
+                    state.arrays[target] += value
                 else:
-                    state.arrays[slot] = value
+                    state.arrays[target] = value
                 del value
             parts.clear()
-            missing = pending - set(ids)
-            if missing:
+            return set(ids)
+
+        def flush() -> None:
+            if not count:
+                return
+            missing = pending - gather("range", slot, False)
+            missing_sums = {name: pending - gather(name, name, True) for name in sums}
+            again_ids = missing.union(*missing_sums.values())
+            if again_ids:
                 # a worker died and took its slot with it: read those tiles again, returning
                 # their products (their small results are already folded)
                 again = StreamState(state.key)
 
                 def add_only(tile: Any, result: Any) -> None:
                     verify(state, self.source, tile, result, self.checkpoint)
-                    _add_rows(state, slot, self.source, tile, result)
+                    tile_id = _tile_id(tile)
+                    if tile_id in missing:
+                        _add_rows(state, slot, self.source, tile, result)
+                    for name, lost in missing_sums.items():
+                        if tile_id in lost:
+                            g0, g1 = tile.global_rows(self.source)
+                            state.arrays[name][g0:g1] += result[name]
 
                 run_tiles(self.runner, digested, (task, self.shared_source, *shared, None),
-                          [by_id[i] for i in sorted(missing)], add_only, again, in_flight=self.in_flight)
+                          [by_id[i] for i in sorted(again_ids)], add_only, again, in_flight=self.in_flight)
                 state.bytes_read += again.bytes_read
             pending.clear()
             last.clear()
@@ -273,7 +289,8 @@ def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: S
         g0, g1 = tile.global_rows(run.source)
         c0, c1 = tile.columns
         _add_rows(state, "range", run.source, tile, result)
-        row_sum[g0:g1] += result["row_sum"]
+        if result["row_sum"] is not None:  # None: summed in the worker's slot
+            row_sum[g0:g1] += result["row_sum"]
         squares[tile.field:tile.field + tile.span, c0:c1] += np.reshape(result["squares"], (tile.span, -1))
         if not corange:
             return
@@ -295,7 +312,7 @@ def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: S
                 corange[f][c0:c1] += part
 
     run.run(sketch_task, ((int(range_width), int(corange_width), int(exact_limit)),), jobs, fold, state,
-            slot="range")
+            slot="range", sums=("row_sum",))
     if "range" not in state.arrays:
         state.arrays["range"] = np.zeros((n, range_width), dtype=dtype)
 

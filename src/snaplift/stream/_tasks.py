@@ -200,8 +200,9 @@ def sketch_task(source: TileSource, widths: tuple[int, ...], slot: Any, tile: Ti
     ``(Psi X)^T``; for a tile of several fields a list with one per field, None for a field
     kept whole; None when ``l == 0``), ``exact`` (snapshots x rows: the raw rows of the
     fields of at most ``exact_limit`` rows, :func:`snaplift.linalg.sketch.exact_layout`, or
-    None), ``row_sum`` (rows) and ``squares`` (snapshots). The test matrices are keyed by
-    global snapshot and row index (Tropp et al. 2017).
+    None), ``row_sum`` (rows; None when summed into the worker's ``slot`` like the range)
+    and ``squares`` (snapshots). The test matrices are keyed by global snapshot and row
+    index (Tropp et al. 2017).
     """
     set_cache_limit(source.cache_bytes)
     range_width, corange_width = widths[0], widths[1]
@@ -210,7 +211,7 @@ def sketch_task(source: TileSource, widths: tuple[int, ...], slot: Any, tile: Ti
     c0, c1 = tile.columns
     omega = gaussian_map(source.snapshot_index[c0:c1], range_width, seed=source.seed,
                          complex_valued=source.complex_valued)
-    out: dict[str, Any] = {"corange": None, "exact": None, "row_sum": raw.sum(axis=0), "squares": squares}
+    out: dict[str, Any] = {"corange": None, "exact": None, "row_sum": None, "squares": squares}
     if corange_width and tile.span > 1:  # one co-range sketch per field: its scale comes later
         first = source.fields[tile.field].offset
         parts: list[Any] = []
@@ -238,7 +239,20 @@ def sketch_task(source: TileSource, widths: tuple[int, ...], slot: Any, tile: Ti
                                kind=source.corange_map)
         out["corange"] = apply_corange(raw, psi_t)
     _range(out, slot, source, tile, raw, omega)
+    _row_sum(out, slot, source, tile, raw)
     return out
+
+
+def _row_sum(out: dict[str, Any], slot: Any, source: TileSource, tile: TileRef, raw: np.ndarray) -> None:
+    """The tile's row sums: returned (``slot`` None) or summed in the same slot as its range
+    product, under the name ``row_sum`` (an ``(n, 1)`` accumulator, ``raw^T @ 1``), so that
+    a worker sends no full-height vector per tile."""
+    if slot is None:
+        out["row_sum"] = raw.sum(axis=0)
+        return
+    key, index, after = slot
+    ones = np.ones((raw.shape[0], 1), dtype=raw.dtype)
+    add_range_product(key, "row_sum", (source.n_rows, 1), tile.id, tile.global_rows(source), raw, ones, index, after)
 
 
 def product_task(source: TileSource, preparing: Preparing, operand: np.ndarray, kind: str, slot: Any,

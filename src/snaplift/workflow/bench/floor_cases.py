@@ -90,8 +90,11 @@ def _runner(kind: str, workers: int) -> Iterator[Any]:
 
 def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *, snapshots: int | None = None,
                sketch_widths: tuple[int, int] | None = None, power_iterations: int = 1,
-               corange_map: str = "sparse") -> dict[str, Any]:
+               corange_map: str = "sparse", plan: Any = None) -> dict[str, Any]:
     """One compress run through the library, as the compress stage does it.
+
+    ``plan``: a tile plan to use as it is (another runner's, to compare runners on the
+    same tiles); the returned ``plan`` is the one used.
 
     As the workflow does, the tiles are planned in what the budget leaves once the
     processes' measured baseline is taken (:func:`snaplift.cluster.resident_memory`), so
@@ -106,25 +109,35 @@ def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *,
     info = reader.describe()
     m = info.fields["u"].n_snapshots if snapshots is None else snapshots
 
+    given = plan
+
     def work() -> Any:
+        if given is not None:
+            return given, run(given)
         resident = resident_memory(getattr(runner, "client", None), workers=runner.workers)
-        plan = plan_tiles(info, ["u"], memory_bytes=settings.memory_bytes, workers=runner.workers, method=method,
-                          rank=settings.rank, power_iterations=power_iterations, sketch_widths=sketch_widths,
-                          shared_memory=runner.kind == "threads", baseline_bytes=resident.reserve(),
-                          baseline_label=resident.label, corange_map=corange_map)
+        planned = plan_tiles(info, ["u"], memory_bytes=settings.memory_bytes, workers=runner.workers, method=method,
+                             rank=settings.rank, power_iterations=power_iterations, sketch_widths=sketch_widths,
+                             shared_memory=runner.kind == "threads", baseline_bytes=resident.reserve(),
+                             baseline_label=resident.label, corange_map=corange_map)
+        return planned, run(planned)
+
+    def run(plan: Any) -> Any:
         matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(m), snapshot_block=1,
                                        snapshot_blocks=plan.snapshot_blocks)
         options = CompressOptions(method=method, rank=settings.rank, power_iterations=power_iterations,
                                   sketch_widths=sketch_widths, scale="none",
                                   **({"corange_map": corange_map} if method == "sketch" else {}))
-        return plan, compress(matrix, plan, options, runner=runner, in_flight=plan.in_flight)
+        return compress(matrix, plan, options, runner=runner, in_flight=plan.in_flight)
 
     elapsed, (plan, result), memory = _timed(work)
     archive_bytes = m * info.fields["u"].n_points * 8
     return {"seconds": elapsed, "passes": result.passes, "bytes_ratio": result.bytes_read / archive_bytes,
             "singular_value": result.lowrank.singular_value, "peak_rss": memory.peak, "baseline_rss": memory.baseline,
             "plan_peak": plan.peak_bytes_estimate, "plan_baseline": plan.baseline_bytes, "block": plan.block,
-            "tiles": plan.n_tiles,
+            "tiles": plan.n_tiles, "plan": plan,
+            "snapshots_per_tile": int(max(c1 - c0 for c0, c1 in plan.snapshot_blocks)),
+            "bytes_between_processes": list(result.info.get("bytes_between_processes", [])),
+            "range_accumulator_bytes": int(result.info.get("range_accumulator_bytes", 0)),
             "widths": (result.info["range_width"], result.info["corange_width"]), "kind": result.projection_kind}
 
 

@@ -14,11 +14,17 @@ archive (``dd``) under the same conditions:
   against ``dd`` with 8 MiB requests on the same file;
 - warm: the sketch's compress with threads and with worker processes (``cluster: local``),
   with the bytes the workers sent out per pass; the warm arithmetic rate feeds the cost
-  model (:mod:`.model`), whose prediction is checked against the capped measurement.
+  model (:mod:`.model`), whose prediction is checked against the capped measurement;
+  threads and worker processes run the same tile plan (:mod:`.workers`).
+
+Before the capped commands the package's own modules are byte-compiled
+(:func:`compile_package`), as an install leaves them: ``slowfs-run`` warms the Python
+installation, and an editable tree without bytecode would add a compile to every startup.
 """
 
 from __future__ import annotations
 
+import compileall
 import datetime as _dt
 import json
 import shutil
@@ -178,9 +184,27 @@ def _cold(folder: Path, archive: Path, settings: RegimeSettings, say: Callable[[
             "compress_seconds": figures["seconds"]}
 
 
+def compile_package() -> bool:
+    """Byte-compile snaplift's own modules (``__pycache__`` beside them), as an install does.
+
+    ``slowfs-run`` warms the Python installation so that imports are not what is measured;
+    an editable install (the source tree on the path) under ``PYTHONDONTWRITEBYTECODE`` has
+    no cached bytecode, and every command would compile the whole package again (1-3 s of
+    its startup on a loaded 2-core machine, measured). False when the folder is read-only.
+    """
+    import snaplift
+
+    try:
+        return bool(compileall.compile_dir(str(Path(snaplift.__file__).parent), quiet=2))
+    except OSError:
+        return False
+
+
 def run_regimes(settings: RegimeSettings, progress: Callable[[str], None] | None = None) -> dict[str, Any]:
     """Every section for every layout; a plain dict of figures (see :func:`.render_regime.render_regimes`)."""
     say = progress or (lambda message: None)
+    if settings.cap is not None and not compile_package():
+        say("could not byte-compile snaplift's modules: each command's startup includes compiling them")
     n = GRID[0] * GRID[1]
     m = max(8, int(settings.size_bytes // (8 * n)))
     base = (Path(settings.folder) if settings.folder else Path(tempfile.mkdtemp(prefix="snaplift-bench-"))).resolve()

@@ -68,20 +68,19 @@ def _capped(c: dict[str, Any], figures: dict[str, Any]) -> list[str]:
 
 
 def _workers(w: dict[str, Any], figures: dict[str, Any]) -> list[str]:
-    from snaplift.workflow.bench.workers import accumulator_bytes
-
     t = w["threads"]
+    plan = (f"{t['tiles']} tiles of <= {t['snapshots_per_tile']} snapshots"
+            + (", the worker processes' plan for both" if t.get("same_plan") else ""))
     lines = [f"warm, sketch compress with threads: {t['seconds']:.2f} s "
-             f"({t['seconds'] / (figures['archive_bytes'] / GIB):.2f} s/GiB)"]
+             f"({t['seconds'] / (figures['archive_bytes'] / GIB):.2f} s/GiB; {plan})"]
     if "local" in w:
         loc = w["local"]
-        acc = accumulator_bytes(figures["points"], figures["snapshots"], *t["widths"])
-        sent = (loc["workers_sent"] + loc["client_sent"]) / max(1, loc["passes"])
-        lines.append(f"  with worker processes (cluster: local): {loc['seconds']:.2f} s = "
-                     f"{loc['seconds'] / t['seconds']:.2f}x threads; sent between processes per pass "
-                     f"{sent / 2**20:.1f} MiB (workers {loc['workers_sent'] / 2**20:.1f} MiB, client and scheduler "
-                     f"{loc['client_sent'] / 2**20:.1f} MiB) = {sent / acc:.2f}x the accumulators "
-                     f"({acc / 2**20:.1f} MiB; target <= {figures['workers'] + 1})")
+        acc = loc["range_accumulator_bytes"]
+        per_pass = ", ".join(f"{sent / 2**20:.1f} MiB = {sent / acc:.2f}" for sent in loc["bytes_per_pass"]) \
+            if acc else "-"
+        lines.append(f"  with worker processes (cluster: local), same tiles: {loc['seconds']:.2f} s = "
+                     f"{loc['ratio']:.2f}x threads (target <= 1.3); sent between processes per pass (engine count) "
+                     f"{per_pass} range accumulators of {acc / 2**20:.1f} MiB (target <= {figures['workers'] + 1})")
     return lines
 
 
