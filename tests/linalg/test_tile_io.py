@@ -18,9 +18,9 @@ from snaplift.archive.hdf5 import _storage
 from snaplift.archive.matrix import build_snapshot_matrix, read_snapshot_block
 from snaplift.errors import ArchiveError
 from snaplift.linalg import _testmatrix
+from snaplift.linalg._kernels import TEST_BLOCK_ROWS, gaussian_block
 from snaplift.stream import _slots
 from snaplift.stream._floor import FLOOR_SCHEDULES, floor_pass
-from snaplift.linalg._kernels import TEST_BLOCK_ROWS, gaussian_block
 
 
 def _write(path, data, **options):

@@ -16,16 +16,16 @@ from __future__ import annotations
 
 import contextlib
 import uuid
-from dataclasses import replace
 from collections.abc import Sequence
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
 
 from snaplift._process_memory import trim_heap
 from snaplift.archive.matrix import SnapshotMatrix
-from snaplift.linalg.sketch import exact_layout
 from snaplift.errors import ArchiveChangedError
+from snaplift.linalg.sketch import exact_layout
 from snaplift.stream._digest import digested, verify
 from snaplift.stream._tasks import Preparing, TileRef, TileSource, product_task, resident_loaded, sketch_task
 from snaplift.stream.loop import Checkpointer, Job, StreamState, TileRunner, run_tiles
@@ -178,6 +178,7 @@ class Pass:
         def flush() -> None:
             if not count:
                 return
+            assert slot is not None  # slots are keyed whenever tiles were counted into them
             missing = pending - gather("range", slot, False)
             missing_sums = {name: pending - gather(name, name, True) for name in sums}
             again_ids = missing.union(*missing_sums.values())

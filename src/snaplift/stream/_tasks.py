@@ -18,12 +18,13 @@ from snaplift.archive._base import Reader
 from snaplift.archive.matrix import FieldRows, check_finite, read_fields_block, read_snapshot_block
 from snaplift.errors import ArchiveChangedError
 from snaplift.linalg._kernels import adjoint_product, column_squares, field_column_squares, qr_factor, range_product
+from snaplift.linalg._testmatrix import apply_corange, cached_row_map, gaussian_map, set_cache_limit
 from snaplift.stream import _prefetch
 from snaplift.stream._digest import note_read
 from snaplift.stream._slots import add_range_product
-from snaplift.linalg._testmatrix import apply_corange, cached_row_map, gaussian_map, set_cache_limit
 
-__all__ = ["TileSource", "TileRef", "Preparing", "reads_ahead", "sketch_task", "product_task", "tsqr_task", "tsqr_leaf_task",
+__all__ = ["TileSource", "TileRef", "Preparing", "reads_ahead", "sketch_task", "product_task", "tsqr_task",
+           "tsqr_leaf_task",
            "release_resident", "resident_loaded"]
 
 
@@ -309,7 +310,7 @@ def tsqr_task(source: TileSource, center: bool, slot: None, tile: TileRef,
 
 
 def _tsqr_fields(source: TileSource, tile: TileRef, raw: np.ndarray, out: dict[str, Any],
-                 leaf: tuple[list[np.ndarray], list[np.ndarray]] | None) -> dict[str, Any]:
+                 leaf: tuple[Any, Any] | None) -> dict[str, Any]:
     """TSQR leaves of a tile of several fields: one leaf per field, whose R factors are
     scaled by the field's own scale later (``R(s X) = s R(X)``)."""
     first = source.fields[tile.field].offset

@@ -28,6 +28,7 @@ asserted (pass/fail tests never depend on wall time).
 from __future__ import annotations
 
 import contextlib
+import functools
 import shutil
 import tempfile
 import time
@@ -39,8 +40,15 @@ from typing import Any
 import numpy as np
 
 from snaplift.stream._floor import floor_pass
-from snaplift.workflow.bench.archive import (GRID, copy_to_zarr, drop_page_cache, raw_read, reader_read, warm,
-                                              write_archive)
+from snaplift.workflow.bench.archive import (
+    GRID,
+    copy_to_zarr,
+    drop_page_cache,
+    raw_read,
+    reader_read,
+    warm,
+    write_archive,
+)
 from snaplift.workflow.bench.memory import timed as _timed
 
 __all__ = ["BenchSettings", "run_benchmark", "render_benchmark", "run_method", "run_svd_compressed"]
@@ -124,9 +132,9 @@ def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *,
     def run(plan: Any) -> Any:
         matrix = build_snapshot_matrix(reader, ["u"], snapshots=np.arange(m), snapshot_block=1,
                                        snapshot_blocks=plan.snapshot_blocks)
+        extra: dict[str, Any] = {"corange_map": corange_map} if method == "sketch" else {}
         options = CompressOptions(method=method, rank=settings.rank, power_iterations=power_iterations,
-                                  sketch_widths=sketch_widths, scale="none",
-                                  **({"corange_map": corange_map} if method == "sketch" else {}))
+                                  sketch_widths=sketch_widths, scale="none", **extra)
         return compress(matrix, plan, options, runner=runner, in_flight=plan.in_flight)
 
     elapsed, (plan, result), memory = _timed(work)
@@ -258,7 +266,8 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
         with _runner("threads", settings.workers) as runner:
             for label, method, extra in cases:
                 say(f"compress: {label} (threads)")
-                out["methods"][label] = scored(lambda: run_method(h5_path, method, settings, runner, **extra))
+                out["methods"][label] = scored(
+                    functools.partial(run_method, h5_path, method, settings, runner, **extra))
             say("peak memory of the sketch at m/2 and m snapshots")
             peaks: dict[str, int] = {"half": 0, "full": 0}
             for _ in range(max(1, settings.repeats)):  # the largest peak of the repeats, for both lengths
@@ -271,7 +280,8 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
             out["svd_compressed"] = {}
             for q in (0, 1):
                 say(f"dask.array.linalg.svd_compressed k={settings.rank} n_power_iter={q}")
-                out["svd_compressed"][q] = scored(lambda: run_svd_compressed(h5_path, settings.rank, q, block))
+                out["svd_compressed"][q] = scored(
+                    functools.partial(run_svd_compressed, h5_path, settings.rank, q, block))
         # the floor once more, after the methods: on a shared machine the load changes during
         # a run, and the floor is the best the machine did (every ratio uses the lower one)
         say("floor again")
@@ -333,7 +343,8 @@ def render_benchmark(figures: dict[str, Any]) -> str:
         f"({figures['archive_bytes'] / figures['raw_read_seconds'] / gib:.2f} GiB/s)",
         f"floor (one pass, two products of width rank+10, blocks of {figures['floor_block']}): {floor:.2f} s "
         f"= {floor / figures['raw_read_seconds']:.1f}x the raw read (lower of "
-        f"{figures.get('floor_seconds_first', floor):.2f} s before and {figures.get('floor_seconds_again', floor):.2f} s "
+        f"{figures.get('floor_seconds_first', floor):.2f} s before and "
+        f"{figures.get('floor_seconds_again', floor):.2f} s "
         "after the methods); schedules "
         + ", ".join(f"{name} {seconds:.2f} s" for name, seconds in (figures.get("floor_schedules") or {}).items()),
         "",
@@ -363,7 +374,8 @@ def render_benchmark(figures: dict[str, Any]) -> str:
                   f"{figures['zarr_raw_read_seconds'] / figures['raw_read_seconds']:.2f}x, "
                   f"in tiles of {figures['floor_block']} snapshots "
                   f"{figures['zarr_block_read_seconds'] / figures['hdf5_block_read_seconds']:.2f}x{tiles}",
-                  f"  (zarr v3, no compressor, one snapshot per chunk; {figures.get('zarr_settings', 'default settings')})"]
+                  "  (zarr v3, no compressor, one snapshot per chunk; "
+                  f"{figures.get('zarr_settings', 'default settings')})"]
     for key, f in (figures.get("clusters") or {}).items():
         lines.append(f"sketch on {key:14s}: {f['seconds']:.2f} s ({f['ratio']:.2f}x floor), peak RSS "
                      f"{f['peak_rss'] / gib:.2f} GiB")

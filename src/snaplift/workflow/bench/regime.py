@@ -117,7 +117,9 @@ def _run_store(store: Path) -> tuple[dict[str, Any], np.ndarray]:
     import zarr
 
     root = zarr.open_group(str(store), mode="r")
-    return dict(root.attrs), np.asarray(root["basis/singular_value"][...])
+    values = root["basis/singular_value"]
+    assert isinstance(values, zarr.Array)
+    return dict(root.attrs), np.asarray(values[...])
 
 
 def _snaplift(*args: str) -> list[str]:

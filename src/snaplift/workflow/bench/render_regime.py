@@ -25,7 +25,8 @@ def render_regimes(figures: dict[str, Any]) -> str:
         if "cold" in f:
             c = f["cold"]
             lines.append(f"cold, uncapped: dd (8 MiB requests) {c['dd_rate'] / 1e6:.0f} MB/s; the sketch's compress "
-                         f"pass read at {c['compress_rate'] / 1e6:.0f} MB/s = {c['compress_rate'] / c['dd_rate']:.2f}x dd")
+                         f"pass read at {c['compress_rate'] / 1e6:.0f} MB/s = "
+                         f"{c['compress_rate'] / c['dd_rate']:.2f}x dd")
         if "workers" in f:
             lines += _workers(f["workers"], figures)
         if "model" in f:
@@ -54,7 +55,8 @@ def _capped(c: dict[str, Any], figures: dict[str, Any]) -> list[str]:
         for key in ("sketch", "randomized"):
             if key in c and c[key]["stages"].get("compress"):
                 rate = c[key]["bytes_read"] / c[key]["stages"]["compress"]
-                lines.append(f"read bandwidth during the compress stage ({key}, writing the basis included): {rate / 1e6:.0f} MB/s = {rate / cap:.2f} of the cap")
+                lines.append(f"read bandwidth during the compress stage ({key}, writing the basis included): "
+                             f"{rate / 1e6:.0f} MB/s = {rate / cap:.2f} of the cap")
         whole = sketch["seconds"]
         lines.append("stages of the sketch run, share of the whole run (" + f"{whole:.1f} s):")
         lines += [f"  {name:48s} {stages[key]:6.2f} s {100 * stages[key] / whole:5.1f} %"
@@ -94,7 +96,8 @@ def _model(m: dict[str, Any]) -> list[str]:
                      f"{100 * p['gap_compress']:+.0f} %), whole run {p['whole']:.1f} s (measured "
                      f"{m['measured_whole']:.1f} s, {100 * p['gap_whole']:+.0f} %): {verdict}")
     t = m["terabyte"]
-    lines.append(f"  on paper, 1 TB on 32 nodes at 1 GB/s each (this machine's cores per node): read {t['read']:.1f} s, "
+    lines.append("  on paper, 1 TB on 32 nodes at 1 GB/s each (this machine's cores per node): "
+                 f"read {t['read']:.1f} s, "
                  f"arithmetic {t['arithmetic']:.1f} s, network {t['network_bytes'] / 1e9:.2f} GB per pass "
                  f"({t['network']:.1f} s at 10 Gbit/s), compress {t['compress']:.1f} s")
     return lines

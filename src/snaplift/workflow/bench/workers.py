@@ -44,7 +44,8 @@ def compare_workers(archive: Path, rank: int, workers: int, memory_bytes: int, *
     with _runner("threads", workers) as runner:
         figures = run_method(archive, "sketch", settings, runner, plan=plan)
     figures.pop("plan")
-    out["threads"] = {"seconds": figures["seconds"], "widths": tuple(figures["widths"]), "peak_rss": figures["peak_rss"],
+    out["threads"] = {"seconds": figures["seconds"], "widths": tuple(figures["widths"]),
+                      "peak_rss": figures["peak_rss"],
                       "tiles": figures["tiles"], "snapshots_per_tile": figures["snapshots_per_tile"],
                       "same_plan": plan is not None}
     if processes:
