@@ -26,25 +26,21 @@ def _tool(path: Path, body: str) -> Path:
     return path
 
 
-def test_slowfs_run_is_found_by_env_var_then_beside_the_repository_then_on_path(tmp_path):
+def test_slowfs_run_is_found_by_env_var_then_shipped_then_on_path(tmp_path):
     given = _tool(tmp_path / "mine", "exit 0\n")
     assert find_slowfs_run({"SNAPLIFT_SLOWFS_RUN": str(given)}) == given
     assert find_slowfs_run({"SNAPLIFT_SLOWFS_RUN": str(tmp_path / "absent")}) is None
-    # ../shared/tools beside the repository (of the source tree, or of the current folder)
-    repo = tmp_path / "repo"
-    (repo / "src").mkdir(parents=True)
-    (tmp_path / "shared" / "tools").mkdir(parents=True)
-    beside = _tool(tmp_path / "shared" / "tools" / "slowfs-run", "exit 0\n")
+    # the copy snaplift ships beside the bench's commands module
+    shipped = find_slowfs_run({"PATH": ""})
+    assert shipped is not None and shipped.name == "slowfs-run" and shipped.parent.name == "bench"
+    assert "--read-limit" in shipped.read_text()
+    # a module without a copy beside it: PATH, else nothing
     elsewhere = tmp_path / "elsewhere" / "module.py"
-    assert find_slowfs_run({"PATH": ""}, cwd=repo, source=repo / "src" / "module.py") == beside.resolve()
-    assert find_slowfs_run({"PATH": ""}, cwd=repo / "src", source=elsewhere) == beside.resolve()
-    # on PATH only
-    beside.unlink()
     bin_dir = tmp_path / "bin"
     bin_dir.mkdir()
     on_path = _tool(bin_dir / "slowfs-run", "exit 0\n")
-    assert find_slowfs_run({"PATH": str(bin_dir)}, cwd=Path("/"), source=elsewhere) == on_path
-    assert find_slowfs_run({"PATH": ""}, cwd=Path("/"), source=elsewhere) is None
+    assert find_slowfs_run({"PATH": str(bin_dir)}, source=elsewhere) == on_path
+    assert find_slowfs_run({"PATH": ""}, source=elsewhere) is None
 
 
 def test_the_refusal_names_what_is_missing(tmp_path):

@@ -1,7 +1,7 @@
 """Whole commands timed as a user runs them: under ``slowfs-run`` (reads capped, page cache
 bounded) or after dropping the page cache (cold, uncapped).
 
-``slowfs-run`` (``shared/tools`` beside the repository) puts the command in a blkio (or
+``slowfs-run`` (shipped beside this module) puts the command in a blkio (or
 io) + memory cgroup: reads from the device that holds the archive are throttled to
 ``--read-limit`` and the page cache the command fills counts against ``--cache-limit``, so
 an archive larger than the limit is read from the device again on every pass, as one
@@ -49,19 +49,16 @@ class CommandRun:
     started: float | None  # wall-clock epoch at which the command itself started (START_MARK)
 
 
-def find_slowfs_run(environ: dict[str, str] | None = None, cwd: Path | None = None, *,
-                    source: Path | None = None) -> Path | None:
-    """``slowfs-run``: ``$SNAPLIFT_SLOWFS_RUN``, else ``../shared/tools`` beside the repository
-    (of this source tree or of the current folder), else on ``PATH``; ``None`` when absent."""
+def find_slowfs_run(environ: dict[str, str] | None = None, *, source: Path | None = None) -> Path | None:
+    """``slowfs-run``: ``$SNAPLIFT_SLOWFS_RUN``, else the copy shipped beside this module
+    (``snaplift/workflow/bench/slowfs-run``), else on ``PATH``; ``None`` when absent."""
     environ = dict(os.environ) if environ is None else environ
     given = environ.get("SNAPLIFT_SLOWFS_RUN")
     if given:
         return Path(given) if Path(given).is_file() else None
-    here = (source or Path(__file__)).resolve()
-    for base in (*here.parents, *(cwd or Path.cwd()).resolve().parents, (cwd or Path.cwd()).resolve()):
-        candidate = base.parent / "shared" / "tools" / "slowfs-run"
-        if candidate.is_file():
-            return candidate
+    shipped = (source or Path(__file__)).resolve().with_name("slowfs-run")
+    if shipped.is_file():
+        return shipped
     found = shutil.which("slowfs-run", path=environ.get("PATH"))
     return Path(found) if found else None
 
@@ -73,8 +70,8 @@ def slowfs_missing(tool: Path | None, *, platform: str | None = None, euid: int 
     if not platform.startswith("linux"):
         return f"Linux (this is {platform})"
     if tool is None:
-        return ("the slowfs-run tool (set SNAPLIFT_SLOWFS_RUN, or put it in ../shared/tools beside the "
-                "repository or on PATH)")
+        return ("the slowfs-run tool (snaplift ships one beside snaplift/workflow/bench/commands.py; "
+                "set SNAPLIFT_SLOWFS_RUN or put one on PATH)")
     euid = (os.geteuid() if hasattr(os, "geteuid") else -1) if euid is None else euid
     if euid != 0:
         return "root (cgroups and dropping the page cache)"
@@ -102,7 +99,9 @@ def run_command(argv: list[str], *, folder: Path, cap: Cap | None, cold: bool, e
     (``cold``) or as it is (warm). A failing command is a one-line error with its last line."""
     marked = [sys.executable, "-m", "snaplift.workflow.bench.started", *argv]
     if cap is not None:
-        full = [str(cap.tool), "--read-limit", cap.read_limit, "--cache-limit", cap.cache_limit,
+        # the shipped copy may have lost its executable bit in an install: bash runs it regardless
+        launcher = [str(cap.tool)] if os.access(cap.tool, os.X_OK) else ["bash", str(cap.tool)]
+        full = [*launcher, "--read-limit", cap.read_limit, "--cache-limit", cap.cache_limit,
                 "--path", str(folder), "--", *marked]
     else:
         full = marked
