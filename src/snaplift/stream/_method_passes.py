@@ -1,6 +1,6 @@
 """The pass sequences of the randomized SVD and of TSQR over an archive (stream layer).
 
-Each function drives its passes through a run of the tile loop (``run.run`` with the
+Each function drives its passes through the tile loop (``passes.read`` with the
 tasks of :mod:`snaplift.stream._tasks`, folding results into a resumable
 :class:`~snaplift.stream.loop.StreamState`) and finishes with the array kernels of
 :mod:`snaplift.linalg.randomized` and :mod:`snaplift.linalg.tsqr`.
@@ -30,7 +30,7 @@ from snaplift.stream._tasks import tsqr_leaf_task, tsqr_task
 __all__ = ["randomized_compress", "tsqr_compress"]
 
 
-def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, rank: int, oversample: int,
+def randomized_compress(passes: Any, matrix: Any, jobs: list[Any], state: Any, *, rank: int, oversample: int,
                         power_iterations: int, seed: int, center: bool, scale: Any,
                         first_read: Any = None) -> tuple[Any, LowRank]:
     """Randomized SVD of the prepared snapshot matrix over the archive: ``2 + 2q`` streamed passes.
@@ -48,33 +48,33 @@ def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, r
     width = min(rank + oversample, n, m)
     complex_valued = np.issubdtype(matrix.dtype, np.complexfloating)
     if state.pass_number == 0:
-        sketch_read(run, matrix, jobs, state, width, 0)
+        sketch_read(passes, matrix, jobs, state, width, 0)
     preparation = finish_preparation(matrix, state.arrays["row_sum"], list(state.arrays["squares"]),
                                      center=center, scale=scale)
     if state.pass_number == 0:
         omega = gaussian_map(matrix.snapshot_index, width, seed=seed, complex_valued=complex_valued)
         state.arrays["q"] = orthonormal_basis(corrected_sketch(state.arrays.pop("range"), preparation, omega),
                                                   overwrite=True)
-        run.end_pass(state)
-    preparing = run.runner.share(preparing_of(preparation))
+        passes.end_pass(state)
+    preparing = passes.runner.share(preparing_of(preparation))
     for iteration in range(power_iterations):
         first = 1 + 2 * iteration
         if state.pass_number == first:
-            product_read(run, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="adjoint",
+            product_read(passes, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="adjoint",
                          norms=False)
             state.arrays["z"] = np.linalg.qr(state.arrays.pop("adjoint"))[0]
             state.arrays.pop("adjoint_norm_squares", None)  # from a checkpoint of an older run
             state.arrays.pop("q")  # the range pass makes the next one: n x k fewer during it
-            run.end_pass(state)
+            passes.end_pass(state)
         if state.pass_number == first + 1:
-            product_read(run, matrix, jobs, state, preparing, state.arrays["z"], "range", name="range")
+            product_read(passes, matrix, jobs, state, preparing, state.arrays["z"], "range", name="range")
             state.arrays["q"] = orthonormal_basis(state.arrays.pop("range"), overwrite=True)
             state.arrays.pop("z", None)
-            run.end_pass(state)
+            passes.end_pass(state)
     final = 1 + 2 * power_iterations
     if state.pass_number == final:
-        product_read(run, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="projection")
-        run.end_pass(state)
+        product_read(passes, matrix, jobs, state, preparing, state.arrays["q"], "adjoint", name="projection")
+        passes.end_pass(state)
     b = np.asarray(state.arrays["projection"]).conj().T  # B = Q^H A (width x m)
     u_small, s, vh = np.linalg.svd(b, full_matrices=False)
     u_small, vh = normalize_signs(u_small[:, :rank], vh[:rank])
@@ -84,7 +84,7 @@ def randomized_compress(run: Any, matrix: Any, jobs: list[Any], state: Any, *, r
     return preparation, lowrank
 
 
-def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any, *, rank: int, center: bool,
+def tsqr_compress(passes: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any, *, rank: int, center: bool,
                   scale: str | dict[str, float]) -> tuple[Any, Any]:
     """Exact truncated SVD of the prepared snapshot matrix by TSQR over the archive (2 passes).
 
@@ -106,7 +106,7 @@ def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any,
         squares = _zeros(state, "squares", (len(fields), m), np.float64)
 
         def fold(tile: Any, result: dict[str, Any]) -> None:
-            g0, g1 = tile.global_rows(run.source)
+            g0, g1 = tile.global_rows(passes.source)
             row_sum[g0:g1] += result["row_sum"]
             squares[tile.field:tile.field + tile.span] += np.reshape(result["squares"], (tile.span, -1))
             if tile.span > 1:
@@ -115,8 +115,8 @@ def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any,
             else:
                 state.arrays[f"r_{tile.field}_{tile.rows[0]}"] = result["r"]
 
-        run.run(tsqr_task, (bool(center),), jobs, fold, state)
-        run.end_pass(state)
+        passes.read(tsqr_task, (bool(center),), jobs, fold, state)
+        passes.end_pass(state)
     preparation = finish_preparation(matrix, state.arrays["row_sum"], list(state.arrays["squares"]),
                                      center=center, scale=scale)
     raw_r = [state.arrays[f"r_{f}_{r0}"] for f, r0 in leaves]
@@ -146,11 +146,11 @@ def tsqr_compress(run: Any, matrix: SnapshotMatrix, jobs: list[Any], state: Any,
             position += count
 
         def fold_basis(item: Any, result: dict[str, Any]) -> None:
-            g0, g1 = item[0].global_rows(run.source)
+            g0, g1 = item[0].global_rows(passes.source)
             basis[g0:g1] = result["basis"]
 
-        run.run(tsqr_leaf_task, (bool(center),), items, fold_basis, state)
-        run.end_pass(state)
+        passes.read(tsqr_leaf_task, (bool(center),), items, fold_basis, state)
+        passes.end_pass(state)
     column_norm = np.linalg.norm(root, axis=0)  # A = Q R with orthonormal Q: ||a_j|| = ||R e_j||
     lowrank = LowRank(basis=state.arrays["basis"], singular_value=s[:rank].astype(np.float64), vh=vh,
                       column_norm=column_norm, passes=2, projection_kind="exact")

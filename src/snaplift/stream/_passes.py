@@ -1,6 +1,6 @@
 """Passes over the archive for the compress methods: jobs, and what each pass folds.
 
-A pass is :func:`snaplift.stream.loop.run_tiles` over the plan's tiles with one tile
+A pass is :func:`snaplift.stream.loop.stream_tiles` over the plan's tiles with one tile
 task and one fold. Accumulators live in ``StreamState.arrays`` under fixed names, so the
 state can be checkpointed between any two tiles:
 
@@ -28,7 +28,7 @@ from snaplift.errors import ArchiveChangedError
 from snaplift.linalg.sketch import exact_layout
 from snaplift.stream._digest import digested, verify
 from snaplift.stream._tasks import Preparing, TileRef, TileSource, product_task, resident_loaded, sketch_task
-from snaplift.stream.loop import Checkpointer, Job, StreamState, TileRunner, run_tiles
+from snaplift.stream.loop import Checkpointer, Job, StreamState, TileRunner, stream_tiles
 
 __all__ = ["build_jobs", "kept_row_blocks", "sketch_read", "product_read", "Pass", "preparing_of"]
 
@@ -120,7 +120,7 @@ class Pass:
         # unique per run of a pass: a stopped run's slots never meet a resumed run's
         return f"{state.key}:{state.pass_number}:{uuid.uuid4().hex[:12]}"
 
-    def run(self, task: Any, shared: tuple[Any, ...], jobs: Sequence[Job], fold: Any, state: StreamState,
+    def read(self, task: Any, shared: tuple[Any, ...], jobs: Sequence[Job], fold: Any, state: StreamState,
             *, slot: str | None = None, sums: tuple[str, ...] = ()) -> None:
         """Run a pass; the task is called as ``task(source, *shared, slot_spec, tile)``.
 
@@ -197,7 +197,7 @@ class Pass:
                             g0, g1 = tile.global_rows(self.source)
                             state.arrays[name][g0:g1] += result[name]
 
-                run_tiles(self.runner, digested, (task, self.shared_source, *shared, None),
+                stream_tiles(self.runner, digested, (task, self.shared_source, *shared, None),
                           [by_id[i] for i in sorted(again_ids)], add_only, again, in_flight=self.in_flight)
                 state.bytes_read += again.bytes_read
             pending.clear()
@@ -207,7 +207,7 @@ class Pass:
         wire = int(getattr(self.runner, "bytes_between_processes", 0) or 0)
         try:
             with running() if running is not None else contextlib.nullcontext():
-                run_tiles(self.runner, digested, (task, self.shared_source, *shared), jobs, fold_and_note, state,
+                stream_tiles(self.runner, digested, (task, self.shared_source, *shared), jobs, fold_and_note, state,
                           in_flight=self.in_flight, checkpoint=self.checkpoint, progress=self.progress,
                           flush=flush, per_job=per_job)
             flush()
@@ -265,7 +265,7 @@ def _zeros(state: StreamState, name: str, shape: tuple[int, ...], dtype: Any) ->
     return state.arrays[name]
 
 
-def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: StreamState,
+def sketch_read(passes: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: StreamState,
                 range_width: int, corange_width: int, exact_limit: int = 0) -> None:
     """The first read: ``range`` = X_w Omega, ``corange_<f>`` = (Psi_f X_f)^T, statistics.
 
@@ -287,9 +287,9 @@ def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: S
     squares = _zeros(state, "squares", (len(matrix.fields), m), np.float64)
 
     def fold(tile: TileRef, result: dict[str, Any]) -> None:
-        g0, g1 = tile.global_rows(run.source)
+        g0, g1 = tile.global_rows(passes.source)
         c0, c1 = tile.columns
-        _add_rows(state, "range", run.source, tile, result)
+        _add_rows(state, "range", passes.source, tile, result)
         if result["row_sum"] is not None:  # None: summed in the worker's slot
             row_sum[g0:g1] += result["row_sum"]
         squares[tile.field:tile.field + tile.span, c0:c1] += np.reshape(result["squares"], (tile.span, -1))
@@ -312,23 +312,23 @@ def sketch_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: S
             else:
                 corange[f][c0:c1] += part
 
-    run.run(sketch_task, ((int(range_width), int(corange_width), int(exact_limit)),), jobs, fold, state,
+    passes.read(sketch_task, ((int(range_width), int(corange_width), int(exact_limit)),), jobs, fold, state,
             slot="range", sums=("row_sum",))
     if "range" not in state.arrays:
         state.arrays["range"] = np.zeros((n, range_width), dtype=dtype)
 
 
-def product_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: StreamState,
+def product_read(passes: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: StreamState,
                  preparing_handle: Any, operand: np.ndarray, kind: str, *, name: str, norms: bool = True) -> None:
     """``kind='range'``: ``state.arrays[name] = A @ operand`` (n x k); ``'adjoint'``: ``A^H @ operand``
     (m x k) plus, with ``norms``, ``<name>_norm_squares`` (exact squared column norms of A)."""
     n, m = matrix.shape
     width = operand.shape[1]
     dtype = np.result_type(matrix.dtype, operand.dtype)
-    shared_operand = run.runner.share(operand)
+    shared_operand = passes.runner.share(operand)
     if kind == "range":
         def fold(tile: TileRef, result: dict[str, Any]) -> None:
-            _add_rows(state, name, run.source, tile, result)  # only when not summed in slots
+            _add_rows(state, name, passes.source, tile, result)  # only when not summed in slots
     else:
         out = _zeros(state, name, (m, width), dtype)
         squares = _zeros(state, f"{name}_norm_squares", (m,), np.float64) if norms else None
@@ -342,10 +342,10 @@ def product_read(run: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state: 
         if not norms:
             kind = "adjoint_only"
     try:
-        run.run(product_task, (preparing_handle, shared_operand, kind), jobs, fold, state,
+        passes.read(product_task, (preparing_handle, shared_operand, kind), jobs, fold, state,
                 slot=name if kind == "range" else None)
     finally:
-        unshare = getattr(run.runner, "unshare", None)
+        unshare = getattr(passes.runner, "unshare", None)
         if unshare is not None:  # worker processes: the operand leaves them with its pass
             unshare(shared_operand)
     if kind == "range" and name not in state.arrays:

@@ -185,14 +185,14 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
     state = (checkpoint.load(key) if checkpoint is not None else None) or StreamState(key)
     resumed = state.pass_number > 0 or bool(state.done)
     bytes_before = int(state.bytes_read)
-    run = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers), checkpoint=checkpoint,
+    passes = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers), checkpoint=checkpoint,
                progress=progress)
     # a small matrix in memory: one BLAS thread (its calls take milliseconds; a thread pool
     # waiting on a shared machine made them 5-50x slower, measured in the small-problems benchmark)
     small = in_memory and n * m * np.dtype(matrix.dtype).itemsize <= SINGLE_THREAD_BYTES
     try:
         with blas_threads(1) if small else contextlib.nullcontext():
-            return _compress(matrix, options, run, jobs, state, source, checkpoint, rank, range_width,
+            return _compress(matrix, options, passes, jobs, state, source, checkpoint, rank, range_width,
                              corange_width, row_blocks, resumed, bytes_before)
     finally:
         release_resident(key)
@@ -219,22 +219,22 @@ def _release_caches(runner: TileRunner, *, test_matrices: bool = True) -> None:
                 pass
 
 
-def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs: list[Any], state: StreamState,
+def _compress(matrix: SnapshotMatrix, options: CompressOptions, passes: Pass, jobs: list[Any], state: StreamState,
               source: TileSource, checkpoint: Checkpointer | None, rank: int, range_width: int, corange_width: int,
               row_blocks: list, resumed: bool, bytes_before: int) -> Compression:
-    runner = run.runner
+    runner = passes.runner
     passes_of = METHOD_PASSES[options.method]
-    preparation, lowrank, sketch_arrays = passes_of(_MethodRun(run, matrix, jobs, state, source, options, rank,
+    preparation, lowrank, sketch_arrays = passes_of(_PassInputs(passes, matrix, jobs, state, source, options, rank,
                                                                range_width, corange_width, row_blocks))
-    passes = int(state.pass_number)
+    pass_count = int(state.pass_number)
     info = {"method": options.method, "range_width": range_width, "corange_width": corange_width,
             "corange_map": options.corange_map if options.method == "sketch" else None,
-            "tiles": len(jobs), "in_memory": bool(source.resident), "in_flight": run.in_flight,
+            "tiles": len(jobs), "in_memory": bool(source.resident), "in_flight": passes.in_flight,
             "runner": getattr(runner, "kind", "?"),
             "resumed": resumed, "checkpoints_saved": checkpoint.saves if checkpoint is not None else 0,
             "bytes_read_all_runs": int(state.bytes_read), "bytes_read_before_resume": bytes_before,
             # worker processes: bytes sent and received per pass run, next to the range accumulator's size
-            "bytes_between_processes": list(run.bytes_between_processes),
+            "bytes_between_processes": list(passes.bytes_between_processes),
             "range_accumulator_bytes": int(matrix.shape[0]) * int(range_width) * int(np.dtype(matrix.dtype).itemsize),
             # checksums of the blocks read, and how many reads were verified against them (stream/_digest.py)
             "block_digests": digest_table(state, source, jobs),
@@ -242,16 +242,16 @@ def _compress(matrix: SnapshotMatrix, options: CompressOptions, run: Pass, jobs:
     if checkpoint is not None:
         checkpoint.remove()
     # bytes read by this call; a resumed run does not count what the killed one read
-    return Compression(preparation, lowrank, passes, int(state.bytes_read) - bytes_before,
+    return Compression(preparation, lowrank, pass_count, int(state.bytes_read) - bytes_before,
                        lowrank.projection_kind, options.method, sketch_arrays, info)
 
 
 @dataclass(frozen=True)
-class _MethodRun:
+class _PassInputs:
     """What the passes of a compress method get: the pass runner, the matrix and its tile
     jobs, the stream state (resumed or fresh), the options and the widths."""
 
-    run: Pass
+    passes: Pass
     matrix: SnapshotMatrix
     jobs: list[Any]
     state: StreamState
@@ -266,39 +266,39 @@ class _MethodRun:
 _Passes = tuple[Preparation, LowRank, dict[str, np.ndarray]]
 
 
-def _sketch_passes(m: _MethodRun) -> _Passes:
+def _sketch_passes(m: _PassInputs) -> _Passes:
     """Single-pass sketch (Tropp et al. 2017/2019), finished in the driver; ``check_pass``
     adds one read for exact coefficients."""
-    run, matrix, state, options = m.run, m.matrix, m.state, m.options
+    passes, matrix, state, options = m.passes, m.matrix, m.state, m.options
     if state.pass_number == 0:
         # a field no wider than the co-range sketch is kept whole (exact_layout)
-        sketch_read(run, matrix, m.jobs, state, m.range_width, m.corange_width, m.corange_width)
-        run.end_pass(state)
+        sketch_read(passes, matrix, m.jobs, state, m.range_width, m.corange_width, m.corange_width)
+        passes.end_pass(state)
     # the single read is over: its tile buffers go before the finishing temporaries come
     # (the row test matrices stay: finishing applies them once more)
-    _release_caches(run.runner, test_matrices=False)
+    _release_caches(passes.runner, test_matrices=False)
     sketch = SketchState.from_stream(state.arrays, [f.n_rows for f in matrix.fields], matrix.snapshot_index,
                                      options.seed, m.source.complex_valued, options.corange_map,
                                      corange_width=m.corange_width, exact_limit=m.corange_width)
     preparation, lowrank = finish_sketch(sketch, matrix, m.rank, center=options.center, scale=options.scale,
                                          row_blocks=m.row_blocks)
     if options.check_pass:
-        lowrank = _check_pass(run, matrix, m.jobs, state, preparation, lowrank)
+        lowrank = _check_pass(passes, matrix, m.jobs, state, preparation, lowrank)
     return preparation, lowrank, sketch.to_arrays()
 
 
-def _randomized_passes(m: _MethodRun) -> _Passes:
+def _randomized_passes(m: _PassInputs) -> _Passes:
     """Randomized SVD with power iterations (Halko et al. 2011)."""
     options = m.options
     preparation, lowrank = randomized_compress(
-        m.run, m.matrix, m.jobs, m.state, rank=m.rank, oversample=options.oversample,
+        m.passes, m.matrix, m.jobs, m.state, rank=m.rank, oversample=options.oversample,
         power_iterations=options.power_iterations, seed=options.seed, center=options.center, scale=options.scale)
     return preparation, lowrank, {}
 
 
-def _tsqr_passes(m: _MethodRun) -> _Passes:
+def _tsqr_passes(m: _PassInputs) -> _Passes:
     """TSQR of row blocks (Demmel et al. 2012), then the SVD of R."""
-    preparation, lowrank = tsqr_compress(m.run, m.matrix, m.jobs, m.state, rank=m.rank, center=m.options.center,
+    preparation, lowrank = tsqr_compress(m.passes, m.matrix, m.jobs, m.state, rank=m.rank, center=m.options.center,
                                          scale=m.options.scale)
     return preparation, lowrank, {}
 
@@ -306,17 +306,17 @@ def _tsqr_passes(m: _MethodRun) -> _Passes:
 #: the passes of each method of :data:`snaplift.compress_methods.METHODS` (the registry keeps
 #: what a method is, widths, passes, memory terms; this table what it runs; a test checks that
 #: the two name the same methods)
-METHOD_PASSES: dict[str, Callable[[_MethodRun], _Passes]] = {
+METHOD_PASSES: dict[str, Callable[[_PassInputs], _Passes]] = {
     "sketch": _sketch_passes, "randomized": _randomized_passes, "tsqr": _tsqr_passes}
 
 
-def _check_pass(run: Pass, matrix: SnapshotMatrix, jobs: list[Any], state: StreamState,
+def _check_pass(passes: Pass, matrix: SnapshotMatrix, jobs: list[Any], state: StreamState,
                 preparation: Preparation, lowrank: LowRank) -> LowRank:
     """One more read: exact ``C = U^H A`` and column norms; the SVD of C refines the factors."""
     if state.pass_number == 1:
-        preparing = run.runner.share(preparing_of(preparation))
-        product_read(run, matrix, jobs, state, preparing, np.asarray(lowrank.basis), "adjoint", name="check")
-        run.end_pass(state)
+        preparing = passes.runner.share(preparing_of(preparation))
+        product_read(passes, matrix, jobs, state, preparing, np.asarray(lowrank.basis), "adjoint", name="check")
+        passes.end_pass(state)
     coefficient = np.asarray(state.arrays["check"]).conj().T  # r x m, exact
     u_c, s, vh = np.linalg.svd(coefficient, full_matrices=False)
     u_c, vh = normalize_signs(u_c, vh)
@@ -352,9 +352,9 @@ def sketch_append(old: SketchState | dict[str, np.ndarray], new_matrix: Snapshot
     jobs = build_jobs(new_matrix, row_blocks, list(new_matrix.blocks))
     source = _source(new_matrix, options, l, row_blocks)
     state = StreamState("append")
-    run = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers))
+    passes = Pass(runner, source, in_flight=in_flight or default_in_flight(runner.workers))
     # the stored state's layout: which fields it kept whole (none in a store from before)
-    sketch_read(run, new_matrix, jobs, state, k, l, old_state.exact_limit)
+    sketch_read(passes, new_matrix, jobs, state, k, l, old_state.exact_limit)
     new = SketchState.from_stream(state.arrays, [f.n_rows for f in new_matrix.fields], new_matrix.snapshot_index,
                                   old_state.seed, source.complex_valued, old_state.corange_map,
                                   corange_width=l, exact_limit=old_state.exact_limit)

@@ -37,7 +37,7 @@ from snaplift.stream.checkpoint import Checkpointer, StreamState, load_checkpoin
 from snaplift.units import usable_cores
 
 __all__ = ["TileRunner", "ThreadRunner", "ClientRunner", "InlineRunner", "runner_for", "StreamState", "Checkpointer",
-           "run_tiles", "save_checkpoint", "load_checkpoint"]
+           "stream_tiles", "save_checkpoint", "load_checkpoint"]
 
 
 class TileRunner(Protocol):
@@ -325,7 +325,7 @@ class Job:
     nbytes: int
 
 
-def run_tiles(
+def stream_tiles(
     runner: TileRunner,
     task: Callable[..., Any],
     shared: tuple[Any, ...],
