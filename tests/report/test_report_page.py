@@ -121,3 +121,17 @@ def test_probe_fields_are_fields_of_the_report(tmp_path: Path) -> None:
     # one sinusoid: the leading pair sits at 0.7 per time unit (the archive gives no time unit)
     frequency = np.abs(np.asarray(view.spectrum["frequency"].values[:2]))
     np.testing.assert_allclose(frequency, 0.7, rtol=1e-6)
+
+
+def test_probe_reads_beyond_the_budget_are_skipped(wave_stores: dict[str, Path], tmp_path: Path,
+                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    # the archive values at the probe points would touch more stored chunks than the budget:
+    # the forecast is compared with the projection on the basis only, and the page says why
+    from snaplift.report import page
+
+    monkeypatch.setattr(page, "PROBE_READ_BYTES", 1)
+    text = render_report(wave_stores["rank6"], tmp_path / "page").index.read_text()
+    assert "read budget" in text and "(0 values read from the archive" in text
+    monkeypatch.setattr(page, "PROBE_READ_BYTES", 64 * 2**20)
+    text = render_report(wave_stores["rank6"], tmp_path / "again").index.read_text()
+    assert "read budget" not in text and "(0 values read" not in text

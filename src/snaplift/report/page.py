@@ -46,6 +46,25 @@ __all__ = ["REPORT_CAUTION", "ReportSummary", "render_report", "report_folder"]
 
 REPORT_CAUTION = FORECAST_CAUTION.replace("This forecast comes from", "These results come from")
 PROBE_SNAPSHOTS = 240
+#: at most this many bytes of stored chunks are read for the archive values at the probe
+#: points; a point of a time-major archive with one snapshot per chunk lies in a chunk per
+#: snapshot, and 240 of them can be most of the archive (2 GiB, capped at 200 MB/s: 14 s),
+#: so beyond it the forecast is compared with the projection on the basis only
+PROBE_READ_BYTES = 64 * 2**20
+
+
+def _probe_read_bytes(source: Any, fields: list[str], snapshots: np.ndarray) -> int:
+    """Bytes of stored chunks the probe reads touch: one chunk in space per field, one per
+    distinct snapshot chunk (contiguous storage or a file per snapshot: a small read each)."""
+    info = source.reader.describe()
+    total = 0
+    for name in fields:
+        field = info.fields[name]
+        if not field.chunks:
+            continue
+        chunk_bytes = int(np.prod(field.chunks, dtype=np.int64)) * np.dtype(field.stored_dtype).itemsize
+        total += int(np.unique(np.asarray(snapshots) // max(1, field.snapshot_chunk)).size) * chunk_bytes
+    return total
 LEADING_MODES = 4
 MARKER = "snaplift-report.json"
 
@@ -120,6 +139,10 @@ def _probes(view: StoreView, fields: list[str]) -> tuple[list[Probe], str, int]:
         snapshots = overlap_snapshots(view, 0, length - 1, None)
         steps = np.flatnonzero(snapshots >= 0)
         steps = steps[np.unique(np.linspace(0, steps.size - 1, min(steps.size, PROBE_SNAPSHOTS)).astype(int))]
+        cost = _probe_read_bytes(source, list(source.fields), snapshots[steps])
+        if cost > PROBE_READ_BYTES:
+            raise ArchiveError(f"the archive values at the probe points lie in {cost / 2**20:.0f} MiB of stored "
+                               f"chunks (over the report's {PROBE_READ_BYTES // 2**20} MiB read budget), not read")
         for field in source.fields:
             values = np.full(steps.size, np.nan)
             for position, value in archive_snapshots(source, field, snapshots[steps], np.array([points[field]])):
@@ -318,7 +341,8 @@ def render_report(store: str | Path, out: str | Path | None = None, *, leading: 
     probes, note, read = _probes(view, fields[:6])
     if probes:
         add("forecast", "Forecast from the first snapshot against the archive and the projection on the basis at "
-                        "the point of largest variance of each field.", probe_figure(probes, view.time_unit, note))
+                        "the point of largest variance of each field." + (f" Note: {note}." if note else ""),
+            probe_figure(probes, view.time_unit, note))
     seconds = _time.perf_counter() - started
     staging = folder.with_name(f"{folder.name}.staging-{uuid.uuid4().hex[:8]}")
     staging.mkdir(parents=True)
