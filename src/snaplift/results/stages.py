@@ -34,7 +34,7 @@ from snaplift.archive.matrix import FieldRows, SnapshotMatrix
 from snaplift.errors import ResultStoreError
 from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation, to_physical
-from snaplift.results.store import StoreWriter
+from snaplift.results.store import StoreWriter, store_group
 from snaplift.results.stored_basis import StoredBasis, StoredFieldBasis
 
 __all__ = ["Compressed", "basis_bytes", "load_compressed", "write_compressed", "write_scan"]
@@ -158,7 +158,7 @@ class Compressed:
 def _group(root: Any, name: str, where: str) -> Any:
     if name not in root:
         raise ResultStoreError(f"{where} has no group '{name}'; the compress stage did not finish there")
-    return root[name]
+    return store_group(root, name)
 
 
 #: a stored basis up to this size is loaded into memory rather than as a lazy array (the

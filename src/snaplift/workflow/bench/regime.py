@@ -114,12 +114,10 @@ def _accuracy(found: np.ndarray, sigma: np.ndarray, count: int = 10) -> float:
 
 
 def _run_store(store: Path) -> tuple[dict[str, Any], np.ndarray]:
-    import zarr
+    from snaplift.results.store import open_result, store_array  # zarr only when a run was timed
 
-    root = zarr.open_group(str(store), mode="r")
-    values = root["basis/singular_value"]
-    assert isinstance(values, zarr.Array)
-    return dict(root.attrs), np.asarray(values[...])
+    root = open_result(store)
+    return dict(root.attrs), np.asarray(store_array(root, "basis/singular_value")[...])
 
 
 def _snaplift(*args: str) -> list[str]:
