@@ -62,3 +62,18 @@ def test_grid_archives_are_not_probes(tmp_path):
     result = CliRunner().invoke(app, ["scan", str(tmp_path / "g.h5"), "--time", "t", "--json"])
     assert result.exit_code == 0, result.output
     assert json.loads(result.output)["probes"] is None
+
+
+def test_probes_without_times_get_a_window_in_snapshots(tmp_path):
+    """No time variable and no step: the window is counted in snapshots (a step of 1)."""
+    t, _, _ = _probes(tmp_path / "p.h5")
+    with h5py.File(tmp_path / "p.h5", "a") as h5:
+        del h5["t"]
+    result = CliRunner().invoke(app, ["scan", str(tmp_path / "p.h5"), "--json"])
+    assert result.exit_code == 0, result.output
+    probes = json.loads(result.output)["probes"]
+    # the slowest period is 2.5 s = 125 snapshots of DT (from the signals' definition above)
+    assert abs(probes["longest_period"] - 2.5 / DT) < 0.05 * 2.5 / DT
+    assert probes["window_unit"] == "snapshots" and probes["window"] >= probes["longest_period"]
+    table = CliRunner().invoke(app, ["scan", str(tmp_path / "p.h5")])
+    assert table.exit_code == 0 and "snapshots: spans the longest period" in table.output

@@ -323,10 +323,13 @@ def scan_archive(
             )
 
     probes = None
-    if chosen and times is not None and times.size >= 8 and all(f.n_points == 1 for f in chosen):
-        probes = probe_report(reader, names, times, memory_bytes=memory_bytes, method=method or "randomized",
+    if chosen and n_snapshots >= 8 and all(f.n_points == 1 for f in chosen):
+        # without snapshot times the window is counted in snapshots (a step of 1)
+        probe_times = times if times is not None and times.size == n_snapshots else np.arange(float(n_snapshots))
+        probes = probe_report(reader, names, probe_times, memory_bytes=memory_bytes, method=method or "randomized",
                               rank=rank, workers=workers, shared_memory=shared_memory,
                               baseline_bytes=baseline_bytes, in_memory_limit=IN_MEMORY_LIMIT)
+        probes["window_unit"] = "snapshots" if probe_times is not times else (unit or "")
 
     return ScanReport(
         path=info.path,

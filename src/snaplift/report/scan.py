@@ -113,13 +113,16 @@ def _probes(probes: dict[str, Any]) -> Any:
     grid.add_row("probes", f"{', '.join(probes['probes'])}: {probes['values_per_snapshot']} value(s) per snapshot; "
                            "lift them with delays to see their frequencies")
     delays = probes["delays"]
+    unit = probes.get("window_unit") or ""
+    unit = f" {unit}" if unit else ""
     if probes.get("longest_period") is not None:
-        seen = (f"spans the longest period in the periodogram, {probes['longest_period']:.6g} "
+        seen = (f"spans the longest period in the periodogram, {probes['longest_period']:.6g}{unit} "
                 f"(probe {probes['longest_period_probe']})")
     else:
         seen = "no periodogram peak found: a minimal window"
+    window = probes['window'] if probes['window'] is not None else 0
     grid.add_row("suggested lift", f"- {{kind: delays, count: {delays['count']}, spacing: {delays['spacing']}}}  "
-                                   f"(window {probes['window'] if probes['window'] is not None else 0:.6g}: {seen})")
+                                   f"(window {window:.6g}{unit}: {seen})")
     cost = (f"lifted matrix {probes['lifted_rows']} x {probes['lifted_columns']} "
             f"({human_bytes(probes['lifted_bytes'])})")
     plan = probes.get("plan")
