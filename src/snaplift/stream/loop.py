@@ -248,14 +248,10 @@ class ClientRunner:
                                       allow_other_workers=False) for address in addresses]
         out: dict[int, tuple[np.ndarray, list[int]]] = {}
         try:
-            for future, address in zip(futures, addresses):
-                if not self._finished(future, address):
-                    continue
-                part = self.client.gather(future, direct=True)
-                future.release()
+            finished = [future for future, address in zip(futures, addresses) if self._finished(future, address)]
+            for part in self.client.gather(finished, direct=True):  # from every worker at once
                 self.bytes_received += _sizeof(part)
                 out.update(part)
-                del part
         finally:
             for future in futures:
                 future.release()
