@@ -149,3 +149,50 @@ def test_pinned_tasks_submitted_out_of_order_finish_on_a_one_thread_worker() -> 
     ((value, ids),) = next(iter(parts.values())).values()
     assert ids == list(range(len(tiles)))
     np.testing.assert_allclose(value, x @ omega, rtol=0, atol=1e-12)  # numpy as the reference
+
+
+@pytest.mark.timeout(GUARD_SECONDS)
+def test_collect_fetches_live_workers_slots_and_skips_a_lost_one() -> None:
+    # ClientRunner.collect: one task pinned to each worker, gathered straight from it; a
+    # worker lost before the collect gives nothing (its tiles are read again by the pass)
+    # instead of a task waiting forever for a worker that is gone
+    def _exit_worker() -> None:  # nested: pickled by value for the worker
+        import os
+
+        os._exit(1)  # a worker process that dies (its nanny starts another under a new address)
+
+    x, omega, tiles = _terms(7)
+    with open_scheduler(ClusterSection(kind="local", workers=2)) as scheduler, runner_for(scheduler) as runner:
+        assert isinstance(runner, ClientRunner) and runner.slots == 2
+        client = scheduler.client
+        for tile_id, rows, raw, right in tiles:
+            slot = tile_id % 2
+            previous = tile_id - 2 if tile_id >= 2 else -1
+            runner.result(runner.submit(_slots.add_range_product, "lost", "range", (40, 5), tile_id, rows, raw,
+                                        right, slot, previous, where=slot))
+        received = runner.bytes_received
+        parts = runner.collect("lost", "range")  # both workers alive: every tile, once
+        assert sorted(i for _, ids in parts.values() for i in ids) == list(range(len(tiles)))
+        np.testing.assert_allclose(sum(value for value, _ in parts.values()), x @ omega, rtol=0,
+                                   atol=1e-12)  # numpy as the reference
+        assert runner.bytes_received - received >= 2 * 40 * 5 * 8  # two slot accumulators came back
+        for tile_id, rows, raw, right in tiles:  # again, then the worker of slot 1 dies
+            slot = tile_id % 2
+            previous = tile_id - 2 if tile_id >= 2 else -1
+            runner.result(runner.submit(_slots.add_range_product, "again", "range", (40, 5), tile_id, rows, raw,
+                                        right, slot, previous, where=slot))
+        lost = runner.addresses[1]
+        try:
+            client.run(_exit_worker, workers=[lost])
+        except Exception:  # the worker dies while answering
+            pass
+        parts = runner.collect("again", "range")
+    # slot 0's tiles (the even ones) only, summed as numpy sums them
+    assert list(parts) == [0]
+    value, ids = parts[0]
+    assert ids == [i for i in range(len(tiles)) if i % 2 == 0]
+    reference = np.zeros((40, 5))
+    for tile_id, rows, raw, right in tiles:
+        if tile_id % 2 == 0:
+            reference[rows[0]:rows[1]] += raw.T @ right  # numpy as the reference
+    np.testing.assert_allclose(value, reference, rtol=0, atol=1e-12)

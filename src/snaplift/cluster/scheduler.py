@@ -138,11 +138,26 @@ def _distributed(client: Any, section: ClusterOptions, progress: TaskProgress, k
             progress.advance(1)
         return tuple(result)
 
+    _warm_workers(client)
     dashboard = getattr(client, "dashboard_link", None)
     return Scheduler(kind, workers, compute, persist, int(memory), dashboard=dashboard, client=client,
                      progress=progress, description={"kind": kind, "profile": section.profile,
                                                      "workers": workers, "memory_per_worker": int(memory),
                                                      **description})
+
+
+def _warm_workers(client: Any) -> None:
+    """Start each worker's one-time costs (libraries a tile imports on first use, BLAS)
+    now, without waiting: they overlap the driver's scan instead of the first tiles."""
+    from distributed import fire_and_forget
+
+    from snaplift.stream._tasks import warm_process
+
+    try:
+        for address in client.scheduler_info().get("workers", {}):
+            fire_and_forget(client.submit(warm_process, pure=False, workers=[address], allow_other_workers=False))
+    except Exception:  # a warm-up never fails a run: the first tile pays instead
+        pass
 
 
 def _wait_for_workers(client: Any, section: ClusterOptions, n: int) -> None:

@@ -231,14 +231,57 @@ class ClientRunner:
         future.cancel()
 
     def collect(self, key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
-        """The slots of every worker process (``Client.run``: outside the task queue)."""
+        """The slots of every worker process, each fetched straight from its worker.
+
+        One task pinned to each live worker empties its slots (no tile task runs then: the
+        pass has drained), and the client gathers the results from the workers directly.
+        ``Client.run`` went through the scheduler, which received every accumulator and
+        sent it on (two transfers and two (de)serialisations; with a local cluster both in
+        the driver's process): 2 x 170 MB took 0.3-0.5 s that way, 0.1 s directly. A
+        worker lost meanwhile gives nothing; its tiles are read again by the pass.
+        """
         from snaplift.stream._slots import collect_remote
 
+        alive = set(self.client.scheduler_info().get("workers", {}))
+        addresses = [address for address in self.addresses if address in alive]
+        futures = [self.client.submit(collect_remote, key, name, pure=False, workers=[address],
+                                      allow_other_workers=False) for address in addresses]
         out: dict[int, tuple[np.ndarray, list[int]]] = {}
-        for part in self.client.run(collect_remote, key, name).values():
-            self.bytes_received += _sizeof(part)
-            out.update(part)
+        try:
+            finished = [future for future, address in zip(futures, addresses) if self._finished(future, address)]
+            for part in self.client.gather(finished, direct=True):  # from every worker at once
+                self.bytes_received += _sizeof(part)
+                out.update(part)
+        finally:
+            for future in futures:
+                future.release()
         return out
+
+    def _finished(self, future: Any, address: str) -> bool:
+        """Wait for a task pinned to ``address`` (its value stays on the worker); False when
+        that worker was lost meanwhile. The task's own error is raised, with its type."""
+        from concurrent.futures import CancelledError
+
+        def lost() -> bool:
+            return address not in self.client.scheduler_info().get("workers", {})
+
+        while True:
+            try:
+                error = future.exception(timeout=5)
+            except TimeoutError:
+                if lost():
+                    future.cancel()
+                    return False
+                continue
+            except CancelledError:
+                if lost():
+                    return False
+                raise
+            if error is None:
+                return True
+            if lost():
+                return False
+            raise error
 
     def discard(self, key: str, *, abort: bool) -> None:
         from snaplift.stream._slots import discard

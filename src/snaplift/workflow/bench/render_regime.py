@@ -83,6 +83,9 @@ def _workers(w: dict[str, Any], figures: dict[str, Any]) -> list[str]:
         lines.append(f"  with worker processes (cluster: local), same tiles: {loc['seconds']:.2f} s = "
                      f"{loc['ratio']:.2f}x threads (target <= 1.3); sent between processes per pass (engine count) "
                      f"{per_pass} range accumulators of {acc / 2**20:.1f} MiB (target <= {figures['workers'] + 1})")
+        if loc.get("first_seconds") is not None:
+            lines.append(f"  (before it, the first compress on the fresh cluster, also this process's first: "
+                         f"{loc['first_seconds']:.2f} s)")
     return lines
 
 
