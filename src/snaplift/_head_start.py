@@ -20,8 +20,8 @@ import threading
 
 __all__ = ["start", "stop", "HEAD_BYTES", "REQUEST_BYTES"]
 
-#: bytes read ahead at most (the first tiles of two workers on the bench; well inside a 2.5 GiB page cache)
-HEAD_BYTES = 512 * 2**20
+#: bytes read ahead at most (a few tiles; well inside any page cache)
+HEAD_BYTES = 256 * 2**20
 #: bytes per read request
 REQUEST_BYTES = 8 * 2**20
 
