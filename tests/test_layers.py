@@ -38,7 +38,7 @@ LAYERS: tuple[tuple[tuple[str, ...], ...], ...] = (
     (("snaplift.lifting",),),
     # units; the compress methods' registry (names, widths, passes, memory terms: plain arithmetic)
     # and the fit methods' registry (names, summaries, needs: plain data)
-    (("snaplift.units",), ("snaplift._process_memory",), ("snaplift._head_start",), ("snaplift.compress_methods",), ("snaplift.fit_methods",)),
+    (("snaplift.units",), ("snaplift._process_memory",), ("snaplift.compress_methods",), ("snaplift.fit_methods",)),
     (("snaplift.errors",), ("snaplift.__init__",)),
 )
 

@@ -134,27 +134,6 @@ def demo(
         typer.echo(str(summary.path))
 
 
-def _head_start(workflow: Path, overwrite: bool) -> None:
-    """Read the archive file's head while the engine is imported (:mod:`snaplift._head_start`),
-    when the run will read the archive: ``--overwrite``, or no result store at ``output.path``.
-    Anything unexpected in the file is left to the workflow's own checks."""
-    import yaml
-
-    from snaplift import _head_start as head
-
-    try:
-        data = yaml.safe_load(workflow.read_text())
-        folder = workflow.resolve().parent
-        archive, output = data["archive"]["path"], data["output"]["path"]
-        if not isinstance(archive, str) or not isinstance(output, str):
-            return
-        store = folder / Path(output).expanduser()
-        if overwrite or not (store.exists() or store.with_name(store.name + ".staging").exists()):
-            head.start(str(folder / Path(archive).expanduser()))
-    except Exception:  # noqa: BLE001 -- a speed-up only; load_workflow reports a bad workflow
-        return
-
-
 @app.command(epilog=f"fit.method choices -- {fit_methods_help()}")
 @_user_errors
 def run(
@@ -175,8 +154,6 @@ def run(
 
     Example: snaplift run workflows/fin-duct.yaml --log run.log
     """
-    if not dry_run:
-        _head_start(workflow, overwrite)
     from snaplift.workflow.progress import ProgressReporter
     from snaplift.workflow.runner import RunInterrupted, run_workflow
     from snaplift.workflow.schema import load_workflow, resolve_path

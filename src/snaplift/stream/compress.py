@@ -30,7 +30,6 @@ from typing import Any
 
 import numpy as np
 
-from snaplift import _head_start as head_start
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.archive.plan import TilePlan, row_map_bytes
 from snaplift.compress_methods import check_rank, get_method
@@ -164,7 +163,6 @@ def compress(matrix: SnapshotMatrix, plan: TilePlan | None, options: CompressOpt
     >>> result.passes, result.projection_kind                                        # doctest: +SKIP
     (1, 'estimate')
     """
-    head_start.stop()  # the tiles are read from here on (snaplift._head_start)
     in_memory = plan is not None and plan.in_memory
     if runner is None or (in_memory and not isinstance(runner, InlineRunner)):
         # the in-memory path runs its one tile per pass here, whatever the scheduler
