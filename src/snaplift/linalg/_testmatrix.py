@@ -29,6 +29,7 @@ from concurrent.futures import ThreadPoolExecutor
 from typing import Any
 
 import numpy as np
+import scipy.sparse as sparse
 
 from snaplift.linalg._kernels import TEST_BLOCK_ROWS, gaussian_block
 from snaplift.units import usable_cores
@@ -217,8 +218,6 @@ class SparseSignMap:
         Real: its arrays are views of ``columns`` and ``signs`` (int32 pointers, so scipy
         keeps the int32 indices as they are); complex: the signs are copied as complex.
         """
-        import scipy.sparse as sparse
-
         count = r1 - r0
         indptr = np.arange(0, count * self.zeta + 1, self.zeta, dtype=np.int32)
         data = self.signs[r0:r1].reshape(-1).astype(dtype, copy=False)

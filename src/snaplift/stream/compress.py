@@ -270,18 +270,24 @@ def _sketch_passes(m: _PassInputs) -> _Passes:
     """Single-pass sketch (Tropp et al. 2017/2019), finished in the driver; ``check_pass``
     adds one read for exact coefficients."""
     passes, matrix, state, options = m.passes, m.matrix, m.state, m.options
+    saving = None
     if state.pass_number == 0:
         # a field no wider than the co-range sketch is kept whole (exact_layout)
         sketch_read(passes, matrix, m.jobs, state, m.range_width, m.corange_width, m.corange_width)
-        passes.end_pass(state)
-    # the single read is over: its tile buffers go before the finishing temporaries come
-    # (the row test matrices stay: finishing applies them once more)
-    _release_caches(passes.runner, test_matrices=False)
-    sketch = SketchState.from_stream(state.arrays, [f.n_rows for f in matrix.fields], matrix.snapshot_index,
-                                     options.seed, m.source.complex_valued, options.corange_map,
-                                     corange_width=m.corange_width, exact_limit=m.corange_width)
-    preparation, lowrank = finish_sketch(sketch, matrix, m.rank, center=options.center, scale=options.scale,
-                                         row_blocks=m.row_blocks)
+        # checkpointed while the sketch is finished: the finish only reads the state's arrays
+        saving = passes.end_pass(state, behind=True)
+    try:
+        # the single read is over: its tile buffers go before the finishing temporaries come
+        # (the row test matrices stay: finishing applies them once more)
+        _release_caches(passes.runner, test_matrices=False)
+        sketch = SketchState.from_stream(state.arrays, [f.n_rows for f in matrix.fields], matrix.snapshot_index,
+                                         options.seed, m.source.complex_valued, options.corange_map,
+                                         corange_width=m.corange_width, exact_limit=m.corange_width)
+        preparation, lowrank = finish_sketch(sketch, matrix, m.rank, center=options.center, scale=options.scale,
+                                             row_blocks=m.row_blocks)
+    finally:
+        if saving is not None:
+            saving.result()  # before the next save (check pass) or the checkpoint's removal
     if options.check_pass:
         lowrank = _check_pass(passes, matrix, m.jobs, state, preparation, lowrank)
     return preparation, lowrank, sketch.to_arrays()
