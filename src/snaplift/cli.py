@@ -134,6 +134,42 @@ def demo(
         typer.echo(str(summary.path))
 
 
+def _run_command(workflow: Path, overwrite: bool, dry_run: bool, quiet: bool, log: Path | None,
+                 helper: Any) -> Any:
+    """``snaplift run``'s body: the summary of the run, or None after a dry run."""
+    from snaplift.workflow.progress import ProgressReporter
+    from snaplift.workflow.runner import RunInterrupted, run_workflow
+    from snaplift.workflow.schema import load_workflow, resolve_path
+
+    if dry_run:
+        import os
+
+        from snaplift.workflow.guards import check_output_path
+        from snaplift.workflow.scanning import check_workflow
+
+        wf, _, folder = load_workflow(workflow)
+        output = os.path.abspath(resolve_path(folder, wf.output.path))
+        check_output_path(Path(output), resolve_path(folder, wf.archive.path))
+        _, lines = check_workflow(wf, Path(folder))
+        for line in lines:
+            typer.echo(line)
+        typer.echo(f"workflow {workflow} is valid; it would write {output} (staging in {output}.staging, "
+                   f"lease {output}.lease) on a {wf.cluster.kind!r} cluster")
+        return None
+    reporter = ProgressReporter(console=_console(quiet), quiet=quiet, log_file=log)
+    try:
+        summary = run_workflow(workflow, overwrite=overwrite, reporter=reporter, report_helper=helper)
+        for warning in summary.warnings:
+            reporter.message(f"warning: {warning}")
+    except RunInterrupted as stop:
+        reporter.close()
+        typer.echo(f"snaplift: {stop}", err=True)
+        raise typer.Exit(130) from None
+    finally:
+        reporter.close()
+    return summary
+
+
 @app.command(epilog=f"fit.method choices -- {fit_methods_help()}")
 @_user_errors
 def run(
@@ -154,36 +190,17 @@ def run(
 
     Example: snaplift run workflows/fin-duct.yaml --log run.log
     """
-    from snaplift.workflow.progress import ProgressReporter
-    from snaplift.workflow.runner import RunInterrupted, run_workflow
-    from snaplift.workflow.schema import load_workflow, resolve_path
+    from snaplift.report.helper import start_for
 
-    if dry_run:
-        import os
-
-        from snaplift.workflow.guards import check_output_path
-        from snaplift.workflow.scanning import check_workflow
-
-        wf, _, folder = load_workflow(workflow)
-        output = os.path.abspath(resolve_path(folder, wf.output.path))
-        check_output_path(Path(output), resolve_path(folder, wf.archive.path))
-        _, lines = check_workflow(wf, Path(folder))
-        for line in lines:
-            typer.echo(line)
-        typer.echo(f"workflow {workflow} is valid; it would write {output} (staging in {output}.staging, "
-                   f"lease {output}.lease) on a {wf.cluster.kind!r} cluster")
-        return
-    reporter = ProgressReporter(console=_console(quiet), quiet=quiet, log_file=log)
+    # started before the run's own imports (half a second): the helper imports beside them
+    helper = None if dry_run else start_for(workflow)
     try:
-        summary = run_workflow(workflow, overwrite=overwrite, reporter=reporter)
-        for warning in summary.warnings:
-            reporter.message(f"warning: {warning}")
-    except RunInterrupted as stop:
-        reporter.close()
-        typer.echo(f"snaplift: {stop}", err=True)
-        raise typer.Exit(130) from None
+        summary = _run_command(workflow, overwrite, dry_run, quiet, log, helper)
     finally:
-        reporter.close()
+        if helper is not None:
+            helper.close()
+    if summary is None:
+        return
     statuses = ", ".join(f"{name} {record.get('status')}" for name, record in summary.stages.items())
     if quiet:
         typer.echo(str(summary.path))
