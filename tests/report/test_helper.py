@@ -44,7 +44,8 @@ def test_helper_draws_the_page_drawn_in_process(wave_stores: dict[str, Path], tm
     assert answer["figures"] == list(expected.figures)  # same figures, same order
     assert answer["read"] == expected.archive_values_read
     for name in expected.figures:  # the Agg canvas draws the same pixels in either process
-        assert (report_folder(store) / f"{name}.png").read_bytes() == (tmp_path / "in-process" / f"{name}.png").read_bytes()
+        drawn = (report_folder(store) / f"{name}.png").read_bytes()
+        assert drawn == (tmp_path / "in-process" / f"{name}.png").read_bytes(), name
     assert helper.process.returncode == 0
     assert _leftovers(tmp_path) == []
 
