@@ -94,6 +94,8 @@ def test_which_runs_get_a_helper(tmp_path: Path, monkeypatch: pytest.MonkeyPatch
     (tmp_path / "a.h5").write_bytes(b"\0" * 1000)
     started: list[bool] = []
     monkeypatch.setattr(ReportHelper, "start", classmethod(lambda cls: started.append(True) or "helper"))
+    monkeypatch.delenv(helper_module.HELPER_VARIABLE, raising=False)
+    monkeypatch.setattr(helper_module, "idle_core", lambda: True)
 
     def helper_for(**sections) -> object:
         data = {"archive": {"path": "a.h5", "fields": ["u"]}, **sections}
@@ -107,9 +109,14 @@ def test_which_runs_get_a_helper(tmp_path: Path, monkeypatch: pytest.MonkeyPatch
     monkeypatch.setattr(helper_module, "HELPER_ARCHIVE_BYTES", 10**6)
     (tmp_path / "w.yaml").write_text("archive: [unclosed")
     assert start_for(tmp_path / "w.yaml") is None  # the run itself says what is wrong
+    monkeypatch.setattr(helper_module, "idle_core", lambda: False)
+    assert helper_for() is None  # a busy machine: no core for the helper to use
+    monkeypatch.setenv(helper_module.HELPER_VARIABLE, "1")
+    assert helper_for() == "helper"  # unless asked for (benchmarks)
     monkeypatch.setenv(helper_module.HELPER_VARIABLE, "0")
+    monkeypatch.setattr(helper_module, "idle_core", lambda: True)
     assert helper_for() is None
-    assert started == [True]
+    assert started == [True, True]
 
 
 def test_snaplift_run_leaves_no_helper_behind(wave_stores: dict[str, Path], tmp_path: Path) -> None:
@@ -118,7 +125,7 @@ def test_snaplift_run_leaves_no_helper_behind(wave_stores: dict[str, Path], tmp_
                 "compress": {"method": "tsqr", "rank": 4}, "output": {"path": "r.zarr"}, "cluster": "threads"}
     (tmp_path / "w.yaml").write_text(yaml.safe_dump(workflow))
     mark = f"{os.getpid()}-{time.time()}"
-    env = {**{k: v for k, v in os.environ.items() if k != helper_module.HELPER_VARIABLE}, "SNAPLIFT_TEST_MARK": mark}
+    env = {**os.environ, helper_module.HELPER_VARIABLE: "1", "SNAPLIFT_TEST_MARK": mark}  # whatever the load
     done = subprocess.run([str(Path(sys.executable).parent / "snaplift"), "run", str(tmp_path / "w.yaml"), "--quiet"],
                           capture_output=True, text=True, env=env, timeout=300)
     assert done.returncode == 0, done.stderr

@@ -31,12 +31,13 @@ import sys
 from pathlib import Path
 from typing import IO, Any
 
-__all__ = ["HELPER_ARCHIVE_BYTES", "HELPER_VARIABLE", "ReportHelper", "main", "start_for"]
+__all__ = ["HELPER_ARCHIVE_BYTES", "HELPER_VARIABLE", "ReportHelper", "idle_core", "main", "start_for"]
 
 #: the helper is started only for archives up to this size on disk: beyond it the run takes
 #: seconds or more and the report's start-up (about half a second) is not worth a process
 HELPER_ARCHIVE_BYTES = 64 * 2**20
-#: ``SNAPLIFT_REPORT_HELPER=0`` draws the report in the run's own process (as ``snaplift report`` does)
+#: ``SNAPLIFT_REPORT_HELPER=0`` draws the report in the run's own process (as ``snaplift report`` does);
+#: ``1`` starts the helper even on a busy machine (benchmarks); unset: by the load (:func:`idle_core`)
 HELPER_VARIABLE = "SNAPLIFT_REPORT_HELPER"
 #: seconds the helper gets to clean up after SIGTERM before it is killed
 STOP_SECONDS = 5.0
@@ -56,14 +57,28 @@ def _archive_bytes(folder: Path, path: Any) -> int | None:
     return total
 
 
+def idle_core() -> bool:
+    """Whether the machine has a core to spare: the 1-minute load average at most the cores
+    this process may use less one. The helper pays only on an idle core; on a busy machine
+    its second process (imports done twice, a second drawing process) costs more than it saves."""
+    try:
+        cores = len(os.sched_getaffinity(0))
+    except AttributeError:  # pragma: no cover - platforms without affinity
+        cores = os.cpu_count() or 1
+    return cores > 1 and os.getloadavg()[0] <= cores - 1
+
+
 def start_for(workflow: str | Path) -> ReportHelper | None:
     """A helper for the run of ``workflow`` when it will draw a report of a small archive
-    (output.report on, the archive's files at most :data:`HELPER_ARCHIVE_BYTES`), else None.
+    (output.report on, the archive's files at most :data:`HELPER_ARCHIVE_BYTES`) and the
+    machine has an idle core (:func:`idle_core`), else None. ``SNAPLIFT_REPORT_HELPER=1``
+    starts one whatever the load, ``0`` never.
 
     The workflow is only peeked at here (a file that does not parse gets no helper; the
     run itself then says what is wrong).
     """
-    if os.environ.get(HELPER_VARIABLE, "1") == "0":
+    setting = os.environ.get(HELPER_VARIABLE, "")
+    if setting == "0" or (setting != "1" and not idle_core()):
         return None
     import yaml
 
@@ -206,7 +221,7 @@ def _forked(jobs: list[Any]) -> list[Any]:
         (mine if side == 0 else theirs).append(i)
         load[side] += jobs[i].weight
     results: dict[int, Any] = {}
-    if not theirs:
+    if not theirs or (os.environ.get(HELPER_VARIABLE) != "1" and not idle_core()):
         return [draw_job(job) for job in jobs]
     reading, writing = os.pipe()
     pid = os.fork()
