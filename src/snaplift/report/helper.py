@@ -25,6 +25,7 @@ from __future__ import annotations
 
 import json
 import os
+import select
 import signal
 import subprocess
 import sys
@@ -41,6 +42,9 @@ HELPER_ARCHIVE_BYTES = 64 * 2**20
 HELPER_VARIABLE = "SNAPLIFT_REPORT_HELPER"
 #: seconds the helper gets to clean up after SIGTERM before it is killed
 STOP_SECONDS = 5.0
+#: seconds the run waits for the helper's page (a small archive's page takes about one),
+#: and the helper for its forked copy's figures, before doing the work itself
+ANSWER_SECONDS = 120.0
 
 
 def _archive_bytes(folder: Path, path: Any) -> int | None:
@@ -133,7 +137,9 @@ class ReportHelper:
         try:
             process.stdin.write((json.dumps({"store": str(store)}) + "\n").encode())
             process.stdin.close()
-            line = process.stdout.readline()
+            # one line, written whole; a helper that hangs is stopped by close() and the run draws
+            ready, _, _ = select.select([process.stdout], [], [], ANSWER_SECONDS)
+            line = process.stdout.readline() if ready else b""
         except OSError:  # the helper is gone (broken pipe)
             return None
         try:
@@ -224,7 +230,12 @@ def _forked(jobs: list[Any]) -> list[Any]:
     if not theirs or (os.environ.get(HELPER_VARIABLE) != "1" and not idle_core()):
         return [draw_job(job) for job in jobs]
     reading, writing = os.pipe()
-    pid = os.fork()
+    try:
+        pid = os.fork()
+    except OSError:  # no process to spare (limits, memory): all of them here
+        os.close(reading)
+        os.close(writing)
+        return [draw_job(job) for job in jobs]
     if pid == 0:  # the copy: draw, send, leave without running any exit handler of the helper
         code = 1
         try:
@@ -241,11 +252,13 @@ def _forked(jobs: list[Any]) -> list[Any]:
         for i in mine:
             results[i] = draw_job(jobs[i])
         with os.fdopen(reading, "rb") as pipe:
-            data = pipe.read()
-        _, status = os.waitpid(pid, 0)
-        reaped = True
-        if status == 0:
-            results.update(pickle.loads(data))
+            ready, _, _ = select.select([pipe], [], [], ANSWER_SECONDS)
+            data = pipe.read() if ready else b""
+        if ready:
+            _, status = os.waitpid(pid, 0)
+            reaped = True
+            if status == 0:
+                results.update(pickle.loads(data))
     finally:
         if not reaped:
             try:
