@@ -63,13 +63,15 @@ def _archive_bytes(folder: Path, path: Any) -> int | None:
 
 def idle_core() -> bool:
     """Whether the machine has a core to spare: the 1-minute load average at most the cores
-    this process may use less one. The helper pays only on an idle core; on a busy machine
-    its second process (imports done twice, a second drawing process) costs more than it saves."""
+    this process may use less half a core (a run's own earlier runs count in it: a few runs
+    in a row on a quiet 2-core machine lift it by a few tenths). The helper pays only with an
+    idle core; on a busy machine its second process (imports done twice, a second drawing
+    process) costs about as much as it saves."""
     try:
         cores = len(os.sched_getaffinity(0))
     except AttributeError:  # pragma: no cover - platforms without affinity
         cores = os.cpu_count() or 1
-    return cores > 1 and os.getloadavg()[0] <= cores - 1
+    return cores > 1 and os.getloadavg()[0] <= cores - 0.5
 
 
 def start_for(workflow: str | Path) -> ReportHelper | None:
@@ -82,8 +84,8 @@ def start_for(workflow: str | Path) -> ReportHelper | None:
     run itself then says what is wrong).
     """
     setting = os.environ.get(HELPER_VARIABLE, "")
-    if setting == "0" or (setting != "1" and not idle_core()):
-        return None
+    if not hasattr(os, "fork") or setting == "0" or (setting != "1" and not idle_core()):
+        return None  # (fork, process groups and a load average: POSIX)
     import yaml
 
     try:
