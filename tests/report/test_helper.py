@@ -140,3 +140,24 @@ def test_snaplift_run_leaves_no_helper_behind(wave_stores: dict[str, Path], tmp_
             return False
 
     assert [p.pid for p in psutil.process_iter() if ours(p)] == []  # neither the helper nor its copy
+
+
+def test_ctrl_c_while_the_report_is_drawn(wave_stores: dict[str, Path], tmp_path: Path,
+                                          monkeypatch: pytest.MonkeyPatch) -> None:
+    # the store is committed before the report: Ctrl-C then says so (not "nothing committed")
+    from snaplift.report import page
+
+    shutil.copy(wave_stores["archive"], tmp_path / "waves.h5")
+    workflow = {"archive": {"path": "waves.h5", "fields": ["p"], "time": "t", "snapshots": {"stop": 30}},
+                "compress": {"method": "tsqr", "rank": 4}, "output": {"path": "r.zarr"}, "cluster": "threads"}
+    (tmp_path / "w.yaml").write_text(yaml.safe_dump(workflow))
+
+    def interrupted(*args, **kwargs):
+        raise KeyboardInterrupt
+
+    monkeypatch.setattr(page, "render_report", interrupted)
+    with pytest.raises(runner.ReportInterrupted, match="r.zarr is complete; run 'snaplift report"):
+        runner.run_workflow(tmp_path / "w.yaml")
+    assert (tmp_path / "r.zarr" / "zarr.json").is_file()
+    assert not (tmp_path / "r.zarr.report").exists() and not (tmp_path / "r.zarr.staging").exists()
+    assert _leftovers(tmp_path) == []

@@ -58,7 +58,8 @@ from snaplift.workflow.scanning import Scanned, scan_stage
 from snaplift.workflow.schema import Workflow, load_workflow, resolve_path, section_fingerprint
 from snaplift.workflow.stages import STAGES, StageContext, StageRecord
 
-__all__ = ["FAULT_VARIABLE", "STAGES", "RunInterrupted", "RunSummary", "run_validated", "run_workflow"]
+__all__ = ["FAULT_VARIABLE", "STAGES", "ReportInterrupted", "RunInterrupted", "RunSummary", "run_validated",
+           "run_workflow"]
 
 Progress = Callable[[str], None]
 #: fault injection for crash-safety tests: ``<stage>:<units>`` kills this process with
@@ -75,6 +76,10 @@ CAUTION = (
 
 class RunInterrupted(KeyboardInterrupt):
     """Ctrl-C or SIGTERM stopped the run; ``str()`` says how to resume."""
+
+
+class ReportInterrupted(RunInterrupted):
+    """Ctrl-C or SIGTERM while the report was drawn: the store is committed and complete."""
 
 
 @dataclass(frozen=True)
@@ -232,6 +237,8 @@ def run_validated(workflow: Workflow, text: str, folder: Path, *, overwrite: boo
                 say("--overwrite: every stage is recomputed from the archive")
             summary = _run_stages(workflow, text, folder, store, lease, reporter, say, started, checked,
                                   report_helper)
+    except ReportInterrupted:
+        raise  # the store is committed (its staging area is gone): nothing to keep or clean
     except KeyboardInterrupt as error:
         command = f"snaplift run {workflow_path}" if workflow_path else "the same run"
         kept = store is not None and store.has_progress
@@ -348,6 +355,16 @@ def _write_report(path: Path, say: Progress, helper: ReportHelper | None = None)
     A report that cannot be drawn does not undo a complete store: the run says why and
     ``snaplift report RESULT`` can be run again.
     """
+    try:
+        return _draw_report(path, say, helper)
+    except KeyboardInterrupt:
+        # the helper (if any) is stopped by its owner and removes its staging folder; a page
+        # drawn here had not begun its folder or removes it (render_report)
+        raise ReportInterrupted(f"interrupted while drawing the report; the result store {path} is complete; "
+                                f"run 'snaplift report {path}' to draw the report") from None
+
+
+def _draw_report(path: Path, say: Progress, helper: ReportHelper | None) -> Path | None:
     answer = helper.render(path) if helper is not None else None
     if answer is not None:
         if "warning" in answer:
