@@ -29,6 +29,7 @@ import select
 import signal
 import subprocess
 import sys
+import time
 from pathlib import Path
 from typing import IO, Any
 
@@ -63,15 +64,26 @@ def _archive_bytes(folder: Path, path: Any) -> int | None:
 
 def idle_core() -> bool:
     """Whether the machine has a core to spare: the 1-minute load average at most the cores
-    this process may use less half a core (a run's own earlier runs count in it: a few runs
-    in a row on a quiet 2-core machine lift it by a few tenths). The helper pays only with an
-    idle core; on a busy machine its second process (imports done twice, a second drawing
-    process) costs about as much as it saves."""
+    this process may use less half a core, or (the average lags a minute behind: a machine
+    that has just become quiet) no other task runnable at this moment (``/proc/loadavg``).
+    The helper pays only with an idle core; on a busy machine its second process (imports
+    done twice, a second drawing process) costs about as much as it saves."""
     try:
         cores = len(os.sched_getaffinity(0))
     except AttributeError:  # pragma: no cover - platforms without affinity
         cores = os.cpu_count() or 1
-    return cores > 1 and os.getloadavg()[0] <= cores - 0.5
+    if cores < 2:
+        return False
+    if os.getloadavg()[0] <= cores - 0.5:
+        return True
+    runnable = []
+    for _ in range(3):  # the fewest of three looks 2 ms apart: a task that only passes by is not load
+        try:  # "0.52 0.58 0.59 2/345 12345": runnable tasks now (this one among them) / all tasks
+            runnable.append(int(Path("/proc/loadavg").read_text().split()[3].split("/")[0]))
+        except (OSError, ValueError, IndexError):
+            return False
+        time.sleep(0.002)
+    return min(runnable) - 1 <= cores - 2
 
 
 def start_for(workflow: str | Path) -> ReportHelper | None:
