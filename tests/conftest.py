@@ -74,7 +74,7 @@ def _no_run_report(request: pytest.FixtureRequest, monkeypatch: pytest.MonkeyPat
     if request.node.get_closest_marker("run_report") is None and "tests/report" not in str(request.node.path):
         from snaplift.workflow import runner
 
-        monkeypatch.setattr(runner, "_write_report", lambda path, say: None)
+        monkeypatch.setattr(runner, "_write_report", lambda path, say, helper=None: None)
 
 
 @pytest.fixture(scope="session")

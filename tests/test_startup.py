@@ -29,3 +29,10 @@ def test_the_runner_imports_no_lazy_array_machinery(heavy):
     # dask.array pulls in xarray and pandas (~0.3-0.5 s); a run builds a lazy array only
     # for a large stored basis, and a distributed client only for worker processes
     assert heavy not in _imported_after("import snaplift.workflow.runner")
+
+
+@pytest.mark.parametrize("heavy", ["xarray", "pandas", "scipy.linalg", "dask"])
+def test_the_report_imports_no_xarray_or_scipy(heavy):
+    # the report reads a small store straight from zarr; xarray and pandas were a third of
+    # a small run's report, scipy.linalg a fifth (the report helper imports this beside a run)
+    assert heavy not in _imported_after("import snaplift.report.page; import snaplift.report.helper")

@@ -146,3 +146,25 @@ def test_field_names_from_a_netcdf_archive_written_by_xarray(tmp_path: Path) -> 
     assert [a.title for a in field_axes(view.modes, "T")] == ["streamwise position [m]"]
     # 2 Hz in the archive's milliseconds, shown in Hz (the wave's own frequency)
     assert sorted(abs(f) for f in view.spectrum["frequency"].values) == pytest.approx([0.0, 2.0, 2.0], abs=1e-9)
+
+
+def test_the_light_view_reads_what_xarray_reads(wave_stores):
+    # the report reads the store straight from zarr (no xarray import); xarray, the reference,
+    # must see the same variables, dimensions, coordinates, attributes and values
+    import numpy as np
+
+    full, light = open_store(wave_stores["rank6"]), open_store(wave_stores["rank6"], light=True)
+    assert light.fields == full.fields
+    for group in ("spectrum", "modes", "diagnostics", "basis", "prepare", "operator"):
+        reference, ours = getattr(full, group), getattr(light, group)
+        assert list(ours.data_vars) == list(map(str, reference.data_vars)), group
+        assert sorted(ours.coords) == sorted(map(str, reference.coords)), group
+        assert ours.sizes == dict(reference.sizes) and ours.attrs == dict(reference.attrs), group
+        for name in reference.variables:
+            assert ours[str(name)].dims == tuple(reference[name].dims), (group, name)
+            assert ours[str(name)].attrs == dict(reference[name].attrs), (group, name)
+            if reference[name].dtype.kind in "fcib":
+                np.testing.assert_array_equal(ours[str(name)].values, reference[name].values)
+    k = light.spectrum.sizes["mode"] - 1  # one mode of a 2-D field, as the mode figure reads it
+    np.testing.assert_array_equal(light.modes["u"].isel(mode=k).values, full.modes["u"].isel(mode=k).values)
+    assert [a.dim for a in field_axes(light.modes, "u")] == [a.dim for a in field_axes(full.modes, "u")]

@@ -395,8 +395,9 @@ def point_figure(view: StoreView, fields: list[str], modes: list[int]) -> Figure
     """Fields of one grid point (a small state): amplitude x mode of the leading modes as bars."""
     amplitude = view.complex_amplitude
     frequency = np.asarray(view.spectrum["frequency"].values, dtype=np.float64)
-    figure = _figure(10, 3.8)
-    real_ax, magnitude_ax = figure.subplots(1, 2)
+    # fixed margins (three-line tick labels below, the figure title above): no layout engine
+    figure, grid = _fixed(10, 3.8, 1, 2, left=0.75, right=0.05, top=0.6, bottom=0.62, wgap=0.7)
+    real_ax, magnitude_ax = grid[0]
     width = 0.8 / max(1, len(fields))
     positions = np.arange(len(modes))
     for i, field in enumerate(fields):
@@ -416,7 +417,8 @@ def point_figure(view: StoreView, fields: list[str], modes: list[int]) -> Figure
         _style(ax)
     real_ax.legend(fontsize=8, framealpha=0.9)
     figure.suptitle(f"leading modes of the one-point fields (amplitude x mode, field units; f in "
-                    f"{view.frequency_unit}, growth in {view.growth_unit})", x=0.01, ha="left", fontsize=11)
+                    f"{view.frequency_unit}, growth in {view.growth_unit})", x=0.01, y=0.985, ha="left", va="top",
+                    fontsize=11)
     return figure
 
 

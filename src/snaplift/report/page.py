@@ -18,6 +18,7 @@ import os
 import shutil
 import time as _time
 import uuid
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -36,13 +37,13 @@ from snaplift.report.figures import (
     probe_figure,
     spectrum_figure,
 )
-from snaplift.results.forecast import forecast_fields
-from snaplift.results.forecast_output import FORECAST_CAUTION, overlap_snapshots
-from snaplift.results.reading import StoreView, field_axes, leading_modes, open_group, open_store
+from snaplift.results.forecast import FORECAST_CAUTION, forecast_fields, overlap_snapshots
+from snaplift.results.reading import StoreView, field_axes, leading_modes, open_store
 from snaplift.results.source import archive_snapshots, open_source
-from snaplift.results.store import open_result
+from snaplift.results.store import open_result, read_group
 
-__all__ = ["REPORT_CAUTION", "ReportSummary", "render_report", "report_folder"]
+__all__ = ["REPORT_CAUTION", "FigureJob", "ReportSummary", "draw_job", "figure_jobs", "render_report",
+           "report_folder"]
 
 REPORT_CAUTION = FORECAST_CAUTION.replace("This forecast comes from", "These results come from")
 PROBE_SNAPSHOTS = 240
@@ -123,8 +124,7 @@ def _probes(view: StoreView, fields: list[str]) -> tuple[list[Probe], str, int]:
     """Forecast from the first snapshot over the first run at one probe point per field."""
     length = view.time.size
     if "runs" in _group_names(view):
-        runs = open_group(view.path, "runs")
-        length = int(np.asarray(runs["run_length"].values)[0])
+        length = int(np.asarray(read_group(view.path, "runs")["run_length"])[0])
     columns = slice(0, length)
     points = {f: p for f in fields if (p := _probe_points(view, f, columns)) is not None}
     if not points:
@@ -300,8 +300,86 @@ def _page(view: StoreView, figures: list[tuple[str, str, bytes]], seconds: float
     return "\n".join(parts)
 
 
-def render_report(store: str | Path, out: str | Path | None = None, *, leading: int = LEADING_MODES) -> ReportSummary:
+@dataclass(frozen=True)
+class FigureJob:
+    """One figure of the page: ``draw()`` returns the figure (or None) and its caption.
+
+    ``weight`` is its rough drawing cost (seconds on a small store, relative counts), by
+    which :func:`render_report`'s ``split`` may share the figures between processes;
+    ``reads`` marks a job that reads the store or the archive again (the forecast panel):
+    it stays in the process that opened them.
+    """
+
+    name: str
+    draw: Callable[[], tuple[Any, str]]
+    weight: float = 1.0
+    reads: bool = False
+
+
+Rendered = tuple[str, str, bytes]  # name, caption, PNG
+Split = Callable[[list[FigureJob]], list[Rendered | None]]
+
+
+def draw_job(job: FigureJob) -> Rendered | None:
+    """The job's PNG (None when it has no figure)."""
+    figure, caption = job.draw()
+    return None if figure is None else (job.name, caption, _png(figure))
+
+
+def _serial(jobs: list[FigureJob]) -> list[Rendered | None]:
+    return [draw_job(job) for job in jobs]
+
+
+def figure_jobs(view: StoreView, leading: int = LEADING_MODES) -> tuple[list[FigureJob], dict[str, int]]:
+    """The page's figures in page order, and a mapping that holds, once the forecast job has
+    run, the count of archive values it read (``"read"``)."""
+    fields = view.fields
+    read = {"read": 0}
+    jobs = [
+        FigureJob("energy", lambda: (energy_figure(view), "Energy captured by the basis: dashed line the compress "
+                                     "rank, dash-dot the fit rank.")),
+        FigureJob("eigenvalues", lambda: (eigenvalue_figure(view), "Eigenvalues with the unit circle; discs trusted, "
+                                          "triangles untrusted (held-out residual above the threshold); area by "
+                                          "amplitude.")),
+        FigureJob("spectrum", lambda: (spectrum_figure(view, fields[:6]), "Growth rate and peak amplitude per field "
+                                       "(field units) against frequency."), 1.0 + 0.5 * len(fields[:6])),
+    ]
+    chosen = leading_modes(view, leading)
+    points = [f for f in fields if int(np.prod(view.modes[f].shape[1:])) == 1]
+
+    def modes(field: str) -> Callable[[], tuple[Any, str]]:
+        return lambda: (mode_figure(view, field, chosen), f"Leading modes of {field}: real part and magnitude of "
+                                                          "amplitude x mode in field units.")
+
+    for field in fields:
+        if field not in points:
+            cells = int(np.prod(view.modes[field].shape[1:]))
+            jobs.append(FigureJob(f"modes_{field}", modes(field), 2.0 * len(chosen) + cells / 2e5))
+    if points:
+        jobs.append(FigureJob("modes_points", lambda: (point_figure(view, points, chosen), "Leading modes of the "
+                              "one-point fields: real part and magnitude of amplitude x mode.")))
+    jobs.append(FigureJob("errors", lambda: (error_figure(view), "Relative error per snapshot: projection on the "
+                                             "basis and reconstruction by the model."), 0.7))
+
+    def forecast() -> tuple[Any, str]:
+        probes, note, read["read"] = _probes(view, fields[:6])
+        if not probes:
+            return None, ""
+        return (probe_figure(probes, view.time_unit, note),
+                "Forecast from the first snapshot against the archive and the projection on the basis at the point "
+                "of largest variance of each field." + (f" Note: {note}." if note else ""))
+
+    jobs.append(FigureJob("forecast", forecast, 1.5, reads=True))
+    return jobs, read
+
+
+def render_report(store: str | Path, out: str | Path | None = None, *, leading: int = LEADING_MODES,
+                  split: Split | None = None) -> ReportSummary:
     """Render the report of a complete result store to ``out`` (default ``RESULT.report/``).
+
+    ``split`` draws the figure jobs (default one after the other, here); the report
+    helper of ``snaplift run`` shares them between two processes
+    (:mod:`snaplift.report.helper`).
 
     Example
     -------
@@ -310,39 +388,13 @@ def render_report(store: str | Path, out: str | Path | None = None, *, leading: 
     PosixPath('results/fin-duct.zarr.report/index.html')
     """
     started = _time.perf_counter()
-    view = open_store(store)
+    view = open_store(store, light=True)
     folder = Path(out) if out is not None else report_folder(store)
     if folder.exists() and not (folder / MARKER).exists():
         raise ResultStoreError(f"{folder} exists and is not a snaplift report; remove it or choose another folder")
-    fields = view.fields
-    figures: list[tuple[str, str, bytes]] = []
-
-    def add(name: str, caption: str, figure: Any) -> None:
-        if figure is not None:
-            figures.append((name, caption, _png(figure)))
-
-    add("energy", "Energy captured by the basis: dashed line the compress rank, dash-dot the fit rank.",
-        energy_figure(view))
-    add("eigenvalues", "Eigenvalues with the unit circle; discs trusted, triangles untrusted (held-out residual "
-                       "above the threshold); area by amplitude.", eigenvalue_figure(view))
-    add("spectrum", "Growth rate and peak amplitude per field (field units) against frequency.",
-        spectrum_figure(view, fields[:6]))
-    chosen = leading_modes(view, leading)
-    points = [f for f in fields if int(np.prod(view.modes[f].shape[1:])) == 1]
-    for field in fields:
-        if field not in points:
-            add(f"modes_{field}", f"Leading modes of {field}: real part and magnitude of amplitude x mode in field "
-                                  "units.", mode_figure(view, field, chosen))
-    if points:
-        add("modes_points", "Leading modes of the one-point fields: real part and magnitude of amplitude x mode.",
-            point_figure(view, points, chosen))
-    add("errors", "Relative error per snapshot: projection on the basis and reconstruction by the model.",
-        error_figure(view))
-    probes, note, read = _probes(view, fields[:6])
-    if probes:
-        add("forecast", "Forecast from the first snapshot against the archive and the projection on the basis at "
-                        "the point of largest variance of each field." + (f" Note: {note}." if note else ""),
-            probe_figure(probes, view.time_unit, note))
+    jobs, read_count = figure_jobs(view, leading)
+    figures = [rendered for rendered in (split or _serial)(jobs) if rendered is not None]
+    read = read_count["read"]
     seconds = _time.perf_counter() - started
     staging = folder.with_name(f"{folder.name}.staging-{uuid.uuid4().hex[:8]}")
     staging.mkdir(parents=True)

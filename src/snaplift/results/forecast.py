@@ -23,13 +23,20 @@ from __future__ import annotations
 from pathlib import Path
 
 import numpy as np
-import scipy.linalg
 
 from snaplift import __version__
 from snaplift.errors import ResultStoreError
-from snaplift.results.store import open_result, store_array, store_group
+from snaplift.results.reading import StoreView
+from snaplift.results.store import open_result, read_group, store_array, store_group
 
-__all__ = ["forecast_fields", "is_complex_data"]
+__all__ = ["FORECAST_CAUTION", "forecast_fields", "is_complex_data", "overlap_snapshots"]
+
+FORECAST_CAUTION = (
+    "This forecast comes from a data-driven linear surrogate. It is valid only near the data it was "
+    "fitted on: other operating points, geometries or times beyond the fitted span are extrapolation. "
+    "Designs with structural, thermal or safety consequences rest on validated simulation, experiment, "
+    "the applicable codes and licensed engineering judgement, not on this tool's forecasts."
+)
 
 
 def forecast_fields(store: str | Path, snapshot: int, n_steps: int,
@@ -134,7 +141,9 @@ def _amplitudes(root, column: int, eigenvalue: np.ndarray, store) -> np.ndarray:
     state = np.asarray(root["basis/coefficient"][:, column], dtype=np.complex128)
     if "fixed_point_coefficient" in root["operator"]:
         state = state - np.asarray(root["operator/fixed_point_coefficient"][...])
-    amplitude, *_ = scipy.linalg.lstsq(modes, state, lapack_driver="gelsd")
+    # LAPACK gelsd with singular values below eps * largest cut, as scipy.linalg.lstsq's
+    # default; numpy's own (importing scipy.linalg cost the report a fifth of a second)
+    amplitude, *_ = np.linalg.lstsq(modes, state, rcond=np.finfo(np.float64).eps)
     return amplitude
 
 
@@ -146,3 +155,25 @@ def _offset(root, name: str) -> np.ndarray | float:
         if key in prepare:
             return np.asarray(prepare[key][...], dtype=np.float64)
     return 0.0
+
+
+def overlap_snapshots(view: StoreView, column: int, n_steps: int, archive_length: int | None) -> np.ndarray:
+    """Archive snapshot index of each step (-1 where the forecast does not overlap the archive)."""
+    index = np.asarray(view.diagnostics["snapshot_index"].values, dtype=np.int64)
+    runs = read_group(view.path, "runs") if "runs" in open_result(view.path) else None
+    start, stop = 0, index.size
+    if runs is not None:
+        starts = np.asarray(runs["run_start"], dtype=np.int64)
+        lengths = np.asarray(runs["run_length"], dtype=np.int64)
+        which = int(np.searchsorted(starts, column, side="right") - 1)
+        start, stop = int(starts[which]), int(starts[which] + lengths[which])
+        last_run = which == starts.size - 1
+    else:
+        last_run = True
+    run_index = index[start:stop]
+    every = int(np.median(np.diff(run_index))) if run_index.size > 1 else 1
+    steps = index[column] + every * np.arange(n_steps + 1, dtype=np.int64)
+    # within the run's fitted snapshots; past them only if the archive goes on (last run)
+    limit = (archive_length if archive_length is not None else int(run_index[-1]) + 1) if last_run \
+        else int(run_index[-1]) + 1
+    return np.where(steps < limit, steps, -1)

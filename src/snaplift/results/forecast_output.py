@@ -25,42 +25,13 @@ import psutil
 import xarray as xr
 
 from snaplift.errors import ArchiveError, ResultStoreError
-from snaplift.results.forecast import forecast_fields
-from snaplift.results.reading import StoreView, open_group, open_store
+from snaplift.results.forecast import FORECAST_CAUTION, forecast_fields, overlap_snapshots
+from snaplift.results.reading import StoreView, open_store
 from snaplift.results.source import archive_snapshots, open_source
-from snaplift.results.store import open_result
 
 __all__ = ["FORECAST_CAUTION", "archive_fields", "forecast_dataset", "overlap_snapshots", "write_forecast"]
 
-FORECAST_CAUTION = (
-    "This forecast comes from a data-driven linear surrogate. It is valid only near the data it was "
-    "fitted on: other operating points, geometries or times beyond the fitted span are extrapolation. "
-    "Designs with structural, thermal or safety consequences rest on validated simulation, experiment, "
-    "the applicable codes and licensed engineering judgement, not on this tool's forecasts."
-)
 FORECAST_KEY = "snaplift_forecast"
-
-
-def overlap_snapshots(view: StoreView, column: int, n_steps: int, archive_length: int | None) -> np.ndarray:
-    """Archive snapshot index of each step (-1 where the forecast does not overlap the archive)."""
-    index = np.asarray(view.diagnostics["snapshot_index"].values, dtype=np.int64)
-    runs = open_group(view.path, "runs") if "runs" in _groups(view) else None
-    start, stop = 0, index.size
-    if runs is not None:
-        starts = np.asarray(runs["run_start"].values, dtype=np.int64)
-        lengths = np.asarray(runs["run_length"].values, dtype=np.int64)
-        which = int(np.searchsorted(starts, column, side="right") - 1)
-        start, stop = int(starts[which]), int(starts[which] + lengths[which])
-        last_run = which == starts.size - 1
-    else:
-        last_run = True
-    run_index = index[start:stop]
-    every = int(np.median(np.diff(run_index))) if run_index.size > 1 else 1
-    steps = index[column] + every * np.arange(n_steps + 1, dtype=np.int64)
-    # within the run's fitted snapshots; past them only if the archive goes on (last run)
-    limit = (archive_length if archive_length is not None else int(run_index[-1]) + 1) if last_run \
-        else int(run_index[-1]) + 1
-    return np.where(steps < limit, steps, -1)
 
 
 def archive_fields(view: StoreView) -> list[str]:
@@ -70,10 +41,6 @@ def archive_fields(view: StoreView) -> list[str]:
     lifted = dict(view.prepare.attrs.get("lifted", {})) if view.prepare is not None else {}
     own = [f for f in view.fields if f not in lifted]
     return own or list(view.fields)
-
-
-def _groups(view: StoreView) -> list[str]:
-    return list(open_result(view.path).group_keys())
 
 
 def forecast_dataset(store: str | Path, snapshot: int, n_steps: int, *, compare: bool = False) -> xr.Dataset:

@@ -10,23 +10,36 @@ back to index positions and unlabelled units, so old and new stores read the sam
 Complex arrays (eigenvalues, modes) are read without CF masking or scaling: a complex
 ``_FillValue`` would otherwise be decoded through a float path. Should xarray still fail
 on a group, the group is rebuilt from the zarr arrays and their ``dimension_names``.
+
+The report reads a store with ``open_store(path, light=True)``: each group as a
+:class:`Group` of numpy arrays read straight from zarr, with the same reading interface
+(``group[name].values / .dims / .attrs / .shape``, ``group.attrs / .sizes / .coords /
+.data_vars``). xarray (and pandas behind it) is imported only when a group is opened
+through it: on a small store that import cost more than reading the whole store.
 """
 
 from __future__ import annotations
 
 import warnings
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import xarray as xr
 import zarr
 
 from snaplift.errors import ResultStoreError
 from snaplift.results.store import open_result, store_group
 
-__all__ = ["Axis", "StoreView", "field_axes", "label", "leading_modes", "open_group", "open_store", "units_of"]
+if TYPE_CHECKING:
+    import xarray as xr
+
+__all__ = ["Axis", "Group", "StoreView", "Variable", "field_axes", "label", "leading_modes", "open_group",
+           "open_store", "units_of"]
+
+#: a group of the store as :class:`StoreView` holds it: an ``xarray.Dataset`` (:func:`open_group`)
+#: or a :class:`Group` (``open_store(..., light=True)``), read through the same interface
+Dataset = Any
 
 
 def open_group(path: str | Path, group: str) -> xr.Dataset:
@@ -38,6 +51,8 @@ def open_group(path: str | Path, group: str) -> xr.Dataset:
     >>> spectrum["frequency"].attrs.get("units")                    # doctest: +SKIP
     'Hz'
     """
+    import xarray as xr  # here, not at the top: the report reads without it (see the module docstring)
+
     root = open_result(path)
     if group not in root:
         raise ResultStoreError(f"result store {path} has no group '{group}'; groups: "
@@ -53,20 +68,101 @@ def open_group(path: str | Path, group: str) -> xr.Dataset:
 
 
 def _from_zarr(node: zarr.Group) -> xr.Dataset:
-    variables: dict[str, xr.Variable] = {}
+    import xarray as xr
+
+    group = read_light(node)
+    coordinates = {name: xr.Variable(v.dims, v.values, v.attrs) for name, v in group.coords.items()}
+    data = {name: xr.Variable(v.dims, v.values, v.attrs) for name, v in group.data_vars.items()}
+    return xr.Dataset(data, coords=coordinates, attrs=group.attrs)
+
+
+@dataclass(frozen=True)
+class Variable:
+    """One array of a :class:`Group`: values in memory, its dimension names and attributes."""
+
+    dims: tuple[str, ...]
+    values: np.ndarray
+    attrs: dict[str, Any]
+    encoding: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return tuple(self.values.shape)
+
+    @property
+    def ndim(self) -> int:
+        return int(self.values.ndim)
+
+    @property
+    def size(self) -> int:
+        return int(self.values.size)
+
+    @property
+    def dtype(self) -> np.dtype:
+        return self.values.dtype
+
+    @property
+    def sizes(self) -> dict[str, int]:
+        return dict(zip(self.dims, self.values.shape))
+
+    def isel(self, **indexers: int) -> Variable:
+        """The variable at integer positions along named dimensions (those dimensions dropped)."""
+        index = tuple(indexers.get(dim, slice(None)) for dim in self.dims)
+        dims = tuple(dim for dim in self.dims if dim not in indexers)
+        return Variable(dims, np.asarray(self.values[index]), self.attrs, self.encoding)
+
+
+@dataclass(frozen=True)
+class Group:
+    """A store group read straight from zarr (no xarray): variables by name, coordinates as
+    xarray decodes them (dimension coordinates, and the names listed in a ``coordinates``
+    attribute, kept in ``encoding`` as xarray keeps it), and the group's attributes."""
+
+    variables: dict[str, Variable]
+    coordinate_names: frozenset[str]
+    attrs: dict[str, Any]
+
+    def __getitem__(self, name: str) -> Variable:
+        return self.variables[name]
+
+    def __contains__(self, name: object) -> bool:
+        return name in self.variables
+
+    def get(self, name: str, default: Any = None) -> Any:
+        return self.variables.get(name, default)
+
+    @property
+    def coords(self) -> dict[str, Variable]:
+        return {n: v for n, v in self.variables.items() if n in self.coordinate_names}
+
+    @property
+    def data_vars(self) -> dict[str, Variable]:
+        return {n: v for n, v in self.variables.items() if n not in self.coordinate_names}
+
+    @property
+    def sizes(self) -> dict[str, int]:
+        sizes: dict[str, int] = {}
+        for variable in self.variables.values():
+            sizes.update(variable.sizes)
+        return sizes
+
+
+def read_light(node: zarr.Group) -> Group:
+    """A group's arrays in memory as a :class:`Group` (``_FillValue`` dropped, as xarray
+    reads the store with masking off)."""
+    variables: dict[str, Variable] = {}
     for name, array in node.arrays():
         dims = tuple(getattr(array.metadata, "dimension_names", None) or (f"{name}_{i}" for i in range(array.ndim)))
         attrs = {k: v for k, v in dict(array.attrs).items() if k != "_FillValue"}
-        variables[name] = xr.Variable(dims, np.asarray(array[...]), attrs)
-    # CF: dimension coordinates, and the names a variable lists in its ``coordinates``
-    # attribute (xarray decodes the same way and keeps the attribute out of ``attrs``)
-    listed = {name for v in variables.values() for name in str(v.attrs.pop("coordinates", "")).split()}
-    coordinates = {name: v for name, v in variables.items() if v.dims == (name,) or name in listed}
-    data = {name: v for name, v in variables.items() if name not in coordinates}
-    return xr.Dataset(data, coords=coordinates, attrs=dict(node.attrs))
+        encoding = {"coordinates": attrs.pop("coordinates")} if "coordinates" in attrs else {}
+        variables[name] = Variable(tuple(map(str, dims)), np.asarray(array[...]), attrs, encoding)
+    # CF: dimension coordinates, and the names a variable lists in its ``coordinates`` attribute
+    listed = {name for v in variables.values() for name in str(v.encoding.get("coordinates", "")).split()}
+    coordinates = frozenset(name for name, v in variables.items() if v.dims == (name,) or name in listed)
+    return Group(variables, coordinates, dict(node.attrs))
 
 
-def units_of(variable: xr.DataArray | None, fallback: str = "") -> str:
+def units_of(variable: Any, fallback: str = "") -> str:
     """The CF ``units`` of a variable, or ``fallback`` when it has none."""
     if variable is None:
         return fallback
@@ -94,7 +190,7 @@ class Axis:
         return label(self.long_name, self.units) if not self.is_index else f"{self.dim} (index)"
 
 
-def field_axes(dataset: xr.Dataset, name: str, *, skip: tuple[str, ...] = ("mode", "rank", "snapshot")) -> list[Axis]:
+def field_axes(dataset: Dataset, name: str, *, skip: tuple[str, ...] = ("mode", "rank", "snapshot")) -> list[Axis]:
     """The grid axes of ``dataset[name]``: coordinates when the store has them, else indices."""
     axes = []
     variable = dataset[name]
@@ -117,12 +213,12 @@ class StoreView:
 
     path: Path
     attrs: dict[str, Any]
-    spectrum: xr.Dataset
-    modes: xr.Dataset
-    diagnostics: xr.Dataset
-    basis: xr.Dataset | None
-    prepare: xr.Dataset | None
-    operator: xr.Dataset | None
+    spectrum: Dataset
+    modes: Dataset
+    diagnostics: Dataset
+    basis: Dataset | None
+    prepare: Dataset | None
+    operator: Dataset | None
 
     @property
     def fields(self) -> list[str]:
@@ -200,16 +296,20 @@ class StoreView:
         return peak * np.abs(np.asarray(self.spectrum["amplitude"].values, dtype=np.float64))
 
 
-def open_store(path: str | Path) -> StoreView:
-    """Every group report, export and compare need, read through :func:`open_group`."""
+def open_store(path: str | Path, *, light: bool = False) -> StoreView:
+    """Every group report, export and compare need, read through :func:`open_group`, or with
+    ``light`` as :class:`Group` objects straight from zarr (the report: no xarray import)."""
     root = open_result(path)
     for group in ("spectrum", "modes", "diagnostics"):
         if group not in root:
             raise ResultStoreError(f"result store {path} has no group '{group}'; it holds no fit "
                                    "(run the workflow to the end)")
-    optional = {g: open_group(path, g) if g in root else None for g in ("basis", "prepare", "operator")}
-    return StoreView(Path(path), dict(root.attrs), open_group(path, "spectrum"), open_group(path, "modes"),
-                     open_group(path, "diagnostics"), **optional)
+
+    def read(group: str) -> Dataset:
+        return read_light(store_group(root, group)) if light else open_group(path, group)
+
+    optional = {g: read(g) if g in root else None for g in ("basis", "prepare", "operator")}
+    return StoreView(Path(path), dict(root.attrs), read("spectrum"), read("modes"), read("diagnostics"), **optional)
 
 
 def leading_modes(view: StoreView, count: int) -> list[int]:

@@ -110,7 +110,7 @@ class _TrackingWriter(StoreWriter):
 
     def _prepare(self, group: str, name: str) -> None:
         self._staged._journal(f"{group}/{name}" if group else name)
-        node = self.root.require_group(group) if group else self.root
+        node = self._group_node(group)
         if name in node:
             del node[name]
 

@@ -107,7 +107,7 @@ class StoreWriter:
             from zarr.dtype import VariableLengthUTF8
 
             data, dtype = data.astype(str).astype(object), VariableLengthUTF8()
-        node = self.root.require_group(group) if group else self.root
+        node = self._group_node(group)
         array = node.create_array(
             name,
             shape=data.shape,
@@ -122,6 +122,17 @@ class StoreWriter:
             array[...] = data
         self._coordinates(group, name, dimensions)
         return array
+
+    def _group_node(self, group: str) -> zarr.Group:
+        """``group`` of the store being written (made if need be), one handle per group: a
+        look-up costs a metadata read through zarr's event loop, and a small store's thirty
+        arrays made three each."""
+        if not group:
+            return self.root
+        nodes = self.__dict__.setdefault("_group_nodes", {})
+        if group not in nodes:
+            nodes[group] = self.root.require_group(group)
+        return nodes[group]
 
     def _attrs(self, group: str, name: str, dimensions: Sequence[str], attrs: dict[str, Any] | None) -> dict[str, Any]:
         return _jsonable({**self.metadata.attrs(group, name, tuple(dimensions)), **dict(attrs or {})})
@@ -138,7 +149,7 @@ class StoreWriter:
             target = "time" if dimension == "snapshot" else dimension
             if target == name or (group, target) in seen:
                 continue
-            node = store_group(self.root, group) if node is None else node
+            node = self._group_node(group) if node is None else node
             if target in node:
                 seen.add((group, target))
                 continue

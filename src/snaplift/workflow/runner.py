@@ -41,6 +41,7 @@ from snaplift import __version__
 from snaplift.archive import _handles
 from snaplift.cluster import ClusterOptions, open_scheduler
 from snaplift.errors import SnapliftError
+from snaplift.report.helper import ReportHelper
 from snaplift.results.stages import Compressed
 from snaplift.results.staging import StagedStore, check_free_space
 from snaplift.workflow.compute import compress_stage
@@ -57,7 +58,8 @@ from snaplift.workflow.scanning import Scanned, scan_stage
 from snaplift.workflow.schema import Workflow, load_workflow, resolve_path, section_fingerprint
 from snaplift.workflow.stages import STAGES, StageContext, StageRecord
 
-__all__ = ["FAULT_VARIABLE", "STAGES", "RunInterrupted", "RunSummary", "run_validated", "run_workflow"]
+__all__ = ["FAULT_VARIABLE", "STAGES", "ReportInterrupted", "RunInterrupted", "RunSummary", "run_validated",
+           "run_workflow"]
 
 Progress = Callable[[str], None]
 #: fault injection for crash-safety tests: ``<stage>:<units>`` kills this process with
@@ -74,6 +76,10 @@ CAUTION = (
 
 class RunInterrupted(KeyboardInterrupt):
     """Ctrl-C or SIGTERM stopped the run; ``str()`` says how to resume."""
+
+
+class ReportInterrupted(RunInterrupted):
+    """Ctrl-C or SIGTERM while the report was drawn: the store is committed and complete."""
 
 
 @dataclass(frozen=True)
@@ -180,7 +186,7 @@ def _termination_as_interrupt() -> Iterator[None]:
 
 
 def run_workflow(path: str | Path, *, overwrite: bool = False, progress: Progress | None = None,
-                 reporter: ProgressReporter | None = None) -> RunSummary:
+                 reporter: ProgressReporter | None = None, report_helper: ReportHelper | None = None) -> RunSummary:
     """Run a workflow file end to end (resuming or reusing what it can); return where the results are.
 
     Example
@@ -191,13 +197,17 @@ def run_workflow(path: str | Path, *, overwrite: bool = False, progress: Progres
     """
     workflow, text, folder = load_workflow(path)
     return run_validated(workflow, text, folder, overwrite=overwrite, progress=progress, reporter=reporter,
-                         workflow_path=Path(path))
+                         workflow_path=Path(path), report_helper=report_helper)
 
 
 def run_validated(workflow: Workflow, text: str, folder: Path, *, overwrite: bool = False,
                   progress: Progress | None = None, reporter: ProgressReporter | None = None,
-                  workflow_path: Path | None = None) -> RunSummary:
-    """Run a validated workflow; see the module docstring for reuse, resume and provenance."""
+                  workflow_path: Path | None = None, report_helper: ReportHelper | None = None) -> RunSummary:
+    """Run a validated workflow; see the module docstring for reuse, resume and provenance.
+
+    ``report_helper`` (started by ``snaplift run``, closed by it) draws the report page in a
+    process of its own (:mod:`snaplift.report.helper`); without one the page is drawn here.
+    """
     own_reporter = reporter is None
     if reporter is None:
         reporter = ProgressReporter(quiet=True)
@@ -225,7 +235,10 @@ def run_validated(workflow: Workflow, text: str, folder: Path, *, overwrite: boo
                 say(store.discarded)
             if overwrite:
                 say("--overwrite: every stage is recomputed from the archive")
-            summary = _run_stages(workflow, text, folder, store, lease, reporter, say, started, checked)
+            summary = _run_stages(workflow, text, folder, store, lease, reporter, say, started, checked,
+                                  report_helper)
+    except ReportInterrupted:
+        raise  # the store is committed (its staging area is gone): nothing to keep or clean
     except KeyboardInterrupt as error:
         command = f"snaplift run {workflow_path}" if workflow_path else "the same run"
         kept = store is not None and store.has_progress
@@ -265,7 +278,8 @@ def _lease_lost(lease: Lease) -> bool:
 
 
 def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore, lease: Lease,
-                reporter: ProgressReporter, say: Progress, started: _dt.datetime, checked: Scanned) -> RunSummary:
+                reporter: ProgressReporter, say: Progress, started: _dt.datetime, checked: Scanned,
+                report_helper: ReportHelper | None = None) -> RunSummary:
     """Scan, compress, fit, modes, report: :data:`~snaplift.workflow.stages.STAGES` in order, each
     computed, or kept or reused by its fingerprint; then the commit and the report page."""
     faults = FaultInjection()
@@ -329,17 +343,35 @@ def _run_stages(workflow: Workflow, text: str, folder: Path, store: StagedStore,
         "caution": CAUTION,
         "report": context.results["report"],
     })
-    page = _write_report(path, say) if workflow.output.report else None
+    page = _write_report(path, say, report_helper) if workflow.output.report else None
     return RunSummary(path, result_passes, bytes_read, context.fitted.n_modes, tuple(warnings),
                       {name: record.summary() for name, record in records.items()}, scan.classification.state, page)
 
 
-def _write_report(path: Path, say: Progress) -> Path | None:
-    """The report stage's page (``RESULT.report/``), drawn from the committed store.
+def _write_report(path: Path, say: Progress, helper: ReportHelper | None = None) -> Path | None:
+    """The report stage's page (``RESULT.report/``), drawn from the committed store, by the
+    report helper when there is one and it answers, else here.
 
     A report that cannot be drawn does not undo a complete store: the run says why and
     ``snaplift report RESULT`` can be run again.
     """
+    try:
+        return _draw_report(path, say, helper)
+    except KeyboardInterrupt:
+        # the helper (if any) is stopped by its owner and removes its staging folder; a page
+        # drawn here had not begun its folder or removes it (render_report)
+        raise ReportInterrupted(f"interrupted while drawing the report; the result store {path} is complete; "
+                                f"run 'snaplift report {path}' to draw the report") from None
+
+
+def _draw_report(path: Path, say: Progress, helper: ReportHelper | None) -> Path | None:
+    answer = helper.render(path) if helper is not None else None
+    if answer is not None:
+        if "warning" in answer:
+            say(f"warning: the report was not written ({answer['warning']}); run 'snaplift report {path}'")
+            return None
+        say(f"report: {answer['index']} ({float(answer['seconds']):.1f} s)")
+        return Path(answer["index"])
     # matplotlib and xarray are loaded only when a report is drawn (not for every run's start-up)
     from snaplift.report.page import render_report
 
