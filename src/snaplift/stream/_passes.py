@@ -27,6 +27,7 @@ import numpy as np
 from snaplift._process_memory import trim_heap
 from snaplift.archive.matrix import SnapshotMatrix
 from snaplift.errors import ArchiveChangedError
+from snaplift.linalg._testmatrix import load_sparse_library
 from snaplift.linalg.sketch import exact_layout
 from snaplift.stream._digest import digested, verify
 from snaplift.stream._tasks import Preparing, TileRef, TileSource, product_task, resident_loaded, sketch_task
@@ -298,6 +299,8 @@ def sketch_read(passes: Pass, matrix: SnapshotMatrix, jobs: Sequence[Job], state
     """
     n, m = matrix.shape
     dtype = matrix.dtype
+    if corange_width:
+        load_sparse_library()  # before the first read (see there)
     exact, start = exact_layout([f.n_rows for f in matrix.fields], exact_limit if corange_width else 0)
     whole = len(jobs) == 1 and jobs[0].tile.columns == (0, m) and jobs[0].tile.span == len(matrix.fields)
     first_only = whole and not state.done  # the in-memory path: its one tile's blocks are the sums
