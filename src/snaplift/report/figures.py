@@ -18,6 +18,7 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import LinearSegmentedColormap
 from matplotlib.figure import Figure
+from matplotlib.ticker import MaxNLocator
 
 from snaplift.results.reading import Axis, StoreView, field_axes, label
 
@@ -90,14 +91,20 @@ def energy_figure(view: StoreView) -> Figure | None:
     left.set_xlabel("number of basis vectors")
     left.set_ylabel("fraction of the energy captured")
     left.set_title("energy captured by the basis", loc="left", fontsize=11)
-    right.semilogy(index, np.where(s > 0, s, np.nan), color=PALETTE["model"], marker="o", markersize=3.5,
-                   linewidth=1.2)
+    positive = s[s > 0]
+    if positive.size and positive.max() < 10 * positive.min():  # within a decade: a log axis labels only minor ticks
+        right.plot(index, np.where(s > 0, s, np.nan), color=PALETTE["model"], marker="o", markersize=3.5, linewidth=1.2)
+        right.ticklabel_format(axis="y", useOffset=False, style="plain")
+    else:
+        right.semilogy(index, np.where(s > 0, s, np.nan), color=PALETTE["model"], marker="o", markersize=3.5,
+                       linewidth=1.2)
     right.set_xlabel("index")
     right.set_ylabel("singular value")
     right.set_title("singular values", loc="left", fontsize=11)
     fit_rank = _fit_rank(view, s.size)
     for ax in (left, right):
         _style(ax)
+        ax.xaxis.set_major_locator(MaxNLocator(integer=True))  # counts of basis vectors
         ax.axvline(s.size, color=PALETTE["archive"], linestyle="--", linewidth=1.0)
         if fit_rank is not None and fit_rank < s.size:
             ax.axvline(fit_rank, color=PALETTE["untrusted"], linestyle="-.", linewidth=1.4)
