@@ -124,13 +124,17 @@ def test_ctrl_c_keeps_finished_stages(tmp_path: Path, monkeypatch: pytest.Monkey
 
 
 # inside pass 0; inside pass 1 (after a pass end: the long case, run with the slow checks)
-@pytest.mark.parametrize("killed_after", [5, pytest.param(11, marks=pytest.mark.slow)])
+@pytest.mark.parametrize("killed_after", [5, pytest.param(17, marks=pytest.mark.slow)])
 def test_killed_mid_compress_rereads_at_most_one_interval(tmp_path: Path, killed_after: int) -> None:
+    from snaplift.archive._plan_compress import _tapered_blocks
     from snaplift.stream.loop import load_checkpoint
 
-    # 8 snapshots per tile, 8 tiles per pass: 2 worker threads get TILES_PER_WORKER = 4 blocks
-    # each under a budget that holds the process (compress.memory bounds the whole process
-    # tree); a checkpoint every 2 tiles
+    # 8 snapshots per tile: 2 worker threads get TILES_PER_WORKER = 4 blocks each under a
+    # budget that holds the process (compress.memory bounds the whole process tree), the last
+    # 2 x 8 snapshots in tiles of 2 (the plan's tail split): 6 + 8 = 14 tiles per pass; a
+    # checkpoint every 2 tiles
+    blocks = _tapered_blocks(SNAPSHOTS, 8, 1, 2)
+    assert len(blocks) == 14
     settings = {"checkpoint_every": 2, "memory": "2GiB", "in_memory": "never"}  # streamed tiles
     threads = {"kind": "threads", "workers": 2}
     reference_folder = tmp_path / "ref"
@@ -138,7 +142,8 @@ def test_killed_mid_compress_rereads_at_most_one_interval(tmp_path: Path, killed
     reference = _run(_setup(reference_folder, threads, **settings))
     assert reference.returncode == 0, reference.stderr
     full = zarr.open_group(str(reference_folder / "r.zarr"), mode="r").attrs["stages"]["compress"]
-    tile_bytes = full["bytes_read"] // (full["passes"] * 8)
+    snapshot_bytes = full["bytes_read"] // (full["passes"] * SNAPSHOTS)
+    tile_bytes = [(s1 - s0) * snapshot_bytes for s0, s1 in blocks] * full["passes"]  # in the order folded
     folder = tmp_path / "killed"
     folder.mkdir()
     path = _setup(folder, threads, **settings)
@@ -153,7 +158,7 @@ def test_killed_mid_compress_rereads_at_most_one_interval(tmp_path: Path, killed
     # the resumed run reads everything but the checkpointed tiles ...
     assert record["bytes_read"] == full["bytes_read"] - state.bytes_read
     # ... so of the tiles the killed run read, at most one interval (2 tiles) is read again
-    reread = killed_after * tile_bytes - state.bytes_read
-    assert 0 <= reread <= 2 * tile_bytes
+    reread = sum(tile_bytes[:killed_after]) - state.bytes_read
+    assert 0 <= reread <= sum(tile_bytes[killed_after - 2:killed_after])  # the last interval: 2 tiles
     assert not list((folder / "r.zarr.staging").glob("*")) if (folder / "r.zarr.staging").exists() else True
     _assert_same_results(folder / "r.zarr", reference_folder / "r.zarr")
