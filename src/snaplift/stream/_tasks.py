@@ -9,6 +9,7 @@ No task ever carries an open file.
 
 from __future__ import annotations
 
+import functools
 from dataclasses import dataclass
 from typing import Any
 
@@ -115,14 +116,16 @@ def reads_ahead(source: TileSource, tile: TileRef) -> bool:
     return field.keep is None and field.term == "x" and field.siblings <= 1
 
 
+def _block_reader(source: TileSource, ref: TileRef) -> Any:
+    """A call that reads ``ref``'s block (handed to a reader thread by :mod:`_prefetch`)."""
+    columns = source.snapshot_index[ref.columns[0]:ref.columns[1]]
+    return lambda: read_snapshot_block(source.reader, source.fields[ref.field], columns, ref.rows)
+
+
 def _read_plain(source: TileSource, tile: TileRef, field: FieldRows, snapshots: np.ndarray) -> np.ndarray:
     if not tile.read_key or not reads_ahead(source, tile):
         return read_snapshot_block(source.reader, field, snapshots, tile.rows)
-
-    def reader(ref: TileRef) -> Any:
-        columns = source.snapshot_index[ref.columns[0]:ref.columns[1]]
-        return lambda: read_snapshot_block(source.reader, source.fields[ref.field], columns, ref.rows)
-
+    reader = functools.partial(_block_reader, source)
     own = (tile.read_key, tile.id)
     threads = source.read_ahead
     _prefetch.request(own, reader(tile), threads)  # nothing when it was read ahead already
@@ -141,10 +144,7 @@ def request_own(source: TileSource, tile: TileRef) -> None:
     task can prepare its test matrices while its first tile is read."""
     if not tile.read_key or not reads_ahead(source, tile):
         return
-    columns = source.snapshot_index[tile.columns[0]:tile.columns[1]]
-    field = source.fields[tile.field]
-    _prefetch.request((tile.read_key, tile.id),
-                      lambda: read_snapshot_block(source.reader, field, columns, tile.rows), source.read_ahead)
+    _prefetch.request((tile.read_key, tile.id), _block_reader(source, tile), source.read_ahead)
 
 
 def _read_fields(source: TileSource, tile: TileRef, snapshots: np.ndarray, *, check: bool
