@@ -18,18 +18,22 @@ name, size and time):
   the shape and the sampled values.)
 - files that only grew, or new files, with more snapshots than before: the *append
   path*. The run records SHA-256 hashes of the decoded values of a sample of *snapshot
-  blocks* (whole stored chunks along the snapshot axis, all points of every requested
-  field): up to :data:`SAMPLE_BLOCKS` blocks spread evenly over the archive, always the
-  first and the last, fewer if they would exceed :data:`SAMPLE_FRACTION` of the
-  archive's bytes or :data:`SAMPLE_FLOOR_BYTES`, whichever is larger (never fewer than
-  two). The next run hashes the same blocks again: all equal means *grown* (the sketch
+  blocks* (stored chunks along the snapshot axis, all points of every requested field;
+  a chunk larger than :data:`SAMPLE_BLOCK_BYTES` over as many of its first snapshots as
+  fit in that, the last chunk over its last ones): up to :data:`SAMPLE_BLOCKS` blocks
+  spread evenly over the archive, always with the first and the last snapshot, fewer if
+  they would exceed :data:`SAMPLE_FRACTION` of the archive's bytes or
+  :data:`SAMPLE_FLOOR_BYTES`, whichever is larger (never fewer than two). An
+  uncompressed HDF5 chunk is read over the sampled snapshots only; a compressed one is
+  read and decoded whole. The next run hashes the same blocks again: all equal means *grown* (the sketch
   is extended, or compress recomputed), any difference *changed*. The run's output and
   the store (scan record ``verified_blocks``, a warning) say which old blocks were
   verified and that ``--overwrite`` recomputes from every snapshot.
 - files that grew without new snapshots (HDF5 grows when attributes are added): *changed*.
 
 Cost, explicitly: at most ``SAMPLE_BLOCKS`` snapshot blocks per run (a time-major archive
-with one snapshot per chunk: 8 snapshots), bounded by 1 % of the archive or 64 MiB; they
+with one snapshot per chunk: 8 snapshots; with 32 snapshots of 2 MiB per chunk: 8 blocks of
+2 snapshots, 32 MiB, where whole chunks were 2 x 64 MiB), bounded by 1 % of the archive or 64 MiB; they
 are read only when the archive grew (and on a first run, to record them). The price of
 not reading every old chunk on the append path is that an edit of an old snapshot
 *outside* the sample, in a file that also grew, goes unnoticed; the warning says so.
@@ -68,6 +72,7 @@ from snaplift.workflow.schema import Workflow, section_fingerprint
 __all__ = [
     "NOT_RESULT_KEYS",
     "SAMPLE_BLOCKS",
+    "SAMPLE_BLOCK_BYTES",
     "SAMPLE_FRACTION",
     "Classification",
     "archive_fingerprint",
@@ -84,6 +89,8 @@ SAMPLE_BLOCKS = 8
 SAMPLE_FRACTION = 0.01
 #: ... but up to this many bytes may always be sampled (small archives get all 8 blocks)
 SAMPLE_FLOOR_BYTES = 64 * 2**20
+#: a stored chunk larger than this is sampled over its first snapshots only (at least one)
+SAMPLE_BLOCK_BYTES = 4 * 2**20
 #: archives of up to this many files record each file by name; larger ones a set of digests
 FILE_RECORD_LIMIT = 1000
 #: zarr metadata files, rewritten in place when an array grows (module docstring)
@@ -201,14 +208,34 @@ def file_changes(old: dict[str, Any], now: dict[str, Any]) -> str | None:
 
 
 def sample_blocks(n_snapshots: int, chunk: int, block_bytes: int, archive_bytes: int) -> list[tuple[int, int]]:
-    """The snapshot blocks whose content is hashed (module docstring)."""
+    """The snapshot blocks whose content is hashed (module docstring).
+
+    ``block_bytes`` are the bytes of one stored chunk along the snapshot axis (``chunk``
+    snapshots of every sampled field). A chunk of more than :data:`SAMPLE_BLOCK_BYTES`
+    is sampled over its first snapshots only (the last over its last), as many as fit
+    in :data:`SAMPLE_BLOCK_BYTES`, at least one.
+
+    Example
+    -------
+    >>> sample_blocks(1024, 32, 32 * 2**21, 1024 * 2**21)  # 32 snapshots of 2 MiB per chunk
+    [(0, 2), (128, 130), (288, 290), (416, 418), (576, 578), (704, 706), (864, 866), (1022, 1024)]
+    """
     chunk = max(1, int(chunk))
-    n_blocks = max(1, -(-int(n_snapshots) // chunk))
-    budget = max(2, int(max(SAMPLE_FRACTION * archive_bytes, SAMPLE_FLOOR_BYTES) // max(1, block_bytes)))
+    n_snapshots = int(n_snapshots)
+    n_blocks = max(1, -(-n_snapshots // chunk))
+    snapshot_bytes = max(1, int(block_bytes) // chunk)
+    width = chunk if snapshot_bytes * chunk <= SAMPLE_BLOCK_BYTES else max(1, SAMPLE_BLOCK_BYTES // snapshot_bytes)
+    budget = max(2, int(max(SAMPLE_FRACTION * archive_bytes, SAMPLE_FLOOR_BYTES) // (snapshot_bytes * width)))
     count = min(SAMPLE_BLOCKS, n_blocks, budget)
     picks = sorted({int(round(i)) for i in np.linspace(0, n_blocks - 1, max(count, 1))})
-    # the last block of an archive may be partial; it is hashed over the snapshots present
-    return [(p * chunk, min((p + 1) * chunk, n_snapshots)) for p in picks]
+    blocks = [(p * chunk, min(p * chunk + width, n_snapshots)) for p in picks]
+    # the last block ends at the last snapshot (a partial chunk is hashed over the snapshots present)
+    last = (max(picks[-1] * chunk, n_snapshots - width), n_snapshots)
+    if len(blocks) == 1:
+        # one chunk: its first and its last snapshots, one block where they meet
+        return [blocks[0], last] if last[0] >= blocks[0][1] else [(blocks[0][0], n_snapshots)]
+    blocks[-1] = last
+    return blocks
 
 
 def block_hashes(reader: Reader, fields: list[str], blocks: list[tuple[int, int]]) -> tuple[list[str], int]:
