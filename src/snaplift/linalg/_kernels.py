@@ -74,9 +74,18 @@ def column_squares(raw: np.ndarray) -> np.ndarray:
     return out
 
 
-def field_column_squares(raw: np.ndarray, starts: np.ndarray, *, chunk: int = 1024) -> np.ndarray:
+#: the squares of ``field_column_squares`` are taken over this many bytes of a tile at a time
+SQUARES_BYTES = 256 * 1024
+
+
+def field_column_squares(raw: np.ndarray, starts: np.ndarray, *, chunk: int | None = None) -> np.ndarray:
     """``||x_fj||^2`` per field ``f`` (its columns start at ``starts[f]``) and snapshot of a
-    snapshot-major tile: ``(fields, snapshots)``, with temporaries of ``chunk`` snapshots."""
+    snapshot-major tile: ``(fields, snapshots)``, with temporaries of ``chunk`` snapshots
+    (default: :data:`SQUARES_BYTES` of the tile, at least one snapshot, at most a
+    sixteenth of the tile; the tile plan counts no tile-sized temporary here)."""
+    if chunk is None:
+        row_bytes = max(1, raw.shape[1] * raw.itemsize)
+        chunk = max(1, min(SQUARES_BYTES // row_bytes, -(-raw.shape[0] // 16)))
     out = np.empty((len(starts), raw.shape[0]), dtype=np.float64)
     for j0 in range(0, raw.shape[0], chunk):
         part = raw[j0:j0 + chunk]
