@@ -159,6 +159,10 @@ class StoreWriter:
             if coordinate is not None:
                 self.array(group, target, coordinate.values, (dimension,), attrs=coordinate.attrs)
                 seen.add((group, target))
+            for position, values in self.metadata.point_positions(dimension):  # scattered points
+                if position != name and (group, position) not in seen and position not in node:
+                    seen.add((group, position))
+                    self.array(group, position, values.values, (dimension,), attrs=values.attrs)
 
     def arrays(self, group: str, items: Sequence[tuple[str, np.ndarray, Sequence[str]]]) -> None:
         """Several small arrays of one group, ``(name, data, dimensions)`` each, written together.
