@@ -137,7 +137,7 @@ def _mesh(view: StoreView, field: str) -> _Mesh:
 
 def _place(parent: ET.Element, mesh: _Mesh, h5name: str, field: str) -> None:
     """The Topology and Geometry of ``mesh`` under the grid element ``parent``."""
-    topology = ET.SubElement(parent, "Topology", **mesh.topology)
+    topology = ET.SubElement(parent, "Topology", mesh.topology)
     if mesh.connectivity is not None:
         _item(topology, h5name, f"/{field}/topology/connectivity", mesh.connectivity.shape, number_type="Int")
     geometry = ET.SubElement(parent, "Geometry", GeometryType=mesh.geometry_type)

@@ -207,7 +207,8 @@ def field_axes(dataset: Dataset, name: str, *, skip: tuple[str, ...] = ("mode", 
     return axes
 
 
-def point_positions(dataset: Dataset, name: str, *, skip: tuple[str, ...] = ("mode", "rank", "snapshot")) -> dict[str, Axis]:
+def point_positions(dataset: Dataset, name: str, *,
+                    skip: tuple[str, ...] = ("mode", "rank", "snapshot")) -> dict[str, Axis]:
     """The positions of the points of a field on scattered points by CF axis (``"X"``, ``"Y"``,
     ``"Z"``); empty for any other field.
 

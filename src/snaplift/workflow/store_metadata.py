@@ -87,17 +87,17 @@ def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarr
             coordinates[dimension] = _coordinate(reader, info, variable, grids[name][axis], dimension, name)
     point_names: dict[str, tuple[str, ...]] = {}
     for name, found_positions in positions.items():
-        dimension = dims[name][0] if found_positions else None
-        if dimension is None or dimension in point_names:
+        points = dims[name][0] if found_positions else None
+        if points is None or points in point_names:
             continue
-        prefix = dimension[:-1]  # "x" -> "", "T_x" -> "T_"
+        prefix = points[:-1]  # "x" -> "", "T_x" -> "T_"
         stored = []
         for letter, variable in zip("xyz", found_positions):
-            coordinate = _coordinate(reader, info, variable, grids[name][0], dimension, name)
+            coordinate = _coordinate(reader, info, variable, grids[name][0], points, name)
             coordinates[f"{prefix}position_{letter}"] = Coordinate(
                 coordinate.values, {**coordinate.attrs, "axis": letter.upper()})
             stored.append(f"{prefix}position_{letter}")
-        point_names[dimension] = tuple(stored)
+        point_names[points] = tuple(stored)
     units = {name: _field_units(section, info, source, reader.path) for name, source, _ in lifted}
     field_units = {name: lifted_units(units[name], term) for name, _, term in lifted}
     field_names = {}
