@@ -161,6 +161,7 @@ def test_scattered_points_are_polyvertex_at_their_positions(tmp_path: Path) -> N
                                    shape, atol=1e-12)  # polar form gives the complex value back
     with h5py.File(heavy, "r") as h5:
         assert h5["T/mode_0/real"].attrs["units"] == "K" and h5["T/mode_0/phase"].attrs["units"] == "rad"
+        assert h5["T/coordinates/XYZ"].attrs["units"] == "m"  # the archive's unit of px, py, pz
     # the animation: one period of the leading mode (0.7 Hz, the archive's wave) on the same points
     series = grids["T_animation"]
     assert series.get("CollectionType") == "Temporal"

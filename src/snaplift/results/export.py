@@ -30,6 +30,7 @@ import os
 import uuid
 import xml.etree.ElementTree as ET
 from dataclasses import dataclass
+from dataclasses import field as dataclass_field
 from pathlib import Path
 
 import h5py
@@ -105,6 +106,8 @@ class _Mesh:
     shape: tuple[int, ...]
     #: Polyvertex: the vertex of each element (``topology/connectivity``)
     connectivity: np.ndarray | None = None
+    #: attributes of the geometry's heavy data (the positions' store names and units)
+    geometry_attrs: dict[str, str] = dataclass_field(default_factory=dict)
 
 
 def _mesh(view: StoreView, field: str) -> _Mesh:
@@ -114,8 +117,12 @@ def _mesh(view: StoreView, field: str) -> _Mesh:
         n = int(next(iter(positions.values())).values.size)
         letters = ("X", "Y") if set(positions) == {"X", "Y"} else ("X", "Y", "Z")
         xyz = np.stack([positions[a].values if a in positions else np.zeros(n) for a in letters], axis=1)
+        units = {positions[a].units for a in positions}
+        attrs = {"columns": " ".join(positions[a].dim if a in positions else "(zero)" for a in letters)}
+        if len(units) == 1 and "" not in units:
+            attrs["units"] = units.pop()
         return _Mesh({"TopologyType": "Polyvertex", "NumberOfElements": str(n), "NodesPerElement": "1"},
-                     "".join(letters), [("".join(letters), xyz)], (n,), np.arange(n, dtype=np.int64))
+                     "".join(letters), [("".join(letters), xyz)], (n,), np.arange(n, dtype=np.int64), attrs)
     axes = field_axes(view.modes, field)
     grid = tuple(a.values.size for a in axes)
     if len(axes) == 1:
@@ -130,7 +137,9 @@ def _mesh(view: StoreView, field: str) -> _Mesh:
     if not axes:
         raise ResultStoreError(
             f"result store {view.path}: field '{field}' is a probe (one value per snapshot) and the store keeps no "
-            "position for it, which XDMF needs to place it; export with --format netcdf instead")
+            "position for it, which XDMF needs to place it; export with --format netcdf instead, or, to see probes "
+            "in space, archive them as one field (snapshot, probe) whose CF 'coordinates' attribute lists their "
+            "x and y (and z) datasets")
     raise NotImplementedError(f"result store {view.path}: field '{field}' has {len(axes)} grid dimensions and XDMF "
                               "export handles 1-3; export with --format netcdf instead")
 
@@ -187,6 +196,7 @@ def export_xdmf(store: str | Path, out: str | Path | None = None, *, leading: in
                 shape = mesh.shape
                 for name, values in mesh.geometry:
                     h5[f"{field}/coordinates/{name}"] = np.asarray(values, dtype=np.float64)
+                    h5[f"{field}/coordinates/{name}"].attrs.update(mesh.geometry_attrs)
                 if mesh.connectivity is not None:
                     h5[f"{field}/topology/connectivity"] = mesh.connectivity
                 grid = ET.SubElement(domain, "Grid", Name=field, GridType="Uniform")
