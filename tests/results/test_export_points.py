@@ -191,12 +191,20 @@ def test_two_positions_are_an_xy_geometry_and_listed_order_without_axis(tmp_path
                                   np.stack([positions["px"], positions["py"]], axis=1))
 
 
-def _probe_store(folder: Path) -> Path:
-    # two sensor signals of the duct (invented): x = cos(2 pi 0.7 t), y = sin(2 pi 0.7 t + 0.4)
+def _probe_store(folder: Path, places: dict[str, dict[str, tuple[float, str]]] | None = None) -> Path:
+    # two sensor signals of the duct (invented): x = cos(2 pi 0.7 t), y = sin(2 pi 0.7 t + 0.4);
+    # ``places``: per probe, its scalar position datasets (value, CF axis or "") in listed order
     t = 0.05 * np.arange(300)
     with h5py.File(folder / "probes.h5", "w") as h5:
         h5["x"] = np.cos(2 * np.pi * 0.7 * t)
         h5["y"] = np.sin(2 * np.pi * 0.7 * t + 0.4)
+        for probe, datasets in (places or {}).items():
+            h5[probe].attrs["coordinates"] = " ".join(datasets)
+            for name, (value, axis) in datasets.items():
+                h5[name] = value
+                h5[name].attrs["units"] = "m"
+                if axis:
+                    h5[name].attrs["axis"] = axis
     workflow = {"archive": {"path": "probes.h5", "fields": ["x", "y"], "step": 0.05},
                 "lift": [{"kind": "delays", "count": 4}], "compress": {"method": "tsqr", "rank": 2},
                 "output": {"path": "probes.zarr", "report": False}, "cluster": "threads"}
@@ -224,6 +232,37 @@ def test_probes_without_positions_are_refused_in_one_line(tmp_path: Path) -> Non
     assert process.returncode == 2 and process.stderr.count("\n") == 1
     assert all(part in process.stderr for part in ("probes.zarr", "'x'", "position", "--format netcdf"))
     assert not list(tmp_path.glob("*probes.modes*"))  # no .xdmf, .h5 or temporary file beside the store
+
+
+def test_probes_with_positions_are_points_there(tmp_path: Path) -> None:
+    # CF scalar coordinates (CF 1.x sections 5.7 and 9: one time series at one station); probe x
+    # lists its north position first but declares it axis Y, so its east position (no axis) is x
+    places = {"x": {"x_north": (0.02, "Y"), "x_east": (0.1, "")},
+              "y": {"y_east": (0.3, ""), "y_north": (0.01, ""), "y_up": (0.005, "")}}
+    store = _probe_store(tmp_path, places)
+    modes = xr.open_zarr(store, group="modes")
+    assert float(modes.coords["x_position_x"]) == 0.1 and float(modes.coords["x_position_y"]) == 0.02
+    xdmf, _ = export_xdmf(store, tmp_path / "probes.modes.xdmf")
+    grids = _check_xdmf_model(xdmf)
+    expected = {"x": ("XY", [[0.1, 0.02]]), "y": ("XYZ", [[0.3, 0.01, 0.005]])}  # the archive's values
+    root = zarr.open_group(str(store), mode="r")
+    amplitude = np.asarray(root["spectrum/amplitude"][...]) * np.exp(1j * np.asarray(root["spectrum/phase"][...]))
+    for probe, (kind, where) in expected.items():
+        grid = grids[probe]
+        assert grid.find("Topology").get("TopologyType") == "Polyvertex"
+        assert grid.find("Geometry").get("GeometryType") == kind
+        np.testing.assert_array_equal(_read(xdmf, grid.find("Geometry/DataItem")), where)
+        real = _read(xdmf, grid.find("Attribute[@Name='mode0_real']/DataItem"))
+        # b_0 mode_0 at the probe (Jovanovic, Schmid & Nichols 2014), read straight from the store
+        np.testing.assert_allclose(real, [np.real(amplitude[0] * root[f"modes/{probe}"][0])], atol=1e-14)
+    assert len(grids["x_animation"].findall("Grid")) == FRAMES
+
+
+def test_one_probe_without_a_position_refuses_the_export(tmp_path: Path) -> None:
+    store = _probe_store(tmp_path, {"x": {"x_east": (0.1, ""), "x_north": (0.02, "")}})
+    with pytest.raises(ResultStoreError, match=r"field 'y' is a probe .* no position"):
+        export_xdmf(store, tmp_path / "out" / "probes.xdmf")
+    assert not (tmp_path / "out").exists()
 
 
 def test_a_failure_while_writing_leaves_no_file(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:

@@ -9,9 +9,10 @@
   the first fitted snapshot). A field on scattered points (the store keeps each point's
   position, ``position_x`` ...; see :mod:`snaplift.results.metadata`) is a ``Polyvertex``
   topology of one vertex per point on an ``XY`` or ``XYZ`` geometry of those positions,
-  with the same attributes. A probe (one value per snapshot, no position) cannot be drawn:
-  the export is refused before anything is written, naming the field and ``--format
-  netcdf``; and a
+  with the same attributes. A probe whose store keeps its position (``<probe>_position_x``
+  ...) is a ``Polyvertex`` of one vertex there; a probe without one cannot be drawn: the
+  export is refused before anything is written, naming the field and ``--format netcdf``;
+  and a
   temporal collection: one period of the leading oscillating mode, drawn by the leading
   ``K`` modes (one of each conjugate pair) as ``sum_k c_k Re(b_k mode_k exp(2 pi i f_k t))``
   with ``c_k = 2`` for a conjugate pair and 1 otherwise, without growth or decay (a
@@ -137,9 +138,9 @@ def _mesh(view: StoreView, field: str) -> _Mesh:
     if not axes:
         raise ResultStoreError(
             f"result store {view.path}: field '{field}' is a probe (one value per snapshot) and the store keeps no "
-            "position for it, which XDMF needs to place it; export with --format netcdf instead, or, to see probes "
-            "in space, archive them as one field (snapshot, probe) whose CF 'coordinates' attribute lists their "
-            "x and y (and z) datasets")
+            "position for it, which XDMF needs to place it; export with --format netcdf instead, or give the probe "
+            "a place: a CF 'coordinates' attribute on its archive dataset naming scalar x, y (z) datasets, and run "
+            "the workflow again")
     raise NotImplementedError(f"result store {view.path}: field '{field}' has {len(axes)} grid dimensions and XDMF "
                               "export handles 1-3; export with --format netcdf instead")
 

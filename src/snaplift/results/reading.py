@@ -214,21 +214,30 @@ def point_positions(dataset: Dataset, name: str, *,
 
     Such a field has one point dimension carrying two or three coordinates with a CF ``axis``
     of ``X`` / ``Y`` / ``Z`` (``position_x`` ... as the store writes them); its dimension
-    coordinate, if any, is not a position.
+    coordinate, if any, is not a position. A probe (no grid dimension) has one to three 0-d
+    such coordinates named in its ``coordinates`` attribute (``<probe>_position_x`` ...).
     """
     variable = dataset[name]
     grid = [dim for dim in variable.dims if dim not in skip]
-    if len(grid) != 1:
+    if len(grid) > 1:
         return {}
-    dim = grid[0]
+    if grid:
+        dims: tuple[str, ...] = (grid[0],)
+        candidates = [n for n, c in dataset.coords.items() if n != grid[0] and tuple(c.dims) == dims]
+    else:  # a probe: the 0-d coordinates its own ``coordinates`` attribute names
+        dims = ()
+        listed = f"{variable.attrs.get('coordinates', '')} {variable.encoding.get('coordinates', '')}".split()
+        candidates = [n for n in listed if n in dataset.coords and tuple(dataset.coords[n].dims) == dims]
     found: dict[str, Axis] = {}
-    for coordinate_name, coordinate in dataset.coords.items():
+    for coordinate_name in candidates:
+        coordinate = dataset.coords[coordinate_name]
         axis = str(coordinate.attrs.get("axis", "")).upper()
-        if coordinate_name != dim and tuple(coordinate.dims) == (dim,) and axis in ("X", "Y", "Z"):
-            found.setdefault(axis, Axis(str(coordinate_name), np.asarray(coordinate.values, dtype=np.float64),
+        if axis in ("X", "Y", "Z"):
+            found.setdefault(axis, Axis(str(coordinate_name),
+                                        np.asarray(coordinate.values, dtype=np.float64).reshape(-1),
                                         units_of(coordinate), str(coordinate.attrs.get("long_name") or coordinate_name),
                                         False))
-    return {a: found[a] for a in ("X", "Y", "Z") if a in found} if len(found) >= 2 else {}
+    return {a: found[a] for a in ("X", "Y", "Z") if a in found} if len(found) >= (2 if grid else 1) else {}
 
 
 @dataclass(frozen=True)

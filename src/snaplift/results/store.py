@@ -163,6 +163,12 @@ class StoreWriter:
                 if position != name and (group, position) not in seen and position not in node:
                     seen.add((group, position))
                     self.array(group, position, values.values, (dimension,), attrs=values.attrs)
+        if group == "modes":
+            for position, values in self.metadata.probe_position(name):  # a probe's own place
+                node = self._group_node(group) if node is None else node
+                if (group, position) not in seen and position not in node:
+                    seen.add((group, position))
+                    self.array(group, position, values.values, (), attrs=values.attrs)
 
     def arrays(self, group: str, items: Sequence[tuple[str, np.ndarray, Sequence[str]]]) -> None:
         """Several small arrays of one group, ``(name, data, dimensions)`` each, written together.
