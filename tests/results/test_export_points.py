@@ -191,6 +191,18 @@ def test_two_positions_are_an_xy_geometry_and_listed_order_without_axis(tmp_path
                                   np.stack([positions["px"], positions["py"]], axis=1))
 
 
+def test_one_unordered_coordinate_is_points_along_x(tmp_path: Path) -> None:
+    # one listed coordinate, not in order: the store keeps it as the axis coordinate, and a
+    # rectilinear mesh would need it in order (XDMF 3 model: VX is a monotonic vector)
+    positions = _points_archive(tmp_path / "line.h5", order="px", axis=False)
+    store = _run(tmp_path, "line.h5", ["T"], time="time")
+    xdmf, _ = export_xdmf(store, tmp_path / "line.modes.xdmf")
+    grid = _check_xdmf_model(xdmf)["T"]
+    assert grid.find("Topology").get("TopologyType") == "Polyvertex"
+    xy = _read(xdmf, grid.find("Geometry/DataItem"))
+    np.testing.assert_array_equal(xy, np.stack([positions["px"], np.zeros(positions["px"].size)], axis=1))
+
+
 def _probe_store(folder: Path, places: dict[str, dict[str, tuple[float, str]]] | None = None) -> Path:
     # two sensor signals of the duct (invented): x = cos(2 pi 0.7 t), y = sin(2 pi 0.7 t + 0.4);
     # ``places``: per probe, its scalar position datasets (value, CF axis or "") in listed order

@@ -1,22 +1,24 @@
 """``snaplift export``: the modes in formats other tools read.
 
 - XDMF 3 + HDF5 (the XDMF data model, an open standard read by common open-source
-  visualisation programs): per field one structured grid (``2DRectMesh`` /
-  ``3DRectMesh`` with its coordinate vectors, or the index positions where the store has
-  no coordinates; a 1-D field is a one-row 2-D mesh) carrying, per mode, the real part,
+  visualisation programs): per field one grid carrying, per mode, the real part,
   imaginary part, magnitude and phase of ``b_k x mode_k`` in field units (``b_k`` the
   complex amplitude, ``amplitude exp(i phase)``, so the real part is the mode's share of
-  the first fitted snapshot). A field on scattered points (the store keeps each point's
-  position, ``position_x`` ...; see :mod:`snaplift.results.metadata`) is a ``Polyvertex``
-  topology of one vertex per point on an ``XY`` or ``XYZ`` geometry of those positions,
-  with the same attributes. A probe whose store keeps its position (``<probe>_position_x``
-  ...) is a ``Polyvertex`` of one vertex there; a probe without one cannot be drawn: the
-  export is refused before anything is written, naming the field and ``--format netcdf``;
-  and a
-  temporal collection: one period of the leading oscillating mode, drawn by the leading
-  ``K`` modes (one of each conjugate pair) as ``sum_k c_k Re(b_k mode_k exp(2 pi i f_k t))``
-  with ``c_k = 2`` for a conjugate pair and 1 otherwise, without growth or decay (a
-  neutral picture of the shapes in motion; the forecast has the growth).
+  the first fitted snapshot), and a temporal collection: one period of the leading
+  oscillating mode, drawn by the leading ``K`` modes (one of each conjugate pair) as
+  ``sum_k c_k Re(b_k mode_k exp(2 pi i f_k t))`` with ``c_k = 2`` for a conjugate pair and
+  1 otherwise, without growth or decay (a neutral picture of the shapes in motion; the
+  forecast has the growth). The grid is
+
+  - a structured mesh (``2DRectMesh`` / ``3DRectMesh`` with its coordinate vectors, or the
+    index positions where the store has no coordinates; a 1-D field is a one-row 2-D mesh);
+  - for a field on scattered points (the store keeps each point's position,
+    ``position_x`` ...; see :mod:`snaplift.results.metadata`), a ``Polyvertex`` topology
+    of one vertex per point on an ``XY`` or ``XYZ`` geometry of those positions; so is a
+    1-D field whose coordinate is not in order (points along x), and a probe whose store
+    keeps its place (``<probe>_position_x`` ...: one vertex);
+  - none for a probe without a place: the export is refused in one line before anything
+    is written, naming the store, the field and ``--format netcdf``.
 - netCDF-4 following the CF conventions: complex values split into ``<name>_real`` and
   ``<name>_imag`` variables, coordinates, ``units`` and ``long_name`` kept, flags as
   integers with ``flag_values`` / ``flag_meanings``, written with the netCDF4 library.
@@ -126,6 +128,13 @@ def _mesh(view: StoreView, field: str) -> _Mesh:
                      "".join(letters), [("".join(letters), xyz)], (n,), np.arange(n, dtype=np.int64), attrs)
     axes = field_axes(view.modes, field)
     grid = tuple(a.values.size for a in axes)
+    steps = np.diff(axes[0].values) if len(axes) == 1 else np.zeros(0)
+    if steps.size and not (np.all(steps > 0) or np.all(steps < 0)):  # points along x, not in order: not a mesh
+        n = grid[0]
+        attrs = {"columns": f"{axes[0].dim} (zero)", **({"units": axes[0].units} if axes[0].units else {})}
+        return _Mesh({"TopologyType": "Polyvertex", "NumberOfElements": str(n), "NodesPerElement": "1"}, "XY",
+                     [("XY", np.stack([axes[0].values, np.zeros(n)], axis=1))], (n,), np.arange(n, dtype=np.int64),
+                     attrs)
     if len(axes) == 1:
         vectors = [("VX", axes[0].values), ("VY", np.zeros(1))]
         return _Mesh({"TopologyType": "2DRectMesh", "Dimensions": f"1 {grid[0]}"}, "VXVY", vectors, (1, grid[0]))

@@ -102,8 +102,10 @@ def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarr
             stored.append(f"{prefix}position_{letter}")
         point_names[points] = tuple(stored)
     probe_names: dict[str, tuple[str, ...]] = {}
+    lift = workflow.field_lift
+    delayed = set() if lift is None else {f.name for f in lift.lifted(list(section.fields)) if f.block}
     for name, source, _ in lifted:
-        if info.fields[source].grid or not positions[name]:
+        if info.fields[source].grid or not positions[name] or name in delayed:  # delayed copies: no modes
             continue
         stored = []
         for letter, variable in positions[name]:
