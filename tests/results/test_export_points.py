@@ -298,3 +298,24 @@ def test_grid_export_follows_the_same_model(wave_stores: dict[str, Path], tmp_pa
     grids = _check_xdmf_model(xdmf)
     assert {grids[name].find("Topology").get("TopologyType") for name in ("u", "p", "w")} == {"2DRectMesh",
                                                                                             "3DRectMesh"}
+
+
+def test_netcdf_points_by_cf_standard_name(tmp_path: Path) -> None:
+    # a netCDF-4 archive written by xarray: T(time, node) with auxiliary coordinates on node;
+    # CF standard names (longitude, latitude, depth) say which is x, y and z
+    rng = np.random.default_rng(5)
+    t, n = 0.05 * np.arange(120), 25
+    where = {"lat": rng.uniform(0, 1, n), "depth": rng.uniform(0, 1, n), "lon": rng.uniform(0, 1, n)}
+    names = {"lat": "latitude", "depth": "depth", "lon": "longitude"}
+    temperature = 300 + np.cos(2 * np.pi * 0.7 * t[:, None] - 4 * where["lon"][None, :])
+    dataset = xr.Dataset(
+        {"T": (("time", "node"), temperature, {"units": "K"})},
+        coords={"time": ("time", t, {"units": "s"}),
+                **{k: ("node", v, {"standard_name": names[k], "units": "m"}) for k, v in where.items()}})
+    dataset.to_netcdf(tmp_path / "nodes.nc")
+    store = _run(tmp_path, "nodes.nc", ["T"])
+    xdmf, _ = export_xdmf(store, tmp_path / "nodes.modes.xdmf")
+    grid = _check_xdmf_model(xdmf)["T"]
+    assert grid.find("Geometry").get("GeometryType") == "XYZ"
+    np.testing.assert_array_equal(_read(xdmf, grid.find("Geometry/DataItem")),
+                                  np.stack([where["lon"], where["lat"], where["depth"]], axis=1))
