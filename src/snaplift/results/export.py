@@ -1,16 +1,24 @@
 """``snaplift export``: the modes in formats other tools read.
 
 - XDMF 3 + HDF5 (the XDMF data model, an open standard read by common open-source
-  visualisation programs): per field one structured grid (``2DRectMesh`` /
-  ``3DRectMesh`` with its coordinate vectors, or the index positions where the store has
-  no coordinates; a 1-D field is a one-row 2-D mesh) carrying, per mode, the real part,
+  visualisation programs): per field one grid carrying, per mode, the real part,
   imaginary part, magnitude and phase of ``b_k x mode_k`` in field units (``b_k`` the
   complex amplitude, ``amplitude exp(i phase)``, so the real part is the mode's share of
-  the first fitted snapshot); and a
-  temporal collection: one period of the leading oscillating mode, drawn by the leading
-  ``K`` modes (one of each conjugate pair) as ``sum_k c_k Re(b_k mode_k exp(2 pi i f_k t))``
-  with ``c_k = 2`` for a conjugate pair and 1 otherwise, without growth or decay (a
-  neutral picture of the shapes in motion; the forecast has the growth).
+  the first fitted snapshot), and a temporal collection: one period of the leading
+  oscillating mode, drawn by the leading ``K`` modes (one of each conjugate pair) as
+  ``sum_k c_k Re(b_k mode_k exp(2 pi i f_k t))`` with ``c_k = 2`` for a conjugate pair and
+  1 otherwise, without growth or decay (a neutral picture of the shapes in motion; the
+  forecast has the growth). The grid is
+
+  - a structured mesh (``2DRectMesh`` / ``3DRectMesh`` with its coordinate vectors, or the
+    index positions where the store has no coordinates; a 1-D field is a one-row 2-D mesh);
+  - for a field on scattered points (the store keeps each point's position,
+    ``position_x`` ...; see :mod:`snaplift.results.metadata`), a ``Polyvertex`` topology
+    of one vertex per point on an ``XY`` or ``XYZ`` geometry of those positions; so is a
+    1-D field whose coordinate is not in order (points along x), and a probe whose store
+    keeps its place (``<probe>_position_x`` ...: one vertex);
+  - none for a probe without a place: the export is refused in one line before anything
+    is written, naming the store, the field and ``--format netcdf``.
 - netCDF-4 following the CF conventions: complex values split into ``<name>_real`` and
   ``<name>_imag`` variables, coordinates, ``units`` and ``long_name`` kept, flags as
   integers with ``flag_values`` / ``flag_meanings``, written with the netCDF4 library.
@@ -24,6 +32,8 @@ from __future__ import annotations
 import os
 import uuid
 import xml.etree.ElementTree as ET
+from dataclasses import dataclass
+from dataclasses import field as dataclass_field
 from pathlib import Path
 
 import h5py
@@ -31,7 +41,7 @@ import numpy as np
 import xarray as xr
 
 from snaplift.errors import ResultStoreError
-from snaplift.results.reading import StoreView, field_axes, leading_modes, open_store
+from snaplift.results.reading import StoreView, field_axes, leading_modes, open_store, point_positions
 
 __all__ = ["EXPORT_KEY", "export_netcdf", "export_xdmf", "default_export_path"]
 
@@ -88,20 +98,74 @@ def _animation(view: StoreView, field: str, chosen: list[int]) -> tuple[np.ndarr
     return frames, times
 
 
-def _mesh(view: StoreView, field: str) -> tuple[str, list[tuple[str, np.ndarray]], tuple[int, ...]]:
+@dataclass(frozen=True)
+class _Mesh:
+    """Where a field's values lie, in XDMF terms: the topology, the geometry's heavy data
+    (``coordinates/<name>`` in the field's group) and the shape of each attribute."""
+
+    topology: dict[str, str]
+    geometry_type: str
+    geometry: list[tuple[str, np.ndarray]]
+    shape: tuple[int, ...]
+    #: Polyvertex: the vertex of each element (``topology/connectivity``)
+    connectivity: np.ndarray | None = None
+    #: attributes of the geometry's heavy data (the positions' store names and units)
+    geometry_attrs: dict[str, str] = dataclass_field(default_factory=dict)
+
+
+def _mesh(view: StoreView, field: str) -> _Mesh:
+    """The XDMF mesh of ``field``; raises a one-line error for a field it cannot draw."""
+    positions = point_positions(view.modes, field)
+    if positions:
+        n = int(next(iter(positions.values())).values.size)
+        letters = ("X", "Y") if set(positions) == {"X", "Y"} else ("X", "Y", "Z")
+        xyz = np.stack([positions[a].values if a in positions else np.zeros(n) for a in letters], axis=1)
+        units = {positions[a].units for a in positions}
+        attrs = {"columns": " ".join(positions[a].dim if a in positions else "(zero)" for a in letters)}
+        if len(units) == 1 and "" not in units:
+            attrs["units"] = units.pop()
+        return _Mesh({"TopologyType": "Polyvertex", "NumberOfElements": str(n), "NodesPerElement": "1"},
+                     "".join(letters), [("".join(letters), xyz)], (n,), np.arange(n, dtype=np.int64), attrs)
     axes = field_axes(view.modes, field)
     grid = tuple(a.values.size for a in axes)
+    steps = np.diff(axes[0].values) if len(axes) == 1 else np.zeros(0)
+    if steps.size and not (np.all(steps > 0) or np.all(steps < 0)):  # points along x, not in order: not a mesh
+        n = grid[0]
+        attrs = {"columns": f"{axes[0].dim} (zero)", **({"units": axes[0].units} if axes[0].units else {})}
+        return _Mesh({"TopologyType": "Polyvertex", "NumberOfElements": str(n), "NodesPerElement": "1"}, "XY",
+                     [("XY", np.stack([axes[0].values, np.zeros(n)], axis=1))], (n,), np.arange(n, dtype=np.int64),
+                     attrs)
     if len(axes) == 1:
-        return "2DRectMesh", [("VX", axes[0].values), ("VY", np.zeros(1))], (1, grid[0])
+        vectors = [("VX", axes[0].values), ("VY", np.zeros(1))]
+        return _Mesh({"TopologyType": "2DRectMesh", "Dimensions": f"1 {grid[0]}"}, "VXVY", vectors, (1, grid[0]))
     if len(axes) == 2:
-        return "2DRectMesh", [("VX", axes[1].values), ("VY", axes[0].values)], grid
+        vectors = [("VX", axes[1].values), ("VY", axes[0].values)]
+        return _Mesh({"TopologyType": "2DRectMesh", "Dimensions": " ".join(map(str, grid))}, "VXVY", vectors, grid)
     if len(axes) == 3:
-        return "3DRectMesh", [("VX", axes[2].values), ("VY", axes[1].values), ("VZ", axes[0].values)], grid
-    raise NotImplementedError(f"field '{field}' has {len(axes)} grid dimensions; XDMF export handles 1-3")
+        vectors = [("VX", axes[2].values), ("VY", axes[1].values), ("VZ", axes[0].values)]
+        return _Mesh({"TopologyType": "3DRectMesh", "Dimensions": " ".join(map(str, grid))}, "VXVYVZ", vectors, grid)
+    if not axes:
+        raise ResultStoreError(
+            f"result store {view.path}: field '{field}' is a probe (one value per snapshot) and the store keeps no "
+            "position for it, which XDMF needs to place it; export with --format netcdf instead, or give the probe "
+            "a place: a CF 'coordinates' attribute on its archive dataset naming scalar x, y (z) datasets, and run "
+            "the workflow again")
+    raise NotImplementedError(f"result store {view.path}: field '{field}' has {len(axes)} grid dimensions and XDMF "
+                              "export handles 1-3; export with --format netcdf instead")
 
 
-def _item(parent: ET.Element, h5name: str, path: str, shape: tuple[int, ...]) -> None:
-    item = ET.SubElement(parent, "DataItem", Dimensions=" ".join(map(str, shape)), NumberType="Float",
+def _place(parent: ET.Element, mesh: _Mesh, h5name: str, field: str) -> None:
+    """The Topology and Geometry of ``mesh`` under the grid element ``parent``."""
+    topology = ET.SubElement(parent, "Topology", mesh.topology)
+    if mesh.connectivity is not None:
+        _item(topology, h5name, f"/{field}/topology/connectivity", mesh.connectivity.shape, number_type="Int")
+    geometry = ET.SubElement(parent, "Geometry", GeometryType=mesh.geometry_type)
+    for name, values in mesh.geometry:
+        _item(geometry, h5name, f"/{field}/coordinates/{name}", values.shape)
+
+
+def _item(parent: ET.Element, h5name: str, path: str, shape: tuple[int, ...], number_type: str = "Float") -> None:
+    item = ET.SubElement(parent, "DataItem", Dimensions=" ".join(map(str, shape)), NumberType=number_type,
                          Precision="8", Format="HDF")
     item.text = f"{h5name}:{path}"
 
@@ -114,6 +178,7 @@ def export_xdmf(store: str | Path, out: str | Path | None = None, *, leading: in
     >>> xdmf, h5 = export_xdmf("results/fin-duct.zarr")  # doctest: +SKIP
     """
     view = open_store(store)
+    meshes = {field: _mesh(view, field) for field in view.fields}  # every field drawable, before writing
     xdmf = Path(out) if out is not None else default_export_path(store, "xdmf")
     heavy = xdmf.with_suffix(".h5")
     _refuse_foreign(xdmf)
@@ -137,15 +202,15 @@ def export_xdmf(store: str | Path, out: str | Path | None = None, *, leading: in
             h5["spectrum/amplitude"] = np.abs(amplitude)
             h5["spectrum/phase"] = np.angle(amplitude)
             h5["spectrum/trusted"] = view.trusted.astype(np.int8)
-            for field in view.fields:
-                topology_type, vectors, shape = _mesh(view, field)
-                for name, values in vectors:
+            for field, mesh in meshes.items():
+                shape = mesh.shape
+                for name, values in mesh.geometry:
                     h5[f"{field}/coordinates/{name}"] = np.asarray(values, dtype=np.float64)
+                    h5[f"{field}/coordinates/{name}"].attrs.update(mesh.geometry_attrs)
+                if mesh.connectivity is not None:
+                    h5[f"{field}/topology/connectivity"] = mesh.connectivity
                 grid = ET.SubElement(domain, "Grid", Name=field, GridType="Uniform")
-                ET.SubElement(grid, "Topology", TopologyType=topology_type, Dimensions=" ".join(map(str, shape)))
-                geometry = ET.SubElement(grid, "Geometry", GeometryType="VXVY" if len(vectors) == 2 else "VXVYVZ")
-                for name, values in vectors:
-                    _item(geometry, heavy.name, f"/{field}/coordinates/{name}", (values.size,))
+                _place(grid, mesh, heavy.name, field)
                 units = view.field_units(field)
                 modes = np.asarray(view.modes[field].values)
                 for k in range(modes.shape[0]):
@@ -170,10 +235,7 @@ def export_xdmf(store: str | Path, out: str | Path | None = None, *, leading: in
                     h5[path].attrs["time"] = t
                     step = ET.SubElement(series, "Grid", Name=f"{field}_{i}", GridType="Uniform")
                     ET.SubElement(step, "Time", Value=f"{t:.17g}")
-                    ET.SubElement(step, "Topology", TopologyType=topology_type, Dimensions=" ".join(map(str, shape)))
-                    geometry = ET.SubElement(step, "Geometry", GeometryType="VXVY" if len(vectors) == 2 else "VXVYVZ")
-                    for name, values in vectors:
-                        _item(geometry, heavy.name, f"/{field}/coordinates/{name}", (values.size,))
+                    _place(step, mesh, heavy.name, field)
                     attribute = ET.SubElement(step, "Attribute", Name=field, AttributeType="Scalar", Center="Node")
                     _item(attribute, heavy.name, path, shape)
                 h5[f"{field}/animation"].attrs["modes"] = np.asarray(chosen, dtype=np.int64)

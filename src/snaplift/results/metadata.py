@@ -9,6 +9,16 @@ an array on a grid dimension, or on ``snapshot``, gets that dimension's coordina
 (:meth:`StoreMetadata.coordinate`), so that ``xarray.open_zarr(store, group=...)``
 shows physical axes.
 
+Fields on scattered points (one grid dimension, the archive listing two or three 1-D
+auxiliary coordinates of that length in the field's ``coordinates`` attribute) keep the
+position of every point: ``position_x`` / ``position_y`` / ``position_z`` (``<field>_position_x``
+on a field's own dimension) on the point dimension, each with ``axis`` ``X`` / ``Y`` / ``Z``
+and named in the ``coordinates`` attribute of every array on that dimension
+(:attr:`StoreMetadata.positions`); ``snaplift export`` draws such fields as points. A
+probe (a field with no grid) whose archive names scalar coordinates in its ``coordinates``
+attribute (CF 1.x sections 5.7 and 9: a single time series at one station) keeps them as
+0-d ``<probe>_position_x`` ... in the same way (:attr:`StoreMetadata.probe_positions`).
+
 Conventions (CF 1.x): ``units`` strings in UDUNITS form (``"m s-1"``, ``"K"``, ``"Hz"``,
 ``"1"`` for dimensionless); ``standard_name`` only where CF defines one (``time``);
 non-dimension coordinates are named in a ``coordinates`` attribute (CF section 5).
@@ -95,6 +105,10 @@ class StoreMetadata:
     time_unit: str | None = None
     seconds_per_unit: float | None = None
     extra_units: dict[str, str] = field(default_factory=dict)
+    #: per point dimension, the names (in ``coordinates``) of its position coordinates, x first
+    positions: dict[str, tuple[str, ...]] = field(default_factory=dict)
+    #: per probe (field with no grid), the names (in ``coordinates``) of its 0-d position coordinates
+    probe_positions: dict[str, tuple[str, ...]] = field(default_factory=dict)
 
     # -- units of derived quantities -------------------------------------------------
     @property
@@ -136,6 +150,10 @@ class StoreMetadata:
             coordinate = self.coordinate(name)
             if coordinate is not None:  # a grid coordinate: the archive's attributes, nothing invented
                 return dict(coordinate.attrs)
+        if len(dimensions) == 1 and name in self.positions.get(dimensions[0], ()):
+            return dict(self.coordinates[name].attrs)
+        if not dimensions and any(name in names for names in self.probe_positions.values()):
+            return dict(self.coordinates[name].attrs)
         units, long_name = self._describe(group, name)
         # an unknown unit is left out (CF): "1" would claim the field is dimensionless
         out: dict[str, Any] = {"long_name": long_name} if units is None else {"units": units, "long_name": long_name}
@@ -143,6 +161,10 @@ class StoreMetadata:
             out["coordinates"] = "time"
         if group == "modes" and "mode" in dimensions and name != "frequency":
             out["coordinates"] = "frequency"
+        listed = [p for d in dimensions for p in self.positions.get(d, ()) if p != name]
+        listed += list(self.probe_positions.get(name, ()) if group == "modes" else ())
+        if listed:  # CF section 5: auxiliary coordinates named on every array that has the dimension
+            out["coordinates"] = " ".join(filter(None, (out.get("coordinates", ""), *listed)))
         if name == "time" and group in SNAPSHOT_GROUPS:
             coordinate = self.coordinate("snapshot")
             out.update(coordinate.attrs if coordinate is not None else {})
@@ -233,3 +255,11 @@ class StoreMetadata:
                 attrs["units"] = units
             return Coordinate(np.asarray(self.time), attrs)
         return self.coordinates.get(dimension)
+
+    def point_positions(self, dimension: str) -> list[tuple[str, Coordinate]]:
+        """The position coordinates of a point dimension, ``(name, coordinate)``, x first."""
+        return [(name, self.coordinates[name]) for name in self.positions.get(dimension, ())]
+
+    def probe_position(self, name: str) -> list[tuple[str, Coordinate]]:
+        """The 0-d position coordinates of the probe ``name``, ``(name, coordinate)``, x first."""
+        return [(position, self.coordinates[position]) for position in self.probe_positions.get(name, ())]

@@ -35,7 +35,7 @@ if TYPE_CHECKING:
     import xarray as xr
 
 __all__ = ["Axis", "Group", "StoreView", "Variable", "field_axes", "label", "leading_modes", "open_group",
-           "open_store", "units_of"]
+           "open_store", "point_positions", "units_of"]
 
 #: a group of the store as :class:`StoreView` holds it: an ``xarray.Dataset`` (:func:`open_group`)
 #: or a :class:`Group` (``open_store(..., light=True)``), read through the same interface
@@ -205,6 +205,39 @@ def field_axes(dataset: Dataset, name: str, *, skip: tuple[str, ...] = ("mode", 
         else:
             axes.append(Axis(str(dim), np.arange(size, dtype=np.float64), "", str(dim), True))
     return axes
+
+
+def point_positions(dataset: Dataset, name: str, *,
+                    skip: tuple[str, ...] = ("mode", "rank", "snapshot")) -> dict[str, Axis]:
+    """The positions of the points of a field on scattered points by CF axis (``"X"``, ``"Y"``,
+    ``"Z"``); empty for any other field.
+
+    Such a field has one point dimension carrying two or three coordinates with a CF ``axis``
+    of ``X`` / ``Y`` / ``Z`` (``position_x`` ... as the store writes them); its dimension
+    coordinate, if any, is not a position. A probe (no grid dimension) has one to three 0-d
+    such coordinates named in its ``coordinates`` attribute (``<probe>_position_x`` ...).
+    """
+    variable = dataset[name]
+    grid = [dim for dim in variable.dims if dim not in skip]
+    if len(grid) > 1:
+        return {}
+    if grid:
+        dims: tuple[str, ...] = (grid[0],)
+        candidates = [n for n, c in dataset.coords.items() if n != grid[0] and tuple(c.dims) == dims]
+    else:  # a probe: the 0-d coordinates its own ``coordinates`` attribute names
+        dims = ()
+        listed = f"{variable.attrs.get('coordinates', '')} {variable.encoding.get('coordinates', '')}".split()
+        candidates = [n for n in listed if n in dataset.coords and tuple(dataset.coords[n].dims) == dims]
+    found: dict[str, Axis] = {}
+    for coordinate_name in candidates:
+        coordinate = dataset.coords[coordinate_name]
+        axis = str(coordinate.attrs.get("axis", "")).upper()
+        if axis in ("X", "Y", "Z"):
+            found.setdefault(axis, Axis(str(coordinate_name),
+                                        np.asarray(coordinate.values, dtype=np.float64).reshape(-1),
+                                        units_of(coordinate), str(coordinate.attrs.get("long_name") or coordinate_name),
+                                        False))
+    return {a: found[a] for a in ("X", "Y", "Z") if a in found} if len(found) >= (2 if grid else 1) else {}
 
 
 @dataclass(frozen=True)

@@ -40,9 +40,10 @@ COMPLETE_KEY = "snaplift_complete"
 FORMAT_KEY = "snaplift_store_version"
 #: layout of the result store; change it with the layout (2: CF units and long names,
 #: coordinates, spectrum/peak_<field>; 3: sketch/exact_rows, the fields kept whole, and
-#: checksums/ of the blocks compress read). Stage fingerprints include it, so a store written
-#: in another layout is recomputed, never reused (snaplift.workflow.fingerprint).
-STORE_VERSION = 3
+#: checksums/ of the blocks compress read; 4: position_x ... of fields on scattered points and
+#: <probe>_position_x ... of probes with a place). Stage fingerprints include it, so a store
+#: written in another layout is recomputed, never reused (snaplift.workflow.fingerprint).
+STORE_VERSION = 4
 #: float and complex arrays of at least this many bytes are stored without compression: zstd
 #: saved 4 % on the basis and sketch state (noise to a compressor) and cost 0.3 s to write
 #: and 0.6 s to read 170 MB (measured, issue 16)
@@ -159,6 +160,16 @@ class StoreWriter:
             if coordinate is not None:
                 self.array(group, target, coordinate.values, (dimension,), attrs=coordinate.attrs)
                 seen.add((group, target))
+            for position, values in self.metadata.point_positions(dimension):  # scattered points
+                if position != name and (group, position) not in seen and position not in node:
+                    seen.add((group, position))
+                    self.array(group, position, values.values, (dimension,), attrs=values.attrs)
+        if group == "modes":
+            for position, values in self.metadata.probe_position(name):  # a probe's own place
+                node = self._group_node(group) if node is None else node
+                if (group, position) not in seen and position not in node:
+                    seen.add((group, position))
+                    self.array(group, position, values.values, (), attrs=values.attrs)
 
     def arrays(self, group: str, items: Sequence[tuple[str, np.ndarray, Sequence[str]]]) -> None:
         """Several small arrays of one group, ``(name, data, dimensions)`` each, written together.

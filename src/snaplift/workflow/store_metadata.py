@@ -6,6 +6,15 @@ a store dimension name, ``x`` / ``y`` / ``z`` for every field whose axis it name
 field's own ``u_x``), else from the archive (netCDF / zarr dimension coordinates, CF
 ``coordinates``; :attr:`snaplift.archive._base.FieldInfo.coordinates`). Only metadata and
 the small 1-D coordinate and time datasets are read.
+
+A field on scattered points (one grid axis, its ``coordinates`` attribute listing two or
+three 1-D numeric datasets of the axis length: CF 1.x section 5 auxiliary coordinates)
+keeps every point's position (:func:`point_positions`): the store writes them as
+``position_x`` ... on the point dimension (``<field>_position_x`` on a field's own), and
+the point axis itself gets no coordinate (its values are not ordered along any axis).
+A probe (no grid axis) whose ``coordinates`` attribute lists one to three numeric scalars
+(CF 1.x sections 5.7 and 9: one time series at one station) keeps them as 0-d
+``<probe>_position_x`` ... beside its modes and basis vectors.
 """
 
 from __future__ import annotations
@@ -18,7 +27,7 @@ from snaplift.archive._base import ArchiveInfo
 from snaplift.errors import ConfigError
 from snaplift.results.metadata import Coordinate, StoreMetadata, grid_dimensions, lifted_units
 
-__all__ = ["store_metadata"]
+__all__ = ["point_positions", "store_metadata"]
 
 
 def _lifted(workflow: Any) -> list[tuple[str, str, str]]:
@@ -61,13 +70,17 @@ def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarr
                     used.add(key)
                     break
         sources[name] = tuple(found)
+    positions = {name: point_positions(info, source, section.time) for name, source, _ in lifted}
+    for name, source, _ in lifted:
+        if positions[name] and grids[name] and not {f"{name}_x", f"{source}_x", "x"} & used:
+            sources[name] = (None,)  # scattered points: the point axis is an index, not an x axis
     unused = sorted(set(given) - used)
     if unused:
         shown = sorted({d for name in grids for d in (*_axis_names(grids[name]),
                                                        *(f"{name}_{b}" for b in _axis_names(grids[name])))})
         raise ConfigError(f"archive.coords key '{unused[0]}' names no grid dimension of the fields "
                           f"{list(section.fields)}; use one of: {', '.join(shown)}")
-    dims = grid_dimensions(grids, sources)
+    dims = grid_dimensions(grids, {name: (*sources[name], *(v for _, v in positions[name])) for name in grids})
     coordinates: dict[str, Coordinate] = {}
     for name, variables in sources.items():
         for axis, variable in enumerate(variables):
@@ -75,6 +88,35 @@ def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarr
             if variable is None or dimension in coordinates:
                 continue
             coordinates[dimension] = _coordinate(reader, info, variable, grids[name][axis], dimension, name)
+    point_names: dict[str, tuple[str, ...]] = {}
+    for name, found_positions in positions.items():
+        points = dims[name][0] if found_positions and grids[name] else None
+        if points is None or points in point_names:
+            continue
+        prefix = points[:-1]  # "x" -> "", "T_x" -> "T_"
+        stored = []
+        for letter, variable in found_positions:
+            coordinate = _coordinate(reader, info, variable, grids[name][0], points, name)
+            coordinates[f"{prefix}position_{letter}"] = Coordinate(
+                coordinate.values, {**coordinate.attrs, "axis": letter.upper()})
+            stored.append(f"{prefix}position_{letter}")
+        point_names[points] = tuple(stored)
+    probe_names: dict[str, tuple[str, ...]] = {}
+    lift = workflow.field_lift
+    delayed = set() if lift is None else {f.name for f in lift.lifted(list(section.fields)) if f.block}
+    for name, source, _ in lifted:
+        if info.fields[source].grid or not positions[name] or name in delayed:  # delayed copies: no modes
+            continue
+        stored = []
+        for letter, variable in positions[name]:
+            attrs = info.variables[variable].attrs
+            value = np.asarray(reader.read_variable(variable), dtype=np.float64).reshape(())
+            coordinates[f"{name}_position_{letter}"] = Coordinate(value, {
+                "long_name": str(attrs.get("long_name") or attrs.get("standard_name") or variable),
+                "archive_variable": variable, "axis": letter.upper(),
+                **({"units": str(attrs["units"])} if attrs.get("units") else {})})
+            stored.append(f"{name}_position_{letter}")
+        probe_names[name] = tuple(stored)
     units = {name: _field_units(section, info, source, reader.path) for name, source, _ in lifted}
     field_units = {name: lifted_units(units[name], term) for name, _, term in lifted}
     field_names = {}
@@ -89,7 +131,49 @@ def store_metadata(workflow: Any, reader: Any, info: ArchiveInfo, time: np.ndarr
     return StoreMetadata(field_units=field_units, field_names=field_names, dims=dims, coordinates=coordinates,
                          time=np.asarray(time), time_attrs=_time_attrs(section, info, time_unit),
                          time_unit=None if time_unit is None else time_unit.name,
-                         seconds_per_unit=None if time_unit is None else time_unit.seconds, extra_units=extra)
+                         seconds_per_unit=None if time_unit is None else time_unit.seconds, extra_units=extra,
+                         positions=point_names, probe_positions=probe_names)
+
+
+#: CF ``axis`` values and the ``standard_name`` stems that say which position a coordinate is
+_AXIS_ORDER = ("X", "Y", "Z")
+_STANDARD_AXIS = {"projection_x_coordinate": "X", "longitude": "X", "grid_longitude": "X",
+                  "projection_y_coordinate": "Y", "latitude": "Y", "grid_latitude": "Y",
+                  "height": "Z", "altitude": "Z", "depth": "Z"}
+
+
+def point_positions(info: ArchiveInfo, source: str, time: str | None = None) -> tuple[tuple[str, str], ...]:
+    """The archive datasets holding the positions of the points of a field on scattered points,
+    or of a probe, as ``(axis, dataset)`` pairs, axis ``"x"``, ``"y"`` or ``"z"`` in that order.
+
+    A field on scattered points has one grid axis of ``n`` points and its ``coordinates``
+    attribute lists two or three 1-D numeric datasets of length ``n``; a probe (no grid axis)
+    lists one to three numeric scalars (shape ``()`` or ``(1,)``). The time dataset is left
+    out. A dataset whose CF ``axis`` (else ``standard_name``) says which position it is takes
+    that axis; the others take the free axes in the order listed. Anything else (a grid, a
+    single coordinate of scattered points, more than three) gives ``()``.
+    """
+    field = info.fields[source]
+    listed = field.attrs.get("coordinates")
+    if len(field.grid) > 1 or not isinstance(listed, str):
+        return ()
+    time = time or info.attrs.get("time_variable")
+    shapes = {field.grid, (1,)} if not field.grid else {field.grid}
+    found = [name for name in dict.fromkeys(listed.split()) if name != time and name in info.variables
+             and info.variables[name].shape in shapes and np.dtype(info.variables[name].dtype).kind in "iuf"]
+    if len(found) not in ((1, 2, 3) if not field.grid else (2, 3)):
+        return ()
+    letters: dict[str, str] = {}
+    for name in found:
+        attrs = info.variables[name].attrs
+        letter = str(attrs.get("axis") or _STANDARD_AXIS.get(str(attrs.get("standard_name")), "")).upper()
+        if letter in _AXIS_ORDER and letter not in letters:
+            letters[letter] = name
+    rest = [name for name in found if name not in letters.values()]
+    for letter in _AXIS_ORDER:
+        if letter not in letters and rest:
+            letters[letter] = rest.pop(0)
+    return tuple((letter.lower(), letters[letter]) for letter in _AXIS_ORDER if letter in letters)
 
 
 def _field_units(section: Any, info: ArchiveInfo, source: str, path: Any) -> str | None:
