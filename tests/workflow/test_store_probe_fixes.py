@@ -115,26 +115,68 @@ def test_series_time_in_a_root_attribute_takes_its_unit_from_a_root_attribute(tm
     assert xr.open_zarr(store, group="diagnostics")["time"].attrs["units"] == "ms"
 
 
-def test_a_store_of_another_layout_is_recomputed_not_reused(tmp_path: Path, monkeypatch) -> None:
+def test_a_store_of_an_older_layout_than_needed_is_recomputed_not_reused(tmp_path: Path, monkeypatch) -> None:
     from snaplift.results import store as result_store
 
     _write_h5(tmp_path / "a.h5")
     archive = {"fields": ["T", "p"]}
-    # an older snaplift: same workflow, the previous layout version
-    monkeypatch.setattr(result_store, "STORE_VERSION", result_store.STORE_VERSION - 1)
-    monkeypatch.setattr("snaplift.results.staging.STORE_VERSION", result_store.STORE_VERSION)
+    needed = result_store.needed_layout(None)
+    # an older snaplift: same workflow, a layout older than this archive's store needs
+    monkeypatch.setattr(result_store, "needed_layout", lambda metadata: needed - 1)
+    monkeypatch.setattr("snaplift.results.staging.STORE_VERSION", needed - 1)
     _run(tmp_path, archive)
     monkeypatch.undo()
     path = tmp_path / "w.yaml"
     summary = run_workflow(path)
     assert {name: record["status"] for name, record in summary.stages.items()} == {
         "scan": "computed", "compress": "computed", "fit": "computed", "modes": "computed", "report": "computed"}
-    assert any(f"layout {result_store.STORE_VERSION - 1}" in w and "recomputed" in w for w in summary.warnings)
+    assert any(f"layout {needed - 1}" in w and "recomputed" in w for w in summary.warnings)
     assert xr.open_zarr(summary.path).attrs["snaplift_store_version"] == result_store.STORE_VERSION
     # the same layout again: everything but scan is reused, and no layout warning
     again = run_workflow(path)
     assert again.stages["compress"]["status"] == "reused" and again.stages["fit"]["status"] == "reused"
     assert not any("layout" in w for w in again.warnings)
+
+
+def test_a_layout_3_store_without_positions_is_reused_after_an_upgrade(tmp_path: Path, monkeypatch) -> None:
+    # layout 4 only adds point positions and probe places: a store of an archive with neither
+    # is the same in layout 3, so an upgrade does not recompute it from the archive
+    from snaplift.results import store as result_store
+
+    _write_h5(tmp_path / "a.h5")
+    monkeypatch.setattr("snaplift.results.staging.STORE_VERSION", 3)
+    _run(tmp_path, {"fields": ["T", "p"]})
+    monkeypatch.undo()
+    assert xr.open_zarr(tmp_path / "r.zarr").attrs["snaplift_store_version"] == 3
+    again = run_workflow(tmp_path / "w.yaml")
+    assert again.stages["compress"]["status"] == "reused" and again.stages["modes"]["status"] == "reused"
+    assert not any("layout" in w for w in again.warnings)
+    assert xr.open_zarr(again.path).attrs["snaplift_store_version"] == result_store.STORE_VERSION
+
+
+def test_a_layout_3_store_of_scattered_points_is_recomputed_for_their_positions(tmp_path: Path,
+                                                                                  monkeypatch) -> None:
+    # a field on scattered points (CF coordinates naming 1-D position datasets): layout 3 kept
+    # no positions, so its store is recomputed once and then holds them
+    rng = np.random.default_rng(4)
+    t = 0.05 * np.arange(60)
+    px, py = rng.uniform(0, 0.5, 30), rng.uniform(0, 0.1, 30)
+    with h5py.File(tmp_path / "a.h5", "w") as h5:
+        h5["time"] = t
+        h5["px"], h5["py"] = px, py
+        h5["px"].attrs["axis"], h5["py"].attrs["axis"] = "X", "Y"
+        h5["T"] = 300.0 + np.cos(2 * np.pi * 0.7 * t[:, None] - 12.0 * px[None, :])
+        h5["T"].attrs["coordinates"] = "px py"
+    archive = {"fields": ["T"], "time": "time"}
+    monkeypatch.setattr("snaplift.results.staging.STORE_VERSION", 3)
+    monkeypatch.setattr("snaplift.results.store.needed_layout", lambda metadata: 3)
+    _run(tmp_path, archive)
+    monkeypatch.undo()
+    again = run_workflow(tmp_path / "w.yaml")
+    assert again.stages["compress"]["status"] == "computed"
+    assert any("layout 3" in w and "point positions" in w and "recomputed" in w for w in again.warnings)
+    modes = xr.open_zarr(again.path, group="modes")
+    np.testing.assert_array_equal(modes["position_x"].values, px)
 
 
 def test_field_not_found_lists_candidate_fields_not_weights_or_masks(tmp_path: Path) -> None:

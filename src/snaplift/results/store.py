@@ -33,17 +33,38 @@ import zarr
 from snaplift.errors import ResultStoreError
 from snaplift.results.metadata import StoreMetadata, grid_dimensions
 
-__all__ = ["StoreWriter", "open_result", "read_group", "grid_dimensions", "COMPLETE_KEY", "FORMAT_KEY",
-           "STORE_VERSION"]
+__all__ = ["StoreWriter", "open_result", "read_group", "grid_dimensions", "needed_layout", "COMPLETE_KEY",
+           "FORMAT_KEY", "POSITIONS_LAYOUT", "STORE_VERSION"]
 
 COMPLETE_KEY = "snaplift_complete"
 FORMAT_KEY = "snaplift_store_version"
 #: layout of the result store; change it with the layout (2: CF units and long names,
 #: coordinates, spectrum/peak_<field>; 3: sketch/exact_rows, the fields kept whole, and
 #: checksums/ of the blocks compress read; 4: position_x ... of fields on scattered points and
-#: <probe>_position_x ... of probes with a place). Stage fingerprints include it, so a store
-#: written in another layout is recomputed, never reused (snaplift.workflow.fingerprint).
+#: <probe>_position_x ... of probes with a place). Stage fingerprints include the layout a
+#: store of the archive needs (:func:`needed_layout`), so a store written in an older layout
+#: that lacks something the archive has is recomputed, never reused
+#: (snaplift.workflow.fingerprint).
 STORE_VERSION = 4
+#: the first layout with point positions and probe places (a store without either is the same in 3)
+POSITIONS_LAYOUT = 4
+
+
+def needed_layout(metadata: StoreMetadata | None) -> int:
+    """The oldest store layout that holds everything a store of this archive holds.
+
+    A layout adds arrays only some archives have (4: point positions, probe places): a
+    store of an archive without them is the same in layout 3 and 4, so its stages are
+    reused after an upgrade rather than recomputed from the archive.
+
+    Example
+    -------
+    >>> needed_layout(None)
+    3
+    """
+    if metadata is not None and (metadata.positions or metadata.probe_positions):
+        return POSITIONS_LAYOUT
+    return POSITIONS_LAYOUT - 1
 #: float and complex arrays of at least this many bytes are stored without compression: zstd
 #: saved 4 % on the basis and sketch state (noise to a compressor) and cost 0.3 s to write
 #: and 0.6 s to read 170 MB (measured, issue 16)

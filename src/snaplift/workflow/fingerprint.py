@@ -47,10 +47,12 @@ identity; ``compress`` hashes scan's fingerprint with ``prepare``, ``lift`` and 
 ``compress`` settings that change results (not ``memory`` or ``checkpoint_every``: the
 tiling does not change results, README.md, "compress"); ``fit`` hashes compress's with
 ``fit``; ``modes`` and ``report`` hash their input's. ``cluster`` and ``output`` never
-enter: where a result is computed does not change it. The result store's layout version
-(:data:`snaplift.results.store.STORE_VERSION`) enters ``scan`` and the compress settings,
-so a store written in an older layout (no units, coordinates or peak amplitudes) is
-recomputed, not reused.
+enter: where a result is computed does not change it. The store layout the archive needs
+(:func:`snaplift.results.store.needed_layout`: the current
+:data:`~snaplift.results.store.STORE_VERSION`, or an older one when the newer layouts
+only add arrays this archive has none of) enters ``scan`` and the compress settings, so a
+store written in an older layout that lacks something (units, coordinates, peak
+amplitudes; point positions of an archive that has them) is recomputed, not reused.
 """
 
 from __future__ import annotations
@@ -337,14 +339,16 @@ def workflow_identity(workflow: Workflow, archive_path: str) -> str:
     return section_fingerprint("identity", paths, list(workflow.archive.fields))
 
 
-def stage_fingerprints(workflow: Workflow, archive_identity: str) -> dict[str, str]:
-    """Fingerprint of every stage (module docstring)."""
+def stage_fingerprints(workflow: Workflow, archive_identity: str,
+                       layout_version: int = result_store.STORE_VERSION) -> dict[str, str]:
+    """Fingerprint of every stage (module docstring); ``layout_version``: the store layout the
+    archive needs (:func:`snaplift.results.store.needed_layout`)."""
     compress = {k: v for k, v in workflow.compress.model_dump(mode="json").items() if k not in NOT_RESULT_KEYS}
     # raw-field lifting changes the matrix compress reads; a state dictionary only the fit
     raw = [e.model_dump(mode="json") for e in workflow.lift if e.kind in RAW_KINDS]
     states = [e.model_dump(mode="json") for e in workflow.lift if e.kind not in RAW_KINDS]
     # the store's layout: a store written in another layout is recomputed, not reused
-    layout = {"store_version": result_store.STORE_VERSION}
+    layout = {"store_version": int(layout_version)}
     scan = section_fingerprint("scan", workflow.archive, archive_identity, layout)
     compressed = section_fingerprint("compress", scan, workflow.prepare, raw, compress)
     fit = section_fingerprint("fit", compressed, workflow.fit, states)

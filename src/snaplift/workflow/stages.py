@@ -245,11 +245,6 @@ class ScanStage(_Base[ScanResult]):
         archive_now = archive_fingerprint(scanned.reader)
         previous = store.previous_record("scan")
         layout = store.previous.attrs.get(result_store.FORMAT_KEY) if store.previous is not None else None
-        if layout is not None and layout != result_store.STORE_VERSION:
-            context.warnings.append(
-                f"{store.path} holds result store layout {layout}; this snaplift writes layout "
-                f"{result_store.STORE_VERSION} (units, coordinates, peak amplitudes, block checksums): every stage is "
-                "recomputed")
         info = scanned.reader.describe()
         fields = workflow.archive.fields
         chunk = max(1, max(info.fields[f].snapshot_chunk for f in fields))
@@ -264,7 +259,15 @@ class ScanStage(_Base[ScanResult]):
                                      reason=f"no previous result (resumed; archive {classification.reason})")
         # every array written from here on carries units, names and coordinates from the archive
         store.writer.metadata = store_metadata(workflow, scanned.reader, info, scanned.time, scanned.time_unit)
-        return ScanResult(scanned, classification, archive_now, stage_fingerprints(workflow, classification.identity))
+        # a store of an older layout is reused when the newer layouts add nothing this archive has
+        needed = result_store.needed_layout(store.writer.metadata)
+        if layout is not None and int(layout) < needed:
+            context.warnings.append(
+                f"{store.path} holds result store layout {layout}; this archive's store needs layout {needed} "
+                f"(units, coordinates, peak amplitudes, block checksums{', point positions' if needed >= 4 else ''}): "
+                "every stage is recomputed")
+        return ScanResult(scanned, classification, archive_now,
+                          stage_fingerprints(workflow, classification.identity, needed))
 
     def write(self, context: StageContext, result: ScanResult) -> tuple[StageRecord, ScanResult]:
         scanned, classification = result.scanned, result.classification
