@@ -261,7 +261,7 @@ class ScanStage(_Base[ScanResult]):
         store.writer.metadata = store_metadata(workflow, scanned.reader, info, scanned.time, scanned.time_unit)
         # a store of an older layout is reused when the newer layouts add nothing this archive has
         needed = result_store.needed_layout(store.writer.metadata)
-        if layout is not None and int(layout) < needed:
+        if isinstance(layout, (int, float)) and int(layout) < needed:
             context.warnings.append(
                 f"{store.path} holds result store layout {layout}; this archive's store needs layout {needed} "
                 f"(units, coordinates, peak amplitudes, block checksums{', point positions' if needed >= 4 else ''}): "
