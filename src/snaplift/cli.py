@@ -427,10 +427,28 @@ def forecast(
     from snaplift.results.forecast_output import FORECAST_CAUTION, forecast_dataset, write_forecast
 
     dataset = forecast_dataset(result, start, steps, compare=compare)
-    fields = [str(name) for name in dataset.data_vars if "step" in dataset[name].dims and dataset[name].ndim > 1]
+    # the forecast fields: a field on a grid (step, ...) or a probe (step,); not the bookkeeping
+    fields = [str(name) for name in dataset.data_vars if "step" in dataset[name].dims
+              and str(name) not in ("archive_snapshot", "archive_time") and not str(name).startswith("error_")]
     time = dataset["time"].values
     typer.echo(f"forecast of {', '.join(fields)} from snapshot {dataset.attrs['start_column']} "
                f"(time {time[0]:.6g}) for {steps} steps to time {time[-1]:.6g}")
+    probes = [name for name in fields if dataset[name].ndim == 1]
+    if probes:  # one value per step: show them (a grid field is written with --out)
+        from rich.markup import escape
+        from rich.table import Table
+
+        values = Table(title="forecast probe values", title_justify="left")
+        time_unit = str(dataset["time"].attrs.get("units") or "").split(" since ")[0].strip()
+        values.add_column("step", justify="right")
+        values.add_column(escape(f"time [{time_unit}]") if time_unit else "time", justify="right")
+        for name in probes:
+            unit = str(dataset[name].attrs.get("units") or "")
+            values.add_column(escape(f"{name} [{unit}]") if unit else name, justify="right")
+        picks = np.unique(np.linspace(0, time.size - 1, min(time.size, 12)).astype(int))
+        for s in picks:
+            values.add_row(str(int(s)), f"{time[s]:.6g}", *(f"{float(dataset[name].values[s]):.6g}" for name in probes))
+        _console().print(values)
     if compare:
         errors = [str(name) for name in dataset.data_vars if str(name).startswith("error_")]
         overlap = np.flatnonzero(dataset["archive_snapshot"].values >= 0)
