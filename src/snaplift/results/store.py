@@ -52,7 +52,7 @@ RAW_FLOAT_BYTES = 1 << 20
 #: how zarr fills the arrays this writer makes: every chunk written is stored as it is
 #: (zarr's default compares each chunk with the fill value first, to leave out chunks that
 #: hold nothing else: a pass over every value written, for chunks a result never has)
-WRITE_CONFIG = {"write_empty_chunks": True}
+WRITE_CONFIG: Any = {"write_empty_chunks": True}  # zarr's ArrayConfigParams
 
 
 def _compressors(dtype: Any, shape: Sequence[int]) -> Any:
