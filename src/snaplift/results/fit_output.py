@@ -192,7 +192,7 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Compressed, order: np
                         assert products is not None
                         values = to_physical(products[:, own.index(k)], rows, preparation, add_mean=False)
                         largest[k] = _largest(values)
-                    block[k - k0] = rows.expand(values)
+                    _place(rows, values, block[k - k0])
                     previous = values
                 del products
                 if whole is None:
@@ -237,11 +237,20 @@ def _conjugate_twins(modes_rows: np.ndarray) -> np.ndarray:
     return twins
 
 
+def _place(rows: FieldRows, values: np.ndarray, out: np.ndarray) -> None:
+    """``out[...] = rows.expand(values)`` without the grid-sized temporary: NaN at masked points."""
+    flat = out.reshape(-1)
+    if rows.keep is None:
+        flat[...] = values
+    else:
+        flat.fill(np.nan)
+        flat[rows.keep] = values
+
+
 def _largest(values: np.ndarray) -> float:
-    """Largest modulus of a mode's values (NaN at masked or zero-weight points ignored)."""
+    """Largest modulus of a mode's values (NaN at masked or zero-weight points ignored; 0 if none)."""
     magnitude = np.abs(np.asarray(values))
-    finite = magnitude[np.isfinite(magnitude)]
-    return float(finite.max()) if finite.size else 0.0
+    return float(np.max(magnitude, where=np.isfinite(magnitude), initial=0.0))
 
 
 def _write_mode_frequency(writer: StoreWriter, fit: Any, order: np.ndarray) -> None:

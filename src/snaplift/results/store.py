@@ -215,7 +215,8 @@ class StoreWriter:
 
     def group_attrs(self, group: str, attrs: dict[str, Any]) -> None:
         node = self.root.require_group(group) if group else self.root
-        node.attrs.update(_jsonable(attrs))
+        # one metadata write (``attrs.update`` writes the group's zarr.json once per key)
+        node.update_attributes(_jsonable(attrs))
 
     def commit(self, attrs: dict[str, Any]) -> Path:
         """Write provenance, consolidate metadata once, mark complete, rename into place."""
