@@ -14,7 +14,7 @@ from typer.testing import CliRunner
 
 from snaplift.cli import app
 from snaplift.workflow.bench.archive import GRID, parse_layout, write_archive
-from snaplift.workflow.bench.commands import Cap, find_slowfs_run, slowfs_missing
+from snaplift.workflow.bench.commands import START_MARK, Cap, find_slowfs_run, run_command, slowfs_missing
 from snaplift.workflow.bench.model import CostModel, predict, relative_gap
 from snaplift.workflow.bench.regime import RegimeSettings, run_regimes, stage_shares
 from snaplift.workflow.bench.render_regime import render_regimes
@@ -186,3 +186,29 @@ def test_the_capped_bench_byte_compiles_the_package_first():
     cached.unlink(missing_ok=True)
     assert compile_package() is True
     assert cached.is_file()
+
+
+def test_store_share_ends_when_the_command_was_seen_to_end():
+    # the command's end as the bench saw it (epoch) bounds the store share; without it,
+    # start mark + whole (which also counts what ran before the mark)
+    t0 = dt.datetime(2026, 1, 1, tzinfo=dt.UTC)
+
+    def at(seconds: float) -> str:
+        return (t0 + dt.timedelta(seconds=seconds)).isoformat()
+
+    attrs = {"stages": {"scan": {"started": at(1.0), "finished": at(1.5)},
+                        "compress": {"started": at(1.6), "finished": at(11.6)},
+                        "fit": {"started": at(12.0), "finished": at(12.3)},
+                        "modes": {"started": at(12.3), "finished": at(13.0)}}}
+    # hand-computed: modes end at 13.0, the command seen to end at 13.2 -> store 0.2
+    shares = stage_shares(attrs, t0.timestamp(), 14.0, ended=t0.timestamp() + 13.2)
+    assert shares["store"] == pytest.approx(0.2) and shares["startup"] == pytest.approx(1.5)
+
+
+def test_start_mark_is_printed_before_the_command_runs(tmp_path):
+    # the mark comes from a bare interpreter, then the command itself runs (its output follows)
+    run = run_command([sys.executable, "-c", "print('the command')"], folder=tmp_path, cap=None, cold=False)
+    assert run.started is not None and run.ended is not None
+    assert run.started <= run.ended
+    lines = run.output.splitlines()
+    assert lines[0].startswith(START_MARK) and lines[-1] == "the command"

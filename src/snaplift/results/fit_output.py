@@ -16,9 +16,11 @@ from snaplift.archive.matrix import FieldRows, SnapshotMatrix
 from snaplift.fitting.assessment import mode_ranking
 from snaplift.fitting.spectrum import conjugate_pairs
 from snaplift.fitting.spectrum import frequency as mode_frequency
+from snaplift.linalg._blas import blas_threads
 from snaplift.prepare import to_physical
 from snaplift.results.stages import Compressed, _basis_field_rows, _unscaled, _vector_chunks
-from snaplift.results.store import StoreWriter
+from snaplift.results.store import BackgroundWrites, StoreWriter, write_leading
+from snaplift.units import usable_cores
 
 __all__ = ["modes_bytes", "peak_amplitude", "write_fit", "write_fit_details", "write_modes"]
 
@@ -170,17 +172,32 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Compressed, order: np
         # (a matrix-vector product per mode read the n x rank basis twice per mode), and
         # zarr encodes and writes the group's chunks together
         group = max(1, MODES_GROUP_BYTES // max(1, 16 * basis_rows.shape[0]))
-        for k0 in range(0, n_modes, group):
-            k1 = min(k0 + group, n_modes)
-            products = _basis_times(basis_rows, modes_rows[:, k0:k1])
-            block = whole[k0:k1] if whole is not None else np.empty((k1 - k0, *rows.grid), np.complex128)
-            for k in range(k0, k1):
-                values = to_physical(products[:, k - k0], rows, preparation, add_mean=False)
-                largest[k] = _largest(values)
-                block[k - k0] = rows.expand(values)
-            del products
-            if whole is None:
-                mode_array[k0:k1] = block
+        twins = _conjugate_twins(modes_rows) if not np.iscomplexobj(basis_rows) else np.zeros(n_modes, bool)
+        previous: np.ndarray | None = None  # the physical values of the mode before
+        # each group is written by a thread of its own while the next one is formed (at most
+        # one group waits: the temporaries stay three groups); the products leave that
+        # thread a core (a BLAS pool waiting on a busy core made them 2-3x slower, issue 16)
+        with blas_threads(max(1, usable_cores() - 1)), BackgroundWrites() as background:
+            for k0 in range(0, n_modes, group):
+                k1 = min(k0 + group, n_modes)
+                own = [k for k in range(k0, k1) if not twins[k]]
+                products = _basis_times(basis_rows, modes_rows[:, own]) if own else None
+                block = whole[k0:k1] if whole is not None else np.empty((k1 - k0, *rows.grid), np.complex128)
+                for k in range(k0, k1):
+                    if twins[k]:
+                        # B conj(c) = conj(B c) for a real basis B, and to_physical scales by real numbers
+                        assert previous is not None
+                        values, largest[k] = np.conj(previous), largest[k - 1]
+                    else:
+                        assert products is not None
+                        values = to_physical(products[:, own.index(k)], rows, preparation, add_mean=False)
+                        largest[k] = _largest(values)
+                    _place(rows, values, block[k - k0])
+                    previous = values
+                del products
+                if whole is None:
+                    background.submit(write_leading, mode_array, k0, block)
+                del block
         if whole is not None:
             mode_array[...] = whole
         _write_peak(writer, rows.name, largest, fit, order, np.dtype(matrix.dtype).kind != "c")
@@ -206,11 +223,34 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Compressed, order: np
                  attrs={"norm": "relative, weighted and scaled (physical inner product)"})
 
 
+def _conjugate_twins(modes_rows: np.ndarray) -> np.ndarray:
+    """True for each mode whose coefficients are exactly the conjugates of the mode's before.
+
+    A real fit's complex modes come in conjugate pairs, adjacent in the spectrum's order
+    (equal amplitudes); on a real basis the second of a pair is the first's conjugate on the
+    grid too, without a product over the basis (half the modes stage's arithmetic).
+    """
+    twins = np.zeros(modes_rows.shape[1], dtype=bool)
+    for k in range(1, modes_rows.shape[1]):
+        column = modes_rows[:, k]
+        twins[k] = bool(np.any(column.imag != 0)) and np.array_equal(column, np.conj(modes_rows[:, k - 1]))
+    return twins
+
+
+def _place(rows: FieldRows, values: np.ndarray, out: np.ndarray) -> None:
+    """``out[...] = rows.expand(values)`` without the grid-sized temporary: NaN at masked points."""
+    flat = out.reshape(-1)
+    if rows.keep is None:
+        flat[...] = values
+    else:
+        flat.fill(np.nan)
+        flat[rows.keep] = values
+
+
 def _largest(values: np.ndarray) -> float:
-    """Largest modulus of a mode's values (NaN at masked or zero-weight points ignored)."""
+    """Largest modulus of a mode's values (NaN at masked or zero-weight points ignored; 0 if none)."""
     magnitude = np.abs(np.asarray(values))
-    finite = magnitude[np.isfinite(magnitude)]
-    return float(finite.max()) if finite.size else 0.0
+    return float(np.max(magnitude, where=np.isfinite(magnitude), initial=0.0))
 
 
 def _write_mode_frequency(writer: StoreWriter, fit: Any, order: np.ndarray) -> None:

@@ -34,7 +34,7 @@ from snaplift.archive.matrix import FieldRows, SnapshotMatrix
 from snaplift.errors import ResultStoreError
 from snaplift.linalg.randomized import LowRank
 from snaplift.prepare import Preparation, to_physical
-from snaplift.results.store import StoreWriter, store_group
+from snaplift.results.store import BackgroundWrites, StoreWriter, store_group, write_leading
 from snaplift.results.stored_basis import StoredBasis, StoredFieldBasis
 
 __all__ = ["Compressed", "basis_bytes", "load_compressed", "write_compressed", "write_scan"]
@@ -124,14 +124,17 @@ def write_compressed(writer: StoreWriter, compressed: Compressed, compute: Any, 
             # a few vectors per write: zarr writes their chunks concurrently (one at a time
             # cost a round trip each); the temporaries stay a few vectors, not n x rank
             group = max(1, WRITE_GROUP_BYTES // max(1, dtype.itemsize * int(np.prod(shape[1:]))))
-            for v0 in range(0, basis_rows.shape[1], group):
-                v1 = min(v0 + group, basis_rows.shape[1])
-                block = whole[v0:v1] if whole is not None else np.empty((v1 - v0, *shape[1:]), dtype)
-                for vector in range(v0, v1):
-                    block[vector - v0] = rows.expand(to_physical(basis_rows[:, vector], rows, preparation,
-                                                                 add_mean=False))
-                if whole is None:
-                    basis_array[v0:v1] = block
+            # each group written by a thread of its own while the next is formed (one waits at most)
+            with BackgroundWrites() as background:
+                for v0 in range(0, basis_rows.shape[1], group):
+                    v1 = min(v0 + group, basis_rows.shape[1])
+                    block = whole[v0:v1] if whole is not None else np.empty((v1 - v0, *shape[1:]), dtype)
+                    for vector in range(v0, v1):
+                        block[vector - v0] = rows.expand(to_physical(basis_rows[:, vector], rows, preparation,
+                                                                     add_mean=False))
+                    if whole is None:
+                        background.submit(write_leading, basis_array, v0, block)
+                    del block
             if whole is not None:  # one chunk: written at once
                 basis_array[...] = whole
         del basis_rows

@@ -331,8 +331,11 @@ class StagedStore:
     def commit(self, attrs: dict[str, Any]) -> Path:
         """Provenance, consolidated metadata, completion record, rename; remove the staging area."""
         root = self.writer.root
-        root.attrs.update(_jsonable({**attrs, FORMAT_KEY: STORE_VERSION, IDENTITY_KEY: self.identity}))
-        root.attrs[COMPLETE_KEY] = True
+        # one write of the root's attributes, the completion record with them: the store is in
+        # the staging area until the rename below, so it cannot look complete before that
+        # (``update_attributes``: one write; ``attrs.update`` wrote the root's zarr.json once per key)
+        root.update_attributes(_jsonable({**attrs, FORMAT_KEY: STORE_VERSION, IDENTITY_KEY: self.identity,
+                                          COMPLETE_KEY: True}))
         with warnings.catch_warnings():
             # consolidated metadata is not yet in the v3 spec; the README promises it (xarray uses it)
             warnings.filterwarnings("ignore", message="Consolidated metadata", category=UserWarning)

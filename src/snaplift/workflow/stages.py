@@ -439,8 +439,11 @@ class ReportStage(_Base[dict[str, Any]]):
         root: Any = context.store.writer.root
         spectrum, diagnostics = root["spectrum"], root["diagnostics"]
         count = min(10, spectrum["eigenvalue"].shape[0])
-        leading = [{"frequency": float(spectrum["frequency"][k]), "growth": float(spectrum["growth"][k]),
-                    "amplitude": float(spectrum["amplitude"][k])} for k in range(count)]
+        # each array read once (a zarr read per value was 30 reads: 0.03-0.17 s of the run)
+        frequency, growth, amplitude = (np.asarray(spectrum[name][:count]) for name in
+                                        ("frequency", "growth", "amplitude"))
+        leading = [{"frequency": float(frequency[k]), "growth": float(growth[k]),
+                    "amplitude": float(amplitude[k])} for k in range(count)]
         return {"n_modes": int(spectrum["eigenvalue"].shape[0]), "leading_modes": leading,
                 "max_projection_error": float(np.max(diagnostics["projection_error"][...])),
                 "max_reconstruction_error": float(np.max(diagnostics["reconstruction_error"][...])),

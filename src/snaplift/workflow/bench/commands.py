@@ -26,7 +26,7 @@ from snaplift.workflow.bench.archive import drop_page_cache
 __all__ = ["Cap", "CommandRun", "find_slowfs_run", "slowfs_missing", "require_slowfs", "run_command",
            "START_MARK"]
 
-#: printed by :mod:`snaplift.workflow.bench.started` before it runs the command: the
+#: printed (by ``_MARK``, or :mod:`snaplift.workflow.bench.started`) before the command runs: the
 #: wall-clock start of the timed process, from which a run's startup share is counted
 START_MARK = "snaplift-bench-start"
 _SLOWFS_LINE = re.compile(r"^slowfs-run: ([0-9.]+) s, exit (-?\d+)\s*$", re.M)
@@ -47,6 +47,14 @@ class CommandRun:
     seconds: float
     output: str
     started: float | None  # wall-clock epoch at which the command itself started (START_MARK)
+    ended: float | None = None  # wall-clock epoch at which the command (and slowfs-run) had ended
+
+
+#: prints the start mark, then becomes the command: plain Python, nothing imported (run as
+#: ``-m snaplift.workflow.bench.started`` the mark came after importing the bench package and
+#: numpy, 0.2-0.4 s on a loaded machine, moved from the run's startup to its store share)
+_MARK = (f"import os, sys, time; print('{START_MARK}', f'{{time.time():.6f}}', flush=True); "
+         "os.execvp(sys.argv[1], sys.argv[1:])")
 
 
 def find_slowfs_run(environ: dict[str, str] | None = None, *, source: Path | None = None) -> Path | None:
@@ -97,7 +105,7 @@ def run_command(argv: list[str], *, folder: Path, cap: Cap | None, cold: bool, e
     """Run ``argv`` once and time it, whole: under ``slowfs-run`` when ``cap`` (which drops
     the page cache itself and times the command), else after dropping the page cache
     (``cold``) or as it is (warm). A failing command is a one-line error with its last line."""
-    marked = [sys.executable, "-m", "snaplift.workflow.bench.started", *argv]
+    marked = [sys.executable, "-c", _MARK, *argv]
     if cap is not None and sys.prefix != sys.base_prefix and env is None:
         # slowfs-run re-warms the Python installation after dropping the page cache: the
         # virtual environment only when VIRTUAL_ENV names it (it is unset when the venv's
@@ -116,6 +124,7 @@ def run_command(argv: list[str], *, folder: Path, cap: Cap | None, cold: bool, e
     start = time.perf_counter()
     done = subprocess.run(full, capture_output=True, text=True, env=env, cwd=cwd)
     seconds = time.perf_counter() - start
+    ended = time.time()
     output = done.stdout + done.stderr
     if cap is not None:
         found = _SLOWFS_LINE.findall(output)
@@ -124,7 +133,7 @@ def run_command(argv: list[str], *, folder: Path, cap: Cap | None, cold: bool, e
     if done.returncode != 0:
         last = next((line for line in reversed(output.strip().splitlines()) if line.strip()), "no output")
         raise ConfigError(f"bench: {' '.join(argv[:3])} ... failed (exit {done.returncode}): {last.strip()}")
-    return CommandRun(seconds, output, start_of(output))
+    return CommandRun(seconds, output, start_of(output), ended)
 
 
 def start_of(output: str) -> float | None:
