@@ -192,7 +192,7 @@ def write_modes(writer: StoreWriter, fit: Any, compressed: Compressed, order: np
                         assert products is not None
                         values = to_physical(products[:, own.index(k)], rows, preparation, add_mean=False)
                         largest[k] = _largest(values)
-                    _place(rows, values, block[k - k0])
+                    _place(rows, values, block[k - k0:k - k0 + 1])  # a slice: a view also for a probe (no grid)
                     previous = values
                 del products
                 if whole is None:
@@ -238,8 +238,12 @@ def _conjugate_twins(modes_rows: np.ndarray) -> np.ndarray:
 
 
 def _place(rows: FieldRows, values: np.ndarray, out: np.ndarray) -> None:
-    """``out[...] = rows.expand(values)`` without the grid-sized temporary: NaN at masked points."""
+    """``out[...] = rows.expand(values)`` without the grid-sized temporary: NaN at masked points.
+
+    ``out`` is a contiguous view (for a probe, a one-element slice: an indexed 0-d element
+    would be a copy, and the values would be lost)."""
     flat = out.reshape(-1)
+    assert np.shares_memory(flat, out), "modes: the placed values must land in the block"
     if rows.keep is None:
         flat[...] = values
     else:
