@@ -9,6 +9,7 @@ These tests check the order and the bound, never a time.
 
 from __future__ import annotations
 
+import os
 import threading
 from pathlib import Path
 from typing import Any
@@ -19,6 +20,7 @@ import numpy as np
 from snaplift.archive import open_archive, plan_tiles
 from snaplift.archive.matrix import build_snapshot_matrix
 from snaplift.cluster import open_scheduler
+from snaplift.cluster.options import WORKER_MALLOC_ENVIRONMENT
 from snaplift.stream.compress import CompressOptions, compress
 from snaplift.stream.loop import QUEUED_TILES_PER_WORKER, ClientRunner, ThreadRunner, runner_for
 from snaplift.workflow.schema import ClusterSection
@@ -35,6 +37,9 @@ def test_tasks_pinned_to_a_one_thread_worker_run_in_the_order_submitted() -> Non
     with open_scheduler(ClusterSection(kind="local", workers=2)) as scheduler, runner_for(scheduler) as runner:
         assert isinstance(runner, ClientRunner)
         assert runner.queued_tiles == QUEUED_TILES_PER_WORKER * 2  # one thread per worker
+        # the workers' allocator keeps freed blocks as the driver's does (cluster.options)
+        seen = scheduler.client.run(lambda: {name: os.environ.get(name) for name in WORKER_MALLOC_ENVIRONMENT})
+        assert list(seen.values()) == [WORKER_MALLOC_ENVIRONMENT] * 2
         # one burst of pinned tasks: distributed would order its queued tasks by their random keys
         futures = [runner.submit(started, index, where=0) for index in range(16)]
         starts = [runner.result(future) for future in futures]
