@@ -24,6 +24,7 @@ from snaplift.cluster.options import (
     Scheduler,
     TaskProgress,
     single_threaded_blas_environment,
+    worker_environment,
 )
 from snaplift.errors import ConfigError
 from snaplift.units import parse_bytes, usable_cores
@@ -45,7 +46,7 @@ def open_scheduler(section: ClusterOptions, *, progress: TaskProgress | None = N
         return
     from distributed import Client
 
-    environ = {**single_threaded_blas_environment(), "MALLOC_TRIM_THRESHOLD_": "65536"}
+    environ = worker_environment()
     with dask.config.set({"distributed.nanny.pre-spawn-environ": environ,
                           "distributed.worker.daemon": False}):
         if section.kind == "address":

@@ -208,10 +208,15 @@ class Pass:
 
         running = getattr(self.runner, "tiles_running", None)
         wire = int(getattr(self.runner, "bytes_between_processes", 0) or 0)
+        # summed in slots, tasks return small results: worker processes keep several tiles
+        # queued each (TileRunner.queued_tiles); lost tiles read again below return their
+        # products, so they keep the plan's bound
+        in_flight = max(self.in_flight, int(getattr(self.runner, "queued_tiles", 0) or 0)) if count \
+            else self.in_flight
         try:
             with running() if running is not None else contextlib.nullcontext():
                 stream_tiles(self.runner, digested, (task, self.shared_source, *shared), jobs, fold_and_note, state,
-                          in_flight=self.in_flight, checkpoint=self.checkpoint, progress=self.progress,
+                          in_flight=in_flight, checkpoint=self.checkpoint, progress=self.progress,
                           flush=flush, per_job=per_job)
             flush()
             self.bytes_between_processes.append(int(getattr(self.runner, "bytes_between_processes", 0) or 0) - wire)
