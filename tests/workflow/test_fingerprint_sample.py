@@ -37,11 +37,15 @@ def test_sample_covers_first_and_last_snapshot_within_the_budget(n: int, chunk: 
 
 
 def test_large_chunks_are_sampled_over_a_few_snapshots() -> None:
-    # 32 snapshots of 2 MiB per chunk (64 MiB): eight blocks of two snapshots (16 MiB), where
-    # whole chunks would have been two blocks of 64 MiB
+    # 32 snapshots of 2 MiB per chunk (64 MiB): the chunks are counted whole (a compressed
+    # chunk is read whole), two of them, each over two snapshots (8 MiB where 128 MiB were read)
     blocks = sample_blocks(1024, 32, 32 * 2 * MIB, 1024 * 2 * MIB)
-    assert len(blocks) == SAMPLE_BLOCKS
+    assert blocks == [(0, 2), (1022, 1024)]
     assert all(b - a == SAMPLE_BLOCK_BYTES // (2 * MIB) for a, b in blocks)
+    # 8 snapshots of 2 MiB per chunk: four chunks (64 MiB whole), two snapshots of each
+    blocks = sample_blocks(1024, 8, 8 * 2 * MIB, 1024 * 2 * MIB)
+    assert len(blocks) == 4 and all(b - a == 2 for a, b in blocks)
+    assert len(sample_blocks(1024, 1, 2 * MIB, 1024 * 2 * MIB)) == SAMPLE_BLOCKS
     # small chunks are still sampled whole
     assert sample_blocks(1024, 2, 2 * 1 * MIB, 1024 * MIB)[1] == (146, 148)
 

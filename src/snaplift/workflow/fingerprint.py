@@ -22,18 +22,20 @@ name, size and time):
   a chunk larger than :data:`SAMPLE_BLOCK_BYTES` over as many of its first snapshots as
   fit in that, the last chunk over its last ones): up to :data:`SAMPLE_BLOCKS` blocks
   spread evenly over the archive, always with the first and the last snapshot, fewer if
-  they would exceed :data:`SAMPLE_FRACTION` of the archive's bytes or
+  their whole chunks would exceed :data:`SAMPLE_FRACTION` of the archive's bytes or
   :data:`SAMPLE_FLOOR_BYTES`, whichever is larger (never fewer than two). An
-  uncompressed HDF5 chunk is read over the sampled snapshots only; a compressed one is
-  read and decoded whole. The next run hashes the same blocks again: all equal means *grown* (the sketch
-  is extended, or compress recomputed), any difference *changed*. The run's output and
-  the store (scan record ``verified_blocks``, a warning) say which old blocks were
-  verified and that ``--overwrite`` recomputes from every snapshot.
+  uncompressed HDF5 chunk of whole snapshots is read over the sampled snapshots only; a
+  compressed one, or one split in space, is read whole. The next run hashes the same
+  blocks again: all equal means *grown* (the sketch is extended, or compress
+  recomputed), any difference *changed*. The run's output and the store (scan record
+  ``verified_blocks``, a warning) say which old blocks were verified and that
+  ``--overwrite`` recomputes from every snapshot.
 - files that grew without new snapshots (HDF5 grows when attributes are added): *changed*.
 
 Cost, explicitly: at most ``SAMPLE_BLOCKS`` snapshot blocks per run (a time-major archive
-with one snapshot per chunk: 8 snapshots; with 32 snapshots of 2 MiB per chunk: 8 blocks of
-2 snapshots, 32 MiB, where whole chunks were 2 x 64 MiB), bounded by 1 % of the archive or 64 MiB; they
+with one snapshot per chunk: 8 snapshots), in chunks bounded by 1 % of the archive or 64 MiB
+(with 32 snapshots of 2 MiB per chunk: 2 chunks, of which 2 snapshots each, 8 MiB, are read
+from uncompressed HDF5, where whole chunks were 128 MiB); they
 are read only when the archive grew (and on a first run, to record them). The price of
 not reading every old chunk on the append path is that an edit of an old snapshot
 *outside* the sample, in a file that also grew, goes unnoticed; the warning says so.
@@ -213,21 +215,26 @@ def sample_blocks(n_snapshots: int, chunk: int, block_bytes: int, archive_bytes:
     """The snapshot blocks whose content is hashed (module docstring).
 
     ``block_bytes`` are the bytes of one stored chunk along the snapshot axis (``chunk``
-    snapshots of every sampled field). A chunk of more than :data:`SAMPLE_BLOCK_BYTES`
-    is sampled over its first snapshots only (the last over its last), as many as fit
-    in :data:`SAMPLE_BLOCK_BYTES`, at least one.
+    snapshots of every sampled field). How many chunks are sampled is counted in whole
+    chunks, since a compressed chunk, or one read through HDF5's chunk cache, is read whole
+    for any part of it; a chunk of more than :data:`SAMPLE_BLOCK_BYTES` is sampled over its
+    first snapshots only (the last over its last), as many as fit in
+    :data:`SAMPLE_BLOCK_BYTES`, at least one, so that where a part can be read alone
+    (uncompressed HDF5 with whole snapshots in a chunk) only that part is.
 
     Example
     -------
     >>> sample_blocks(1024, 32, 32 * 2**21, 1024 * 2**21)  # 32 snapshots of 2 MiB per chunk
-    [(0, 2), (128, 130), (288, 290), (416, 418), (576, 578), (704, 706), (864, 866), (1022, 1024)]
+    [(0, 2), (1022, 1024)]
+    >>> sample_blocks(1024, 1, 2**21, 1024 * 2**21)  # one snapshot of 2 MiB per chunk
+    [(0, 1), (146, 147), (292, 293), (438, 439), (585, 586), (731, 732), (877, 878), (1023, 1024)]
     """
     chunk = max(1, int(chunk))
     n_snapshots = int(n_snapshots)
     n_blocks = max(1, -(-n_snapshots // chunk))
     snapshot_bytes = max(1, int(block_bytes) // chunk)
     width = chunk if snapshot_bytes * chunk <= SAMPLE_BLOCK_BYTES else max(1, SAMPLE_BLOCK_BYTES // snapshot_bytes)
-    budget = max(2, int(max(SAMPLE_FRACTION * archive_bytes, SAMPLE_FLOOR_BYTES) // (snapshot_bytes * width)))
+    budget = max(2, int(max(SAMPLE_FRACTION * archive_bytes, SAMPLE_FLOOR_BYTES) // max(1, int(block_bytes))))
     count = min(SAMPLE_BLOCKS, n_blocks, budget)
     picks = sorted({int(round(i)) for i in np.linspace(0, n_blocks - 1, max(count, 1))})
     blocks = [(p * chunk, min(p * chunk + width, n_snapshots)) for p in picks]
