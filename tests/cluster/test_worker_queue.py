@@ -37,7 +37,7 @@ def test_tasks_pinned_to_a_one_thread_worker_run_in_the_order_submitted() -> Non
     with open_scheduler(ClusterSection(kind="local", workers=2)) as scheduler, runner_for(scheduler) as runner:
         assert isinstance(runner, ClientRunner)
         assert runner.queued_tiles == QUEUED_TILES_PER_WORKER * 2  # one thread per worker
-        # the workers' allocator keeps freed blocks as the driver's does (cluster.options)
+        # the workers get the allocator setting of cluster.options (the memory plan counts no kept heap)
         seen = scheduler.client.run(lambda: {name: os.environ.get(name) for name in WORKER_MALLOC_ENVIRONMENT})
         assert list(seen.values()) == [WORKER_MALLOC_ENVIRONMENT] * 2
         # one burst of pinned tasks: distributed would order its queued tasks by their random keys

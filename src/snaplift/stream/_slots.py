@@ -111,8 +111,8 @@ def _gemm_into(out_rows: np.ndarray, raw: np.ndarray, right: np.ndarray) -> None
     raw = np.asarray(raw)
     n = raw.shape[1]
     # one chunk buffer for the whole call: a temporary per chunk was a fresh mmap (and its
-    # page faults) per chunk in worker processes, whose allocator then kept no freed blocks
-    # (distributed's MALLOC_TRIM_THRESHOLD_ of 64 KiB; now cluster.options
+    # page faults) per chunk in worker processes, whose allocator keeps no freed blocks
+    # (distributed's MALLOC_TRIM_THRESHOLD_ of 64 KiB, kept in cluster.options
     # WORKER_MALLOC_ENVIRONMENT): 40 % slower
     buffer = np.empty(left.shape[0] * min(n, GEMM_CHUNK_ROWS), dtype=np.result_type(left, raw))
     for r0 in range(0, n, GEMM_CHUNK_ROWS):
