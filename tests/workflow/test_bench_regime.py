@@ -94,16 +94,21 @@ def test_cost_model_arithmetic_by_hand():
     assert relative_gap(13.0, 10.0) == pytest.approx(0.3)
 
 
-def test_stage_shares_from_the_committed_records():
+def _stage_records() -> tuple[dt.datetime, dict]:
+    """A run's committed stage records: scan 1-1.5 s, compress 1.6-11.6, fit 12-12.3, modes 12.3-13."""
     t0 = dt.datetime(2026, 1, 1, tzinfo=dt.UTC)
 
     def at(seconds: float) -> str:
         return (t0 + dt.timedelta(seconds=seconds)).isoformat()
 
-    attrs = {"stages": {"scan": {"started": at(1.0), "finished": at(1.5)},
-                        "compress": {"started": at(1.6), "finished": at(11.6)},
-                        "fit": {"started": at(12.0), "finished": at(12.3)},
-                        "modes": {"started": at(12.3), "finished": at(13.0)}}}
+    return t0, {"stages": {"scan": {"started": at(1.0), "finished": at(1.5)},
+                           "compress": {"started": at(1.6), "finished": at(11.6)},
+                           "fit": {"started": at(12.0), "finished": at(12.3)},
+                           "modes": {"started": at(12.3), "finished": at(13.0)}}}
+
+
+def test_stage_shares_from_the_committed_records():
+    t0, attrs = _stage_records()
     shares = stage_shares(attrs, t0.timestamp(), 14.0)
     # hand-computed: startup 0 -> 1.5, compress 10, fit 0.3, modes 0.7, gaps 0.1 + 0.4, store 13 -> 14
     assert shares["startup"] == pytest.approx(1.5) and shares["compress"] == pytest.approx(10.0)
@@ -191,15 +196,7 @@ def test_the_capped_bench_byte_compiles_the_package_first():
 def test_store_share_ends_when_the_command_was_seen_to_end():
     # the command's end as the bench saw it (epoch) bounds the store share; without it,
     # start mark + whole (which also counts what ran before the mark)
-    t0 = dt.datetime(2026, 1, 1, tzinfo=dt.UTC)
-
-    def at(seconds: float) -> str:
-        return (t0 + dt.timedelta(seconds=seconds)).isoformat()
-
-    attrs = {"stages": {"scan": {"started": at(1.0), "finished": at(1.5)},
-                        "compress": {"started": at(1.6), "finished": at(11.6)},
-                        "fit": {"started": at(12.0), "finished": at(12.3)},
-                        "modes": {"started": at(12.3), "finished": at(13.0)}}}
+    t0, attrs = _stage_records()
     # hand-computed: modes end at 13.0, the command seen to end at 13.2 -> store 0.2
     shares = stage_shares(attrs, t0.timestamp(), 14.0, ended=t0.timestamp() + 13.2)
     assert shares["store"] == pytest.approx(0.2) and shares["startup"] == pytest.approx(1.5)
