@@ -423,8 +423,13 @@ def forecast(
     Example: snaplift forecast results/fin-duct.zarr --from 0 --steps 200 --compare --out forecast.zarr
     """
     import numpy as np
+    from rich.markup import escape
+    from rich.table import Table
 
     from snaplift.results.forecast_output import FORECAST_CAUTION, forecast_dataset, write_forecast
+
+    def spread(indices: np.ndarray) -> np.ndarray:  # at most 12 rows, evenly over the indices
+        return indices if indices.size <= 12 else indices[np.unique(np.linspace(0, indices.size - 1, 12).astype(int))]
 
     dataset = forecast_dataset(result, start, steps, compare=compare)
     # the forecast fields: a field on a grid (step, ...) or a probe (step,); not the bookkeeping
@@ -433,20 +438,18 @@ def forecast(
     time = dataset["time"].values
     typer.echo(f"forecast of {', '.join(fields)} from snapshot {dataset.attrs['start_column']} "
                f"(time {time[0]:.6g}) for {steps} steps to time {time[-1]:.6g}")
+    # "milliseconds since 2001-01-01": the values are milliseconds (the epoch is in the store)
+    time_unit = str(dataset["time"].attrs.get("units") or "").split(" since ")[0].strip()
+    time_header = escape(f"time [{time_unit}]") if time_unit else "time"
     probes = [name for name in fields if dataset[name].ndim == 1]
     if probes:  # one value per step: show them (a grid field is written with --out)
-        from rich.markup import escape
-        from rich.table import Table
-
         values = Table(title="forecast probe values", title_justify="left")
-        time_unit = str(dataset["time"].attrs.get("units") or "").split(" since ")[0].strip()
         values.add_column("step", justify="right")
-        values.add_column(escape(f"time [{time_unit}]") if time_unit else "time", justify="right")
+        values.add_column(time_header, justify="right")
         for name in probes:
             unit = str(dataset[name].attrs.get("units") or "")
             values.add_column(escape(f"{name} [{unit}]") if unit else name, justify="right")
-        picks = np.unique(np.linspace(0, time.size - 1, min(time.size, 12)).astype(int))
-        for s in picks:
+        for s in spread(np.arange(time.size)):
             values.add_row(str(int(s)), f"{time[s]:.6g}", *(f"{float(dataset[name].values[s]):.6g}" for name in probes))
         _console().print(values)
     if compare:
@@ -456,20 +459,13 @@ def forecast(
             typer.echo("the forecast does not overlap the archive: nothing to compare")
         else:
             table = _console()
-            from rich.markup import escape
-            from rich.table import Table
-
             shown = Table(title="error against the archive, relative to its RMS norm over the compared steps "
                                 "(weighted norm over the grid)", title_justify="left")
-            # "milliseconds since 2001-01-01": the values are milliseconds (the epoch is in the store)
-            time_unit = str(dataset["time"].attrs.get("units") or "").split(" since ")[0].strip()
             uneven = "archive_time" in dataset  # the model is compared at the snapshots' own times
-            for header in ("step", escape(f"time [{time_unit}]") if time_unit else "time", "archive snapshot",
+            for header in ("step", time_header, "archive snapshot",
                            *(["archive time"] if uneven else []), *(e[len("error_"):] for e in errors)):
                 shown.add_column(header, justify="right")
-            spread = np.unique(np.linspace(0, overlap.size - 1, 12).astype(int))
-            picks = overlap if overlap.size <= 12 else overlap[spread]
-            for s in picks:
+            for s in spread(overlap):
                 shown.add_row(str(int(s)), f"{time[s]:.6g}", str(int(dataset['archive_snapshot'].values[s])),
                               *([f"{float(dataset['archive_time'].values[s]):.6g}"] if uneven else []),
                               *(f"{float(dataset[e].values[s]):.3e}" for e in errors))
