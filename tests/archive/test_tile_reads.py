@@ -86,13 +86,6 @@ def test_growing_series_is_described_afresh(tmp_path):
                                   [0.0, 1.0, 2.0, 3.0])
 
 
-def test_snapshot_runs_join_chunks_stored_one_after_another():
-    # hand-worked: chunks of 2 snapshots of 8 bytes; chunks 0, 1 adjacent at 100, 116; chunk 2 elsewhere
-    starts = {0: 100, 1: 116, 2: 500}
-    runs = _handles.snapshot_runs(1, 6, 2, lambda chunk, first: starts[chunk] + 8 * first, 8)
-    assert runs == [(1, 4, 108), (4, 6, 500)]
-
-
 @pytest.mark.parametrize("order", ["forward", "reverse"])
 def test_positioned_hdf5_reads_equal_h5py(tmp_path, monkeypatch, order):
     # chunks written in reverse lie in the file in reverse: no run joins them; forward they join

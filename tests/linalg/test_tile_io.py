@@ -43,7 +43,7 @@ LAYOUTS = {
     "big-endian": {"chunks": (1, 6, 5), "dtype": ">f8"},
 }
 #: layouts whose snapshots are read as plain bytes (the others go through h5py)
-PLAIN = {"one snapshot per chunk", "three snapshots per chunk", "contiguous", "float32"}
+PLAIN = {"one snapshot per chunk", "three snapshots per chunk", "contiguous", "float32", "chunks cut the grid"}
 
 
 def _check_tiles(reader, reference: np.ndarray) -> None:
@@ -191,7 +191,8 @@ ZARR_LAYOUTS = {
     "v3 compressed": {"zarr_format": 3, "chunks": (2, 6, 5)},
     "v3 chunks cut the grid": {"zarr_format": 3, "chunks": (2, 3, 5), "compressors": None},
 }
-ZARR_PLAIN = {"v3 one snapshot per chunk", "v3 three snapshots per chunk", "v2 two snapshots per chunk"}
+ZARR_PLAIN = {"v3 one snapshot per chunk", "v3 three snapshots per chunk", "v2 two snapshots per chunk",
+              "v3 chunks cut the grid"}
 
 
 @pytest.mark.parametrize("layout", sorted(ZARR_LAYOUTS))

@@ -49,7 +49,6 @@ __all__ = [
     "raw_file",
     "read_into",
     "read_pieces",
-    "snapshot_runs",
     "advise",
 ]
 
@@ -158,19 +157,6 @@ def raw_file(path: str) -> Any:
     return _get("raw", str(path), _open_raw)
 
 
-def read_snapshot_chunks(out: np.ndarray, s0: int, s1: int, per_chunk: int,
-                         read: Callable[[int, np.ndarray, int], None]) -> None:
-    """Fill ``out`` (snapshots ``s0 .. s1-1``, snapshot-major) chunk by chunk of ``per_chunk``
-    snapshots: ``read(chunk, rows_of_out, first_snapshot_in_chunk)`` fills each part."""
-    flat = out.reshape(s1 - s0, -1)
-    j = s0
-    while j < s1:
-        chunk = j // per_chunk
-        stop = min(s1, (chunk + 1) * per_chunk)
-        read(chunk, flat[j - s0:stop - s0], j - chunk * per_chunk)
-        j = stop
-
-
 #: bytes of one positioned read request, and of one readahead hint (Linux caps a
 #: ``POSIX_FADV_WILLNEED`` call at the device's readahead window, a few MiB)
 REQUEST_BYTES = 8 * 2**20
@@ -178,28 +164,6 @@ REQUEST_BYTES = 8 * 2**20
 #: (one synchronous 2 MiB request at a time left the device idle between them: measured
 #: ~330 MB/s against 1.5 GB/s for dd with 8 MiB requests, issue 16)
 READ_AHEAD_BYTES = 64 * 2**20
-
-
-def snapshot_runs(s0: int, s1: int, per_chunk: int, offset_of: Callable[[int, int], int],
-                  snapshot_bytes: int) -> list[tuple[int, int, int]]:
-    """Snapshots ``s0 .. s1-1`` as runs ``(j0, j1, byte offset)`` lying at consecutive bytes of a file.
-
-    ``offset_of(chunk, first)`` is the byte address of snapshot ``first`` of chunk
-    ``chunk`` (chunks of ``per_chunk`` snapshots); chunks stored one after the other
-    (the usual layout of a file written in time order) join into one run.
-    """
-    runs: list[tuple[int, int, int]] = []
-    j = s0
-    while j < s1:
-        chunk = j // per_chunk
-        stop = min(s1, (chunk + 1) * per_chunk)
-        offset = int(offset_of(chunk, j - chunk * per_chunk))
-        if runs and runs[-1][2] + (runs[-1][1] - runs[-1][0]) * snapshot_bytes == offset:
-            runs[-1] = (runs[-1][0], stop, runs[-1][2])
-        else:
-            runs.append((j, stop, offset))
-        j = stop
-    return runs
 
 
 def advise(fd: int, offset: int, length: int) -> None:
@@ -215,33 +179,40 @@ def advise(fd: int, offset: int, length: int) -> None:
             return
 
 
-def read_pieces(pieces: list[tuple[Any, int, np.ndarray]]) -> None:
-    """Fill each C-contiguous ``out`` of ``pieces`` = ``[(handle, offset, out), ...]`` from its file.
+def read_pieces(pieces: list[tuple[Any, ...]]) -> None:
+    """Fill each C-contiguous ``out`` of ``pieces`` = ``[(handle, offset, out[, then]), ...]`` from its file.
 
     Reads in requests of at most :data:`REQUEST_BYTES`, in order, with the next
     :data:`READ_AHEAD_BYTES` hinted to the kernel (:func:`advise`) so that several
     requests are in flight while one is copied: a tile is read at the device's
     sequential speed. The bytes read are the same as :func:`read_into` piece by piece.
+    ``then()``, where given, is called as soon as its piece is filled (before the next
+    piece is read: a staging buffer can be reused by the next piece).
     """
-    requests: list[tuple[Any, int, np.ndarray]] = []
-    for handle, offset, out in pieces:
+    requests: list[tuple[Any, int, np.ndarray, Callable[[], None] | None]] = []
+    for handle, offset, out, *then in pieces:
         view = out.reshape(-1).view(np.uint8)
-        for start in range(0, view.nbytes, REQUEST_BYTES):
-            requests.append((handle, offset + start, view[start:start + REQUEST_BYTES]))
+        starts = range(0, view.nbytes, REQUEST_BYTES)
+        for start in starts:
+            last = start + REQUEST_BYTES >= view.nbytes
+            requests.append((handle, offset + start, view[start:start + REQUEST_BYTES],
+                             then[0] if then and last else None))
     hinted = 0  # requests hinted so far
     ahead = 0  # bytes hinted beyond the request being read
-    for index, (handle, offset, part) in enumerate(requests):
+    for index, (handle, offset, part, done) in enumerate(requests):
         if index < hinted:
             ahead -= part.nbytes
         else:
             advise(handle.fileno(), offset, part.nbytes)
             hinted = index + 1
         while hinted < len(requests) and ahead < READ_AHEAD_BYTES:
-            h, o, p = requests[hinted]
+            h, o, p, _ = requests[hinted]
             advise(h.fileno(), o, p.nbytes)
             ahead += p.nbytes
             hinted += 1
         read_into(handle, part, offset)
+        if done is not None:
+            done()
 
 
 def read_into(handle: Any, out: np.ndarray, offset: int) -> None:

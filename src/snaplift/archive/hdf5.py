@@ -16,6 +16,7 @@ described in :mod:`snaplift.archive._cf`. Complex data stored as an HDF5 compoun
 
 from __future__ import annotations
 
+import contextlib
 import os
 from dataclasses import dataclass
 from typing import Any
@@ -24,6 +25,7 @@ import numpy as np
 
 from snaplift.archive import _handles
 from snaplift.archive._cf import plain_attrs
+from snaplift.archive._chunk_reads import ChunkLayout, box_of, read_box
 from snaplift.archive._common import Candidate
 from snaplift.archive._grouped import GroupedReader
 from snaplift.archive._registry import register_reader, sniff_format
@@ -95,80 +97,57 @@ def hdf5_candidates(root: Any) -> list[Candidate]:
     return found
 
 
-def _basic_shape(selection: Any, shape: tuple[int, ...]) -> tuple[int, ...] | None:
-    """Result shape of a tuple of step-1 in-range slices (one per axis), else None."""
-    if not isinstance(selection, tuple) or len(selection) != len(shape):
-        return None
-    out = []
-    for item, size in zip(selection, shape):
-        if not isinstance(item, slice) or item.step not in (None, 1):
-            return None
-        start = 0 if item.start is None else item.start
-        stop = size if item.stop is None else item.stop
-        if not 0 <= start < stop <= size:
-            return None
-        out.append(stop - start)
-    return tuple(out)
-
-
 @dataclass(frozen=True)
 class _Storage:
-    """Where whole snapshots of an unfiltered dataset lie in the file, for positioned reads.
+    """Where the chunks of an unfiltered dataset lie in the file, for positioned reads.
 
-    ``starts[i]`` is the byte address of snapshot ``i * per_chunk`` (one entry per
-    chunk; a contiguous dataset is one chunk of all snapshots); ``snapshot_bytes`` the
-    bytes of one snapshot.
+    ``offsets[index]`` is the byte address of chunk ``index`` (an array of the chunk
+    grid's shape); a contiguous dataset is stored as chunks of one snapshot each.
     """
 
-    per_chunk: int
-    starts: tuple[int, ...]
-    snapshot_bytes: int
+    layout: ChunkLayout
+    offsets: np.ndarray
+
+    def locate(self, index: tuple[int, ...]) -> tuple[str, int]:
+        return "", int(self.offsets[index])
 
 
 def _storage(dataset: Any) -> _Storage | None:
-    """The byte layout of ``dataset`` when its snapshots can be read as plain bytes, else None.
+    """The byte layout of ``dataset`` when its chunks can be read as plain bytes, else None.
 
     That needs a native numeric type, no filters (compression, shuffle, checksums), no
-    user block, the default file driver, every chunk written (unwritten chunks are the
-    fill value) and chunks that hold whole snapshots (chunk shape ``(c, *grid)``).
+    user block, the default file driver and every chunk written (unwritten chunks are
+    the fill value).
     """
     file = dataset.file
     if (len(dataset.shape) < 1 or dataset.dtype.kind not in "fiu" or not dataset.dtype.isnative
             or file.driver != "sec2" or file.userblock_size != 0
             or dataset.id.get_create_plist().get_nfilters() != 0):
         return None
-    snapshot_bytes = int(np.prod(dataset.shape[1:], dtype=np.int64)) * dataset.dtype.itemsize
-    m = int(dataset.shape[0])
+    shape = tuple(int(n) for n in dataset.shape)
+    itemsize = int(dataset.dtype.itemsize)
     if dataset.chunks is None:
         offset = dataset.id.get_offset()
-        return None if offset is None else _Storage(max(m, 1), (int(offset),), snapshot_bytes)
-    chunks = tuple(int(c) for c in dataset.chunks)
-    if chunks[1:] != tuple(int(n) for n in dataset.shape[1:]):
-        return None
-    per_chunk = chunks[0]
-    expected = -(-m // per_chunk)
-    found: dict[int, int] = {}
+        if offset is None or shape[0] == 0:
+            return None
+        snapshot_bytes = int(np.prod(shape[1:], dtype=np.int64)) * itemsize
+        starts = int(offset) + snapshot_bytes * np.arange(max(shape[0], 1), dtype=np.int64)
+        layout = ChunkLayout(shape, (1, *shape[1:]), itemsize)
+        return _Storage(layout, starts.reshape(layout.grid))
+    layout = ChunkLayout(shape, tuple(int(c) for c in dataset.chunks), itemsize)
+    offsets = np.full(layout.grid, -1, dtype=np.int64)
 
     def note(info: Any) -> None:
-        found[int(info.chunk_offset[0]) // per_chunk] = int(info.byte_offset)
+        offsets[tuple(int(o) // c for o, c in zip(info.chunk_offset, layout.chunks))] = int(info.byte_offset)
 
     if hasattr(dataset.id, "chunk_iter"):
         dataset.id.chunk_iter(note)
     else:  # pragma: no cover - older HDF5 libraries
         for index in range(dataset.id.get_num_chunks()):
             note(dataset.id.get_chunk_info(index))
-    if len(found) != expected or any(i not in found for i in range(expected)):
+    if offsets.size == 0 or int(offsets.min()) < 0:
         return None
-    return _Storage(per_chunk, tuple(found[i] for i in range(expected)), snapshot_bytes)
-
-
-def _whole_snapshots(selection: tuple[slice, ...], shape: tuple[int, ...]) -> tuple[int, int] | None:
-    """``(s0, s1)`` when ``selection`` takes every point of snapshots ``s0 .. s1``, else None."""
-    for item, size in zip(selection[1:], shape[1:]):
-        if (item.start or 0) != 0 or (size if item.stop is None else item.stop) != size:
-            return None
-    first = selection[0]
-    return int(first.start or 0), int(shape[0] if first.stop is None else first.stop)
+    return _Storage(layout, offsets)
 
 
 class _Dataset:
@@ -176,11 +155,12 @@ class _Dataset:
 
     ``dataset[box]`` for a box of step-1 slices of a plain numeric dataset is read into
     :func:`snaplift.archive._handles.tile_buffer` (no page faults on fresh memory for
-    every tile): whole snapshots of an unfiltered dataset as plain bytes with positioned
-    reads (:func:`snaplift.archive._handles.read_pieces`: chunks adjacent in the file read
+    every tile): from an unfiltered dataset as plain bytes with positioned reads
+    (:func:`snaplift.archive._chunk_reads.read_box`: chunk runs adjacent in the file read
     as one run in 8 MiB requests with the next ones hinted to the kernel, so several are
     in flight; they run in parallel, while h5py serialises every call behind one lock),
-    other boxes with ``read_direct``; everything else is the dataset's own.
+    whatever the chunks' shape; other boxes with ``read_direct``; everything else is the
+    dataset's own.
     """
 
     __slots__ = ("dataset", "path")
@@ -196,27 +176,25 @@ class _Dataset:
 
     def __getitem__(self, selection: Any) -> Any:
         dataset = self.dataset
-        shape = _basic_shape(selection, tuple(dataset.shape)) if dataset.dtype.kind in "fiu" else None
-        if shape is None:
+        box = box_of(selection, tuple(dataset.shape)) if dataset.dtype.kind in "fiu" else None
+        if box is None:
             return dataset[selection]
-        out = _handles.tile_buffer(shape, dataset.dtype)
-        snapshots = _whole_snapshots(selection, tuple(dataset.shape))
-        layout = self._layout() if snapshots is not None else None
-        if layout is None or snapshots is None:
+        out = _handles.tile_buffer(tuple(b - a for a, b in box), dataset.dtype)
+        if not read_stored_box(out, self._layout(), box, self.path):
             dataset.read_direct(out, source_sel=selection)
-            return out
-        handle = _handles.raw_file(self.path)
-        s0, s1 = snapshots
-        # chunks stored one after another are read as one run, several requests in flight
-        runs = _handles.snapshot_runs(s0, s1, layout.per_chunk,
-                                      lambda chunk, first: layout.starts[chunk] + first * layout.snapshot_bytes,
-                                      layout.snapshot_bytes)
-        flat = out.reshape(s1 - s0, -1)
-        _handles.read_pieces([(handle, offset, flat[j0 - s0:j1 - s0]) for j0, j1, offset in runs])
         return out
 
     def __getattr__(self, name: str) -> Any:
         return getattr(self.dataset, name)
+
+
+def read_stored_box(out: np.ndarray, storage: _Storage | None, box: tuple[tuple[int, int], ...], path: str) -> bool:
+    """Fill ``out`` with ``box`` of a dataset of ``storage`` in the file ``path`` by positioned reads;
+    False when it has no plain layout or the box is better read by HDF5 itself."""
+    if storage is None:
+        return False
+    handle = _handles.raw_file(path)
+    return read_box(out, storage.layout, box, storage.locate, lambda _key: contextlib.nullcontext(handle))
 
 
 class HDF5Reader(GroupedReader):

@@ -19,6 +19,7 @@ from __future__ import annotations
 
 import contextlib
 import os
+from collections.abc import Callable, Iterator
 from dataclasses import dataclass
 from typing import Any
 
@@ -26,6 +27,7 @@ import numpy as np
 
 from snaplift.archive import _handles
 from snaplift.archive._cf import plain_attrs
+from snaplift.archive._chunk_reads import ChunkLayout, box_of, read_box
 from snaplift.archive._common import Candidate
 from snaplift.archive._grouped import GroupedReader
 from snaplift.archive._registry import register_reader, sniff_format
@@ -73,21 +75,46 @@ def _stem(path: str) -> str:
 
 @dataclass(frozen=True)
 class _ChunkFiles:
-    """Files holding whole snapshots as plain bytes: ``paths[i]`` has snapshots from ``i * per_chunk``."""
+    """An array whose chunk files hold plain C-order bytes of the full chunk shape."""
 
-    per_chunk: int
-    paths: tuple[str, ...]
-    snapshot_bytes: int
+    layout: ChunkLayout
+    base: str
+    encode: Callable[[tuple[int, ...]], str]
+    name: str
+
+    def locate(self, index: tuple[int, ...]) -> tuple[tuple[int, ...], int]:
+        return index, 0
+
+    def path(self, index: tuple[int, ...]) -> str:
+        return os.path.join(self.base, *self.encode(index).split("/"))
+
+    @contextlib.contextmanager
+    def open(self, index: tuple[int, ...]) -> Iterator[Any]:
+        """The chunk file, checked to hold the whole chunk (raises :class:`_NotPlain` if it
+        holds something else, ``FileNotFoundError`` if it is gone)."""
+        path = self.path(index)
+        expected = int(np.prod(self.layout.chunks, dtype=np.int64)) * self.layout.itemsize
+        with open(path, "rb", buffering=0) as handle:
+            size = os.fstat(handle.fileno()).st_size
+            if size < expected:
+                raise ArchiveError(f"zarr chunk file {path} is truncated: {size} of {expected} bytes (chunk "
+                                   f"{list(index)} of array {self.name}); restore it from a copy of the archive")
+            if size != expected:
+                raise _NotPlain(path)
+            yield handle
+
+
+class _NotPlain(Exception):
+    """A chunk file that is not the plain bytes of its chunk: zarr itself reads the box."""
 
 
 def _chunk_files(array: Any) -> _ChunkFiles | None:
-    """The chunk files of ``array`` when its snapshots can be read as plain bytes, else None.
+    """The chunk files of ``array`` when its chunks can be read as plain bytes, else None.
 
     That needs a local store, a native numeric type, no compressor, filter, transpose or
     sharding (zarr v3: the ``bytes`` codec alone, in this machine's byte order; v2: no
-    compressor and no filters, C order), chunks holding whole snapshots (chunk shape
-    ``(c, *grid)``) and every chunk written at full size (unwritten chunks are the
-    array's fill value).
+    compressor and no filters, C order) and every chunk written (unwritten chunks are
+    the array's fill value). Each file's size is checked when it is opened for a read.
     """
     import sys
 
@@ -99,7 +126,7 @@ def _chunk_files(array: Any) -> _ChunkFiles | None:
     chunks = tuple(int(c) for c in array.chunks)
     metadata = array.metadata
     if (store_path is None or not isinstance(store_path.store, LocalStore) or len(shape) < 1
-            or dtype.kind not in "fiu" or not dtype.isnative or chunks[1:] != shape[1:]
+            or dtype.kind not in "fiu" or not dtype.isnative
             or getattr(array, "shards", None) is not None):
         return None
     if metadata.zarr_format == 3:
@@ -111,41 +138,12 @@ def _chunk_files(array: Any) -> _ChunkFiles | None:
             return None
     elif metadata.compressor is not None or metadata.filters or metadata.order != "C":
         return None
-    snapshot_bytes = int(np.prod(shape[1:], dtype=np.int64)) * dtype.itemsize
-    per_chunk = chunks[0]
+    if _missing_chunks(array):
+        return None
     base = os.path.join(str(store_path.store.root), store_path.path)
-    paths = []
-    for index in range(-(-shape[0] // per_chunk)):
-        key = metadata.encode_chunk_key((index,) + (0,) * (len(shape) - 1))
-        path = os.path.join(base, *key.split("/"))
-        expected = per_chunk * snapshot_bytes
-        try:
-            size = os.path.getsize(path)
-        except OSError:
-            return None
-        if size < expected:
-            raise ArchiveError(f"zarr chunk file {path} is truncated: {size} of {expected} bytes (chunk {index} of "
-                               f"array {store_path.path or '/'}); restore it from a copy of the archive")
-        if size != expected:
-            return None
-        paths.append(path)
-    return _ChunkFiles(per_chunk, tuple(paths), snapshot_bytes)
-
-
-#: chunk files open at once while a tile is read (their reads are hinted ahead, several in flight)
-OPEN_CHUNK_FILES = 256
-
-
-def _read_files(files: _ChunkFiles, snapshots: tuple[int, int], out: np.ndarray) -> None:
-    parts: list[tuple[int, np.ndarray, int]] = []
-    _handles.read_snapshot_chunks(out, snapshots[0], snapshots[1], files.per_chunk,
-                                  lambda chunk, rows, first: parts.append((chunk, rows, first)))
-    for g0 in range(0, len(parts), OPEN_CHUNK_FILES):
-        with contextlib.ExitStack() as stack:
-            pieces = [(stack.enter_context(open(files.paths[chunk], "rb", buffering=0)),
-                       first * files.snapshot_bytes, rows)
-                      for chunk, rows, first in parts[g0:g0 + OPEN_CHUNK_FILES]]
-            _handles.read_pieces(pieces)
+    return _ChunkFiles(ChunkLayout(shape, chunks, dtype.itemsize), base,
+                       lambda index: str(metadata.encode_chunk_key(tuple(int(i) for i in index))),
+                       str(store_path.path or "/"))
 
 
 #: files of a zarr array folder that are not chunks
@@ -243,21 +241,20 @@ class _Array:
         return _handles.memo(key, lambda: _chunk_files(self.array))
 
     def __getitem__(self, selection: Any) -> Any:
-        from snaplift.archive.hdf5 import _basic_shape, _whole_snapshots
-
         array = self.array
         dtype = np.dtype(array.dtype)
-        shape = _basic_shape(selection, tuple(array.shape)) if dtype.kind in "fiu" else None
-        if shape is None:
+        box = box_of(selection, tuple(array.shape)) if dtype.kind in "fiu" else None
+        if box is None:
             return array[selection]
         self._check_missing(selection)
-        out = _handles.tile_buffer(shape, dtype)
-        snapshots = _whole_snapshots(selection, tuple(array.shape))
-        files = self._files() if snapshots is not None else None
-        if files is not None and snapshots is not None:
+        out = _handles.tile_buffer(tuple(b - a for a, b in box), dtype)
+        files = self._files()
+        if files is not None:
             try:
-                _read_files(files, snapshots, out)
-                return out
+                if read_box(out, files.layout, box, files.locate, files.open):
+                    return out
+            except _NotPlain:
+                pass
             except FileNotFoundError as error:  # a chunk removed since the layout was read
                 if self.missing != "fill":
                     raise ArchiveError(f"{self.path}: zarr chunk file {error.filename} is missing; restore it, or "

@@ -45,30 +45,21 @@ class _Blocks:
     """Reads snapshots ``j0 .. j1`` of the archive's ``u`` into a buffer (thread-safe)."""
 
     def __init__(self, path: Path, data) -> None:
-        from snaplift.archive import _handles
         from snaplift.archive.hdf5 import _storage
 
         self.data = data
         self.layout = _storage(data)
-        self.handle = _handles.raw_file(str(path)) if self.layout is not None else None
+        self.path = str(path)
         self.shape = data.shape
         self._lock = threading.Lock()  # h5py serialises its calls anyway
 
     def read(self, j0: int, j1: int, out: np.ndarray) -> None:
-        if self.layout is None:
-            with self._lock:
-                self.data.read_direct(out, np.s_[j0:j1])
-            return
-        from snaplift.archive import _handles
+        from snaplift.archive.hdf5 import read_stored_box
 
-        flat = out.reshape(j1 - j0, -1)
-        per, j = self.layout.per_chunk, j0
-        while j < j1:
-            chunk = j // per
-            stop = min(j1, (chunk + 1) * per)
-            offset = self.layout.starts[chunk] + (j - chunk * per) * self.layout.snapshot_bytes
-            _handles.read_into(self.handle, flat[j - j0:stop - j0], offset)
-            j = stop
+        box = ((j0, j1), *((0, n) for n in self.shape[1:]))
+        if not read_stored_box(out, self.layout, box, self.path):
+            with self._lock:  # h5py serialises its calls anyway
+                self.data.read_direct(out, np.s_[j0:j1])
 
 
 def _serial(data, omega, psi_t, block: int) -> tuple[np.ndarray, np.ndarray]:
