@@ -214,7 +214,7 @@ def _groups(parts: list[_Part]) -> Iterator[list[_Part]]:
 
 def read_box(out: np.ndarray, layout: ChunkLayout, box: tuple[tuple[int, int], ...],
              locate: Callable[[tuple[int, ...]], tuple[Hashable, int]],
-             open_file: Callable[[Hashable], Any]) -> bool:
+             open_file: Callable[[Any], Any]) -> bool:
     """Fill ``out`` (the box, C-contiguous) from the chunks' files; False (nothing read) when
     the box is better read by the array's own library (see :data:`MAX_STAGED_EXCESS`).
 

@@ -27,6 +27,10 @@ def render_regimes(figures: dict[str, Any]) -> str:
             lines.append(f"cold, uncapped: dd (8 MiB requests) {c['dd_rate'] / 1e6:.0f} MB/s; the sketch's compress "
                          f"pass read at {c['compress_rate'] / 1e6:.0f} MB/s = "
                          f"{c['compress_rate'] / c['dd_rate']:.2f}x dd")
+            if "reads_rate" in c:
+                lines.append(f"  its tiles ({c['tile_snapshots']} snapshots) read alone through the readers, cold: "
+                             f"{c['reads_rate'] / 1e6:.0f} MB/s = {c['reads_rate'] / c['dd_rate']:.2f}x dd; the pass "
+                             f"warm (its arithmetic): {c['warm_rate'] / 1e6:.0f} MB/s")
         if "workers" in f:
             lines += _workers(f["workers"], figures)
         if "model" in f:
