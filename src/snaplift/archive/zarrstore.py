@@ -108,13 +108,14 @@ class _NotPlain(Exception):
     """A chunk file that is not the plain bytes of its chunk: zarr itself reads the box."""
 
 
-def _chunk_files(array: Any) -> _ChunkFiles | None:
+def _chunk_files(array: Any, missing: frozenset[tuple[int, ...]] | None = None) -> _ChunkFiles | None:
     """The chunk files of ``array`` when its chunks can be read as plain bytes, else None.
 
     That needs a local store, a native numeric type, no compressor, filter, transpose or
     sharding (zarr v3: the ``bytes`` codec alone, in this machine's byte order; v2: no
     compressor and no filters, C order) and every chunk written (unwritten chunks are
-    the array's fill value). Each file's size is checked when it is opened for a read.
+    the array's fill value; ``missing``: the chunks found missing, if known already). Each
+    file's size is checked when it is opened for a read.
     """
     import sys
 
@@ -138,7 +139,7 @@ def _chunk_files(array: Any) -> _ChunkFiles | None:
             return None
     elif metadata.compressor is not None or metadata.filters or metadata.order != "C":
         return None
-    if _missing_chunks(array):
+    if _missing_chunks(array) if missing is None else missing:
         return None
     base = os.path.join(str(store_path.store.root), store_path.path)
     return _ChunkFiles(ChunkLayout(shape, chunks, dtype.itemsize), base,
@@ -200,9 +201,12 @@ class _Array:
         self.path = path
         self.missing = missing
 
-    def _check_missing(self, selection: Any) -> None:
+    def _missing(self) -> frozenset[tuple[int, ...]]:
         key = ("zarr-missing-chunks", self.path, str(getattr(self.array, "path", "")), _handles.signature(self.path))
-        missing = _handles.memo(key, lambda: _missing_chunks(self.array))
+        return _handles.memo(key, lambda: _missing_chunks(self.array))
+
+    def _check_missing(self, selection: Any) -> None:
+        missing = self._missing()
         if not missing:
             return
         shape = tuple(int(n) for n in self.array.shape)
@@ -238,7 +242,7 @@ class _Array:
 
     def _files(self) -> _ChunkFiles | None:
         key = ("zarr-chunk-files", self.path, str(getattr(self.array, "path", "")), _handles.signature(self.path))
-        return _handles.memo(key, lambda: _chunk_files(self.array))
+        return _handles.memo(key, lambda: _chunk_files(self.array, self._missing()))
 
     def __getitem__(self, selection: Any) -> Any:
         array = self.array
