@@ -51,9 +51,10 @@ def _write_hdf5(path, shape, chunks, reverse=True):
     return data
 
 
-@pytest.fixture(params=["straight into the tile", "through the staging buffer"])
+@pytest.fixture(params=["straight into the tile", "short runs"])
 def runs(request, monkeypatch):
-    """Read every run straight into the tile, or every run through a small staging buffer."""
+    """Read every run straight into the tile, or take every run of a chunk cut across the grid
+    as short (zarr: through a small staging buffer; HDF5: by HDF5, rows of chunks hinted ahead)."""
     monkeypatch.setattr(_chunk_reads, "MIN_RUN_BYTES", 0 if request.param.startswith("straight") else 2**40)
     monkeypatch.setattr(_chunk_reads, "STAGE_BYTES", 400)
     monkeypatch.setattr(_chunk_reads, "MAX_STAGED_EXCESS", 1e9)  # every box positioned: the reads under test
@@ -192,3 +193,19 @@ def test_truncated_zarr_chunk_names_the_file(tmp_path):
         handle.truncate(16)
     with pytest.raises(ArchiveError, match=r"zarr chunk file .*1\.0\.0 is truncated: 16 of 240 bytes"):
         _Array(stored, path)[0:4, 0:6, 0:5]
+
+
+def test_rows_of_chunks_hinted_ahead_of_a_library_read(tmp_path):
+    # chunks written in time order: each row of chunks along time is one byte range of the
+    # file, the row's chunks one after another (h5py allocates them as written)
+    path = tmp_path / "fine.h5"
+    _write_hdf5(path, (20, 6, 8), (4, 3, 4), reverse=False)
+    with h5py.File(path, "r") as h5:
+        storage = _storage(h5["u"])
+        rows = _chunk_reads.chunk_rows(storage.layout, ((2, 11), (0, 6), (0, 8)), storage.locate)
+        chunk = 4 * 3 * 4 * 8
+        assert [(t0, t1) for t0, t1, _ in rows] == [(2, 4), (4, 8), (8, 11)]
+        for t0, _, ranges in rows:
+            row = t0 // 4
+            assert ranges == [("", int(storage.offsets[row, 0, 0]), 4 * chunk)]
+            assert int(storage.offsets[row, 1, 1]) == int(storage.offsets[row, 0, 0]) + 3 * chunk

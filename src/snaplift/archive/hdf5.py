@@ -25,7 +25,7 @@ import numpy as np
 
 from snaplift.archive import _handles
 from snaplift.archive._cf import plain_attrs
-from snaplift.archive._chunk_reads import ChunkLayout, box_of, read_box
+from snaplift.archive._chunk_reads import ChunkLayout, box_of, chunk_rows, read_box
 from snaplift.archive._common import Candidate
 from snaplift.archive._grouped import GroupedReader
 from snaplift.archive._registry import register_reader, sniff_format
@@ -180,7 +180,7 @@ class _Dataset:
         if box is None:
             return dataset[selection]
         out = _handles.tile_buffer(tuple(b - a for a, b in box), dataset.dtype)
-        if not read_stored_box(out, self._layout(), box, self.path):
+        if not read_stored_box(out, self._layout(), box, self.path, dataset):
             dataset.read_direct(out, source_sel=selection)
         return out
 
@@ -188,13 +188,37 @@ class _Dataset:
         return getattr(self.dataset, name)
 
 
-def read_stored_box(out: np.ndarray, storage: _Storage | None, box: tuple[tuple[int, int], ...], path: str) -> bool:
+def read_stored_box(out: np.ndarray, storage: _Storage | None, box: tuple[tuple[int, int], ...], path: str,
+                    dataset: Any = None) -> bool:
     """Fill ``out`` with ``box`` of a dataset of ``storage`` in the file ``path`` by positioned reads;
-    False when it has no plain layout or the box is better read by HDF5 itself."""
+    False when it has no plain layout (nothing read).
+
+    A box whose chunks have short runs (chunks cut finely across the grid, as h5py's and
+    netCDF's default chunks are) is read by HDF5 itself, which scatters them in one copy,
+    one row of chunks at a time, with the chunks of the next rows hinted to the kernel so
+    that the device reads them meanwhile (``dataset``, the h5py dataset, is needed then).
+    """
     if storage is None:
         return False
     handle = _handles.raw_file(path)
-    return read_box(out, storage.layout, box, storage.locate, lambda _key: contextlib.nullcontext(handle))
+    if read_box(out, storage.layout, box, storage.locate, lambda _key: contextlib.nullcontext(handle), stage=False):
+        return True
+    if dataset is None:
+        return False
+    fd = handle.fileno()
+    rows = chunk_rows(storage.layout, box, storage.locate)
+    s0 = box[0][0]
+    hinted = ahead = 0
+    for row, (t0, t1, ranges) in enumerate(rows):
+        while hinted < len(rows) and (hinted <= row or ahead < _handles.READ_AHEAD_BYTES):
+            for _key, offset, nbytes in rows[hinted][2]:
+                _handles.advise(fd, offset, nbytes)
+                ahead += nbytes
+            hinted += 1
+        ahead -= sum(nbytes for _key, _offset, nbytes in ranges)
+        selection = (slice(t0, t1), *(slice(a, b) for a, b in box[1:]))
+        dataset.read_direct(out, source_sel=selection, dest_sel=np.s_[t0 - s0:t1 - s0])
+    return True
 
 
 class HDF5Reader(GroupedReader):

@@ -57,7 +57,7 @@ class _Blocks:
         from snaplift.archive.hdf5 import read_stored_box
 
         box = ((j0, j1), *((0, n) for n in self.shape[1:]))
-        if not read_stored_box(out, self.layout, box, self.path):
+        if not read_stored_box(out, self.layout, box, self.path, self.data):
             with self._lock:  # h5py serialises its calls anyway
                 self.data.read_direct(out, np.s_[j0:j1])
 
