@@ -216,8 +216,10 @@ def test_cold_section_shows_reads_alone_and_the_warm_arithmetic():
     figures = {"archive_bytes": 2 * 2**30, "snapshots": 1024, "points": 262144, "rank": 40, "workers": 2,
                "layouts": {"8 per chunk": {"cold": {"dd_rate": 2.0e9, "compress_rate": 0.8e9, "compress_seconds": 2.7,
                                                     "reads_rate": 1.6e9, "reads_seconds": 1.3, "tile_snapshots": 64,
+                                                    "zarr_reads_rate": 1.5e9,
                                                     "warm_rate": 0.85e9}}}}
     text = render_regimes(figures)
     assert "the sketch's compress pass read at 800 MB/s = 0.40x dd" in text
     assert "its tiles (64 snapshots) read alone through the readers, cold: 1600 MB/s = 0.80x dd" in text
+    assert "(the same chunks in uncompressed zarr: 1500 MB/s = 0.75x dd)" in text
     assert "the pass warm (its arithmetic): 850 MB/s" in text

@@ -68,8 +68,9 @@ def parse_layout(text: str) -> tuple[int, int]:
     return (values[0], values[1] if len(values) == 2 else 1)
 
 
-def copy_to_zarr(source: Path, target: Path, *, block: int = 64) -> None:
-    """The same data as zarr v3: no compressor, one snapshot per chunk (see module docstring)."""
+def copy_to_zarr(source: Path, target: Path, *, block: int = 64, same_chunks: bool = False) -> None:
+    """The same data as zarr v3: no compressor, one snapshot per chunk (see module docstring),
+    or with ``same_chunks`` the HDF5 dataset's own chunk shape."""
     import h5py
     import zarr
 
@@ -77,7 +78,9 @@ def copy_to_zarr(source: Path, target: Path, *, block: int = 64) -> None:
         data = h5["u"]
         group = zarr.open_group(str(target), mode="w")
         group.create_array("t", data=np.asarray(h5["t"]))
-        out = group.create_array("u", shape=data.shape, dtype="f8", chunks=(1, *data.shape[1:]), compressors=None)
+        chunks = tuple(data.chunks) if same_chunks and data.chunks else (1, *data.shape[1:])
+        out = group.create_array("u", shape=data.shape, dtype="f8", chunks=chunks, compressors=None)
+        block = max(chunks[0], block - block % chunks[0])  # whole chunks per write
         for j0 in range(0, data.shape[0], block):
             out[j0:j0 + block] = data[j0:j0 + block]
 

@@ -38,7 +38,15 @@ from typing import Any
 import numpy as np
 
 from snaplift.units import parse_bytes
-from snaplift.workflow.bench.archive import GRID, drop_page_cache, layout_label, reader_read, warm, write_archive
+from snaplift.workflow.bench.archive import (
+    GRID,
+    copy_to_zarr,
+    drop_page_cache,
+    layout_label,
+    reader_read,
+    warm,
+    write_archive,
+)
 from snaplift.workflow.bench.commands import Cap, run_command
 from snaplift.workflow.bench.model import CostModel, predict, relative_gap
 from snaplift.workflow.bench.workers import compare_workers
@@ -183,7 +191,8 @@ def _cold(folder: Path, archive: Path, settings: RegimeSettings, say: Callable[[
     """
     from snaplift.workflow.bench.floor_cases import BenchSettings, _runner, run_method
 
-    say("  cold, uncapped: dd with 8 MiB requests, the sketch's compress pass, its tiles read alone; the pass warm")
+    say("  cold, uncapped: dd with 8 MiB requests, the sketch's compress pass, its tiles read alone (HDF5, and an "
+        "uncompressed zarr copy with the same chunks); the pass warm")
     dd = run_command(["dd", f"if={archive}", "of=/dev/null", "bs=8M"], folder=folder, cap=None, cold=True).seconds
     size = archive.stat().st_size
     bench = BenchSettings(rank=settings.rank, memory_bytes=parse_bytes(settings.memory), workers=settings.workers)
@@ -193,9 +202,17 @@ def _cold(folder: Path, archive: Path, settings: RegimeSettings, say: Callable[[
         drop_page_cache()
         reads = reader_read(archive, figures["snapshots_per_tile"], settings.workers)
         warm_figures = run_method(archive, "sketch", bench, runner, plan=figures["plan"])
+    # the same chunks as an uncompressed zarr array, its tiles read alone, cold
+    copy = folder / "bench-copy.zarr"
+    copy_to_zarr(archive, copy, same_chunks=True)
+    try:
+        drop_page_cache()
+        zarr_reads = reader_read(copy, figures["snapshots_per_tile"], settings.workers)
+    finally:
+        shutil.rmtree(copy, ignore_errors=True)
     return {"dd_rate": size / dd, "compress_rate": figures["bytes_ratio"] * size / figures["seconds"],
             "compress_seconds": figures["seconds"], "reads_rate": size / reads, "reads_seconds": reads,
-            "tile_snapshots": figures["snapshots_per_tile"],
+            "zarr_reads_rate": size / zarr_reads, "tile_snapshots": figures["snapshots_per_tile"],
             "warm_rate": warm_figures["bytes_ratio"] * size / warm_figures["seconds"]}
 
 

@@ -29,8 +29,10 @@ def render_regimes(figures: dict[str, Any]) -> str:
                          f"{c['compress_rate'] / c['dd_rate']:.2f}x dd")
             if "reads_rate" in c:
                 lines.append(f"  its tiles ({c['tile_snapshots']} snapshots) read alone through the readers, cold: "
-                             f"{c['reads_rate'] / 1e6:.0f} MB/s = {c['reads_rate'] / c['dd_rate']:.2f}x dd; the pass "
-                             f"warm (its arithmetic): {c['warm_rate'] / 1e6:.0f} MB/s")
+                             f"{c['reads_rate'] / 1e6:.0f} MB/s = {c['reads_rate'] / c['dd_rate']:.2f}x dd"
+                             + (f" (the same chunks in uncompressed zarr: {c['zarr_reads_rate'] / 1e6:.0f} MB/s = "
+                                f"{c['zarr_reads_rate'] / c['dd_rate']:.2f}x dd)" if "zarr_reads_rate" in c else "")
+                             + f"; the pass warm (its arithmetic): {c['warm_rate'] / 1e6:.0f} MB/s")
         if "workers" in f:
             lines += _workers(f["workers"], figures)
         if "model" in f:
