@@ -36,3 +36,50 @@ def test_the_report_imports_no_xarray_or_scipy(heavy):
     # the report reads a small store straight from zarr; xarray and pandas were a third of
     # a small run's report, scipy.linalg a fifth (the report helper imports this beside a run)
     assert heavy not in _imported_after("import snaplift.report.page; import snaplift.report.helper")
+
+
+@pytest.mark.parametrize("heavy", ["dask", "scipy", "jinja2", "matplotlib"])
+def test_the_runner_imports_no_dask_or_scipy(heavy):
+    # a threaded run never builds a dask collection (the streaming compress has threads of
+    # its own) and scipy.linalg serves the fit, after compress: neither is imported before
+    assert heavy not in _imported_after("import snaplift.workflow.runner")
+
+
+#: run in a fresh interpreter: ``snaplift run WORKFLOW --quiet`` up to the start of the
+#: compress stage (the runner's compress callable is replaced by one that prints the
+#: modules imported so far and ends the process)
+_UP_TO_COMPRESS = """
+import os, sys
+import snaplift.cli as cli
+import snaplift.workflow.runner as runner
+
+def stop(context, checkpoint_dir):
+    print("\\n".join(sorted(sys.modules)), flush=True)
+    os._exit(0)
+
+runner._compress_with_retries = stop
+sys.argv = ["snaplift", "run", sys.argv[1], "--quiet"]
+cli.main()
+"""
+
+
+def test_a_run_reaches_compress_without_dask_scipy_or_a_console(tmp_path):
+    import h5py
+    import numpy as np
+    import yaml
+
+    with h5py.File(tmp_path / "a.h5", "w") as h5:
+        h5["t"] = 0.1 * np.arange(24)
+        h5.create_dataset("u", data=np.random.default_rng(1).standard_normal((24, 5, 6)), chunks=(1, 5, 6))
+    workflow = tmp_path / "w.yaml"
+    workflow.write_text(yaml.safe_dump({"archive": {"path": "a.h5", "fields": ["u"], "time": "t"},
+                                        "compress": {"method": "sketch", "rank": 3, "memory": "2GiB"},
+                                        "output": {"path": "r.zarr", "report": False},
+                                        "cluster": {"kind": "threads", "workers": 2}}))
+    done = subprocess.run([sys.executable, "-c", _UP_TO_COMPRESS, str(workflow)], capture_output=True, text=True)
+    assert done.returncode == 0, done.stderr
+    modules = set(done.stdout.split())
+    assert "snaplift.workflow.stages" in modules and "h5py" in modules  # it did get as far as compress
+    # scan, fingerprint sampling and the tile plan need neither dask nor scipy; --quiet shows nothing
+    for heavy in ("dask", "distributed", "scipy", "scipy.linalg", "xarray", "matplotlib", "rich.console"):
+        assert heavy not in modules, heavy
