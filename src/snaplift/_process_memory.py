@@ -33,9 +33,14 @@ def trim_heap() -> bool:
 
 @functools.cache
 def _malloc_trim() -> Any:
-    """glibc's ``malloc_trim``, looked up once per process: ``find_library`` runs
-    ``ldconfig`` in a child process, and a child of a large process, counted between its
-    fork and its exec, is as large again in a sum over the process tree (issue 11)."""
+    """glibc's ``malloc_trim``, looked up once per process: among the symbols the process
+    has loaded (the C library's), else through ``find_library``, which runs ``ldconfig`` in
+    a child process (5-10 ms of every run's start), and a child of a large process, counted
+    between its fork and its exec, is as large again in a sum over the process tree (issue 11)."""
+    try:
+        return ctypes.CDLL(None).malloc_trim
+    except (OSError, AttributeError, TypeError):  # not glibc, or no handle on the process itself
+        pass
     name = ctypes.util.find_library("c")
     if not name:
         return None

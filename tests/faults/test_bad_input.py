@@ -14,7 +14,7 @@ import sys
 import pytest
 import zarr
 
-from snaplift.workflow import stages as workflow_stages
+from snaplift.results import fit_output  # the modes stage imports write_modes from here when it writes
 
 
 def _alias_bomb(levels: int = 9) -> str:
@@ -102,7 +102,7 @@ def test_write_errors_are_one_line_and_keep_the_previous_store(faults, monkeypat
     def refuse(*args, **kwargs):
         raise OSError(code, __import__("os").strerror(code), str(store) + ".staging/store.zarr/modes/u/c/0/0/0")
 
-    monkeypatch.setattr(workflow_stages, "write_modes", refuse)
+    monkeypatch.setattr(fit_output, "write_modes", refuse)
     before = faults.hashes(archive)
     outcome = faults.cli("run", faults.workflow(fit={"rank": 3}))
     line = faults.one_line_error(outcome, "r.zarr.staging", "output.path")

@@ -13,8 +13,6 @@ import sys
 from collections.abc import Iterator, Sequence
 from typing import Any
 
-import dask
-
 from snaplift.cluster.batch import _expand, _import_jobqueue, _interface_address, allocation_resources, jobqueue_options
 from snaplift.cluster.memory import _machine_memory
 from snaplift.cluster.options import (
@@ -44,6 +42,7 @@ def open_scheduler(section: ClusterOptions, *, progress: TaskProgress | None = N
     if section.kind == "threads":
         yield from _threads(section, progress)
         return
+    import dask
     from distributed import Client
 
     environ = worker_environment()
@@ -69,32 +68,69 @@ def open_scheduler(section: ClusterOptions, *, progress: TaskProgress | None = N
 
 
 def _threads(section: ClusterOptions, progress: TaskProgress) -> Iterator[Scheduler]:
-    from dask.callbacks import Callback
-
     cores = usable_cores()
     workers = section.workers or cores
     memory = parse_bytes(section.memory_per_worker) if section.memory_per_worker else _machine_memory() // 2
-
-    class _Local(Callback):
-        # dask's local callbacks: fine under the threaded scheduler, silent under distributed
-        def _start_state(self, dsk: Any, state: Any) -> None:
-            progress.add_work(len(state.get("ready", ())) + len(state.get("waiting", {})))
-
-        def _posttask(self, key: Any, result: Any, dsk: Any, state: Any, worker_id: Any) -> None:
-            progress.advance(1)
+    # dask (with jinja2, psutil, toolz, cloudpickle: ~0.15 s) is imported on the first call
+    # that may hold a dask collection, not as the run starts: the streaming compress runs
+    # on its own threads and gives compute/persist plain arrays. Before dask is imported no
+    # dask collection can exist, and dask.compute/persist give back such arguments as they are.
+    dask_calls = _ThreadedDask(workers, progress)
 
     def compute(*args: Any, **kwargs: Any) -> Sequence[Any]:
-        with _Local():
-            return dask.compute(*args, **kwargs)
+        return dask_calls.run("compute", args, kwargs) if "dask" in sys.modules else args
 
     def persist(*args: Any, **kwargs: Any) -> Sequence[Any]:
-        with _Local():
-            return dask.persist(*args, **kwargs)
+        return dask_calls.run("persist", args, kwargs) if "dask" in sys.modules else args
 
-    with dask.config.set(scheduler="threads", num_workers=workers):
+    with dask_calls.configured():
         yield Scheduler("threads", workers, compute, persist, memory, progress=progress,
                         description={"kind": "threads", "workers": workers, "memory_per_worker": memory,
                                      "profile": section.profile})
+
+
+class _ThreadedDask:
+    """dask's threaded scheduler with ``workers`` threads and the run's progress (dask's
+    local callbacks: fine under the threaded scheduler, silent under distributed)."""
+
+    def __init__(self, workers: int, progress: TaskProgress) -> None:
+        self.workers, self.progress = workers, progress
+        self._callback: Any = None
+
+    @contextlib.contextmanager
+    def configured(self) -> Iterator[None]:
+        """dask's configuration for the scheduler's lifetime when dask is already imported
+        (a caller that computes with dask directly gets these threads); else each call
+        sets it (:meth:`run`)."""
+        if "dask" not in sys.modules:
+            yield
+            return
+        import dask
+
+        with dask.config.set(scheduler="threads", num_workers=self.workers):
+            yield
+
+    def run(self, name: str, args: tuple[Any, ...], kwargs: dict[str, Any]) -> Sequence[Any]:
+        import dask
+
+        with dask.config.set(scheduler="threads", num_workers=self.workers), self._local():
+            return getattr(dask, name)(*args, **kwargs)
+
+    def _local(self) -> Any:
+        if self._callback is None:
+            from dask.callbacks import Callback
+
+            progress = self.progress
+
+            class _Local(Callback):
+                def _start_state(self, dsk: Any, state: Any) -> None:
+                    progress.add_work(len(state.get("ready", ())) + len(state.get("waiting", {})))
+
+                def _posttask(self, key: Any, result: Any, dsk: Any, state: Any, worker_id: Any) -> None:
+                    progress.advance(1)
+
+            self._callback = _Local
+        return self._callback()
 
 
 def _distributed(client: Any, section: ClusterOptions, progress: TaskProgress, kind: str,
@@ -113,6 +149,8 @@ def _distributed(client: Any, section: ClusterOptions, progress: TaskProgress, k
         # persist first so that every output chunk is a future whose completion advances
         # the progress; then gather (a cheap concatenation of finished chunks)
         kwargs.setdefault("retries", TASK_RETRIES)
+        import dask
+
         lazy = [i for i, a in enumerate(args) if dask.is_dask_collection(a)]
         if not lazy:
             return tuple(args)
@@ -129,6 +167,8 @@ def _distributed(client: Any, section: ClusterOptions, progress: TaskProgress, k
         return tuple(out)
 
     def persist(*args: Any, **kwargs: Any) -> Sequence[Any]:
+        import dask
+
         kwargs.setdefault("retries", TASK_RETRIES)
         if not any(dask.is_dask_collection(a) for a in args):
             return tuple(args)

@@ -96,7 +96,7 @@ def start_for(workflow: str | Path) -> ReportHelper | None:
     run itself then says what is wrong).
     """
     setting = os.environ.get(HELPER_VARIABLE, "")
-    if not hasattr(os, "fork") or setting == "0" or (setting != "1" and not idle_core()):
+    if not hasattr(os, "fork") or setting == "0":
         return None  # (fork, process groups and a load average: POSIX)
     import yaml
 
@@ -111,6 +111,9 @@ def start_for(workflow: str | Path) -> ReportHelper | None:
         return None
     size = _archive_bytes(Path(workflow).resolve().parent, archive.get("path"))
     if size is None or size > HELPER_ARCHIVE_BYTES:
+        return None
+    # the load last: a run without a report (or of a large archive) does not wait for its looks
+    if setting != "1" and not idle_core():
         return None
     return ReportHelper.start()
 

@@ -10,13 +10,12 @@ archive instead, when it can (:mod:`snaplift.workflow.append`); :func:`fit_stage
 from __future__ import annotations
 
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from snaplift.cluster import Scheduler
 from snaplift.compress_methods import check_rank
-from snaplift.fitting.methods import FitResult
 from snaplift.results.stages import Compressed, load_compressed
 from snaplift.results.staging import StagedStore
 from snaplift.stream.compress import CompressOptions, compress
@@ -26,6 +25,9 @@ from snaplift.workflow.fingerprint import Classification
 from snaplift.workflow.fit_methods import fit_outcome
 from snaplift.workflow.scanning import Scanned, lifted_scale, snapshot_matrix_of
 from snaplift.workflow.schema import Workflow
+
+if TYPE_CHECKING:
+    from snaplift.fitting.methods import FitResult
 
 __all__ = ["compress_stage", "fit_stage", "load_compressed_result", "try_append"]
 

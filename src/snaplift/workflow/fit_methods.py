@@ -19,14 +19,16 @@ from __future__ import annotations
 
 import dataclasses
 from collections.abc import Callable
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
 from snaplift.errors import FitError
-from snaplift.fitting import FitProblem, FitResult, run_fit
 from snaplift.units import format_bytes
 from snaplift.workflow.lift_section import state_dictionary
+
+if TYPE_CHECKING:
+    from snaplift.fitting import FitResult
 
 __all__ = ["fit_outcome", "read_state", "state_variables"]
 
@@ -65,6 +67,10 @@ def read_state(matrix: Any) -> tuple[np.ndarray, int]:
 def fit_outcome(workflow: Any, compressed: Any, scanned: Any, *, memory_budget: int | None = None,
                 say: Callable[[str], None] | None = None) -> FitResult:
     """Run ``fit.method`` on the compress result (or the raw state); see the module docstring."""
+    # the fitting package (scipy.linalg, ~0.17 s) when a fit runs: the scan imports this
+    # module (state_variables) at every run's start, before compress
+    from snaplift.fitting import FitProblem, run_fit
+
     method = workflow.fit.method
     settings = workflow.fit
     common = {"dt": scanned.fit_dt, "run_lengths": np.asarray(scanned.columns_run_lengths, dtype=np.int64),
@@ -91,6 +97,8 @@ def _leading(compressed: Any, count: int | None) -> np.ndarray:
 
 def _edmd(workflow: Any, compressed: Any, common: dict[str, Any], memory_budget: int | None,
           say: Callable[[str], None] | None) -> FitResult:
+    from snaplift.fitting import FitProblem, run_fit
+
     settings = workflow.fit
     source = workflow.state_source
     bytes_read = 0

@@ -28,16 +28,14 @@ import datetime as _dt
 from collections.abc import Callable, Mapping
 from dataclasses import dataclass, field, replace
 from pathlib import Path
-from typing import Any, Generic, Protocol, TypeVar
+from typing import TYPE_CHECKING, Any, Generic, Protocol, TypeVar
 
 import numpy as np
 
 from snaplift._process_memory import trim_heap
 from snaplift.cluster import Scheduler
-from snaplift.fitting.methods import FitResult
 from snaplift.linalg._blas import blas_threads
 from snaplift.results import store as result_store
-from snaplift.results.fit_output import modes_bytes, write_fit, write_fit_details, write_modes
 from snaplift.results.stages import Compressed, write_compressed, write_scan
 from snaplift.results.staging import StagedStore, check_free_space
 from snaplift.units import format_bytes
@@ -55,6 +53,9 @@ from snaplift.workflow.progress import ProgressReporter
 from snaplift.workflow.scanning import Scanned, check_workflow, scan_stage
 from snaplift.workflow.schema import Workflow
 from snaplift.workflow.store_metadata import store_metadata
+
+if TYPE_CHECKING:
+    from snaplift.fitting.methods import FitResult
 
 __all__ = [
     "STAGES",
@@ -374,6 +375,10 @@ class FitStage(_Base[Fitted]):
     def write(self, context: StageContext, result: Fitted) -> tuple[StageRecord, Fitted]:
         outcome = result.outcome
         assert outcome is not None
+        # results.fit_output imports the fitting package (scipy.linalg, ~0.17 s): here, in
+        # the stages that write the fit and the modes, not as every run starts
+        from snaplift.results.fit_output import write_fit, write_fit_details
+
         writer, scanned = context.store.writer, context.scanned
         order, written = write_fit(writer, outcome, scanned.dt, residuals=outcome.residuals)
         write_fit_details(writer, outcome, order, scanned.time)
@@ -407,12 +412,16 @@ class ModesStage(_Base[Fitted]):
         return context.fitted.outcome is None  # the fit was reused, so are the modes
 
     def run(self, context: StageContext) -> Fitted:
+        from snaplift.results.fit_output import modes_bytes
+
         check_free_space(context.store.area, modes_bytes(context.compressed.matrix, context.fitted.n_modes),
                          "the modes")
         trim_heap()
         return context.fitted
 
     def write(self, context: StageContext, result: Fitted) -> tuple[StageRecord, Fitted]:
+        from snaplift.results.fit_output import write_modes
+
         assert result.outcome is not None and result.order is not None
         write_modes(context.store.writer, result.outcome, context.compressed, result.order, context.scheduler.compute)
         return StageRecord(self.name, self.fingerprint(context), "computed"), result
