@@ -19,7 +19,7 @@ from snaplift.errors import ArchiveError
 from snaplift.units import parse_bytes
 from snaplift.workflow.schema import Workflow
 
-__all__ = ["compress_memory", "lifted_info", "plan_compress"]
+__all__ = ["baseline_modules", "compress_memory", "lifted_info", "plan_compress"]
 
 
 def lifted_info(info: ArchiveInfo, workflow: Workflow) -> ArchiveInfo:
@@ -87,7 +87,7 @@ def _row_groups(workflow: Workflow) -> list[list[int]] | None:
 
 def _plan(workflow: Workflow, info: ArchiveInfo, scheduler: Scheduler, recorded_baseline: int | None) -> TilePlan:
     settings = workflow.compress
-    resident = resident_memory(scheduler.client, workers=scheduler.workers, modules=_pass_modules(settings.method))
+    resident = resident_memory(scheduler.client, workers=scheduler.workers, modules=baseline_modules(settings.method))
     return plan_tiles(
         info, list(info.fields) if workflow.field_lift is not None else list(workflow.archive.fields),
         memory_bytes=compress_memory(workflow, scheduler),
@@ -112,7 +112,7 @@ _TASK_LIBRARIES = {"sketch": ("scipy.sparse",)}
 _DRIVER_LIBRARIES = {"sketch": ("scipy.linalg",), "randomized": ("scipy.linalg",)}
 
 
-def _pass_modules(method: str) -> tuple[str, ...]:
+def baseline_modules(method: str) -> tuple[str, ...]:
     """What every process imports before its baseline is measured (this process also
     :data:`_DRIVER_LIBRARIES`): a tile task's modules and the libraries of ``method``."""
     for name in _DRIVER_LIBRARIES.get(method, ()):

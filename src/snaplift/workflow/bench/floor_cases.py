@@ -112,6 +112,7 @@ def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *,
     from snaplift.archive.matrix import build_snapshot_matrix
     from snaplift.cluster import resident_memory
     from snaplift.stream.compress import CompressOptions, compress
+    from snaplift.workflow.planning import baseline_modules
 
     reader = open_archive(str(path))
     info = reader.describe()
@@ -122,7 +123,9 @@ def run_method(path: Path, method: str, settings: BenchSettings, runner: Any, *,
     def work() -> Any:
         if given is not None:
             return given, run(given)
-        resident = resident_memory(getattr(runner, "client", None), workers=runner.workers)
+        # the baseline a run measures: with the libraries its pass loads after the plan
+        resident = resident_memory(getattr(runner, "client", None), workers=runner.workers,
+                                   modules=baseline_modules(method))
         planned = plan_tiles(info, ["u"], memory_bytes=settings.memory_bytes, workers=runner.workers, method=method,
                              rank=settings.rank, power_iterations=power_iterations, sketch_widths=sketch_widths,
                              shared_memory=runner.kind == "threads", baseline_bytes=resident.reserve(),
@@ -225,9 +228,10 @@ def run_benchmark(settings: BenchSettings, progress: Callable[[str], None] | Non
         width = settings.rank + 10
         from snaplift.archive import open_archive, plan_tiles
         from snaplift.cluster import resident_memory
+        from snaplift.workflow.planning import baseline_modules
 
         # the floor reads in the blocks the threaded sketch would plan
-        resident = resident_memory()
+        resident = resident_memory(modules=baseline_modules("sketch"))
         block = plan_tiles(open_archive(str(h5_path)).describe(), ["u"], memory_bytes=settings.memory_bytes,
                            workers=settings.workers, method="sketch", rank=settings.rank, shared_memory=True,
                            baseline_bytes=resident.reserve(), baseline_label=resident.label).block
