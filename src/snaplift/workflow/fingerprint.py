@@ -220,7 +220,8 @@ def sample_blocks(n_snapshots: int, chunk: int, block_bytes: int, archive_bytes:
     for any part of it; a chunk of more than :data:`SAMPLE_BLOCK_BYTES` is sampled over its
     first snapshots only (the last over its last), as many as fit in
     :data:`SAMPLE_BLOCK_BYTES`, at least one, so that where a part can be read alone
-    (uncompressed HDF5 with whole snapshots in a chunk) only that part is.
+    (uncompressed HDF5 or zarr, whatever the chunk shape: positioned reads of the part's
+    runs) only that part is.
 
     Example
     -------
