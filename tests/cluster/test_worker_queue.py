@@ -20,7 +20,7 @@ import numpy as np
 from snaplift.archive import open_archive, plan_tiles
 from snaplift.archive.matrix import build_snapshot_matrix
 from snaplift.cluster import open_scheduler
-from snaplift.cluster.options import WORKER_MALLOC_ENVIRONMENT
+from snaplift.cluster.options import QUIET_CLUSTER_CONFIG, WORKER_MALLOC_ENVIRONMENT
 from snaplift.stream.compress import CompressOptions, compress
 from snaplift.stream.loop import QUEUED_TILES_PER_WORKER, ClientRunner, ThreadRunner, runner_for
 from snaplift.workflow.schema import ClusterSection
@@ -40,6 +40,12 @@ def test_tasks_pinned_to_a_one_thread_worker_run_in_the_order_submitted() -> Non
         # the workers get the allocator setting of cluster.options (the memory plan counts no kept heap)
         seen = scheduler.client.run(lambda: {name: os.environ.get(name) for name in WORKER_MALLOC_ENVIRONMENT})
         assert list(seen.values()) == [WORKER_MALLOC_ENVIRONMENT] * 2
+        # and the quiet settings: no statistical profiler (distributed's Worker starts its
+        # "profile" callbacks only when distributed.worker.profile.enabled), a 1 s tick
+        settings = scheduler.client.run(_worker_settings)
+        for callbacks, config in settings.values():
+            assert "profile" not in callbacks and "profile-cycle" not in callbacks
+            assert config == QUIET_CLUSTER_CONFIG
         # one burst of pinned tasks: distributed would order its queued tasks by their random keys
         futures = [runner.submit(started, index, where=0) for index in range(16)]
         starts = [runner.result(future) for future in futures]
@@ -53,6 +59,12 @@ def test_workers_with_several_threads_keep_the_plans_bound() -> None:
             runner_for(scheduler) as runner:
         assert isinstance(runner, ClientRunner) and runner.slots == 1
         assert runner.queued_tiles == 0
+
+
+def _worker_settings(dask_worker: Any) -> tuple[list[str], dict[str, Any]]:
+    import dask
+
+    return sorted(dask_worker.periodic_callbacks), {name: dask.config.get(name) for name in QUIET_CLUSTER_CONFIG}
 
 
 class _CountingRunner(ThreadRunner):
