@@ -42,7 +42,12 @@ def test_tasks_pinned_to_a_one_thread_worker_run_in_the_order_submitted() -> Non
         assert list(seen.values()) == [WORKER_MALLOC_ENVIRONMENT] * 2
         # and the quiet settings: no statistical profiler (distributed's Worker starts its
         # "profile" callbacks only when distributed.worker.profile.enabled), a 1 s tick
-        settings = scheduler.client.run(_worker_settings)
+        def worker_settings(names: list[str], dask_worker: Any = None) -> tuple[list[str], dict[str, Any]]:
+            import dask  # nested: pickled by value for the worker
+
+            return sorted(dask_worker.periodic_callbacks), {name: dask.config.get(name) for name in names}
+
+        settings = scheduler.client.run(worker_settings, list(QUIET_CLUSTER_CONFIG))
         for callbacks, config in settings.values():
             assert "profile" not in callbacks and "profile-cycle" not in callbacks
             assert config == QUIET_CLUSTER_CONFIG
@@ -59,12 +64,6 @@ def test_workers_with_several_threads_keep_the_plans_bound() -> None:
             runner_for(scheduler) as runner:
         assert isinstance(runner, ClientRunner) and runner.slots == 1
         assert runner.queued_tiles == 0
-
-
-def _worker_settings(dask_worker: Any) -> tuple[list[str], dict[str, Any]]:
-    import dask
-
-    return sorted(dask_worker.periodic_callbacks), {name: dask.config.get(name) for name in QUIET_CLUSTER_CONFIG}
 
 
 class _CountingRunner(ThreadRunner):
