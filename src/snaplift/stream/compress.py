@@ -44,7 +44,7 @@ from snaplift.prepare import Preparation
 from snaplift.stream._digest import digest_table
 from snaplift.stream._method_passes import randomized_compress, tsqr_compress
 from snaplift.stream._passes import Pass, build_jobs, kept_row_blocks, preparing_of, product_read, sketch_read
-from snaplift.stream._tasks import TileSource, release_resident
+from snaplift.stream._tasks import TileSource, release_caches, release_resident
 from snaplift.stream.loop import Checkpointer, InlineRunner, StreamState, ThreadRunner, TileRunner
 from snaplift.stream.sketch import finish_sketch
 
@@ -204,20 +204,13 @@ def _release_caches(runner: TileRunner, *, test_matrices: bool = True) -> None:
     """Once a compress is done, drop what sped up its passes: the cached row test matrices
     (``8 n l`` bytes; kept with ``test_matrices=False``) and the kept tile buffers (one tile
     per reading thread), in this process and in every worker."""
-    from snaplift.archive import _handles
-    from snaplift.linalg import _testmatrix
-    from snaplift.stream import _prefetch
-
-    functions = ((_testmatrix.release,) if test_matrices else ()) + (_prefetch.clear, _handles.release_tile_buffers)
-    for function in functions:
-        function()
+    release_caches(test_matrices)
     client = getattr(runner, "client", None)
     if client is not None:
-        for function in functions:
-            try:
-                client.run(function)
-            except Exception:  # a lost worker has nothing left to drop
-                pass
+        try:  # one broadcast through the scheduler, not one per cache
+            client.run(release_caches, test_matrices)
+        except Exception:  # a lost worker has nothing left to drop
+            pass
 
 
 def _compress(matrix: SnapshotMatrix, options: CompressOptions, passes: Pass, jobs: list[Any], state: StreamState,
