@@ -266,13 +266,15 @@ def _sketch_passes(m: _PassInputs) -> _Passes:
     passes, matrix, state, options = m.passes, m.matrix, m.state, m.options
     saving = None
     ahead = _row_maps_ahead(m) if state.pass_number == 0 else None
-    if state.pass_number == 0:
-        # a field no wider than the co-range sketch is kept whole (exact_layout)
-        sketch_read(passes, matrix, m.jobs, state, m.range_width, m.corange_width, m.corange_width)
-        # checkpointed while the sketch is finished: the finish only reads the state's arrays
-        saving = passes.end_pass(state, behind=True)
-    if ahead is not None:
-        ahead.join()
+    try:
+        if state.pass_number == 0:
+            # a field no wider than the co-range sketch is kept whole (exact_layout)
+            sketch_read(passes, matrix, m.jobs, state, m.range_width, m.corange_width, m.corange_width)
+            # checkpointed while the sketch is finished: the finish only reads the state's arrays
+            saving = passes.end_pass(state, behind=True)
+    finally:
+        if ahead is not None:
+            ahead.join()  # also after a failed read: no map enters the cache once it is released
     try:
         # the single read is over: its tile buffers go before the finishing temporaries come
         # (the row test matrices stay: finishing applies them once more)
