@@ -95,3 +95,17 @@ def test_the_driver_makes_its_row_maps_while_worker_processes_read() -> None:
         assert _row_maps_ahead(threads) is None  # type: ignore[arg-type]  # tile threads fill the cache
     finally:
         _testmatrix.clear_cache()
+
+
+def test_sparse_map_rows_do_not_depend_on_the_batch_that_made_them() -> None:
+    # one call for 40 blocks of rows, against batches of 16 sharing one set of work arrays
+    columns, signs = (a.copy() for a in _testmatrix._sparse_blocks(3, 0, 40, 50, 8))
+    work = _testmatrix._SparseWork(16, 8)
+    parts = [tuple(a.copy() for a in _testmatrix._sparse_blocks(3, b0, min(40, b0 + 16), 50, 8, work))
+             for b0 in range(0, 40, 16)]
+    np.testing.assert_array_equal(columns, np.concatenate([p[0] for p in parts]))
+    np.testing.assert_array_equal(signs, np.concatenate([p[1] for p in parts]))
+    # Floyd's algorithm gives zeta distinct columns per row (Bentley & Floyd 1987), signs +-1
+    ordered = np.sort(columns, axis=1)
+    assert np.all(np.diff(ordered, axis=1) > 0) and ordered.min() >= 0 and ordered.max() < 50
+    assert set(np.unique(signs)) == {-1.0, 1.0}
