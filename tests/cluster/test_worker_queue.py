@@ -20,7 +20,7 @@ import numpy as np
 from snaplift.archive import open_archive, plan_tiles
 from snaplift.archive.matrix import build_snapshot_matrix
 from snaplift.cluster import open_scheduler
-from snaplift.cluster.options import WORKER_MALLOC_ENVIRONMENT
+from snaplift.cluster.options import QUIET_CLUSTER_CONFIG, WORKER_MALLOC_ENVIRONMENT
 from snaplift.stream.compress import CompressOptions, compress
 from snaplift.stream.loop import QUEUED_TILES_PER_WORKER, ClientRunner, ThreadRunner, runner_for
 from snaplift.workflow.schema import ClusterSection
@@ -40,6 +40,17 @@ def test_tasks_pinned_to_a_one_thread_worker_run_in_the_order_submitted() -> Non
         # the workers get the allocator setting of cluster.options (the memory plan counts no kept heap)
         seen = scheduler.client.run(lambda: {name: os.environ.get(name) for name in WORKER_MALLOC_ENVIRONMENT})
         assert list(seen.values()) == [WORKER_MALLOC_ENVIRONMENT] * 2
+        # and the quiet settings: no statistical profiler (distributed's Worker starts its
+        # "profile" callbacks only when distributed.worker.profile.enabled), a 1 s tick
+        def worker_settings(names: list[str], dask_worker: Any = None) -> tuple[list[str], dict[str, Any]]:
+            import dask  # nested: pickled by value for the worker
+
+            return sorted(dask_worker.periodic_callbacks), {name: dask.config.get(name) for name in names}
+
+        settings = scheduler.client.run(worker_settings, list(QUIET_CLUSTER_CONFIG))
+        for callbacks, config in settings.values():
+            assert "profile" not in callbacks and "profile-cycle" not in callbacks
+            assert config == QUIET_CLUSTER_CONFIG
         # one burst of pinned tasks: distributed would order its queued tasks by their random keys
         futures = [runner.submit(started, index, where=0) for index in range(16)]
         starts = [runner.result(future) for future in futures]

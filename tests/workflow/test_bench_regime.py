@@ -173,10 +173,13 @@ def test_worker_comparison_uses_one_plan_and_the_engines_byte_count(tmp_path):
     assert len(local["bytes_per_pass"]) == local["passes"] == 1
     assert 0 < local["bytes_per_pass"][0] <= 3 * local["range_accumulator_bytes"]
     assert local["ratio"] == pytest.approx(local["seconds"] / threads["seconds"])
+    # CPU of the process tree (psutil): both sides did work; the ratio is theirs
+    assert threads["cpu_seconds"] > 0 and local["cpu_seconds"] > 0
+    assert local["cpu_ratio"] == pytest.approx(local["cpu_seconds"] / threads["cpu_seconds"])
     text = render_regimes({"archive_bytes": 48 * GRID[0] * GRID[1] * 8, "snapshots": 48,
                            "points": GRID[0] * GRID[1], "rank": 4, "workers": 2,
                            "layouts": {"1 per chunk": {"workers": out}}})
-    assert "same tiles" in text and "range accumulators of" in text
+    assert "same tiles" in text and "range accumulators of" in text and "CPU of the process tree" in text
 
 
 def test_the_capped_bench_byte_compiles_the_package_first():

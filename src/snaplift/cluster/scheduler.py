@@ -16,6 +16,7 @@ from typing import Any
 from snaplift.cluster.batch import _expand, _import_jobqueue, _interface_address, allocation_resources, jobqueue_options
 from snaplift.cluster.memory import _machine_memory
 from snaplift.cluster.options import (
+    QUIET_CLUSTER_CONFIG,
     TASK_RETRIES,
     ClusterOptions,
     NullProgress,
@@ -46,8 +47,10 @@ def open_scheduler(section: ClusterOptions, *, progress: TaskProgress | None = N
     from distributed import Client
 
     environ = worker_environment()
+    # the settings reach the scheduler and nannies started here and, through the nannies,
+    # their worker processes; an existing scheduler (kind 'address') keeps its own
     with dask.config.set({"distributed.nanny.pre-spawn-environ": environ,
-                          "distributed.worker.daemon": False}):
+                          "distributed.worker.daemon": False, **QUIET_CLUSTER_CONFIG}):
         if section.kind == "address":
             client = Client(section.address, timeout=f"{section.start_timeout}s", set_as_default=False)
             try:

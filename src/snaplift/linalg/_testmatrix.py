@@ -150,7 +150,23 @@ def sparse_nonzeros(width: int) -> int:
     return max(1, min(int(width), SPARSE_NONZEROS))
 
 
-def _sparse_blocks(seed: int, first: int, last: int, width: int, zeta: int) -> tuple[np.ndarray, np.ndarray]:
+class _SparseWork:
+    """Work arrays of :func:`_sparse_blocks` for ``blocks`` blocks of rows, made once per map
+    and reused by every batch: in worker processes, whose allocator gives freed blocks back
+    at once (``cluster.options.WORKER_MALLOC_ENVIRONMENT``), each batch's fresh temporaries
+    (several MiB) were faulted in page by page."""
+
+    def __init__(self, blocks: int, zeta: int) -> None:
+        self.draws = np.empty((blocks, zeta, TEST_BLOCK_ROWS), dtype=np.int64)
+        self.bits = np.empty((blocks, TEST_BLOCK_ROWS, zeta), dtype=np.int64)
+        self.columns = np.empty((blocks, TEST_BLOCK_ROWS, zeta), dtype=np.int64)
+        self.equal = np.empty((blocks, TEST_BLOCK_ROWS, zeta), dtype=bool)
+        self.taken = np.empty((blocks, TEST_BLOCK_ROWS), dtype=bool)
+        self.signs = np.empty((blocks * TEST_BLOCK_ROWS, zeta), dtype=np.float64)
+
+
+def _sparse_blocks(seed: int, first: int, last: int, width: int, zeta: int, work: _SparseWork | None = None
+                   ) -> tuple[np.ndarray, np.ndarray]:
     """Columns and signs of the blocks ``first..last`` of rows (``(blocks x TEST_BLOCK_ROWS) x zeta``).
 
     Floyd's algorithm per row: for ``j = width - zeta .. width - 1`` draw ``t`` in
@@ -159,30 +175,35 @@ def _sparse_blocks(seed: int, first: int, last: int, width: int, zeta: int) -> t
     from its own generator keyed (seed, stream, block), in a fixed order (the ``zeta``
     draws for all rows of the block, then the signs), so the rows never depend on which
     blocks are generated together; the selection is then done for all blocks at once.
+    The results are views of ``work`` (int64 columns, float64 signs), valid until its next use.
     """
     count = max(0, int(last) - int(first))
-    draws = np.empty((count, zeta, TEST_BLOCK_ROWS), dtype=np.int64)
-    bits = np.empty((count, TEST_BLOCK_ROWS, zeta), dtype=np.int64)
+    if work is None or work.draws.shape[0] < count:
+        work = _SparseWork(count, zeta)
+    draws, bits, columns = work.draws[:count], work.bits[:count], work.columns[:count]
     highs = np.broadcast_to(np.arange(width - zeta + 1, width + 1, dtype=np.int64)[:, np.newaxis],
                             (zeta, TEST_BLOCK_ROWS))
     for i, block in enumerate(range(int(first), int(last))):
         rng = np.random.default_rng(np.random.SeedSequence([int(seed), SPARSE_STREAM, block]))
         draws[i] = rng.integers(0, highs)  # row z: uniform in [0, width - zeta + z]
         bits[i] = rng.integers(0, 2, size=(TEST_BLOCK_ROWS, zeta))
-    columns = np.empty((count, TEST_BLOCK_ROWS, zeta), dtype=np.int64)
+    taken = work.taken[:count]
     for z, j in enumerate(range(width - zeta, width)):
         t = draws[:, z, :]
-        taken = (columns[:, :, :z] == t[:, :, np.newaxis]).any(axis=2)
-        columns[:, :, z] = np.where(taken, j, t)
-    signs = bits.astype(np.float64)
-    signs *= 2.0
+        columns[:, :, z] = t
+        if z:  # t where it is not taken yet, else j
+            equal = work.equal[:count, :, :z]
+            np.equal(columns[:, :, :z], t[:, :, np.newaxis], out=equal)
+            np.any(equal, axis=2, out=taken)
+            np.copyto(columns[:, :, z], j, where=taken)
+    signs = work.signs[:count * TEST_BLOCK_ROWS]
+    np.multiply(bits.reshape(-1, zeta), 2.0, out=signs)
     signs -= 1.0
-    return (columns.reshape(-1, zeta).astype(np.int32),
-            signs.reshape(-1, zeta))
+    return columns.reshape(-1, zeta), signs
 
 
-#: blocks of rows generated together (bounds the temporaries of the selection to a few MiB)
-_SPARSE_BATCH_BLOCKS = 256
+#: blocks of rows generated together (their work arrays, 1 MiB at zeta = 8, stay in cache)
+_SPARSE_BATCH_BLOCKS = 16
 
 
 class SparseSignMap:
@@ -202,9 +223,10 @@ class SparseSignMap:
         self.signs = np.empty((rows, self.zeta), dtype=np.float64)
         first = self.start // TEST_BLOCK_ROWS
         last = (max(self.stop, self.start + 1) - 1) // TEST_BLOCK_ROWS + 1
+        work = _SparseWork(min(_SPARSE_BATCH_BLOCKS, max(1, last - first)), self.zeta)
         for b0 in range(first, last if rows else first, _SPARSE_BATCH_BLOCKS):
             b1 = min(last, b0 + _SPARSE_BATCH_BLOCKS)
-            columns, signs = _sparse_blocks(seed, b0, b1, self.width, self.zeta)
+            columns, signs = _sparse_blocks(seed, b0, b1, self.width, self.zeta, work)
             lo, hi = max(self.start, b0 * TEST_BLOCK_ROWS), min(self.stop, b1 * TEST_BLOCK_ROWS)
             offset = b0 * TEST_BLOCK_ROWS
             self.columns[lo - self.start:hi - self.start] = columns[lo - offset:hi - offset]

@@ -35,7 +35,7 @@ from typing import Any
 
 import numpy as np
 
-__all__ = ["add_range_product", "collect", "discard"]
+__all__ = ["add_range_product", "collect", "discard", "release_chunk_buffers"]
 
 _lock = threading.Lock()
 _pid = os.getpid()
@@ -82,12 +82,44 @@ _slots: dict[tuple[str, str], dict[int, _Slot]] = {}
 _aborted: set[str] = set()
 
 
+#: per tile thread, the chunk buffer of its last large :func:`_gemm_into` (see there)
+_chunk_buffers: dict[int, np.ndarray] = {}
+#: chunk buffers at least this large are kept for the thread's next tile
+KEEP_CHUNK_BYTES = 1 << 20
+
+
 def _check_pid() -> None:
-    global _pid, _slots, _aborted
+    global _pid, _slots, _aborted, _chunk_buffers
     if os.getpid() != _pid:
         _pid = os.getpid()
         _slots = {}
         _aborted = set()
+        _chunk_buffers = {}
+
+
+def _chunk_buffer(size: int, dtype: np.dtype) -> np.ndarray:
+    """A flat buffer of at least ``size`` items for this thread: the one its previous
+    product kept when it fits (taken out while in use), else a new one."""
+    with _lock:
+        _check_pid()
+        kept = _chunk_buffers.pop(threading.get_ident(), None)
+    if kept is not None and kept.dtype == dtype and size <= kept.size <= 2 * size:
+        return kept
+    return np.empty(size, dtype=dtype)
+
+
+def _keep_chunk_buffer(buffer: np.ndarray) -> None:
+    if buffer.nbytes >= KEEP_CHUNK_BYTES:
+        with _lock:
+            _check_pid()
+            _chunk_buffers[threading.get_ident()] = buffer
+
+
+def release_chunk_buffers() -> None:
+    """Drop every thread's kept chunk buffer in this process (a pass's slots are collected)."""
+    with _lock:
+        _check_pid()
+        _chunk_buffers.clear()
 
 
 #: rows of ``raw^T @ right`` formed at a time by :func:`_gemm_into` (a 10 MiB temporary at k = 81)
@@ -113,13 +145,20 @@ def _gemm_into(out_rows: np.ndarray, raw: np.ndarray, right: np.ndarray) -> None
     # one chunk buffer for the whole call: a temporary per chunk was a fresh mmap (and its
     # page faults) per chunk in worker processes, whose allocator keeps no freed blocks
     # (distributed's MALLOC_TRIM_THRESHOLD_ of 64 KiB, kept in cluster.options
-    # WORKER_MALLOC_ENVIRONMENT): 40 % slower
-    buffer = np.empty(left.shape[0] * min(n, GEMM_CHUNK_ROWS), dtype=np.result_type(left, raw))
-    for r0 in range(0, n, GEMM_CHUNK_ROWS):
-        r1 = min(n, r0 + GEMM_CHUNK_ROWS)
-        chunk = buffer[:left.shape[0] * (r1 - r0)].reshape(left.shape[0], r1 - r0)  # C-contiguous, as BLAS writes
-        np.matmul(left, raw[:, r0:r1], out=chunk)
-        out_rows[r0:r1] += chunk.T
+    # WORKER_MALLOC_ENVIRONMENT): 40 % slower. The thread keeps it for its next tile
+    # until the pass's slots are collected (:func:`collect`): a new one per tile was
+    # 10 MiB of fresh pages per tile at k = 81 (20 000 page faults per worker and 1 GiB
+    # sketch compress). It is the product's own temporary, held between two tiles of the
+    # thread, never beside a second one.
+    buffer = _chunk_buffer(left.shape[0] * min(n, GEMM_CHUNK_ROWS), np.dtype(np.result_type(left, raw)))
+    try:
+        for r0 in range(0, n, GEMM_CHUNK_ROWS):
+            r1 = min(n, r0 + GEMM_CHUNK_ROWS)
+            chunk = buffer[:left.shape[0] * (r1 - r0)].reshape(left.shape[0], r1 - r0)  # C-contiguous, as BLAS writes
+            np.matmul(left, raw[:, r0:r1], out=chunk)
+            out_rows[r0:r1] += chunk.T
+    finally:
+        _keep_chunk_buffer(buffer)
 
 
 def _product(raw: np.ndarray, right: np.ndarray, dtype: np.dtype) -> np.ndarray:
@@ -187,6 +226,7 @@ def collect(key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
     with _lock:
         _check_pid()
         group = _slots.pop((key, name), {})
+        _chunk_buffers.clear()  # the pass has drained (or is paused for a checkpoint)
     out = {}
     for index, slot in group.items():
         with slot.lock:
@@ -207,6 +247,7 @@ def discard(key: str, *, abort: bool = False) -> None:
         if abort:
             _aborted.add(key)
         dropped = [_slots.pop(name) for name in [k for k in _slots if k[0] == key]]
+        _chunk_buffers.clear()
     for group in dropped:
         for slot in group.values():
             with slot.lock:

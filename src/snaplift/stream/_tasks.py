@@ -15,18 +15,20 @@ from typing import Any
 
 import numpy as np
 
+from snaplift.archive import _handles
 from snaplift.archive._base import Reader
 from snaplift.archive.matrix import FieldRows, check_finite, read_fields_block, read_snapshot_block
 from snaplift.errors import ArchiveChangedError
 from snaplift.linalg._kernels import adjoint_product, column_squares, field_column_squares, qr_factor, range_product
 from snaplift.linalg._testmatrix import apply_corange, cached_row_map, gaussian_map, row_map, set_cache_limit
+from snaplift.linalg._testmatrix import release as release_test_matrices
 from snaplift.stream import _prefetch
 from snaplift.stream._digest import note_read
 from snaplift.stream._slots import add_range_product
 
 __all__ = ["TileSource", "TileRef", "Preparing", "reads_ahead", "sketch_task", "product_task", "tsqr_task",
            "tsqr_leaf_task",
-           "release_resident", "resident_loaded", "warm_process"]
+           "release_caches", "release_resident", "resident_loaded", "warm_process"]
 
 
 @dataclass(frozen=True)
@@ -364,6 +366,16 @@ def tsqr_leaf_task(source: TileSource, center: bool, slot: None, item: tuple[Til
     """Second TSQR pass for one leaf: ``item = (tile, r_first_pass, factor)``."""
     tile, r, factor = item
     return tsqr_task(source, center, None, tile, (r, factor))
+
+
+def release_caches(test_matrices: bool = True) -> None:
+    """Drop this process's caches of a compress: the row test matrices (unless
+    ``test_matrices`` is False), the reads ahead and the kept tile buffers. Run in every
+    worker by one ``Client.run``."""
+    if test_matrices:
+        release_test_matrices()
+    _prefetch.clear()
+    _handles.release_tile_buffers()
 
 
 def warm_process() -> None:

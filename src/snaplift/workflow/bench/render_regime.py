@@ -89,6 +89,10 @@ def _workers(w: dict[str, Any], figures: dict[str, Any]) -> list[str]:
         lines.append(f"  with worker processes (cluster: local), same tiles: {loc['seconds']:.2f} s = "
                      f"{loc['ratio']:.2f}x threads (target <= 1.3); sent between processes per pass (engine count) "
                      f"{per_pass} range accumulators of {acc / 2**20:.1f} MiB (target <= {figures['workers'] + 1})")
+        if loc.get("cpu_seconds") is not None and t.get("cpu_seconds"):
+            lines.append(f"  CPU of the process tree: {loc['cpu_seconds']:.2f} s with worker processes, "
+                         f"{t['cpu_seconds']:.2f} s with threads = {loc['cpu_ratio']:.2f}x (wall moves toward it "
+                         "when the machine is busy)")
         if loc.get("first_seconds") is not None:
             lines.append(f"  (before it, the first compress on the fresh cluster, also this process's first: "
                          f"{loc['first_seconds']:.2f} s)")

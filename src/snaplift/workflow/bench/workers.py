@@ -10,6 +10,12 @@ its own, and the timed run is the second on the same cluster. Without it the com
 charged this process's one-time costs to whichever runner came first (measured on the
 2 GiB archive: a fresh process's first threaded compress 5.9 s, its second 4.2 s).
 
+Beside the wall time each side reports the CPU seconds of the whole process tree during
+its timed compress (``cpu_seconds``: user + system of this process, with the scheduler
+and nannies of a local cluster, and of every worker process; psutil), and the local side
+their ratio (``cpu_ratio``): on a machine shared with other work, wall time moves toward
+that ratio, so it tells what the worker processes cost beside the tiles.
+
 The bytes are the engine's own count (``Compression.info["bytes_between_processes"]``,
 one entry per pass: the values sent to workers and received from them, task results and
 collected slots, by ``dask.sizeof``, without the framing of the messages), set against
@@ -18,12 +24,33 @@ the size of one range accumulator (``info["range_accumulator_bytes"]``).
 
 from __future__ import annotations
 
+import contextlib
 from pathlib import Path
 from typing import Any
 
 from snaplift.workflow.bench.floor_cases import BenchSettings, _runner, run_method
 
 __all__ = ["compare_workers", "accumulator_bytes"]
+
+
+def _timed_cpu(run: Any) -> tuple[dict[str, Any], float]:
+    """``run()`` and the CPU seconds of the process tree it took. A process that started or
+    ended meanwhile is counted for its own part only (none does: the cluster is up before)."""
+    import psutil
+
+    def each() -> dict[int, float]:
+        me = psutil.Process()
+        out = {}
+        for process in [me, *me.children(recursive=True)]:
+            with contextlib.suppress(psutil.Error):
+                times = process.cpu_times()
+                out[process.pid] = times.user + times.system
+        return out
+
+    before = each()
+    figures = run()
+    after = each()
+    return figures, sum(value - before.get(pid, 0.0) for pid, value in after.items())
 
 
 def accumulator_bytes(points: int, snapshots: int, range_width: int, corange_width: int) -> int:
@@ -43,7 +70,7 @@ def compare_workers(archive: Path, rank: int, workers: int, memory_bytes: int, *
         with _runner("local", workers) as runner:
             first = run_method(archive, "sketch", settings, runner)  # a fresh cluster, a fresh driver
             plan = first.pop("plan")
-            figures = run_method(archive, "sketch", settings, runner, plan=plan)
+            figures, cpu = _timed_cpu(lambda: run_method(archive, "sketch", settings, runner, plan=plan))
         figures.pop("plan")
         passes = figures["bytes_between_processes"]
         accumulator = figures["range_accumulator_bytes"]
@@ -52,16 +79,18 @@ def compare_workers(archive: Path, rank: int, workers: int, memory_bytes: int, *
                         "bytes_per_pass": passes, "range_accumulator_bytes": accumulator,
                         "accumulators_per_pass": [sent / accumulator for sent in passes] if accumulator else [],
                         "tiles": figures["tiles"], "snapshots_per_tile": figures["snapshots_per_tile"],
-                        "first_seconds": first["seconds"] if first is not None else None}
+                        "first_seconds": first["seconds"] if first is not None else None,
+                        "cpu_seconds": cpu}
     with _runner("threads", workers) as runner:
         if plan is None:  # no worker processes ran before: this process's first compress, untimed
             run_method(archive, "sketch", settings, runner)
-        figures = run_method(archive, "sketch", settings, runner, plan=plan)
+        figures, cpu = _timed_cpu(lambda: run_method(archive, "sketch", settings, runner, plan=plan))
     figures.pop("plan")
-    out["threads"] = {"seconds": figures["seconds"], "widths": tuple(figures["widths"]),
+    out["threads"] = {"seconds": figures["seconds"], "cpu_seconds": cpu, "widths": tuple(figures["widths"]),
                       "peak_rss": figures["peak_rss"],
                       "tiles": figures["tiles"], "snapshots_per_tile": figures["snapshots_per_tile"],
                       "same_plan": plan is not None}
     if processes:
         out["local"]["ratio"] = out["local"]["seconds"] / out["threads"]["seconds"]
+        out["local"]["cpu_ratio"] = out["local"]["cpu_seconds"] / max(out["threads"]["cpu_seconds"], 1e-9)
     return out
