@@ -192,8 +192,7 @@ def read_pieces(pieces: list[tuple[Any, ...]]) -> None:
     requests: list[tuple[Any, int, np.ndarray, Callable[[], None] | None]] = []
     for handle, offset, out, *then in pieces:
         view = out.reshape(-1).view(np.uint8)
-        starts = range(0, view.nbytes, REQUEST_BYTES)
-        for start in starts:
+        for start in range(0, view.nbytes, REQUEST_BYTES):
             last = start + REQUEST_BYTES >= view.nbytes
             requests.append((handle, offset + start, view[start:start + REQUEST_BYTES],
                              then[0] if then and last else None))

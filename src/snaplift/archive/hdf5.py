@@ -189,22 +189,20 @@ class _Dataset:
 
 
 def read_stored_box(out: np.ndarray, storage: _Storage | None, box: tuple[tuple[int, int], ...], path: str,
-                    dataset: Any = None) -> bool:
-    """Fill ``out`` with ``box`` of a dataset of ``storage`` in the file ``path`` by positioned reads;
-    False when it has no plain layout (nothing read).
+                    dataset: Any) -> bool:
+    """Fill ``out`` with ``box`` of the h5py ``dataset`` of ``storage`` in the file ``path`` by
+    positioned reads; False when it has no plain layout (nothing read).
 
     A box whose chunks have short runs (chunks cut finely across the grid, as h5py's and
     netCDF's default chunks are) is read by HDF5 itself, which scatters them in one copy,
     one row of chunks at a time, with the chunks of the next rows hinted to the kernel so
-    that the device reads them meanwhile (``dataset``, the h5py dataset, is needed then).
+    that the device reads them meanwhile.
     """
     if storage is None:
         return False
     handle = _handles.raw_file(path)
     if read_box(out, storage.layout, box, storage.locate, lambda _key: contextlib.nullcontext(handle), stage=False):
         return True
-    if dataset is None:
-        return False
     fd = handle.fileno()
     rows = chunk_rows(storage.layout, box, storage.locate)
     s0 = box[0][0]
