@@ -367,7 +367,7 @@ def bench(
     if read_limit is not None:
         regime = RegimeSettings(size_bytes=size_bytes, rank=rank, workers=workers, layouts=chosen_layouts, cap=cap,
                                 cold=cold, dask=not quick, clusters=not quick,
-                                folder=str(folder) if folder else None, keep=keep, memory=memory)
+                                folder=str(folder) if folder else None, keep=keep, memory=memory, repeats=repeats)
         found = run_regimes(regime, progress=None if json_output else lambda m: typer.echo(m, err=True))
         typer.echo(json.dumps(found, default=str, indent=2) if json_output else render_regimes(found))
         return

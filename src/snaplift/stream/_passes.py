@@ -146,13 +146,15 @@ class Pass:
         order = {job.id: position for position, job in enumerate(j for j in jobs if j.id not in state.done)}
         jobs = _with_reads_ahead(jobs, state, key, count or self.runner.workers, self.source)
 
+        files = self.runner.accumulator_files if count else None
+
         def per_job(job: Job) -> tuple[Any, int | None]:
             if not count:
                 return None, None
             index = order[job.id] % count
             after = last.get(index, -1)
             last[index] = job.id
-            return (key, index, after), index
+            return (key, index, after, files), index
 
         def fold_and_note(tile: Any, result: Any) -> None:
             verify(state, self.source, tile, result, self.checkpoint)  # before the values count

@@ -23,7 +23,10 @@ same worker, could never run (the ``cluster: local`` hang). :func:`collect` adds
 product still parked (its predecessor was lost) after the ordered ones.
 
 Slots live in the process (threads share the driver's; each worker process has its
-own) and are never pickled. :func:`collect` empties them.
+own) and are never pickled. :func:`collect` empties them. A worker process on the
+driver's host makes its slot's accumulator as one whole-height array in a file of the
+memory file system the driver named, and hands over only the file's name: the driver maps
+it, nothing is sent or copied (:mod:`snaplift.stream._shared_arrays`).
 """
 
 from __future__ import annotations
@@ -35,6 +38,8 @@ from typing import Any
 
 import numpy as np
 
+from snaplift.stream._shared_arrays import SharedArray, allocate, remove
+
 __all__ = ["add_range_product", "collect", "discard", "release_chunk_buffers"]
 
 _lock = threading.Lock()
@@ -45,6 +50,13 @@ _pid = os.getpid()
 class _Slot:
     shape: tuple[int, int]
     dtype: np.dtype
+    #: the driver's memory file system (:mod:`snaplift.stream._shared_arrays`): in a worker
+    #: process, the slot's accumulator is one whole-height array in a file there
+    files: tuple[str, str] | None = None
+    #: that file, once made (None: the row blocks are arrays of this process)
+    shared: SharedArray | None = None
+    #: the whole-height array in the file; the row blocks are views of it
+    whole: np.ndarray | None = None
     #: one column-major accumulator per row block ``(r0, r1)`` (summed by :func:`_gemm_into`)
     blocks: dict[tuple[int, int], np.ndarray] = field(default_factory=dict)
     tiles: set[int] = field(default_factory=set)
@@ -57,16 +69,32 @@ class _Slot:
     def rows(self, r0: int, r1: int) -> np.ndarray:
         block = self.blocks.get((r0, r1))
         if block is None:
-            block = self.blocks[(r0, r1)] = np.zeros((r1 - r0, self.shape[1]), dtype=self.dtype, order="F")
+            if self.files is not None and self.whole is None:
+                made = allocate(self.shape, self.dtype, self.files)
+                self.files = None  # tried once: a file, or row blocks of this process from now on
+                if made is not None:
+                    self.whole, self.shared = made
+            if self.whole is not None:
+                # a view: its sums land in place in the whole (each column's rows are
+                # contiguous, as in a block of its own, so the product is as fast)
+                block = self.whole[r0:r1]
+            else:
+                block = np.zeros((r1 - r0, self.shape[1]), dtype=self.dtype, order="F")
+            self.blocks[(r0, r1)] = block
         return block
 
     def value(self) -> np.ndarray:
-        """The whole ``shape`` accumulator (the row blocks put in place; one block is returned as is).
+        """The whole ``shape`` accumulator (the row blocks put in place; one block, or the
+        whole in a file, is returned as is).
 
         Empties the slot: each row block is released as soon as it is copied, so the
         slot's memory moves into the result rather than being held twice (issue 11: with
         many row blocks the copies of every slot at once went over compress.memory).
         """
+        if self.whole is not None:
+            whole, self.whole = self.whole, None
+            self.blocks.clear()
+            return whole
         if len(self.blocks) == 1:
             (r0, r1), block = next(iter(self.blocks.items()))
             if (r0, r1) == (0, self.shape[0]):
@@ -169,12 +197,16 @@ def _product(raw: np.ndarray, right: np.ndarray, dtype: np.dtype) -> np.ndarray:
 
 
 def add_range_product(key: str, name: str, shape: tuple[int, int], tile_id: int, rows: tuple[int, int],
-                      raw: np.ndarray, right: np.ndarray, slot_index: int = 0, after: int | None = None) -> None:
+                      raw: np.ndarray, right: np.ndarray, slot_index: int = 0, after: int | None = None,
+                      files: tuple[str, str] | None = None) -> None:
     """Add ``raw^T @ right`` (raw = the tile, snapshot-major) to rows ``rows`` of slot ``slot_index``.
 
     With ``after`` (the previous tile of this slot, -1 for the first) the term is added
     right after that tile's; if that one has not been added yet, the term is parked and
-    added when it is (module docstring). Never blocks on another task.
+    added when it is (module docstring). Never blocks on another task. ``files``: the
+    driver's memory file system, where a worker process makes a whole-height
+    accumulator, so that the driver collects it without a copy
+    (:mod:`snaplift.stream._shared_arrays`).
     """
     dtype = np.result_type(raw, right)
     with _lock:
@@ -184,7 +216,7 @@ def add_range_product(key: str, name: str, shape: tuple[int, int], tile_id: int,
         group = _slots.setdefault((key, name), {})
         slot = group.get(slot_index)
         if slot is None:
-            slot = group[slot_index] = _Slot((int(shape[0]), int(shape[1])), np.dtype(dtype))
+            slot = group[slot_index] = _Slot((int(shape[0]), int(shape[1])), np.dtype(dtype), files)
     r0, r1 = int(rows[0]), int(rows[1])
     with slot.lock:
         if slot.aborted:
@@ -221,8 +253,10 @@ def _drain(slot: _Slot) -> None:
         slot.last = tile_id
 
 
-def collect(key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
-    """Empty this process's slots for ``(key, name)``: ``{slot index: (value, tile ids)}``."""
+def collect(key: str, name: str) -> dict[int, tuple[np.ndarray | SharedArray, list[int]]]:
+    """Empty this process's slots for ``(key, name)``: ``{slot index: (value, tile ids)}``;
+    a value made in the driver's memory file system is given as its
+    :class:`~snaplift.stream._shared_arrays.SharedArray` (this process's mapping dropped)."""
     with _lock:
         _check_pid()
         group = _slots.pop((key, name), {})
@@ -236,7 +270,10 @@ def collect(key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
                 slot.rows(r0, r1)[...] += product
                 slot.tiles.add(tile_id)
             slot.parked.clear()
-            out[int(index)] = (slot.value(), sorted(slot.tiles))
+            value = slot.value()
+            out[int(index)] = (slot.shared if slot.shared is not None else value, sorted(slot.tiles))
+            slot.shared = None
+            del value  # a value in a file is this process's mapping of it: dropped here
     return out
 
 
@@ -253,8 +290,13 @@ def discard(key: str, *, abort: bool = False) -> None:
             with slot.lock:
                 slot.aborted = abort or slot.aborted
                 slot.parked.clear()
+                if slot.shared is not None:
+                    remove(slot.shared)
+                    slot.shared = None
+                slot.whole = None
+                slot.blocks.clear()
 
 
 def collect_remote(key: str, name: str) -> dict[int, tuple[Any, list[int]]]:
-    """:func:`collect`, as run on every worker by ``Client.run``."""
+    """:func:`collect`, run in a worker process by a task pinned to it."""
     return collect(key, name)

@@ -201,13 +201,14 @@ def _prepare(raw: np.ndarray, preparing: Preparing | None, g0: int, g1: int) -> 
 
 def _range(out: dict[str, Any], slot: Any, source: TileSource, tile: TileRef, a: np.ndarray,
            right: np.ndarray) -> None:
-    """``slot`` is None (return the product) or ``(key, slot index, previous tile of the slot)``."""
+    """``slot`` is None (return the product) or ``(key, slot index, previous tile of the slot,
+    the driver's memory file system or None)``."""
     if slot is None:
         out["range"] = range_product(a, right)
     else:  # summed in place, in a fixed order, in a slot (snaplift.stream._slots)
-        key, index, after = slot
+        key, index, after, files = slot
         add_range_product(key, "range", (source.n_rows, right.shape[1]), tile.id, tile.global_rows(source), a,
-                          right, index, after)
+                          right, index, after, files)
         out["range"] = None
 
 
@@ -274,9 +275,10 @@ def _row_sum(out: dict[str, Any], slot: Any, source: TileSource, tile: TileRef, 
     if slot is None:
         out["row_sum"] = raw.sum(axis=0)
         return
-    key, index, after = slot
+    key, index, after, files = slot
     ones = np.ones((raw.shape[0], 1), dtype=raw.dtype)
-    add_range_product(key, "row_sum", (source.n_rows, 1), tile.id, tile.global_rows(source), raw, ones, index, after)
+    add_range_product(key, "row_sum", (source.n_rows, 1), tile.id, tile.global_rows(source), raw, ones, index, after,
+                      files)
 
 
 def product_task(source: TileSource, preparing: Preparing, operand: np.ndarray, kind: str, slot: Any,

@@ -69,6 +69,8 @@ class RegimeSettings:
     folder: str | None = None
     keep: bool = False
     memory: str = "2GiB"
+    #: turns of threads and worker processes in the warm comparison (the fastest of each is compared)
+    repeats: int = 2
 
 
 def workflow_text(archive: Path, store: Path, method: str, rank: int, workers: int, memory: str,
@@ -264,7 +266,8 @@ def run_regimes(settings: RegimeSettings, progress: Callable[[str], None] | None
                                                                      else ""))
                 warm(archive)
                 figures["workers"] = compare_workers(archive, settings.rank, settings.workers,
-                                                     parse_bytes(settings.memory), processes=settings.clusters)
+                                                     parse_bytes(settings.memory), processes=settings.clusters,
+                                                     repeats=settings.repeats)
             if cap is not None:
                 figures["model"] = _model_check(figures, out, cap)
             out["layouts"][label] = figures

@@ -79,8 +79,10 @@ def _workers(w: dict[str, Any], figures: dict[str, Any]) -> list[str]:
     t = w["threads"]
     plan = (f"{t['tiles']} tiles of <= {t['snapshots_per_tile']} snapshots"
             + (", the worker processes' plan for both" if t.get("same_plan") else ""))
+    runs = t.get("runs") or [t["seconds"]]
+    fastest = f"fastest of {len(runs)}, taking turns with worker processes; " if len(runs) > 1 else ""
     lines = [f"warm, sketch compress with threads: {t['seconds']:.2f} s "
-             f"({t['seconds'] / (figures['archive_bytes'] / GIB):.2f} s/GiB; {plan})"]
+             f"({t['seconds'] / (figures['archive_bytes'] / GIB):.2f} s/GiB; {fastest}{plan})"]
     if "local" in w:
         loc = w["local"]
         acc = loc["range_accumulator_bytes"]
@@ -89,6 +91,9 @@ def _workers(w: dict[str, Any], figures: dict[str, Any]) -> list[str]:
         lines.append(f"  with worker processes (cluster: local), same tiles: {loc['seconds']:.2f} s = "
                      f"{loc['ratio']:.2f}x threads (target <= 1.3); sent between processes per pass (engine count) "
                      f"{per_pass} range accumulators of {acc / 2**20:.1f} MiB (target <= {figures['workers'] + 1})")
+        if len(runs) > 1:
+            lines.append("  every run (s): worker processes " + ", ".join(f"{r:.2f}" for r in loc.get("runs", []))
+                         + "; threads " + ", ".join(f"{r:.2f}" for r in runs))
         if loc.get("cpu_seconds") is not None and t.get("cpu_seconds"):
             lines.append(f"  CPU of the process tree: {loc['cpu_seconds']:.2f} s with worker processes, "
                          f"{t['cpu_seconds']:.2f} s with threads = {loc['cpu_ratio']:.2f}x (wall moves toward it "
