@@ -162,11 +162,12 @@ def test_worker_comparison_uses_one_plan_and_the_engines_byte_count(tmp_path):
     # bytes are the engine's count per pass, bounded by (workers + 1) range accumulators
     # (issue 16's bound); the threaded run's singular values are the reference (numpy's
     # SVD of the same archive checks both in the sketch tests; here: same plan, same sketch)
-    from snaplift.workflow.bench.workers import compare_workers
+    from snaplift.workflow.bench.workers import compare_workers_fresh
 
     archive = tmp_path / "bench.h5"
     write_archive(archive, 48)
-    out = compare_workers(archive, rank=4, workers=2, memory_bytes=2 * 2**30, repeats=2)
+    # in a fresh interpreter, as a run starts (its plan measures that process, not the bench's)
+    out = compare_workers_fresh(archive, rank=4, workers=2, memory_bytes=2 * 2**30, repeats=2)
     threads, local = out["threads"], out["local"]
     # two turns each; the fastest of each is compared (as the bench's other compress cases)
     assert len(threads["runs"]) == len(local["runs"]) == 2
@@ -184,6 +185,15 @@ def test_worker_comparison_uses_one_plan_and_the_engines_byte_count(tmp_path):
                            "layouts": {"1 per chunk": {"workers": out}}})
     assert "same tiles" in text and "range accumulators of" in text and "CPU of the process tree" in text
     assert "fastest of 2" in text and "every run (s): worker processes" in text
+
+
+def test_a_failed_worker_comparison_is_one_line_naming_the_archive(tmp_path):
+    from snaplift.workflow.bench.workers import compare_workers_fresh
+
+    missing = tmp_path / "missing.h5"
+    with pytest.raises(RuntimeError, match=r"worker comparison on .*missing\.h5 failed \(exit \d+\)") as raised:
+        compare_workers_fresh(missing, rank=4, workers=2, memory_bytes=2**30, processes=False)
+    assert "\n" not in str(raised.value)
 
 
 def test_the_capped_bench_byte_compiles_the_package_first():

@@ -49,7 +49,7 @@ from snaplift.workflow.bench.archive import (
 )
 from snaplift.workflow.bench.commands import Cap, run_command
 from snaplift.workflow.bench.model import CostModel, predict, relative_gap
-from snaplift.workflow.bench.workers import compare_workers
+from snaplift.workflow.bench.workers import compare_workers_fresh
 
 __all__ = ["RegimeSettings", "run_regimes", "stage_shares", "workflow_text"]
 
@@ -265,9 +265,9 @@ def run_regimes(settings: RegimeSettings, progress: Callable[[str], None] | None
                 say("  warm: the sketch's compress with threads" + (" and worker processes" if settings.clusters
                                                                      else ""))
                 warm(archive)
-                figures["workers"] = compare_workers(archive, settings.rank, settings.workers,
-                                                     parse_bytes(settings.memory), processes=settings.clusters,
-                                                     repeats=settings.repeats)
+                figures["workers"] = compare_workers_fresh(archive, settings.rank, settings.workers,
+                                                           parse_bytes(settings.memory), processes=settings.clusters,
+                                                           repeats=settings.repeats)
             if cap is not None:
                 figures["model"] = _model_check(figures, out, cap)
             out["layouts"][label] = figures

@@ -16,6 +16,13 @@ and nannies of a local cluster, and of every worker process; psutil), and the lo
 their ratio (``cpu_ratio``): on a machine shared with other work, wall time moves toward
 that ratio, so it tells what the worker processes cost beside the tiles.
 
+The comparison runs in a fresh interpreter (:func:`compare_workers_fresh`, ``python -m
+snaplift.workflow.bench.workers``), as a ``snaplift run`` starts: the tile plan is made
+around the resident memory of the processes it measures, and the bench's own process,
+after its earlier sections, held enough more to halve the tiles (128 tiles of 8 snapshots
+where a fresh process plans 38 of 32 on the 8-per-chunk archive, measured), so the
+comparison timed another plan than a run would use.
+
 The bytes are the engine's own count (``Compression.info["bytes_between_processes"]``,
 one entry per pass: the values sent to workers and received from them, task results and
 collected slots, by ``dask.sizeof``, without the framing of the messages), set against
@@ -25,12 +32,15 @@ the size of one range accumulator (``info["range_accumulator_bytes"]``).
 from __future__ import annotations
 
 import contextlib
+import json
+import subprocess
+import sys
 from pathlib import Path
 from typing import Any
 
 from snaplift.workflow.bench.floor_cases import BenchSettings, _runner, run_method
 
-__all__ = ["compare_workers", "accumulator_bytes"]
+__all__ = ["compare_workers", "compare_workers_fresh", "accumulator_bytes"]
 
 
 def _timed_cpu(run: Any) -> tuple[dict[str, Any], float]:
@@ -109,3 +119,32 @@ def compare_workers(archive: Path, rank: int, workers: int, memory_bytes: int, *
         out["local"]["ratio"] = out["local"]["seconds"] / out["threads"]["seconds"]
         out["local"]["cpu_ratio"] = out["local"]["cpu_seconds"] / max(out["threads"]["cpu_seconds"], 1e-9)
     return out
+
+
+def compare_workers_fresh(archive: Path, rank: int, workers: int, memory_bytes: int, *, processes: bool = True,
+                          repeats: int = 1) -> dict[str, Any]:
+    """:func:`compare_workers` in a fresh interpreter (module docstring); its figures as a dict.
+    A failure is a one-line error with the child's last line."""
+    argv = [sys.executable, "-m", "snaplift.workflow.bench.workers", str(archive), str(rank), str(workers),
+            str(memory_bytes), "1" if processes else "0", str(repeats)]
+    done = subprocess.run(argv, capture_output=True, text=True, check=False)
+    lines = [line for line in done.stdout.splitlines() if line.startswith("{")]
+    if done.returncode != 0 or not lines:
+        output = (done.stdout + done.stderr).strip().splitlines()
+        last = next((line for line in reversed(output) if line.strip()), "no output")
+        raise RuntimeError(f"bench: worker comparison on {archive} failed (exit {done.returncode}): {last.strip()}")
+    out: dict[str, Any] = json.loads(lines[-1])
+    return out
+
+
+def main(argv: list[str]) -> None:
+    """``python -m snaplift.workflow.bench.workers ARCHIVE RANK WORKERS MEMORY_BYTES PROCESSES REPEATS``:
+    :func:`compare_workers`, its figures printed as one JSON line."""
+    archive, rank, workers, memory, processes, repeats = argv
+    out = compare_workers(Path(archive), int(rank), int(workers), int(memory), processes=processes == "1",
+                          repeats=int(repeats))
+    print(json.dumps(out, default=lambda value: value.item() if hasattr(value, "item") else str(value)))
+
+
+if __name__ == "__main__":
+    main(sys.argv[1:])
