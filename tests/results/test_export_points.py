@@ -270,6 +270,24 @@ def test_probes_with_positions_are_points_there(tmp_path: Path) -> None:
     assert len(grids["x_animation"].findall("Grid")) == FRAMES
 
 
+def test_netcdf_lists_each_probes_position_on_its_own_variables_only(tmp_path: Path) -> None:
+    # CF 1.10 sections 5 and 5.7: a variable's ``coordinates`` attribute names its auxiliary
+    # (here scalar) coordinate variables; a probe's place belongs to that probe's variables,
+    # not to the other probe's nor to the spectrum's
+    places = {"x": {"x_east": (0.1, "X"), "x_north": (0.02, "Y")}, "y": {"y_east": (0.3, "X")}}
+    store = _probe_store(tmp_path, places)
+    path = export.export_netcdf(store, tmp_path / "probes.nc")
+    with xr.open_dataset(path, decode_coords=False) as raw:
+        listed = {name: set(str(raw[name].attrs.get("coordinates", "")).split()) for name in raw.data_vars}
+        assert {"x_position_x", "x_position_y"} <= listed["x_real"] and listed["x_real"] == listed["x_imag"]
+        assert not listed["x_real"] & {"y_position_x"}
+        assert "y_position_x" in listed["y_real"] and not listed["y_real"] & {"x_position_x", "x_position_y"}
+        assert not listed["amplitude"] & {"x_position_x", "x_position_y", "y_position_x"}
+        assert "coordinates" not in raw.attrs  # every coordinate is some variable's
+    with xr.open_dataset(path) as dataset:  # and xarray still reads the positions back, as the archive gave them
+        assert float(dataset["x_position_x"]) == 0.1 and float(dataset["y_position_x"]) == 0.3
+
+
 def test_one_probe_without_a_position_refuses_the_export(tmp_path: Path) -> None:
     store = _probe_store(tmp_path, {"x": {"x_east": (0.1, ""), "x_north": (0.02, "")}})
     with pytest.raises(ResultStoreError, match=r"field 'y' is a probe .* no position"):

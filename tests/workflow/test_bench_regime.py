@@ -130,6 +130,28 @@ def test_chunk_layouts_of_the_archive(tmp_path):
         write_archive(tmp_path / "b.h5", 4, layout=(1, 3))
 
 
+def test_capped_commands_warm_a_development_install_of_snaplift(tmp_path):
+    # slowfs-run re-warms the Python installation after dropping the page cache; snaplift's
+    # modules, when installed in development mode, live outside it and are named in
+    # SLOWFS_WARM (the shipped slowfs-run reads it), as an installed copy would be warm
+    import snaplift
+
+    fake = tmp_path / "slowfs-run"
+    fake.write_text(f"#!{sys.executable}\n"
+                    "import os, subprocess, sys\n"
+                    "print('warm=' + os.environ.get('SLOWFS_WARM', ''))\n"
+                    "print('slowfs-run: 0.01 s, exit 0')\n")
+    fake.chmod(fake.stat().st_mode | stat.S_IEXEC)
+    run = run_command(["true"], folder=tmp_path, cap=Cap("200MB/s", "2.5GiB", fake), cold=False)
+    package = Path(snaplift.__file__).resolve().parent
+    warmed = next(line for line in run.output.splitlines() if line.startswith("warm=")).removeprefix("warm=")
+    if package.is_relative_to(Path(sys.prefix).resolve()):
+        assert str(package) not in warmed.split(":")  # installed: warm with the environment already
+    else:
+        assert str(package) in warmed.split(":")
+    assert "SLOWFS_WARM" in (Path(__file__).parents[2] / "src/snaplift/workflow/bench/slowfs-run").read_text()
+
+
 @pytest.mark.slow
 def test_every_section_prints_on_a_tiny_archive(tmp_path):
     # a stand-in for slowfs-run with the same interface and last line (no cgroup, no root):

@@ -265,6 +265,22 @@ def _split(name: str, variable: xr.DataArray) -> dict[str, xr.DataArray]:
     return {name: xr.DataArray(variable.values, dims=variable.dims, attrs=attrs)}
 
 
+def _own_coordinates(variables: dict[str, xr.DataArray], coords: dict[str, xr.Variable],
+                     named: dict[str, set[str]]) -> None:
+    """Each variable's CF ``coordinates`` attribute: the coordinates on its dimensions, and of
+    the 0-d ones (a probe's position, CF 1.10 section 5.7) only those its source names.
+
+    Left to xarray, every 0-d coordinate goes into every variable's list (its dimensions,
+    none, are a subset of any), so each probe's position was attached to every field and
+    spectrum variable of the file.
+    """
+    for key, value in variables.items():
+        listed = sorted(name for name, coordinate in coords.items()
+                        if name not in value.dims and set(coordinate.dims) <= set(value.dims)
+                        and (coordinate.dims or name in named.get(key, set())))
+        value.encoding["coordinates"] = " ".join(listed) if listed else None
+
+
 def export_netcdf(store: str | Path, out: str | Path | None = None) -> Path:
     """Write modes, spectrum and diagnostics to one CF netCDF-4 file.
 
@@ -279,13 +295,18 @@ def export_netcdf(store: str | Path, out: str | Path | None = None) -> Path:
     _refuse_foreign(path)
     variables: dict[str, xr.DataArray] = {}
     coords: dict[str, xr.Variable] = {}
+    #: the coordinates each variable's source names itself (a probe's 0-d position)
+    named: dict[str, set[str]] = {}
     for group, dataset in (("modes", view.modes), ("spectrum", view.spectrum), ("diagnostics", view.diagnostics)):
         names = view.fields if group == "modes" else [str(n) for n in dataset.data_vars]
         for name in names:
-            for key, value in _split(name, dataset[name]).items():
+            source = dataset[name]
+            own = set(f"{source.attrs.get('coordinates', '')} {source.encoding.get('coordinates', '')}".split())
+            for key, value in _split(name, source).items():
                 if key in variables:
                     key = f"{group}_{key}"
                 variables[key] = value
+                named[key] = own
         for coordinate_name, coordinate in dataset.coords.items():
             if str(coordinate_name) not in coords and not np.iscomplexobj(coordinate.values):
                 coords[str(coordinate_name)] = coordinate.variable.to_base_variable()
@@ -297,6 +318,7 @@ def export_netcdf(store: str | Path, out: str | Path | None = None) -> Path:
     coords = {name: value for name, value in coords.items() if name not in variables}
     coords.setdefault("mode", xr.Variable(("mode",), np.arange(view.spectrum.sizes["mode"]),
                                           {"long_name": "mode (sorted by amplitude, conjugate pairs adjacent)"}))
+    _own_coordinates(variables, coords, named)
     dataset = xr.Dataset(variables, coords=coords, attrs={
         "Conventions": "CF-1.10", "title": f"modes and spectrum of {Path(store).name}",
         "source": f"snaplift result store {Path(store).resolve()}", "institution": "",
