@@ -46,7 +46,7 @@ _PREFIX = "snaplift-"
 
 @dataclass(frozen=True)
 class SharedArray:
-    """An array written by a worker into a file of the shared memory file system."""
+    """An accumulator a worker process made in a file of the memory file system it shares with the driver."""
 
     path: str
     shape: tuple[int, ...]
