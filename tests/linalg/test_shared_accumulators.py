@@ -133,3 +133,33 @@ def test_worker_processes_hand_over_accumulators_through_memory_files_with_the_t
         assert directory is not None and len(_files(directory)) == 1  # every accumulator was mapped: the probe
     assert loaded and min(loaded) >= 16384 * 13 * 8  # whole-height accumulators came through files
     assert _files(directory) == []
+
+
+def test_files_of_a_killed_driver_are_removed_by_the_next_runner_and_a_live_ones_kept(tmp_path: Path) -> None:
+    import subprocess
+    import sys
+
+    # a driver killed mid-run (a batch system's time limit) never closes its runner: its
+    # probe and accumulators would hold memory until the next boot
+    child = subprocess.run([sys.executable, "-c", "import os; print(os.getpid())"], capture_output=True, text=True,
+                           check=True)
+    dead_pid = int(child.stdout)  # that process has ended
+    namespace = _shared_arrays._owner().split(" ", 1)[1]
+    dead, other = "d" * 32, "e" * 32
+    (tmp_path / f"snaplift-{dead}.probe").write_text(f"{dead}\n{dead_pid} {namespace}\n")
+    (tmp_path / f"snaplift-{dead}-1.acc").write_bytes(b"\0" * 64)
+    # another PID namespace: its process ids mean something else here, so it is left alone
+    (tmp_path / f"snaplift-{other}.probe").write_text(f"{other}\n{dead_pid} pid:[1]\n")
+    (tmp_path / f"snaplift-{other}-1.acc").write_bytes(b"\0" * 64)
+    live = SharedDirectory(tmp_path)  # a run in progress (this process)
+    try:
+        assert not (tmp_path / f"snaplift-{dead}.probe").exists()
+        assert not (tmp_path / f"snaplift-{dead}-1.acc").exists()
+        assert (tmp_path / f"snaplift-{other}-1.acc").exists()
+        (tmp_path / f"snaplift-{live.token}-1.acc").write_bytes(b"\0" * 64)
+        later = SharedDirectory(tmp_path)  # a second runner beside it keeps the live run's files
+        assert (tmp_path / f"snaplift-{live.token}-1.acc").exists()
+        later.close()
+        assert allocate((40000, 5), np.dtype(np.float64), live.spec) is not None  # its probe still answers
+    finally:
+        live.close()

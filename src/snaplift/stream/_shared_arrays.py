@@ -19,7 +19,8 @@ back. A file's pages are reserved before it is mapped (``posix_fallocate``): a f
 system (``/dev/shm`` is 64 MiB in some container runtimes) is then an error the worker
 sees, and it keeps the accumulator in its own memory, where touching a page of a mapped
 file with no room behind it would be a SIGBUS. Files a run leaves behind (a worker lost,
-a driver stopped between a pass and its collect) are removed when the runner closes.
+a driver stopped between a pass and its collect) are removed when the runner closes; those
+of a driver that was killed, by the next runner on the host (:func:`remove_stale`).
 """
 
 from __future__ import annotations
@@ -33,7 +34,7 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["SharedArray", "SharedDirectory", "allocate", "remove", "SHARED_MIN_BYTES"]
+__all__ = ["SharedArray", "SharedDirectory", "allocate", "remove", "remove_stale", "SHARED_MIN_BYTES"]
 
 #: accumulators smaller than this are sent as values (a file costs more than the bytes)
 SHARED_MIN_BYTES = 1 << 20
@@ -90,8 +91,9 @@ class SharedDirectory:
         self.spec: tuple[str, str] | None = None
         try:
             if self.root.is_dir() and os.access(self.root, os.W_OK):
+                remove_stale(self.root)
                 probe = self.root / f"{_PREFIX}{self.token}.probe"
-                probe.write_text(self.token)
+                probe.write_text(f"{self.token}\n{_owner()}\n")
                 self.spec = (str(self.root), self.token)
         except OSError:
             self.spec = None
@@ -106,15 +108,51 @@ class SharedDirectory:
         self.spec = None
 
 
+def _owner() -> str:
+    """``"<pid> <pid namespace>"`` of this process: a probe's owner, as :func:`remove_stale` checks it."""
+    try:
+        namespace = os.readlink("/proc/self/ns/pid")
+    except OSError:
+        namespace = ""
+    return f"{os.getpid()} {namespace}"
+
+
+def remove_stale(root: Path) -> list[str]:
+    """Remove the files of runs whose driver died without closing its runner (killed by a
+    batch system's time limit, say): their accumulators would hold memory until the next
+    boot. Only this user's probes whose owner shares this process's PID namespace (so its
+    process id means the same here) and no longer runs; returns the tokens removed."""
+    _, namespace = _owner().split(" ", 1)
+    removed = []
+    for probe in root.glob(f"{_PREFIX}*.probe"):
+        try:
+            token, owner = probe.read_text().split("\n")[:2]
+            pid, owner_namespace = owner.split(" ", 1)
+            if not namespace or owner_namespace != namespace or probe.stat().st_uid != os.getuid():
+                continue
+            os.kill(int(pid), 0)
+            continue  # its driver runs
+        except ProcessLookupError:
+            pass
+        except (OSError, ValueError):
+            continue
+        for path in root.glob(f"{_PREFIX}{token}*"):
+            with contextlib.suppress(OSError):
+                path.unlink()
+        removed.append(token)
+    return removed
+
+
 def _shares(spec: tuple[str, str] | None) -> Path | None:
     """The root of ``spec`` when this process sees the driver's probe in it."""
     if spec is None:
         return None
     root, token = spec
     try:
-        return Path(root) if (Path(root) / f"{_PREFIX}{token}.probe").read_text() == token else None
+        first = (Path(root) / f"{_PREFIX}{token}.probe").read_text().split("\n", 1)[0]
     except OSError:
         return None
+    return Path(root) if first == token else None
 
 
 def allocate(shape: tuple[int, int], dtype: np.dtype, spec: tuple[str, str] | None
