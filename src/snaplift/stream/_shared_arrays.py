@@ -47,12 +47,12 @@ _PREFIX = "snaplift-"
 
 @dataclass(frozen=True)
 class SharedArray:
-    """An accumulator a worker process made in a file of the memory file system it shares with the driver."""
+    """An accumulator a worker process made in a file of the memory file system it shares with
+    the driver: column-major, as the slots keep their accumulators."""
 
     path: str
     shape: tuple[int, ...]
     dtype: str
-    fortran: bool
 
     @property
     def nbytes(self) -> int:
@@ -76,7 +76,7 @@ class SharedArray:
             os.close(fd)
             with contextlib.suppress(OSError):
                 os.unlink(self.path)
-        return np.ndarray(self.shape, dtype=np.dtype(self.dtype), buffer=buffer, order="F" if self.fortran else "C")
+        return np.ndarray(self.shape, dtype=np.dtype(self.dtype), buffer=buffer, order="F")
 
 
 class SharedDirectory:
@@ -189,7 +189,7 @@ def allocate(shape: tuple[int, int], dtype: np.dtype, spec: tuple[str, str] | No
     finally:
         os.close(fd)
     array = np.ndarray(shape, dtype=np.dtype(dtype), buffer=buffer, order="F")
-    return array, SharedArray(str(path), tuple(int(n) for n in shape), np.dtype(dtype).str, True)
+    return array, SharedArray(str(path), tuple(int(n) for n in shape), np.dtype(dtype).str)
 
 
 def remove(shared: SharedArray) -> None:
