@@ -32,7 +32,7 @@ def test_an_accumulator_made_in_a_file_is_mapped_by_the_driver_with_its_values(t
         _slots.add_range_product("shared-1", "range", (40000, 5), 0, (0, 40000), raw, right, 0, -1, directory.spec)
         _slots.add_range_product("shared-1", "range", (40000, 5), 1, (0, 40000), 2 * raw, right, 0, 0,
                                  directory.spec)
-        parts = _slots.collect("shared-1", "range")
+        parts = _slots.collect_remote("shared-1", "range")
         value, tiles = parts[0]
         assert isinstance(value, SharedArray) and tiles == [0, 1]
         assert len(_files(directory)) == 2  # the probe and the accumulator
@@ -56,7 +56,7 @@ def test_row_blocks_of_a_slot_in_a_file_are_views_of_one_accumulator(tmp_path: P
         for tile, (r0, r1) in enumerate([(0, 25000), (25000, 40000), (0, 25000)]):
             _slots.add_range_product("shared-5", "range", (40000, 4), tile, (r0, r1), raw[:, r0:r1], right, 0,
                                      tile - 1, directory.spec)
-        value, tiles = _slots.collect("shared-5", "range")[0]
+        value, tiles = _slots.collect_remote("shared-5", "range")[0]
         assert isinstance(value, SharedArray) and tiles == [0, 1, 2]
         expected = raw.T @ right  # numpy is the reference
         expected[:25000] *= 2  # the first row block came twice
@@ -78,7 +78,7 @@ def test_without_the_drivers_probe_or_room_the_accumulator_stays_in_the_process(
         assert allocate((40000, 5), np.dtype(np.float64), directory.spec) is None
         raw, right = np.ones((3, 40000)), np.ones((3, 5))
         _slots.add_range_product("shared-2", "range", (40000, 5), 0, (0, 40000), raw, right, 0, -1, directory.spec)
-        value, _ = _slots.collect("shared-2", "range")[0]
+        value, _ = _slots.collect_remote("shared-2", "range")[0]
         assert isinstance(value, np.ndarray)
         np.testing.assert_array_equal(value, np.full((40000, 5), 3.0))  # 1 x 1 summed over 3 snapshots
         assert len(_files(directory)) == 1  # only the probe
@@ -95,7 +95,7 @@ def test_a_discarded_slot_and_a_closed_directory_leave_no_file(tmp_path: Path) -
     assert len(_files(directory)) == 1
     # an accumulator handed over but never mapped (the driver stopped first) goes with the runner
     _slots.add_range_product("shared-4", "range", (40000, 5), 0, (0, 40000), raw, right, 0, -1, directory.spec)
-    assert isinstance(_slots.collect("shared-4", "range")[0][0], SharedArray)
+    assert isinstance(_slots.collect_remote("shared-4", "range")[0][0], SharedArray)
     directory.close()
     assert _files(directory) == []
 

@@ -34,7 +34,6 @@ from __future__ import annotations
 import os
 import threading
 from dataclasses import dataclass, field
-from typing import Any
 
 import numpy as np
 
@@ -253,15 +252,13 @@ def _drain(slot: _Slot) -> None:
         slot.last = tile_id
 
 
-def collect(key: str, name: str) -> dict[int, tuple[np.ndarray | SharedArray, list[int]]]:
-    """Empty this process's slots for ``(key, name)``: ``{slot index: (value, tile ids)}``;
-    a value made in the driver's memory file system is given as its
-    :class:`~snaplift.stream._shared_arrays.SharedArray` (this process's mapping dropped)."""
+def _empty(key: str, name: str) -> list[tuple[int, _Slot, np.ndarray]]:
+    """Take this process's slots for ``(key, name)`` out: ``(slot index, slot, value)`` each."""
     with _lock:
         _check_pid()
         group = _slots.pop((key, name), {})
         _chunk_buffers.clear()  # the pass has drained (or is paused for a checkpoint)
-    out = {}
+    out = []
     for index, slot in group.items():
         with slot.lock:
             # a parked product whose predecessor never came (its worker was lost): counted
@@ -270,10 +267,17 @@ def collect(key: str, name: str) -> dict[int, tuple[np.ndarray | SharedArray, li
                 slot.rows(r0, r1)[...] += product
                 slot.tiles.add(tile_id)
             slot.parked.clear()
-            value = slot.value()
-            out[int(index)] = (slot.shared if slot.shared is not None else value, sorted(slot.tiles))
-            slot.shared = None
-            del value  # a value in a file is this process's mapping of it: dropped here
+            out.append((int(index), slot, slot.value()))
+    return out
+
+
+def collect(key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
+    """Empty this process's slots for ``(key, name)``: ``{slot index: (value, tile ids)}``."""
+    out = {}
+    for index, slot, value in _empty(key, name):
+        if slot.shared is not None:  # kept here: the file's name goes, its mapping is the value
+            remove(slot.shared)
+        out[index] = (value, sorted(slot.tiles))
     return out
 
 
@@ -297,6 +301,12 @@ def discard(key: str, *, abort: bool = False) -> None:
                 slot.blocks.clear()
 
 
-def collect_remote(key: str, name: str) -> dict[int, tuple[Any, list[int]]]:
-    """:func:`collect`, run in a worker process by a task pinned to it."""
-    return collect(key, name)
+def collect_remote(key: str, name: str) -> dict[int, tuple[np.ndarray | SharedArray, list[int]]]:
+    """:func:`collect`, run in a worker process by a task pinned to it: a value made in the
+    driver's memory file system is handed over as its
+    :class:`~snaplift.stream._shared_arrays.SharedArray` (this process's mapping dropped)."""
+    out: dict[int, tuple[np.ndarray | SharedArray, list[int]]] = {}
+    for index, slot, value in _empty(key, name):
+        out[index] = (slot.shared if slot.shared is not None else value, sorted(slot.tiles))
+        del value
+    return out

@@ -150,9 +150,7 @@ class ThreadRunner:
     def collect(self, key: str, name: str) -> dict[int, tuple[np.ndarray, list[int]]]:
         from snaplift.stream._slots import collect
 
-        # the slots are this process's (no accumulator_files): arrays, or a file made anyway
-        return {index: (value.load() if isinstance(value, SharedArray) else value, tiles)
-                for index, (value, tiles) in collect(key, name).items()}
+        return collect(key, name)
 
     def discard(self, key: str, *, abort: bool) -> None:
         from snaplift.stream._slots import discard
